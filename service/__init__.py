@@ -1,0 +1,1 @@
+"""demaudit's front ends: the CLI, the job runner that dispatches tiles to Dask, settings."""

@@ -1,0 +1,33 @@
+"""The Dask client: an embedded LocalCluster by default, an external scheduler on request."""
+
+from __future__ import annotations
+
+import logging
+from collections.abc import Iterator
+from contextlib import contextmanager
+
+from distributed import Client, LocalCluster
+
+
+@contextmanager
+def dask_client(
+    scheduler: str | None = None, *, workers: int = 2, memory_limit: str = "4GiB"
+) -> Iterator[Client]:
+    """A connected client; the local cluster (processes, one thread each) lives as long as it."""
+    if scheduler:
+        with Client(scheduler, timeout="30s") as client:
+            yield client
+        return
+    cluster = LocalCluster(
+        n_workers=workers,
+        threads_per_worker=1,
+        processes=True,
+        memory_limit=memory_limit,
+        dashboard_address=None,
+        silence_logs=logging.ERROR,
+    )
+    try:
+        with Client(cluster) as client:
+            yield client
+    finally:
+        cluster.close()

@@ -1,0 +1,189 @@
+"""Run one audit job on a Dask cluster: catalog, one task per test tile, merge, write.
+
+The client process holds the catalog (small), the running merge of summaries and one finished tile
+result at a time; pixels stay on the workers.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from collections.abc import Callable, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from distributed import Client, as_completed
+from pyproj import CRS, Transformer
+
+from workers import regions as region_ops
+from workers import summary as dh_summary
+from workers.catalog import ScanFailure, TileIndex, TileInfo, scan_tile
+from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation
+from workers.errors import EmptyOverlapError, TileReadError
+from workers.merge import JobAccumulator
+from workers.regions import Region
+from workers.report import build_summary, region_entries
+from workers.spec import ELLIPSOIDAL, ResolvedJob
+from workers.summary import statistics
+from workers.tile_task import FAILED, TileOptions, TileResult, audit_tile
+from workers.writers import ResultsStore, overview_layout, statistics_table, write_summary
+
+Progress = Callable[[int, int], None]
+SOFTWARE = "demaudit 0.1.0"
+
+
+def run_job(
+    job: ResolvedJob,
+    out_dir: Path,
+    *,
+    client: Client,
+    grid_dirs: Sequence[str] = DEFAULT_GRID_DIRS,
+    progress: Progress | None = None,
+) -> dict[str, Any]:
+    """Audit job.spec on the cluster behind client; write results.zarr and summary.json into
+    out_dir and return the summary document."""
+    started = _now()
+    out_dir.mkdir(parents=True, exist_ok=True)
+    options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
+    test_tiles, test_failures = _scan(client, job.test_tiles)
+    ref_tiles, ref_failures = _scan(client, job.reference_tiles)
+    if not test_tiles:
+        raise TileReadError("no test tile could be read: " + _reasons(test_failures))
+    if not ref_tiles:
+        raise TileReadError("no reference tile could be read: " + _reasons(ref_failures))
+    _check_geoid(options, test_tiles[0])
+    index = TileIndex(ref_tiles)
+    candidates = {t.tile_id: index.overlapping(t.grid) for t in test_tiles}
+    if not any(candidates.values()):
+        raise EmptyOverlapError("the test and reference tiles do not overlap anywhere")
+    region_list = _load_regions(job)
+    region_ids = [r.region_id for r in region_list]
+    regions = _regions_by_crs(region_list, test_tiles)
+
+    layout = overview_layout(test_tiles, factor=job.spec.options.overview_factor)
+    store = ResultsStore(out_dir, layout)
+    acc = JobAccumulator(region_ids=region_ids)
+    records: dict[str, dict[str, Any]] = {}
+    futures = [
+        client.submit(
+            audit_tile,
+            tile,
+            candidates[tile.tile_id],
+            region_ops.clip_to(regions.get(tile.grid.crs, []), tile.bounds),
+            options,
+            pure=False,
+            key=f"audit-tile-{tile.tile_id}-{started}",
+        )
+        for tile in test_tiles
+    ]
+    total = len(futures) + len(test_failures)
+    for failure in test_failures:
+        acc.add(TileResult(failure.tile_id, FAILED, failure.reason))
+        records[failure.tile_id] = _tile_record(failure.tile_id, FAILED, failure.reason, None, None)
+    by_id = {t.tile_id: t for t in test_tiles}
+    for future in as_completed(futures):
+        result: TileResult = future.result()
+        future.release()
+        acc.add(result)
+        store.write_overview(result.tile_id, result.overview)
+        tile = by_id[result.tile_id]
+        records[result.tile_id] = _tile_record(
+            result.tile_id, result.status, result.reason, tile, statistics(result.summary)
+        )
+        if progress:
+            progress(acc.tiles_done, total)
+
+    tile_rows = [records[k] for k in sorted(records)]
+    names = {r.region_id: r.name for r in region_list}
+    region_docs = region_entries({r: acc.regions[r] for r in region_ids}, names)
+    _write_tables(store, tile_rows, region_docs)
+    document = build_summary(
+        job={"name": job.spec.name, "spec": job.spec.model_dump(mode="json"), "started": started,
+             "finished": _now(), "software": SOFTWARE,
+             "tiles": {"test": len(job.test_tiles), "reference": len(job.reference_tiles),
+                       "failed": acc.tiles_failed}},
+        overall=acc.overall,
+        regions=region_docs,
+        tiles=tile_rows,
+        reference_failures=[{"tile": f.tile_id, "reason": f.reason} for f in ref_failures],
+        extra_cautions=[] if layout else ["no dh overview: the test tiles are not on one grid"],
+    )
+    write_summary(out_dir, document)
+    return document
+
+
+def _scan(client: Client, paths: Sequence[Path]) -> tuple[list[TileInfo], list[ScanFailure]]:
+    futures = client.map(scan_tile, [str(p) for p in paths], pure=False)
+    scanned = client.gather(futures)
+    ok = [s for s in scanned if isinstance(s, TileInfo)]
+    failed = [s for s in scanned if isinstance(s, ScanFailure)]
+    return ok, failed
+
+
+def _reasons(failures: Sequence[ScanFailure]) -> str:
+    return "; ".join(f.reason for f in failures[:5]) + (" ..." if len(failures) > 5 else "")
+
+
+def _check_geoid(options: TileOptions, sample: TileInfo) -> None:
+    """Fail the job before dispatch when a needed geoid grid is missing (GeoidGridError)."""
+    x, y = sample.grid.pixel_centres(np.array([0.0]), np.array([0.0]))
+    lon, lat = Transformer.from_crs(CRS.from_wkt(sample.grid.crs), "EPSG:4326", always_xy=True).transform(x, y)
+    for vertical in {options.test_vertical_crs, options.reference_vertical_crs} - {ELLIPSOIDAL}:
+        geoid_undulation(lon, lat, vertical_crs=vertical, grid_dirs=options.grid_dirs)
+
+
+def _load_regions(job: ResolvedJob) -> list[Region]:
+    if job.region_file is None or job.spec.region is None:
+        return []
+    return region_ops.read_regions(job.region_file, id_property=job.spec.region.id_property)
+
+
+def _regions_by_crs(regions: Sequence[Region], tiles: Sequence[TileInfo]) -> dict[str, list[Region]]:
+    """The regions reprojected into each test CRS; EmptyOverlapError when none touches a tile."""
+    if not regions:
+        return {}
+    by_crs = {crs: region_ops.to_crs(regions, crs) for crs in {t.grid.crs for t in tiles}}
+    if not any(region_ops.clip_to(by_crs[t.grid.crs], t.bounds) for t in tiles):
+        raise EmptyOverlapError(
+            f"region.file: none of the {len(regions)} regions overlaps the test tiles "
+            "(check the file's CRS and extent)"
+        )
+    return by_crs
+
+
+def _tile_record(
+    tile_id: str, status: str, reason: str | None, tile: TileInfo | None,
+    stats: dict[str, Any] | None,
+) -> dict[str, Any]:
+    record: dict[str, Any] = {"tile": tile_id, "status": status}
+    if reason:
+        record["reason"] = reason
+    if tile is not None:
+        record["bounds"] = list(tile.bounds)
+        record["fingerprint"] = tile.fingerprint
+    record["stats"] = stats or statistics(dh_summary.empty())
+    return record
+
+
+def _write_tables(store: ResultsStore, tiles: list[dict[str, Any]], regions: list[dict[str, Any]]) -> None:
+    nan4 = [np.nan] * 4
+    bounds = np.array([t.get("bounds", nan4) for t in tiles], dtype=np.float64).reshape(-1, 4)
+    tile_table = statistics_table(
+        "tile",
+        [t["tile"] for t in tiles],
+        [t["stats"] for t in tiles],
+        {
+            "left": bounds[:, 0], "bottom": bounds[:, 1], "right": bounds[:, 2], "top": bounds[:, 3],
+            "status": [t["status"] for t in tiles],
+            "reason": [t.get("reason", "") for t in tiles],
+        },
+    )
+    region_table = statistics_table(
+        "region", [r["region"] for r in regions], [r["stats"] for r in regions],
+        {"name": [r["name"] for r in regions]},
+    )
+    store.write_tables(tile_table, region_table)
+
+
+def _now() -> str:
+    return dt.datetime.now(dt.UTC).isoformat(timespec="seconds")

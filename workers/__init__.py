@@ -1,0 +1,1 @@
+"""The tile pipeline of demaudit."""

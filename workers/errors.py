@@ -1,0 +1,45 @@
+"""Errors of the tile pipeline.
+
+Hierarchy::
+
+    AuditError                      root of everything demaudit raises on purpose
+    ├── SpecError (ValueError)      the job spec is malformed or inconsistent
+    ├── TileReadError (OSError)     a tile cannot be opened or decoded
+    ├── MissingCRSError (ValueError)a tile or region file declares no CRS
+    ├── GeoidGridError (RuntimeError) the geoid grid needed for a datum change is missing
+    ├── EmptyOverlapError (ValueError) test, reference or regions share no area
+    └── DataRootError (PermissionError) a path lies outside the allowed data roots
+
+Each error carries a message that names the file or field at fault. The service turns them into
+HTTP problem responses in one place; the CLI prints them and exits non-zero.
+"""
+
+from __future__ import annotations
+
+
+class AuditError(Exception):
+    """Root of the errors demaudit raises on purpose."""
+
+
+class SpecError(AuditError, ValueError):
+    """The job spec is malformed, inconsistent or names files that do not exist."""
+
+
+class TileReadError(AuditError, OSError):
+    """A tile cannot be opened or decoded (corrupt, truncated, not a raster)."""
+
+
+class MissingCRSError(AuditError, ValueError):
+    """A tile or region file declares no coordinate reference system."""
+
+
+class GeoidGridError(AuditError, RuntimeError):
+    """The geoid grid needed for a vertical datum change is not installed."""
+
+
+class EmptyOverlapError(AuditError, ValueError):
+    """Test tiles, reference tiles or regions share no area."""
+
+
+class DataRootError(AuditError, PermissionError):
+    """A path in a job spec lies outside the allowed data roots."""

@@ -1,0 +1,53 @@
+"""A raster grid: CRS, affine transform and shape. The frame every per-tile array lives on."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from affine import Affine
+from numpy.typing import NDArray
+from pyproj import CRS
+
+
+@dataclass(frozen=True)
+class Grid:
+    """A north-up or rotated raster grid. ``crs`` is WKT; ``transform`` the 6 GDAL-order affine
+    coefficients (a, b, c, d, e, f) mapping (col, row) of a pixel corner to (x, y)."""
+
+    crs: str
+    transform: tuple[float, float, float, float, float, float]
+    width: int
+    height: int
+
+    @property
+    def affine(self) -> Affine:
+        return Affine(*self.transform)
+
+    @property
+    def shape(self) -> tuple[int, int]:
+        return (self.height, self.width)
+
+    @property
+    def pyproj_crs(self) -> CRS:
+        return CRS.from_wkt(self.crs)
+
+    @property
+    def resolution(self) -> tuple[float, float]:
+        a, b, _, d, e, _ = self.transform
+        return (float(np.hypot(a, d)), float(np.hypot(b, e)))
+
+    @property
+    def bounds(self) -> tuple[float, float, float, float]:
+        """(left, bottom, right, top) of the grid's footprint in its CRS."""
+        corners = [self.affine * (c, r) for c in (0, self.width) for r in (0, self.height)]
+        xs, ys = zip(*corners, strict=True)
+        return (min(xs), min(ys), max(xs), max(ys))
+
+    def pixel_centres(
+        self, rows: NDArray[np.float64], cols: NDArray[np.float64]
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """Map coordinates of the centres of pixels (rows, cols), broadcasting the inputs."""
+        a, b, c, d, e, f = self.transform
+        cc, rr = cols + 0.5, rows + 0.5
+        return a * cc + b * rr + c, d * cc + e * rr + f

@@ -1,0 +1,209 @@
+"""The job spec: the one contract shared by the service, the CLI and the workers.
+
+A spec names a test DEM (tiles), a reference (tiles), optional regions to aggregate over and
+processing options. It is read from YAML or JSON; relative paths resolve against the folder of the
+spec file (or a base folder given by the caller). Unknown keys and inconsistent values are rejected
+with a :class:`~workers.errors.SpecError` whose message names the field.
+"""
+
+from __future__ import annotations
+
+import glob
+import json
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Literal
+
+import yaml
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pyproj import CRS
+from pyproj.exceptions import CRSError
+
+from workers.errors import DataRootError, SpecError
+
+Units = Literal["metre", "foot", "us_survey_foot"]
+Resampling = Literal["nearest", "bilinear", "cubic", "average"]
+ELLIPSOIDAL = "ellipsoidal"
+
+#: How many metres one unit of each allowed height unit is (NIST: the international foot is
+#: exactly 0.3048 m; the US survey foot is exactly 1200/3937 m).
+METRES_PER_UNIT: dict[str, float] = {
+    "metre": 1.0,
+    "foot": 0.3048,
+    "us_survey_foot": 1200.0 / 3937.0,
+}
+
+
+class _Strict(BaseModel):
+    model_config = ConfigDict(extra="forbid", frozen=True)
+
+
+class TileSource(_Strict):
+    """A set of raster tiles with the vertical datum and unit of their heights."""
+
+    tiles: str | list[str] = Field(description="A glob, a folder, or a list of GeoTIFF paths.")
+    vertical_crs: str = Field(
+        default=ELLIPSOIDAL,
+        description="'ellipsoidal' (heights above the WGS 84 ellipsoid) or a vertical CRS code "
+        "such as EPSG:5773 (EGM96 height).",
+    )
+    units: Units = Field(default="metre", description="Unit of the heights stored in the tiles.")
+    nodata: float | None = Field(
+        default=None, description="Nodata value to use when the tiles declare none."
+    )
+
+    @field_validator("vertical_crs")
+    @classmethod
+    def _known_vertical_crs(cls, value: str) -> str:
+        if value == ELLIPSOIDAL:
+            return value
+        try:
+            crs = CRS.from_user_input(value)
+        except CRSError as exc:
+            raise ValueError(f"unknown vertical CRS {value!r}: {exc}") from None
+        if not crs.is_vertical or crs.is_compound:
+            raise ValueError(f"{value!r} is not a vertical CRS (expected e.g. EPSG:5773)")
+        return value
+
+    @model_validator(mode="after")
+    def _units_agree_with_crs(self) -> TileSource:
+        if self.vertical_crs == ELLIPSOIDAL:
+            return self
+        axis_units = {a.unit_name.lower() for a in CRS.from_user_input(self.vertical_crs).axis_info}
+        declared = self.units
+        crs_in_feet = any("foot" in u for u in axis_units)
+        if crs_in_feet != (declared != "metre"):
+            raise ValueError(
+                f"units {declared!r} disagree with vertical_crs {self.vertical_crs} whose axis "
+                f"unit is {', '.join(sorted(axis_units))}"
+            )
+        return self
+
+
+class RegionSource(_Strict):
+    """Polygons to aggregate over: a GeoJSON FeatureCollection and the property naming each."""
+
+    file: str = Field(description="GeoJSON FeatureCollection (CRS as declared, else EPSG:4326).")
+    id_property: str = Field(default="code", description="Feature property holding the region id.")
+
+
+class Options(_Strict):
+    """Processing options."""
+
+    resampling: Resampling = Field(
+        default="bilinear", description="How the reference is resampled onto the test grid."
+    )
+    overview_factor: int = Field(
+        default=8, ge=1, le=64, description="Decimation of the dh overview map (1:N)."
+    )
+
+
+class JobSpec(_Strict):
+    """One audit: a test DEM against a reference, over regions."""
+
+    name: str = Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
+    test: TileSource
+    reference: TileSource
+    region: RegionSource | None = None
+    options: Options = Options()
+
+
+@dataclass(frozen=True)
+class ResolvedJob:
+    """A validated spec with every path made absolute and every tile glob expanded."""
+
+    spec: JobSpec
+    test_tiles: tuple[Path, ...]
+    reference_tiles: tuple[Path, ...]
+    region_file: Path | None
+
+
+def parse_spec(data: dict[str, Any]) -> JobSpec:
+    """Validate a spec given as a mapping; raise SpecError naming each offending field."""
+    if not isinstance(data, dict):
+        raise SpecError(f"a job spec must be a mapping, got {type(data).__name__}")
+    try:
+        return JobSpec.model_validate(data)
+    except ValidationError as exc:
+        raise SpecError(format_validation_error(exc)) from None
+
+
+def format_validation_error(exc: ValidationError) -> str:
+    """One line per problem, each starting with the dotted field path."""
+    lines = []
+    for err in exc.errors():
+        field = ".".join(str(p) for p in err["loc"]) or "(spec)"
+        message = err["msg"].removeprefix("Value error, ")
+        if err["type"] == "extra_forbidden":
+            message = "unknown key"
+        lines.append(f"{field}: {message}")
+    return "invalid job spec: " + "; ".join(lines)
+
+
+def load_spec_file(path: Path) -> dict[str, Any]:
+    """Read a YAML or JSON spec file into a mapping."""
+    try:
+        text = Path(path).read_text(encoding="utf-8")
+    except OSError as exc:
+        raise SpecError(f"cannot read job spec {path}: {exc.strerror or exc}") from None
+    try:
+        if Path(path).suffix.lower() == ".json":
+            data = json.loads(text)
+        else:
+            data = yaml.safe_load(text)
+    except (yaml.YAMLError, json.JSONDecodeError) as exc:
+        raise SpecError(f"job spec {path} is not valid YAML/JSON: {exc}") from None
+    return data  # type: ignore[no-any-return]
+
+
+def resolve(
+    spec: JobSpec, *, base_dir: Path, data_roots: Sequence[Path] | None = None
+) -> ResolvedJob:
+    """Make paths absolute against base_dir, expand tile globs and check the files exist.
+
+    When data_roots is given, every path must lie inside one of them (DataRootError otherwise).
+    """
+    roots = [Path(r).resolve() for r in data_roots] if data_roots else None
+    test = _expand_tiles(spec.test.tiles, base_dir=base_dir, field="test.tiles", roots=roots)
+    ref = _expand_tiles(
+        spec.reference.tiles, base_dir=base_dir, field="reference.tiles", roots=roots
+    )
+    region_file = None
+    if spec.region is not None:
+        region_file = _resolve_path(spec.region.file, base_dir, "region.file", roots)
+        if not region_file.is_file():
+            raise SpecError(f"region.file: no such file {region_file}")
+    return ResolvedJob(spec=spec, test_tiles=test, reference_tiles=ref, region_file=region_file)
+
+
+def _resolve_path(raw: str, base_dir: Path, field: str, roots: list[Path] | None) -> Path:
+    path = Path(raw).expanduser()
+    if not path.is_absolute():
+        path = base_dir / path
+    path = path.resolve()
+    if roots is not None and not any(path.is_relative_to(r) for r in roots):
+        raise DataRootError(f"{field}: {path} lies outside the allowed data roots")
+    return path
+
+
+def _expand_tiles(
+    tiles: str | list[str], *, base_dir: Path, field: str, roots: list[Path] | None
+) -> tuple[Path, ...]:
+    patterns = [tiles] if isinstance(tiles, str) else list(tiles)
+    found: list[Path] = []
+    for pattern in patterns:
+        path = _resolve_path(pattern, base_dir, field, roots)
+        if path.is_dir():
+            matches = sorted(p for p in path.iterdir() if p.suffix.lower() in {".tif", ".tiff"})
+        elif glob.has_magic(str(path)):
+            matches = sorted(Path(p) for p in glob.glob(str(path)))
+        elif path.is_file():
+            matches = [path]
+        else:
+            raise SpecError(f"{field}: no such file or folder {path}")
+        if not matches:
+            raise SpecError(f"{field}: {pattern!r} matches no tiles (looked in {path})")
+        found.extend(matches)
+    unique = tuple(dict.fromkeys(found))
+    return unique

@@ -1,0 +1,180 @@
+"""Write results: ``results.zarr`` (tile and region tables, georeferenced dh overview) and
+``summary.json``. The I/O edge at the end of the pipeline.
+
+Zarr layout (Zarr format 3, consolidated metadata)::
+
+    results.zarr/
+      tiles/        dim tile:   one variable per statistic; coords tile, left/bottom/right/top, status, reason
+      regions/      dim region: one variable per statistic; coords region, name
+      dh_overview/  dims y, x:  block mean of dh (1:factor), CF grid_mapping ``spatial_ref``
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import warnings
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import dask.array as da
+import numpy as np
+import rioxarray  # noqa: F401 - registers the .rio accessor
+import xarray as xr
+from numpy.typing import NDArray
+
+from workers.catalog import TileInfo
+from workers.summary import STAT_KEYS
+
+ZARR_NAME = "results.zarr"
+SUMMARY_NAME = "summary.json"
+
+
+@dataclass(frozen=True)
+class OverviewLayout:
+    """Where each test tile's overview block goes in the mosaic of all tiles."""
+
+    crs: str
+    transform: tuple[float, float, float, float, float, float]
+    width: int
+    height: int
+    factor: int
+    tile_block: int
+    offsets: Mapping[str, tuple[int, int]]  # tile id -> (row, col) of its block in the mosaic
+
+
+def overview_layout(tiles: Sequence[TileInfo], *, factor: int) -> OverviewLayout | None:
+    """A mosaic grid for the overview, decimated by the largest divisor of the tiling <= factor.
+
+    None when the test tiles do not share one CRS and one north-up pixel grid.
+    """
+    if not tiles:
+        return None
+    first = tiles[0].grid
+    a, b, _, d, e, _ = first.transform
+    if b != 0 or d != 0 or any(t.grid.crs != first.crs for t in tiles):
+        return None
+    if any(t.grid.transform[0] != a or t.grid.transform[4] != e for t in tiles):
+        return None
+    left = min(t.grid.transform[2] for t in tiles)
+    top = max(t.grid.transform[5] for t in tiles)
+    pixel_offsets = {}
+    for t in tiles:
+        col, row = (t.grid.transform[2] - left) / a, (t.grid.transform[5] - top) / e
+        if abs(col - round(col)) > 1e-6 or abs(row - round(row)) > 1e-6:
+            return None
+        pixel_offsets[t.tile_id] = (round(row), round(col))
+    sizes = [t.grid.width for t in tiles] + [t.grid.height for t in tiles]
+    common = math.gcd(*sizes, *[v for rc in pixel_offsets.values() for v in rc])
+    factor = max(f for f in range(1, factor + 1) if common % f == 0)
+    width = max(c + t.grid.width for t, (_, c) in zip(tiles, pixel_offsets.values(), strict=True))
+    height = max(r + t.grid.height for t, (r, _) in zip(tiles, pixel_offsets.values(), strict=True))
+    return OverviewLayout(
+        crs=first.crs,
+        transform=(a * factor, 0.0, left, 0.0, e * factor, top),
+        width=width // factor,
+        height=height // factor,
+        factor=factor,
+        tile_block=max(min(sizes) // factor, 1),
+        offsets={k: (r // factor, c // factor) for k, (r, c) in pixel_offsets.items()},
+    )
+
+
+@contextmanager
+def _quiet_zarr() -> Iterator[None]:
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=".*Consolidated metadata.*")
+        yield
+
+
+class ResultsStore:
+    """Writes one job's ``results.zarr``; overview blocks are written as tiles finish."""
+
+    def __init__(self, out_dir: Path, layout: OverviewLayout | None) -> None:
+        self.path = Path(out_dir) / ZARR_NAME
+        self.layout = layout
+        if layout is not None:
+            self._create_overview(layout)
+
+    def _create_overview(self, layout: OverviewLayout) -> None:
+        a, _, c, _, e, f = layout.transform
+        x = c + a * (np.arange(layout.width) + 0.5)
+        y = f + e * (np.arange(layout.height) + 0.5)
+        blank = da.full((layout.height, layout.width), np.nan, dtype=np.float32,
+                        chunks=(layout.tile_block, layout.tile_block))
+        dh = xr.DataArray(blank, dims=("y", "x"), coords={"y": y, "x": x}, name="dh")
+        dh.attrs.update(long_name="dh, test minus reference (block mean)", units="m")
+        dh = dh.rio.write_crs(layout.crs).rio.write_transform(_affine(layout.transform))
+        dh.encoding["_FillValue"] = np.float32(np.nan)
+        with _quiet_zarr():
+            dh.to_dataset().to_zarr(self.path, group="dh_overview", mode="w", compute=False,
+                                    zarr_format=3)
+
+    def write_overview(self, tile_id: str, block: NDArray[np.float32] | None) -> None:
+        """Write one tile's overview block in place (no other block is read)."""
+        if self.layout is None or block is None or tile_id not in self.layout.offsets:
+            return
+        row, col = self.layout.offsets[tile_id]
+        rows = slice(row, min(row + block.shape[0], self.layout.height))
+        cols = slice(col, min(col + block.shape[1], self.layout.width))
+        part = block[: rows.stop - rows.start, : cols.stop - cols.start]
+        ds = xr.Dataset({"dh": (("y", "x"), part)})
+        with _quiet_zarr():
+            ds.to_zarr(self.path, group="dh_overview", region={"y": rows, "x": cols})
+
+    def write_tables(self, tiles: xr.Dataset, regions: xr.Dataset) -> None:
+        """Write the tile and region tables."""
+        mode = "a" if self.path.exists() else "w"
+        with _quiet_zarr():
+            tiles.to_zarr(self.path, group="tiles", mode=mode, zarr_format=3)
+            regions.to_zarr(self.path, group="regions", mode="a", zarr_format=3)
+
+
+def _affine(t: tuple[float, ...]):  # type: ignore[no-untyped-def]
+    from affine import Affine
+
+    return Affine(*t[:6])
+
+
+def statistics_table(
+    dim: str, ids: Sequence[str], stats: Sequence[Mapping[str, Any]], coords: Mapping[str, Sequence[Any]]
+) -> xr.Dataset:
+    """One variable per statistic along dim; None becomes NaN (count stays an integer)."""
+    data: dict[str, Any] = {}
+    for key in STAT_KEYS:
+        values = [s.get(key) for s in stats]
+        if key == "count":
+            data[key] = (dim, np.array([v or 0 for v in values], dtype=np.int64))
+        else:
+            data[key] = (dim, np.array([np.nan if v is None else v for v in values], dtype=np.float64))
+    all_coords: dict[str, Any] = {dim: np.array(list(ids), dtype=object)}
+    for name, values in coords.items():
+        arr = np.array(list(values))
+        all_coords[name] = (dim, arr.astype(object) if arr.dtype.kind in "UO" else arr)
+    ds = xr.Dataset(data, coords=all_coords)
+    for key in STAT_KEYS:
+        if key != "count":
+            ds[key].attrs["units"] = "m"
+    return ds
+
+
+def write_summary(out_dir: Path, document: Mapping[str, Any]) -> Path:
+    """Write summary.json (NaN and infinities as null)."""
+    path = Path(out_dir) / SUMMARY_NAME
+    path.write_text(json.dumps(_json_safe(document), indent=2) + "\n", encoding="utf-8")
+    return path
+
+
+def _json_safe(value: Any) -> Any:
+    if isinstance(value, Mapping):
+        return {str(k): _json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_json_safe(v) for v in value]
+    if isinstance(value, float | np.floating):
+        return float(value) if math.isfinite(value) else None
+    if isinstance(value, np.integer):
+        return int(value)
+    return value
