@@ -40,7 +40,7 @@ class Grid:
     @property
     def bounds(self) -> tuple[float, float, float, float]:
         """(left, bottom, right, top) of the grid's footprint in its CRS."""
-        corners = [self.affine * (c, r) for c in (0, self.width) for r in (0, self.height)]
+        corners = [self.affine @ (c, r) for c in (0, self.width) for r in (0, self.height)]
         xs, ys = zip(*corners, strict=True)
         return (min(xs), min(ys), max(xs), max(ys))
 

@@ -15,10 +15,10 @@ import numpy as np
 from numpy.typing import NDArray
 from pyproj import CRS, Transformer
 from rasterio.features import rasterize
+import shapely
 from shapely import box, segmentize
 from shapely.geometry import shape
 from shapely.geometry.base import BaseGeometry
-from shapely.ops import transform as transform_geometry
 
 from workers.errors import MissingCRSError, SpecError
 from workers.grid import Grid
@@ -86,8 +86,12 @@ def to_crs(regions: Sequence[Region], crs: str, *, densify_m: float = 50.0) -> l
         geometry = region.geometry
         if not source.equals(target):
             step = densify_m if source.is_projected else densify_m / 111_000.0
-            to_target = Transformer.from_crs(source, target, always_xy=True).transform
-            geometry = transform_geometry(to_target, segmentize(geometry, step))
+            transformer = Transformer.from_crs(source, target, always_xy=True)
+
+            def to_target(xy: NDArray[np.float64], t: Transformer = transformer) -> NDArray[np.float64]:
+                return np.column_stack(t.transform(xy[:, 0], xy[:, 1]))
+
+            geometry = shapely.transform(segmentize(geometry, step), to_target)
         out.append(Region(region.region_id, region.name, geometry, target.to_wkt()))
     return out
 

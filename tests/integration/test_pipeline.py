@@ -1,0 +1,148 @@
+"""The whole chain on a tiny archive: other CRS, other tiling, geoid, Dask, Zarr, JSON."""
+
+from __future__ import annotations
+
+import json
+import shutil
+from pathlib import Path
+
+import numpy as np
+import pytest
+import rioxarray  # noqa: F401
+import xarray as xr
+from scipy.stats import median_abs_deviation
+
+from service.runner import run_job
+from workers import spec as job_spec
+from workers.catalog import TileIndex, scan_tile
+from workers.errors import EmptyOverlapError, SpecError
+from workers.regions import read_regions, region_mask, to_crs
+from workers.summary import nmad_bound_m, quantile_bound_m
+from workers.tile_task import TileOptions, tile_dh
+
+
+def load(root: Path):
+    spec = job_spec.parse_spec(job_spec.load_spec_file(root / "job.yaml"))
+    return job_spec.resolve(spec, base_dir=root)
+
+
+def numpy_stats(x: np.ndarray) -> dict:
+    # reference: numpy and scipy on the same pixels (../shared/CHECK_VALUES.md)
+    return {
+        "count": x.size, "mean": x.mean(), "median": np.median(x),
+        "nmad": median_abs_deviation(x, scale="normal"),
+        "q683_abs": np.quantile(np.abs(x), 0.683), "q95_abs": np.quantile(np.abs(x), 0.95),
+        "rmse": np.sqrt(np.mean(x**2)), "std": np.std(x, ddof=1),
+    }
+
+
+def assert_agrees(got: dict, x: np.ndarray) -> None:
+    want = numpy_stats(x)
+    assert got["count"] == want["count"]
+    for key in ("mean", "rmse", "std"):
+        assert got[key] == pytest.approx(want[key], rel=1e-9, abs=1e-9)
+    for key in ("median", "q683_abs", "q95_abs"):
+        assert abs(got[key] - want[key]) <= quantile_bound_m(want[key])
+    assert abs(got["nmad"] - want["nmad"]) <= nmad_bound_m(want["median"], want["nmad"])
+
+
+def test_statistics_agree_with_numpy_on_the_same_pixels(make_archive, dask_client, tmp_path):
+    root = make_archive(tiles=2, pixels=40, bias=0.25, noise=0.3, seed=3)
+    job = load(root)
+    doc = run_job(job, tmp_path / "out", client=dask_client, progress=None)
+
+    # recompute every tile's dh in this process, then compare with numpy/scipy
+    options = TileOptions.from_spec(job.spec)
+    tests = [scan_tile(p) for p in job.test_tiles]
+    index = TileIndex([scan_tile(p) for p in job.reference_tiles])
+    regions = to_crs(read_regions(job.region_file, id_property="code"), tests[0].grid.crs)
+    all_dh, per_region = [], {r.region_id: [] for r in regions}
+    tiles_doc = {t["tile"]: t for t in doc["tiles"]}
+    for tile in tests:
+        dh = tile_dh(tile, index.overlapping(tile.grid), options)
+        valid = dh[np.isfinite(dh)]
+        assert_agrees(tiles_doc[tile.tile_id]["stats"], valid)
+        all_dh.append(valid)
+        for region in regions:
+            mask = region_mask(region, tile.grid) & np.isfinite(dh)
+            per_region[region.region_id].append(dh[mask])
+    assert_agrees(doc["overall"], np.concatenate(all_dh))
+    regions_doc = {r["region"]: r for r in doc["regions"]}
+    for region_id in ("WEST", "EAST"):  # both cross tile edges
+        assert_agrees(regions_doc[region_id]["stats"], np.concatenate(per_region[region_id]))
+    # a region away from the data is reported, not dropped
+    assert regions_doc["FAR"]["stats"]["count"] == 0
+    assert "no valid pixels" in regions_doc["FAR"]["note"]
+
+
+def test_noise_free_chain_recovers_the_bias(make_archive, dask_client, tmp_path):
+    # other CRS (EPSG:3035), finer grid, other tiling, EGM96 -> ellipsoidal
+    root = make_archive(tiles=2, pixels=40, bias=0.25, noise=0.0)
+    doc = run_job(load(root), tmp_path / "out", client=dask_client)
+    assert abs(doc["overall"]["median"] - 0.25) < 0.01
+    assert doc["overall"]["nmad"] < 0.01
+    assert doc["sign"] == "test minus reference"
+
+
+def test_outputs_open_as_documented(make_archive, dask_client, tmp_path):
+    root = make_archive(tiles=2, pixels=40)
+    out = tmp_path / "out"
+    doc = run_job(load(root), out, client=dask_client)
+    on_disk = json.loads((out / "summary.json").read_text())
+    assert on_disk["overall"]["count"] == doc["overall"]["count"] > 0
+    assert any("do not replace" in c for c in on_disk["cautions"])
+    tiles = xr.open_zarr(out / "results.zarr", group="tiles")
+    assert tiles.sizes["tile"] == 4
+    assert {"left", "bottom", "right", "top", "status"} <= set(tiles.coords)
+    assert float(tiles["median"].sel(tile="t_0_0")) == pytest.approx(
+        next(t for t in doc["tiles"] if t["tile"] == "t_0_0")["stats"]["median"])
+    regions = xr.open_zarr(out / "results.zarr", group="regions")
+    assert list(regions["region"].values) == ["WEST", "EAST", "FAR"]
+    overview = xr.open_zarr(out / "results.zarr", group="dh_overview", decode_coords="all")
+    assert overview["dh"].rio.crs.to_epsg() == 32632
+    assert overview.sizes == {"y": 10, "x": 10}
+    assert np.nanmedian(overview["dh"].values) == pytest.approx(0.25, abs=0.02)
+
+
+def test_corrupt_and_crs_less_tiles_fail_alone(make_archive, dask_client, tmp_path, tif_writer):
+    from rasterio.transform import from_origin
+
+    root = make_archive()
+    (root / "test" / "garbage.tif").write_bytes(b"II*\x00 not really a tiff " * 20)
+    tif_writer(root / "test" / "no_crs.tif", np.zeros((10, 10)), crs=None,
+               transform=from_origin(480_000, 6_230_000, 5.0, 5.0))
+    whole = (root / "test" / "t_1_1.tif").read_bytes()
+    (root / "test" / "truncated.tif").write_bytes(whole[: len(whole) // 2])
+    doc = run_job(load(root), tmp_path / "out", client=dask_client)
+    tiles = {t["tile"]: t for t in doc["tiles"]}
+    assert tiles["garbage"]["status"] == "failed"
+    assert "cannot be opened" in tiles["garbage"]["reason"]
+    assert tiles["no_crs"]["status"] == "failed"
+    assert "has no CRS" in tiles["no_crs"]["reason"]
+    assert tiles["truncated"]["status"] == "failed"
+    assert "truncated" in tiles["truncated"]["reason"]
+    assert [tiles[f"t_{c}_{r}"]["status"] for c in (0, 1) for r in (0, 1)] == ["ok"] * 4
+    assert doc["overall"]["count"] > 0
+    assert doc["job"]["tiles"]["failed"] == 3
+    assert any("3 test tile(s) failed" in c for c in doc["cautions"])
+
+
+def test_region_outside_the_data_is_a_clear_error(make_archive, dask_client, tmp_path):
+    root = make_archive()
+    regions = json.loads((root / "regions.geojson").read_text())
+    regions["features"] = [f for f in regions["features"] if f["properties"]["code"] == "FAR"]
+    (root / "regions.geojson").write_text(json.dumps(regions))
+    with pytest.raises(EmptyOverlapError, match="none of the 1 regions overlaps"):
+        run_job(load(root), tmp_path / "out", client=dask_client)
+
+
+def test_unknown_unit_and_missing_file_are_named(make_archive):
+    root = make_archive()
+    text = (root / "job.yaml").read_text()
+    (root / "job.yaml").write_text(text.replace("units: metre}\nreference", "units: yard}\nreference"))
+    with pytest.raises(SpecError, match=r"test\.units"):
+        load(root)
+    shutil.rmtree(root / "ref")
+    (root / "job.yaml").write_text(text)
+    with pytest.raises(SpecError, match=r"reference\.tiles: no such file"):
+        load(root)
