@@ -64,10 +64,14 @@ def _cmd_run(args: argparse.Namespace, settings: Settings) -> int:
     spec_path = Path(args.spec)
     data = job_spec.load_spec_file(spec_path)
     spec = job_spec.parse_spec(data)
-    job = job_spec.resolve(spec, base_dir=spec_path.resolve().parent, data_roots=settings.data_roots)
+    job = job_spec.resolve(
+        spec, base_dir=spec_path.resolve().parent, data_roots=settings.data_roots
+    )
     scheduler = args.scheduler or settings.scheduler
     workers = args.workers or settings.local_workers
-    with dask_client(scheduler, workers=workers, memory_limit=settings.worker_memory_limit) as client:
+    with dask_client(
+        scheduler, workers=workers, memory_limit=settings.worker_memory_limit
+    ) as client:
         bar = tqdm(total=None, unit="tile", desc=spec.name, disable=args.quiet, file=sys.stderr)
 
         def progress(done: int, total: int) -> None:
@@ -75,8 +79,9 @@ def _cmd_run(args: argparse.Namespace, settings: Settings) -> int:
             bar.update(done - bar.n)
 
         try:
-            document = run_job(job, args.out, client=client, grid_dirs=settings.grid_dirs,
-                               progress=progress)
+            document = run_job(
+                job, args.out, client=client, grid_dirs=settings.grid_dirs, progress=progress
+            )
         finally:
             bar.close()
     _print_report(document, args.out)
@@ -86,8 +91,10 @@ def _cmd_run(args: argparse.Namespace, settings: Settings) -> int:
 
 def _cmd_demo(args: argparse.Namespace, settings: Settings) -> int:
     if not DEMO_SPEC.is_file():
-        print(f"demaudit: error: the demo spec {DEMO_SPEC} is not here (run from a source checkout)",
-              file=sys.stderr)
+        print(
+            f"demaudit: error: the demo spec {DEMO_SPEC} is not here (run from a source checkout)",
+            file=sys.stderr,
+        )
         return 2
     return _cmd_run(args, settings)
 
@@ -109,7 +116,10 @@ def _cmd_make_demo(args: argparse.Namespace, settings: Settings) -> int:
 def _print_report(document: dict[str, Any], out_dir: Path) -> None:
     print(f"\nresults: {Path(out_dir).resolve()}/summary.json and results.zarr")
     print(f"dh = {document['sign']}, {document['units']}s\n")
-    header = f"{'region':<16}{'pixels':>12}{'median':>9}{'nmad':>9}{'q683_abs':>10}{'q95_abs':>9}{'rmse':>9}"
+    header = (
+        f"{'region':<16}{'pixels':>12}{'median':>9}{'nmad':>9}{'q683_abs':>10}"
+        f"{'q95_abs':>9}{'rmse':>9}"
+    )
     print(header)
     rows = [(r["region"], r["stats"]) for r in document["regions"]]
     rows.append(("(all)", document["overall"]))
@@ -117,8 +127,10 @@ def _print_report(document: dict[str, Any], out_dir: Path) -> None:
         if not s["count"]:
             print(f"{name:<16}{0:>12}  no valid pixels")
             continue
-        print(f"{name:<16}{s['count']:>12,}{s['median']:>9.3f}{s['nmad']:>9.3f}"
-              f"{s['q683_abs']:>10.3f}{s['q95_abs']:>9.3f}{s['rmse']:>9.3f}")
+        print(
+            f"{name:<16}{s['count']:>12,}{s['median']:>9.3f}{s['nmad']:>9.3f}"
+            f"{s['q683_abs']:>10.3f}{s['q95_abs']:>9.3f}{s['rmse']:>9.3f}"
+        )
     failed = [t for t in document["tiles"] if t["status"] == "failed"]
     for t in failed:
         print(f"tile {t['tile']} failed: {t.get('reason')}")

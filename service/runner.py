@@ -22,11 +22,18 @@ from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation
 from workers.errors import EmptyOverlapError, TileReadError
 from workers.merge import JobAccumulator
 from workers.regions import Region
-from workers.report import build_summary, region_entries
+from workers.report import area_entry, build_summary, region_entries
 from workers.spec import ELLIPSOIDAL, ResolvedJob
 from workers.summary import statistics
-from workers.tile_task import FAILED, TileOptions, TileResult, audit_tile
-from workers.writers import ResultsStore, overview_layout, statistics_table, write_summary
+from workers.summary_store import entries_of, write_tile_summaries
+from workers.tile_task import ALL, FAILED, OK, TileOptions, TileResult, audit_tile
+from workers.writers import (
+    ResultsStore,
+    overview_layout,
+    statistics_table,
+    strata_table,
+    write_summary,
+)
 
 Progress = Callable[[int, int], None]
 SOFTWARE = "demaudit 0.1.0"
@@ -47,6 +54,7 @@ def run_job(
     options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
     test_tiles, test_failures = _scan(client, job.test_tiles)
     ref_tiles, ref_failures = _scan(client, job.reference_tiles)
+    cover_tiles, cover_failures = _scan(client, job.landcover_tiles)
     if not test_tiles:
         raise TileReadError("no test tile could be read: " + _reasons(test_failures))
     if not ref_tiles:
@@ -54,6 +62,7 @@ def run_job(
     _check_geoid(options, test_tiles[0])
     index = TileIndex(ref_tiles)
     candidates = {t.tile_id: index.overlapping(t.grid) for t in test_tiles}
+    cover_index = TileIndex(cover_tiles)
     if not any(candidates.values()):
         raise EmptyOverlapError("the test and reference tiles do not overlap anywhere")
     region_list = _load_regions(job)
@@ -71,6 +80,7 @@ def run_job(
             candidates[tile.tile_id],
             region_ops.clip_to(regions.get(tile.grid.crs, []), tile.bounds),
             options,
+            cover_index.overlapping(tile.grid),
             pure=False,
             key=f"audit-tile-{tile.tile_id}-{started}",
         )
@@ -86,6 +96,8 @@ def run_job(
         future.release()
         acc.add(result)
         store.write_overview(result.tile_id, result.overview)
+        if result.status == OK:
+            write_tile_summaries(store.path, result.tile_id, entries_of(result))
         tile = by_id[result.tile_id]
         records[result.tile_id] = _tile_record(
             result.tile_id, result.status, result.reason, tile, statistics(result.summary)
@@ -95,17 +107,30 @@ def run_job(
 
     tile_rows = [records[k] for k in sorted(records)]
     names = {r.region_id: r.name for r in region_list}
-    region_docs = region_entries({r: acc.regions[r] for r in region_ids}, names)
-    _write_tables(store, tile_rows, region_docs)
+    outliers = job.spec.outliers
+    rule: dict[str, Any] = {"outlier_rule": outliers.rule, "outlier_factor": outliers.factor}
+    region_docs = region_entries({r: acc.regions[r] for r in region_ids}, names, acc.strata, **rule)
+    _write_tables(store, tile_rows, region_docs, acc)
     document = build_summary(
-        job={"name": job.spec.name, "spec": job.spec.model_dump(mode="json"), "started": started,
-             "finished": _now(), "software": SOFTWARE,
-             "tiles": {"test": len(job.test_tiles), "reference": len(job.reference_tiles),
-                       "failed": acc.tiles_failed}},
-        overall=acc.overall,
+        job={
+            "name": job.spec.name,
+            "spec": job.spec.model_dump(mode="json"),
+            "started": started,
+            "finished": _now(),
+            "software": SOFTWARE,
+            "tiles": {
+                "test": len(job.test_tiles),
+                "reference": len(job.reference_tiles),
+                "failed": acc.tiles_failed,
+            },
+        },
+        overall=area_entry(acc.overall, acc.strata_of(ALL), **rule)
+        | {"excluded_pixels": acc.excluded},
         regions=region_docs,
         tiles=tile_rows,
-        reference_failures=[{"tile": f.tile_id, "reason": f.reason} for f in ref_failures],
+        reference_failures=[
+            {"tile": f.tile_id, "reason": f.reason} for f in [*ref_failures, *cover_failures]
+        ],
         extra_cautions=[] if layout else ["no dh overview: the test tiles are not on one grid"],
     )
     write_summary(out_dir, document)
@@ -127,7 +152,9 @@ def _reasons(failures: Sequence[ScanFailure]) -> str:
 def _check_geoid(options: TileOptions, sample: TileInfo) -> None:
     """Fail the job before dispatch when a needed geoid grid is missing (GeoidGridError)."""
     x, y = sample.grid.pixel_centres(np.array([0.0]), np.array([0.0]))
-    lon, lat = Transformer.from_crs(CRS.from_wkt(sample.grid.crs), "EPSG:4326", always_xy=True).transform(x, y)
+    lon, lat = Transformer.from_crs(
+        CRS.from_wkt(sample.grid.crs), "EPSG:4326", always_xy=True
+    ).transform(x, y)
     for vertical in {options.test_vertical_crs, options.reference_vertical_crs} - {ELLIPSOIDAL}:
         geoid_undulation(lon, lat, vertical_crs=vertical, grid_dirs=options.grid_dirs)
 
@@ -138,7 +165,9 @@ def _load_regions(job: ResolvedJob) -> list[Region]:
     return region_ops.read_regions(job.region_file, id_property=job.spec.region.id_property)
 
 
-def _regions_by_crs(regions: Sequence[Region], tiles: Sequence[TileInfo]) -> dict[str, list[Region]]:
+def _regions_by_crs(
+    regions: Sequence[Region], tiles: Sequence[TileInfo]
+) -> dict[str, list[Region]]:
     """The regions reprojected into each test CRS; EmptyOverlapError when none touches a tile."""
     if not regions:
         return {}
@@ -152,7 +181,10 @@ def _regions_by_crs(regions: Sequence[Region], tiles: Sequence[TileInfo]) -> dic
 
 
 def _tile_record(
-    tile_id: str, status: str, reason: str | None, tile: TileInfo | None,
+    tile_id: str,
+    status: str,
+    reason: str | None,
+    tile: TileInfo | None,
     stats: dict[str, Any] | None,
 ) -> dict[str, Any]:
     record: dict[str, Any] = {"tile": tile_id, "status": status}
@@ -165,7 +197,12 @@ def _tile_record(
     return record
 
 
-def _write_tables(store: ResultsStore, tiles: list[dict[str, Any]], regions: list[dict[str, Any]]) -> None:
+def _write_tables(
+    store: ResultsStore,
+    tiles: list[dict[str, Any]],
+    regions: list[dict[str, Any]],
+    acc: JobAccumulator,
+) -> None:
     nan4 = [np.nan] * 4
     bounds = np.array([t.get("bounds", nan4) for t in tiles], dtype=np.float64).reshape(-1, 4)
     tile_table = statistics_table(
@@ -173,16 +210,33 @@ def _write_tables(store: ResultsStore, tiles: list[dict[str, Any]], regions: lis
         [t["tile"] for t in tiles],
         [t["stats"] for t in tiles],
         {
-            "left": bounds[:, 0], "bottom": bounds[:, 1], "right": bounds[:, 2], "top": bounds[:, 3],
+            "left": bounds[:, 0],
+            "bottom": bounds[:, 1],
+            "right": bounds[:, 2],
+            "top": bounds[:, 3],
             "status": [t["status"] for t in tiles],
             "reason": [t.get("reason", "") for t in tiles],
         },
     )
     region_table = statistics_table(
-        "region", [r["region"] for r in regions], [r["stats"] for r in regions],
+        "region",
+        [r["region"] for r in regions],
+        [r["stats"] for r in regions],
         {"name": [r["name"] for r in regions]},
     )
-    store.write_tables(tile_table, region_table)
+    areas = [ALL, *acc.region_ids]
+    strata_keys = list(dict.fromkeys(k for a in areas for k in acc.strata_of(a)))
+    stats = {
+        (area, key): statistics(part) for area in areas for key, part in acc.strata_of(area).items()
+    }
+    store.write_tables(
+        {
+            "tiles": tile_table,
+            "regions": region_table,
+            "strata": strata_table(areas, strata_keys, stats),
+        }
+    )
+    store.finish()
 
 
 def _now() -> str:

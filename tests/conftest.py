@@ -17,15 +17,22 @@ LAEA = "EPSG:3035"
 
 def terrain(e: np.ndarray, n: np.ndarray) -> np.ndarray:
     """Smooth synthetic terrain (metres, orthometric) as a function of UTM 32N coordinates."""
-    return 50.0 + 0.01 * (e - 480_000) + 8.0 * np.sin((e - 480_000) / 150.0) * np.cos(
-        (n - 6_229_000) / 210.0
+    return (
+        50.0
+        + 0.01 * (e - 480_000)
+        + 8.0 * np.sin((e - 480_000) / 150.0) * np.cos((n - 6_229_000) / 210.0)
     )
 
 
 def write_tif(path: Path, data: np.ndarray, *, crs: str | None, transform, nodata=-9999.0) -> Path:
     profile = {
-        "driver": "GTiff", "height": data.shape[0], "width": data.shape[1], "count": 1,
-        "dtype": "float32", "transform": transform, "nodata": nodata,
+        "driver": "GTiff",
+        "height": data.shape[0],
+        "width": data.shape[1],
+        "count": 1,
+        "dtype": "float32",
+        "transform": transform,
+        "nodata": nodata,
     }
     if crs is not None:
         profile["crs"] = crs
@@ -51,8 +58,9 @@ def make_archive(tmp_path: Path) -> Callable[..., Path]:
     """Build a tiny archive: test tiles (UTM 32N, 5 m, ellipsoidal = terrain + N + bias) and
     reference tiles (EPSG:3035, 4 m, EGM96 orthometric, other tiling). Returns the folder."""
 
-    def build(*, tiles: int = 2, pixels: int = 40, bias: float = 0.25, seed: int = 0,
-              noise: float = 0.0) -> Path:
+    def build(
+        *, tiles: int = 2, pixels: int = 40, bias: float = 0.25, seed: int = 0, noise: float = 0.0
+    ) -> Path:
         from workers.datum import geoid_undulation
 
         rng = np.random.default_rng(seed)
@@ -71,10 +79,15 @@ def make_archive(tmp_path: Path) -> Callable[..., Path]:
                 write_tif(root / "test" / f"t_{c}_{r}.tif", h, crs=UTM32, transform=transform)
         # reference: one grid in EPSG:3035 covering the test domain with a margin, 3 x 3 tiles
         to_laea = Transformer.from_crs(UTM32, LAEA, always_xy=True)
-        xs, ys = to_laea.transform([480_000 - 50, 480_000 + tiles * side + 50],
-                                   [6_230_000 + 50, 6_230_000 - tiles * side - 50])
-        corners = [to_laea.transform(e, n) for e in (479_950, 480_050 + tiles * side)
-                   for n in (6_230_050, 6_229_950 - tiles * side)]
+        xs, ys = to_laea.transform(
+            [480_000 - 50, 480_000 + tiles * side + 50],
+            [6_230_000 + 50, 6_230_000 - tiles * side - 50],
+        )
+        corners = [
+            to_laea.transform(e, n)
+            for e in (479_950, 480_050 + tiles * side)
+            for n in (6_230_050, 6_229_950 - tiles * side)
+        ]
         left = min(p[0] for p in corners) - 20
         top = max(p[1] for p in corners) + 20
         width = max(p[0] for p in corners) + 20 - left
@@ -86,16 +99,28 @@ def make_archive(tmp_path: Path) -> Callable[..., Path]:
                 transform = from_origin(left + c * ref_px * 4.0, top - r * ref_px * 4.0, 4.0, 4.0)
                 x, y = _grid_centres(transform, (ref_px, ref_px))
                 e, n = to_utm.transform(x, y)
-                write_tif(root / "ref" / f"ref_{c}_{r}.tif", terrain(e, n), crs=LAEA,
-                          transform=transform)
+                write_tif(
+                    root / "ref" / f"ref_{c}_{r}.tif", terrain(e, n), crs=LAEA, transform=transform
+                )
         regions = {
             "type": "FeatureCollection",
             "features": [
-                _square_feature("WEST", to_lonlat, 480_000 - 10, 480_000 + side * tiles / 2 + 7,
-                                6_230_000 - tiles * side - 10, 6_230_000 + 10),
-                _square_feature("EAST", to_lonlat, 480_000 + side * tiles / 2 + 7,
-                                480_000 + side * tiles + 10,
-                                6_230_000 - tiles * side - 10, 6_230_000 + 10),
+                _square_feature(
+                    "WEST",
+                    to_lonlat,
+                    480_000 - 10,
+                    480_000 + side * tiles / 2 + 7,
+                    6_230_000 - tiles * side - 10,
+                    6_230_000 + 10,
+                ),
+                _square_feature(
+                    "EAST",
+                    to_lonlat,
+                    480_000 + side * tiles / 2 + 7,
+                    480_000 + side * tiles + 10,
+                    6_230_000 - tiles * side - 10,
+                    6_230_000 + 10,
+                ),
                 _square_feature("FAR", to_lonlat, 600_000, 601_000, 6_000_000, 6_001_000),
             ],
         }

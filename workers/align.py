@@ -4,7 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 from numpy.typing import NDArray
-from rasterio.crs import CRS as RioCRS
+from rasterio import crs as rasterio_crs
 from rasterio.enums import Resampling
 from rasterio.warp import reproject
 
@@ -30,10 +30,10 @@ def onto_grid(
         source=np.ascontiguousarray(source),
         destination=out,
         src_transform=source_grid.affine,
-        src_crs=RioCRS.from_wkt(source_grid.crs),
+        src_crs=rasterio_crs.CRS.from_wkt(source_grid.crs),
         src_nodata=np.nan,
         dst_transform=target.affine,
-        dst_crs=RioCRS.from_wkt(target.crs),
+        dst_crs=rasterio_crs.CRS.from_wkt(target.crs),
         dst_nodata=np.nan,
         resampling=_RESAMPLING[resampling],
     )

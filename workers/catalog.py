@@ -125,5 +125,9 @@ class TileIndex:
                 bounds = transform_bounds(source, CRS.from_wkt(crs), *bounds, densify_pts=21)
             query = box(*bounds)
             hits = tree.query(query, predicate="intersects")
-            found.extend(members[i] for i in np.sort(hits) if box(*members[i].bounds).intersection(query).area > 0)
+            found.extend(
+                members[i]
+                for i in np.sort(hits)
+                if box(*members[i].bounds).intersection(query).area > 0
+            )
         return found

@@ -89,7 +89,9 @@ def geoid_undulation(
         return np.zeros(lon.shape)
     transformer = _undulation_transformer(vertical_crs, tuple(grid_dirs))
     try:
-        _, _, h = transformer.transform(lon, np.asarray(lat, np.float64), np.zeros(lon.shape), errcheck=True)
+        _, _, h = transformer.transform(
+            lon, np.asarray(lat, np.float64), np.zeros(lon.shape), errcheck=True
+        )
     except ProjError as exc:
         raise GeoidGridError(_missing_grid_message(vertical_crs, grid_dirs, exc)) from None
     return np.asarray(h, dtype=np.float64)

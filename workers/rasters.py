@@ -30,7 +30,10 @@ def read_tile(tile: TileInfo, *, nodata: float | None = None) -> NDArray[np.floa
 
 
 def read_mosaic(
-    tiles: Sequence[TileInfo], bounds: tuple[float, float, float, float], *, nodata: float | None = None,
+    tiles: Sequence[TileInfo],
+    bounds: tuple[float, float, float, float],
+    *,
+    nodata: float | None = None,
     margin_px: int = 3,
 ) -> tuple[NDArray[np.float64], Grid]:
     """Mosaic the parts of tiles (all on one grid) that cover bounds (in their CRS), plus a margin.
@@ -56,7 +59,12 @@ def read_mosaic(
 
 
 def _paste(
-    tile: TileInfo, out: NDArray[np.float64], *, row0: int, col0: int, reference: Grid,
+    tile: TileInfo,
+    out: NDArray[np.float64],
+    *,
+    row0: int,
+    col0: int,
+    reference: Grid,
     nodata: float | None,
 ) -> None:
     """Copy the part of tile that falls inside out (whose pixel (0, 0) is (row0, col0) of the
@@ -65,9 +73,7 @@ def _paste(
     ta, tb, tc, td, te, tf = tile.grid.transform
     col_off = (tc - c) / a
     row_off = (tf - f) / e
-    if (ta, tb, td, te) != (a, 0.0, 0.0, e) or not (
-        _is_whole(col_off) and _is_whole(row_off)
-    ):
+    if (ta, tb, td, te) != (a, 0.0, 0.0, e) or not (_is_whole(col_off) and _is_whole(row_off)):
         raise TileReadError(
             f"tile {tile.tile_id} is not on the pixel grid of tile of the same CRS; "
             "reference tiles must share one grid"

@@ -12,10 +12,10 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
+import shapely
 from numpy.typing import NDArray
 from pyproj import CRS, Transformer
 from rasterio.features import rasterize
-import shapely
 from shapely import box, segmentize
 from shapely.geometry import shape
 from shapely.geometry.base import BaseGeometry
@@ -50,7 +50,8 @@ def read_regions(path: Path, *, id_property: str) -> list[Region]:
         props = feature.get("properties") or {}
         if id_property not in props:
             raise SpecError(
-                f"region.id_property: feature {number} of {path.name} has no property {id_property!r}"
+                f"region.id_property: feature {number} of {path.name} "
+                f"has no property {id_property!r}"
             )
         try:
             geometry = shape(feature["geometry"])
@@ -74,7 +75,9 @@ def _declared_crs(doc: dict, path: Path) -> str:  # type: ignore[type-arg]
         name = declared["properties"]["name"]
         return CRS.from_user_input(name).to_wkt()
     except (KeyError, TypeError, Exception) as exc:  # noqa: BLE001 - any unreadable CRS member
-        raise MissingCRSError(f"region.file: {path.name} declares a CRS that cannot be read: {exc}") from None
+        raise MissingCRSError(
+            f"region.file: {path.name} declares a CRS that cannot be read: {exc}"
+        ) from None
 
 
 def to_crs(regions: Sequence[Region], crs: str, *, densify_m: float = 50.0) -> list[Region]:
@@ -88,7 +91,9 @@ def to_crs(regions: Sequence[Region], crs: str, *, densify_m: float = 50.0) -> l
             step = densify_m if source.is_projected else densify_m / 111_000.0
             transformer = Transformer.from_crs(source, target, always_xy=True)
 
-            def to_target(xy: NDArray[np.float64], t: Transformer = transformer) -> NDArray[np.float64]:
+            def to_target(
+                xy: NDArray[np.float64], t: Transformer = transformer
+            ) -> NDArray[np.float64]:
                 return np.column_stack(t.transform(xy[:, 0], xy[:, 1]))
 
             geometry = shapely.transform(segmentize(geometry, step), to_target)
@@ -111,7 +116,11 @@ def clip_to(regions: Sequence[Region], bounds: tuple[float, float, float, float]
 def region_mask(region: Region, grid: Grid) -> NDArray[np.bool_]:
     """True for pixels of grid whose centre lies inside the region (same CRS as grid)."""
     burned = rasterize(
-        [(region.geometry, 1)], out_shape=grid.shape, transform=grid.affine, fill=0,
-        all_touched=False, dtype="uint8",
+        [(region.geometry, 1)],
+        out_shape=grid.shape,
+        transform=grid.affine,
+        fill=0,
+        all_touched=False,
+        dtype="uint8",
     )
     return burned.astype(bool)

@@ -6,6 +6,7 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from workers import summary as dh_summary
+from workers.robust import confidence_intervals, without_outliers
 from workers.summary import DhSummary
 
 SIGN = "test minus reference"
@@ -35,27 +36,46 @@ def quantile_resolution() -> dict[str, Any]:
     }
 
 
+def area_entry(
+    s: DhSummary, strata: Mapping[str, DhSummary], *, outlier_rule: str, outlier_factor: float
+) -> dict[str, Any]:
+    """Statistics of one area (a region or the whole job): all valid pixels, after the outlier
+    rule, 95 % confidence intervals, and each stratum."""
+    entry: dict[str, Any] = {
+        "stats": dh_summary.statistics(s),
+        "confidence_95": confidence_intervals(s),
+        "without_outliers": without_outliers(s, rule=outlier_rule, factor=outlier_factor),
+        "strata": [
+            {"stratum": key, "stats": dh_summary.statistics(part)} for key, part in strata.items()
+        ],
+    }
+    if s.count == 0:
+        entry["note"] = "no valid pixels: no overlap of test, reference and region"
+    return entry
+
+
 def region_entries(
-    regions: Mapping[str, DhSummary], names: Mapping[str, str]
+    regions: Mapping[str, DhSummary],
+    names: Mapping[str, str],
+    strata: Mapping[str, Mapping[str, DhSummary]],
+    *,
+    outlier_rule: str,
+    outlier_factor: float,
 ) -> list[dict[str, Any]]:
     """One entry per region, in the order given; an empty region says so."""
-    entries = []
-    for region_id, s in regions.items():
-        entry: dict[str, Any] = {
-            "region": region_id,
-            "name": names.get(region_id, region_id),
-            "stats": dh_summary.statistics(s),
-        }
-        if s.count == 0:
-            entry["note"] = "no valid pixels: no overlap of test, reference and region"
-        entries.append(entry)
-    return entries
+    return [
+        {"region": region_id, "name": names.get(region_id, region_id)}
+        | area_entry(
+            s, strata.get(region_id, {}), outlier_rule=outlier_rule, outlier_factor=outlier_factor
+        )
+        for region_id, s in regions.items()
+    ]
 
 
 def build_summary(
     *,
     job: Mapping[str, Any],
-    overall: DhSummary,
+    overall: dict[str, Any],
     regions: list[dict[str, Any]],
     tiles: Sequence[Mapping[str, Any]],
     reference_failures: Sequence[Mapping[str, str]],
@@ -65,17 +85,21 @@ def build_summary(
     failed = [t for t in tiles if t["status"] == "failed"]
     cautions = list(CAUTIONS_ALWAYS) + list(extra_cautions)
     if failed:
-        cautions.append(f"{len(failed)} test tile(s) failed and are not in the statistics; "
-                        "see tiles[].reason.")
+        cautions.append(
+            f"{len(failed)} test tile(s) failed and are not in the statistics; see tiles[].reason."
+        )
     if reference_failures:
-        cautions.append(f"{len(reference_failures)} reference tile(s) could not be read; test "
-                        "pixels they would cover have no reference.")
+        cautions.append(
+            f"{len(reference_failures)} reference tile(s) could not be read; test "
+            "pixels they would cover have no reference."
+        )
     return {
         "job": dict(job),
         "sign": SIGN,
         "units": "metre",
         "quantile_resolution_m": quantile_resolution(),
-        "overall": dh_summary.statistics(overall),
+        "overall": overall["stats"],
+        "overall_detail": {k: v for k, v in overall.items() if k != "stats"},
         "regions": regions,
         "tiles": list(tiles),
         "reference_failures": list(reference_failures),

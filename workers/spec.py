@@ -99,6 +99,66 @@ class Options(_Strict):
     )
 
 
+CoverGroup = Literal["non_vegetated", "vegetated", "excluded"]
+OutlierRule = Literal["nmad", "rmse"]
+
+
+class LandCoverClass(_Strict):
+    """One land-cover class: its name and how accuracy standards treat it."""
+
+    name: str
+    group: CoverGroup
+
+
+class LandCoverSource(_Strict):
+    """A land-cover raster (any grid; resampled by nearest neighbour onto the test grid)."""
+
+    tiles: str | list[str] = Field(description="A glob, a folder, or a list of GeoTIFF paths.")
+    classes: dict[int, LandCoverClass] = Field(
+        description="Class value -> name and group (non_vegetated, vegetated or excluded). "
+        "Pixels of excluded classes, and of values not listed, leave every statistic."
+    )
+
+    @field_validator("classes")
+    @classmethod
+    def _some_classes(cls, value: dict[int, LandCoverClass]) -> dict[int, LandCoverClass]:
+        if not value:
+            raise ValueError("list at least one land-cover class")
+        return value
+
+
+class Strata(_Strict):
+    """How pixels are split beyond regions: slope bands (degrees, from the reference)."""
+
+    slope_bands_deg: list[float] = Field(
+        default=[0.0, 5.0, 15.0, 30.0, 45.0],
+        description="Lower edges of the slope bands in degrees; the last band is open-ended.",
+    )
+
+    @field_validator("slope_bands_deg")
+    @classmethod
+    def _increasing(cls, value: list[float]) -> list[float]:
+        if (
+            not value
+            or value[0] != 0
+            or any(b <= a for a, b in zip(value, value[1:], strict=False))
+        ):
+            raise ValueError("slope bands must start at 0 and increase")
+        if value[-1] >= 90:
+            raise ValueError("slope bands must stay below 90 degrees")
+        return value
+
+
+class Outliers(_Strict):
+    """The rule that flags blunders for the 'after outlier removal' statistics."""
+
+    rule: OutlierRule = Field(
+        default="nmad",
+        description="'nmad': |dh - median| > factor x NMAD; 'rmse': |dh| > factor x RMSE.",
+    )
+    factor: float = Field(default=5.0, gt=0)
+
+
 class JobSpec(_Strict):
     """One audit: a test DEM against a reference, over regions."""
 
@@ -106,6 +166,9 @@ class JobSpec(_Strict):
     test: TileSource
     reference: TileSource
     region: RegionSource | None = None
+    landcover: LandCoverSource | None = None
+    strata: Strata = Strata()
+    outliers: Outliers = Outliers()
     options: Options = Options()
 
 
@@ -117,6 +180,7 @@ class ResolvedJob:
     test_tiles: tuple[Path, ...]
     reference_tiles: tuple[Path, ...]
     region_file: Path | None
+    landcover_tiles: tuple[Path, ...] = ()
 
 
 def parse_spec(data: dict[str, Any]) -> JobSpec:
@@ -148,10 +212,8 @@ def load_spec_file(path: Path) -> dict[str, Any]:
     except OSError as exc:
         raise SpecError(f"cannot read job spec {path}: {exc.strerror or exc}") from None
     try:
-        if Path(path).suffix.lower() == ".json":
-            data = json.loads(text)
-        else:
-            data = yaml.safe_load(text)
+        is_json = Path(path).suffix.lower() == ".json"
+        data = json.loads(text) if is_json else yaml.safe_load(text)
     except (yaml.YAMLError, json.JSONDecodeError) as exc:
         raise SpecError(f"job spec {path} is not valid YAML/JSON: {exc}") from None
     return data  # type: ignore[no-any-return]
@@ -174,7 +236,12 @@ def resolve(
         region_file = _resolve_path(spec.region.file, base_dir, "region.file", roots)
         if not region_file.is_file():
             raise SpecError(f"region.file: no such file {region_file}")
-    return ResolvedJob(spec=spec, test_tiles=test, reference_tiles=ref, region_file=region_file)
+    landcover: tuple[Path, ...] = ()
+    if spec.landcover is not None:
+        landcover = _expand_tiles(
+            spec.landcover.tiles, base_dir=base_dir, field="landcover.tiles", roots=roots
+        )
+    return ResolvedJob(spec, test, ref, region_file, landcover)
 
 
 def _resolve_path(raw: str, base_dir: Path, field: str, roots: list[Path] | None) -> Path:

@@ -7,8 +7,8 @@ histogram of dh over fixed bins that are the same for every tile. Merging is add
 associative and commutative, and a merged summary equals the summary of all pixels at once.
 
 The bins: width ``LINEAR_WIDTH_M`` (0.2 mm) for |dh| < ``LINEAR_LIMIT_M`` (2 m); beyond that,
-geometric bins whose width is ``RELATIVE_WIDTH`` (0.01 %) of their distance from zero, so a blunder of
-50 m lands in a 5 mm bin. Only non-empty bins are stored (bin index, count).
+geometric bins whose width is ``RELATIVE_WIDTH`` (0.01 %) of their distance from zero, so a
+blunder of 50 m lands in a 5 mm bin. Only non-empty bins are stored (bin index, count).
 
 Quantiles are read back as in ``numpy.quantile`` (linear interpolation between order statistics,
 method 7); each order statistic is placed inside its bin as if the bin's pixels were spread evenly.
@@ -139,14 +139,12 @@ def statistics(s: DhSummary) -> dict[str, float | int | None]:
 
 def quantile(s: DhSummary, p: ArrayLike) -> NDArray[np.float64]:
     """Quantile(s) p of the summarised values, as numpy.quantile's default method."""
-    return _interpolate_order_statistics(s, p, lambda ranks: _order_statistics(s, ranks))
+    return _interpolate_order_statistics(s, p, lambda ranks: order_statistics(s, ranks))
 
 
 def abs_quantile(s: DhSummary, p: ArrayLike, *, center: float = 0.0) -> NDArray[np.float64]:
     """Quantile(s) p of |value - center|, as numpy.quantile's default method."""
-    return _interpolate_order_statistics(
-        s, p, lambda ranks: _abs_order_statistics(s, ranks, center)
-    )
+    return _interpolate_order_statistics(s, p, lambda ranks: abs_order_statistics(s, ranks, center))
 
 
 def quantile_bound_m(value: float) -> float:
@@ -206,7 +204,7 @@ def _histogram(x: NDArray[np.float64]) -> tuple[NDArray[np.int64], NDArray[np.in
 # -- reading quantiles back ---------------------------------------------------------------------
 
 
-def _interpolate_order_statistics(s, p, order_statistics):  # type: ignore[no-untyped-def]
+def _interpolate_order_statistics(s, p, estimate):  # type: ignore[no-untyped-def]
     p_arr = np.atleast_1d(np.asarray(p, dtype=np.float64))
     if s.count == 0:
         return np.full(p_arr.shape, np.nan)
@@ -215,7 +213,7 @@ def _interpolate_order_statistics(s, p, order_statistics):  # type: ignore[no-un
     frac = h - j
     j_next = np.minimum(j + 1, s.count - 1)
     ranks = np.concatenate([j, j_next])
-    values = order_statistics(ranks)
+    values = estimate(ranks)
     lower, upper = values[: j.size], values[j.size :]
     result = lower + frac * (upper - lower)
     return result.reshape(np.shape(p))
@@ -233,16 +231,16 @@ def _cdf_knots(s: DhSummary) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     return x, f
 
 
-def _order_statistics(s: DhSummary, ranks: NDArray[np.int64]) -> NDArray[np.float64]:
+def order_statistics(s: DhSummary, ranks: NDArray[np.int64]) -> NDArray[np.float64]:
     """Estimate of the rank-th smallest value (0-based) for each rank."""
     x, f = _cdf_knots(s)
     return np.interp(ranks + 0.5, f, x)
 
 
-def _abs_order_statistics(
+def abs_order_statistics(
     s: DhSummary, ranks: NDArray[np.int64], center: float
 ) -> NDArray[np.float64]:
-    """Estimate of the rank-th smallest |value - center|: solves F(c + t) - F(c - t) = rank + 0.5."""
+    """Estimate of the rank-th smallest |value - center|: solves F(c+t) - F(c-t) = rank + 0.5."""
     x, f = _cdf_knots(s)
     target = ranks + 0.5
     lo = np.zeros(target.shape)

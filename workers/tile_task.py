@@ -27,11 +27,13 @@ from workers.grid import Grid
 from workers.rasters import read_mosaic, read_tile
 from workers.regions import Region, region_mask
 from workers.spec import JobSpec
+from workers.strata import ClassInfo, classes_from_spec, excluded_mask, slope_degrees, stratum_masks
 from workers.summary import DhSummary
 
 OK = "ok"
 FAILED = "failed"
 NO_REFERENCE = "no_reference"
+ALL = "*"  # key of the whole tile among region keys
 
 
 @dataclass(frozen=True)
@@ -47,9 +49,13 @@ class TileOptions:
     resampling: str = "bilinear"
     overview_factor: int = 8
     grid_dirs: tuple[str, ...] = DEFAULT_GRID_DIRS
+    landcover_classes: tuple[ClassInfo, ...] = ()
+    slope_edges_deg: tuple[float, ...] = (0.0, 5.0, 15.0, 30.0, 45.0)
 
     @classmethod
-    def from_spec(cls, spec: JobSpec, *, grid_dirs: Sequence[str] = DEFAULT_GRID_DIRS) -> TileOptions:
+    def from_spec(
+        cls, spec: JobSpec, *, grid_dirs: Sequence[str] = DEFAULT_GRID_DIRS
+    ) -> TileOptions:
         return cls(
             test_units=spec.test.units,
             test_vertical_crs=spec.test.vertical_crs,
@@ -60,20 +66,37 @@ class TileOptions:
             resampling=spec.options.resampling,
             overview_factor=spec.options.overview_factor,
             grid_dirs=tuple(grid_dirs),
+            landcover_classes=classes_from_spec(spec.landcover.classes) if spec.landcover else (),
+            slope_edges_deg=tuple(spec.strata.slope_bands_deg),
         )
 
 
 @dataclass(frozen=True, eq=False)
 class TileResult:
-    """What one tile task returns: status, summaries (whole tile and per region), overview."""
+    """What one tile task returns: status, summaries, a decimated overview.
+
+    ``strata`` maps a region id (``ALL`` for the whole tile) to stratum key -> summary.
+    ``excluded`` counts valid dh pixels dropped because their land-cover class is excluded.
+    """
 
     tile_id: str
     status: str
     reason: str | None
     summary: DhSummary = field(default_factory=dh_summary.empty)
     regions: dict[str, DhSummary] = field(default_factory=dict)
+    strata: dict[str, dict[str, DhSummary]] = field(default_factory=dict)
+    excluded: int = 0
     overview: NDArray[np.float32] | None = None
     reference_tiles: tuple[str, ...] = ()
+
+
+@dataclass(frozen=True, eq=False)
+class TileSurfaces:
+    """The per-pixel layers of one tile on its own grid (metres, test vertical datum)."""
+
+    dh: NDArray[np.float64]
+    reference: NDArray[np.float64]
+    landcover: NDArray[np.float64] | None
 
 
 def audit_tile(
@@ -81,6 +104,7 @@ def audit_tile(
     references: Sequence[TileInfo],
     regions: Sequence[Region],
     options: TileOptions,
+    landcover: Sequence[TileInfo] = (),
 ) -> TileResult:
     """Difference one test tile against the reference on the test tile's grid and summarise.
 
@@ -90,32 +114,75 @@ def audit_tile(
     if not references:
         return TileResult(test.tile_id, NO_REFERENCE, "no reference tile overlaps this tile")
     try:
-        dh = tile_dh(test, references, options)
+        layers = tile_surfaces(test, references, options, landcover=landcover)
     except (AuditError, RasterioError, OSError) as exc:
         return TileResult(test.tile_id, FAILED, str(exc), reference_tiles=ref_ids)
     except Exception as exc:  # noqa: BLE001 - a job never dies silently: report and go on
         where = traceback.format_exc(limit=-1).strip().splitlines()[-2:]
         reason = f"unexpected {type(exc).__name__}: {exc} ({' '.join(s.strip() for s in where)})"
         return TileResult(test.tile_id, FAILED, reason, reference_tiles=ref_ids)
-    region_summaries = {
-        region.region_id: dh_summary.summarise(dh[region_mask(region, test.grid)])
-        for region in regions
+    return summarise_tile(test, layers, regions, options, reference_tiles=ref_ids)
+
+
+def summarise_tile(
+    test: TileInfo,
+    layers: TileSurfaces,
+    regions: Sequence[Region],
+    options: TileOptions,
+    *,
+    reference_tiles: tuple[str, ...] = (),
+) -> TileResult:
+    """Summaries of dh for the tile, each region, and each region x stratum."""
+    dh = layers.dh
+    valid = np.isfinite(dh)
+    excluded = excluded_mask(layers.landcover, options.landcover_classes)
+    dropped = 0
+    if excluded is not None:
+        dropped = int(np.count_nonzero(excluded & valid))
+        valid &= ~excluded
+    dh_valid = np.where(valid, dh, np.nan)
+    slope = slope_degrees(layers.reference, **_pixel_size_m(test.grid))
+    strata = stratum_masks(
+        landcover=layers.landcover,
+        classes=options.landcover_classes,
+        slope=slope,
+        slope_edges=options.slope_edges_deg,
+    )
+    area_masks = {ALL: valid} | {r.region_id: region_mask(r, test.grid) & valid for r in regions}
+    per_area = {key: dh_summary.summarise(dh[mask]) for key, mask in area_masks.items()}
+    per_stratum = {
+        key: {name: dh_summary.summarise(dh[mask & s_mask]) for name, s_mask in strata.items()}
+        for key, mask in area_masks.items()
     }
     return TileResult(
         tile_id=test.tile_id,
         status=OK,
         reason=None,
-        summary=dh_summary.summarise(dh),
-        regions=region_summaries,
-        overview=block_mean(dh, options.overview_factor),
-        reference_tiles=ref_ids,
+        summary=per_area.pop(ALL),
+        regions=per_area,
+        strata=per_stratum,
+        excluded=dropped,
+        overview=block_mean(dh_valid, options.overview_factor),
+        reference_tiles=reference_tiles,
     )
 
 
-def tile_dh(test: TileInfo, references: Sequence[TileInfo], options: TileOptions) -> NDArray[np.float64]:
-    """dh = test - reference in metres on the test tile's grid, in the test's vertical datum."""
+def tile_surfaces(
+    test: TileInfo,
+    references: Sequence[TileInfo],
+    options: TileOptions,
+    *,
+    landcover: Sequence[TileInfo] = (),
+) -> TileSurfaces:
+    """dh = test - reference and the reference itself, in metres on the test tile's grid and
+    in the test's vertical datum; land cover (class values, NaN = none) when given."""
     test_heights = to_metres(read_tile(test, nodata=options.test_nodata), options.test_units)
-    reference = to_metres(reference_on_grid(references, test.grid, options), options.reference_units)
+    reference = to_metres(
+        resampled_onto(
+            references, test.grid, resampling=options.resampling, nodata=options.reference_nodata
+        ),
+        options.reference_units,
+    )
     offset = vertical_offset_on_grid(
         test.grid,
         from_crs=options.reference_vertical_crs,
@@ -124,21 +191,45 @@ def tile_dh(test: TileInfo, references: Sequence[TileInfo], options: TileOptions
     )
     if offset is not None:
         reference += offset
-    return difference(test_heights, reference)
+    classes = None
+    if landcover:
+        classes = resampled_onto(landcover, test.grid, resampling="nearest", nodata=None)
+    return TileSurfaces(difference(test_heights, reference), reference, classes)
 
 
-def reference_on_grid(
-    references: Sequence[TileInfo], grid: Grid, options: TileOptions
+def tile_dh(
+    test: TileInfo, references: Sequence[TileInfo], options: TileOptions
 ) -> NDArray[np.float64]:
-    """The reference heights (own unit and datum) resampled onto grid; NaN where none."""
+    """dh = test - reference in metres on the test tile's grid (see tile_surfaces)."""
+    return tile_surfaces(test, references, options).dh
+
+
+def _pixel_size_m(grid: Grid) -> dict[str, float]:
+    """Pixel size in metres (geographic grids: at the grid's centre latitude)."""
+    res_x, res_y = grid.resolution
+    crs = CRS.from_wkt(grid.crs)
+    if crs.is_geographic:
+        lat = np.radians(0.5 * (grid.bounds[1] + grid.bounds[3]))
+        return {
+            "pixel_size_x_m": res_x * 111_320.0 * float(np.cos(lat)),
+            "pixel_size_y_m": res_y * 110_574.0,
+        }
+    factor = crs.axis_info[0].unit_conversion_factor if crs.axis_info else 1.0
+    return {"pixel_size_x_m": res_x * factor, "pixel_size_y_m": res_y * factor}
+
+
+def resampled_onto(
+    tiles: Sequence[TileInfo], grid: Grid, *, resampling: str, nodata: float | None
+) -> NDArray[np.float64]:
+    """Values of tiles (own unit and datum) resampled onto grid; NaN where none."""
     out = np.full(grid.shape, np.nan)
     target_crs = CRS.from_wkt(grid.crs)
     by_crs: dict[str, list[TileInfo]] = {}
-    for ref in references:
-        by_crs.setdefault(ref.grid.crs, []).append(ref)
-    for crs, tiles in by_crs.items():
+    for tile in tiles:
+        by_crs.setdefault(tile.grid.crs, []).append(tile)
+    for crs, members in by_crs.items():
         bounds = transform_bounds(target_crs, CRS.from_wkt(crs), *grid.bounds, densify_pts=21)
-        mosaic, mosaic_grid = read_mosaic(tiles, bounds, nodata=options.reference_nodata)
-        resampled = onto_grid(mosaic, mosaic_grid, grid, resampling=options.resampling)
+        mosaic, mosaic_grid = read_mosaic(members, bounds, nodata=nodata)
+        resampled = onto_grid(mosaic, mosaic_grid, grid, resampling=resampling)
         np.copyto(out, resampled, where=np.isnan(out))
     return out

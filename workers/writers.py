@@ -4,7 +4,8 @@
 Zarr layout (Zarr format 3, consolidated metadata)::
 
     results.zarr/
-      tiles/        dim tile:   one variable per statistic; coords tile, left/bottom/right/top, status, reason
+      tiles/        dim tile:   one variable per statistic;
+                    coords tile, left/bottom/right/top, status, reason
       regions/      dim region: one variable per statistic; coords region, name
       dh_overview/  dims y, x:  block mean of dh (1:factor), CF grid_mapping ``spatial_ref``
 """
@@ -18,12 +19,13 @@ from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import dask.array as da
 import numpy as np
 import rioxarray  # noqa: F401 - registers the .rio accessor
 import xarray as xr
+import zarr
 from numpy.typing import NDArray
 
 from workers.catalog import TileInfo
@@ -103,15 +105,20 @@ class ResultsStore:
         a, _, c, _, e, f = layout.transform
         x = c + a * (np.arange(layout.width) + 0.5)
         y = f + e * (np.arange(layout.height) + 0.5)
-        blank = da.full((layout.height, layout.width), np.nan, dtype=np.float32,
-                        chunks=(layout.tile_block, layout.tile_block))
+        blank = da.full(
+            (layout.height, layout.width),
+            np.nan,
+            dtype=np.float32,
+            chunks=(layout.tile_block, layout.tile_block),
+        )
         dh = xr.DataArray(blank, dims=("y", "x"), coords={"y": y, "x": x}, name="dh")
         dh.attrs.update(long_name="dh, test minus reference (block mean)", units="m")
         dh = dh.rio.write_crs(layout.crs).rio.write_transform(_affine(layout.transform))
         dh.encoding["_FillValue"] = np.float32(np.nan)
         with _quiet_zarr():
-            dh.to_dataset().to_zarr(self.path, group="dh_overview", mode="w", compute=False,
-                                    zarr_format=3)
+            dh.to_dataset().to_zarr(  # type: ignore[call-overload]
+                self.path, group="dh_overview", mode="w", compute=False, zarr_format=3
+            )
 
     def write_overview(self, tile_id: str, block: NDArray[np.float32] | None) -> None:
         """Write one tile's overview block in place (no other block is read)."""
@@ -125,12 +132,17 @@ class ResultsStore:
         with _quiet_zarr():
             ds.to_zarr(self.path, group="dh_overview", region={"y": rows, "x": cols})
 
-    def write_tables(self, tiles: xr.Dataset, regions: xr.Dataset) -> None:
-        """Write the tile and region tables."""
-        mode = "a" if self.path.exists() else "w"
+    def finish(self) -> None:
+        """Refresh the consolidated metadata of the whole store (after all groups exist)."""
         with _quiet_zarr():
-            tiles.to_zarr(self.path, group="tiles", mode=mode, zarr_format=3)
-            regions.to_zarr(self.path, group="regions", mode="a", zarr_format=3)
+            zarr.consolidate_metadata(str(self.path))
+
+    def write_tables(self, tables: Mapping[str, xr.Dataset]) -> None:
+        """Write tables (group name -> dataset), e.g. tiles, regions, strata."""
+        for group, table in tables.items():
+            mode: Literal["a", "w"] = "a" if self.path.exists() else "w"
+            with _quiet_zarr():
+                table.to_zarr(self.path, group=group, mode=mode, zarr_format=3)
 
 
 def _affine(t: tuple[float, ...]):  # type: ignore[no-untyped-def]
@@ -140,7 +152,10 @@ def _affine(t: tuple[float, ...]):  # type: ignore[no-untyped-def]
 
 
 def statistics_table(
-    dim: str, ids: Sequence[str], stats: Sequence[Mapping[str, Any]], coords: Mapping[str, Sequence[Any]]
+    dim: str,
+    ids: Sequence[str],
+    stats: Sequence[Mapping[str, Any]],
+    coords: Mapping[str, Any],
 ) -> xr.Dataset:
     """One variable per statistic along dim; None becomes NaN (count stays an integer)."""
     data: dict[str, Any] = {}
@@ -149,16 +164,39 @@ def statistics_table(
         if key == "count":
             data[key] = (dim, np.array([v or 0 for v in values], dtype=np.int64))
         else:
-            data[key] = (dim, np.array([np.nan if v is None else v for v in values], dtype=np.float64))
+            data[key] = (
+                dim,
+                np.array([np.nan if v is None else v for v in values], dtype=np.float64),
+            )
     all_coords: dict[str, Any] = {dim: np.array(list(ids), dtype=object)}
-    for name, values in coords.items():
-        arr = np.array(list(values))
+    for name, column in coords.items():
+        arr = np.array(list(column))
         all_coords[name] = (dim, arr.astype(object) if arr.dtype.kind in "UO" else arr)
     ds = xr.Dataset(data, coords=all_coords)
     for key in STAT_KEYS:
         if key != "count":
             ds[key].attrs["units"] = "m"
     return ds
+
+
+def strata_table(
+    areas: Sequence[str], strata: Sequence[str], stats: Mapping[tuple[str, str], Mapping[str, Any]]
+) -> xr.Dataset:
+    """Statistics on dims (area, stratum); NaN (count 0) where a combination holds no pixel."""
+    data: dict[str, Any] = {}
+    for key in STAT_KEYS:
+        grid = np.full((len(areas), len(strata)), 0 if key == "count" else np.nan)
+        for i, area in enumerate(areas):
+            for j, stratum in enumerate(strata):
+                value = stats.get((area, stratum), {}).get(key)
+                if value is not None:
+                    grid[i, j] = value
+        data[key] = (("area", "stratum"), grid.astype(np.int64 if key == "count" else np.float64))
+    coords = {
+        "area": np.array(list(areas), dtype=object),
+        "stratum": np.array(list(strata), dtype=object),
+    }
+    return xr.Dataset(data, coords=coords)
 
 
 def write_summary(out_dir: Path, document: Mapping[str, Any]) -> Path:

@@ -29,10 +29,14 @@ def load(root: Path):
 def numpy_stats(x: np.ndarray) -> dict:
     # reference: numpy and scipy on the same pixels (../shared/CHECK_VALUES.md)
     return {
-        "count": x.size, "mean": x.mean(), "median": np.median(x),
+        "count": x.size,
+        "mean": x.mean(),
+        "median": np.median(x),
         "nmad": median_abs_deviation(x, scale="normal"),
-        "q683_abs": np.quantile(np.abs(x), 0.683), "q95_abs": np.quantile(np.abs(x), 0.95),
-        "rmse": np.sqrt(np.mean(x**2)), "std": np.std(x, ddof=1),
+        "q683_abs": np.quantile(np.abs(x), 0.683),
+        "q95_abs": np.quantile(np.abs(x), 0.95),
+        "rmse": np.sqrt(np.mean(x**2)),
+        "std": np.std(x, ddof=1),
     }
 
 
@@ -95,7 +99,8 @@ def test_outputs_open_as_documented(make_archive, dask_client, tmp_path):
     assert tiles.sizes["tile"] == 4
     assert {"left", "bottom", "right", "top", "status"} <= set(tiles.coords)
     assert float(tiles["median"].sel(tile="t_0_0")) == pytest.approx(
-        next(t for t in doc["tiles"] if t["tile"] == "t_0_0")["stats"]["median"])
+        next(t for t in doc["tiles"] if t["tile"] == "t_0_0")["stats"]["median"]
+    )
     regions = xr.open_zarr(out / "results.zarr", group="regions")
     assert list(regions["region"].values) == ["WEST", "EAST", "FAR"]
     overview = xr.open_zarr(out / "results.zarr", group="dh_overview", decode_coords="all")
@@ -109,8 +114,12 @@ def test_corrupt_and_crs_less_tiles_fail_alone(make_archive, dask_client, tmp_pa
 
     root = make_archive()
     (root / "test" / "garbage.tif").write_bytes(b"II*\x00 not really a tiff " * 20)
-    tif_writer(root / "test" / "no_crs.tif", np.zeros((10, 10)), crs=None,
-               transform=from_origin(480_000, 6_230_000, 5.0, 5.0))
+    tif_writer(
+        root / "test" / "no_crs.tif",
+        np.zeros((10, 10)),
+        crs=None,
+        transform=from_origin(480_000, 6_230_000, 5.0, 5.0),
+    )
     whole = (root / "test" / "t_1_1.tif").read_bytes()
     (root / "test" / "truncated.tif").write_bytes(whole[: len(whole) // 2])
     doc = run_job(load(root), tmp_path / "out", client=dask_client)
@@ -139,7 +148,9 @@ def test_region_outside_the_data_is_a_clear_error(make_archive, dask_client, tmp
 def test_unknown_unit_and_missing_file_are_named(make_archive):
     root = make_archive()
     text = (root / "job.yaml").read_text()
-    (root / "job.yaml").write_text(text.replace("units: metre}\nreference", "units: yard}\nreference"))
+    (root / "job.yaml").write_text(
+        text.replace("units: metre}\nreference", "units: yard}\nreference")
+    )
     with pytest.raises(SpecError, match=r"test\.units"):
         load(root)
     shutil.rmtree(root / "ref")

@@ -2,6 +2,10 @@
 
 from __future__ import annotations
 
+import os
+import subprocess
+import sys
+
 import numpy as np
 import pytest
 from pyproj import CRS, Transformer
@@ -51,6 +55,20 @@ def test_missing_grid_is_an_error_not_a_silent_zero():
         assert abs(n[0]) > 10
 
 
+def test_missing_egm96_grid_fails_loudly_in_a_fresh_process():
+    # PROJ's data folders are process-wide: check with a process that knows no grid folder.
+    code = (
+        "import numpy as np\n"
+        "from workers.datum import geoid_undulation\n"
+        "geoid_undulation(np.array([8.7]), np.array([56.2]), vertical_crs='EPSG:5773',"
+        " grid_dirs=('/nonexistent-grid-folder',))\n"
+    )
+    env = {k: v for k, v in os.environ.items() if k not in {"PROJ_DATA", "PROJ_LIB"}}
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, env=env)
+    assert done.returncode != 0
+    assert "GeoidGridError" in done.stderr and "egm96_15.gtx" in done.stderr
+
+
 def test_units_are_exact():
     # NIST: international foot = 0.3048 m exactly; US survey foot = 1200/3937 m.
     assert to_metres(np.array([1.0]), "foot")[0] == 0.3048
@@ -61,8 +79,9 @@ def test_units_are_exact():
 
 
 def utm_grid(width: int = 300, height: int = 200, res: float = 5.0) -> Grid:
-    return Grid(CRS.from_epsg(32632).to_wkt(), (res, 0.0, 480_000.0, 0.0, -res, 6_230_000.0),
-                width, height)
+    return Grid(
+        CRS.from_epsg(32632).to_wkt(), (res, 0.0, 480_000.0, 0.0, -res, 6_230_000.0), width, height
+    )
 
 
 def test_lattice_interpolation_stays_within_a_millimetre():

@@ -66,8 +66,9 @@ def test_units_must_agree_with_a_vertical_crs_in_feet():
     # EPSG:6360 is NAVD88 height (ftUS): declaring metres is inconsistent.
     with pytest.raises(SpecError, match="reference"):
         parse_spec(minimal(reference={"tiles": "x", "vertical_crs": "EPSG:6360", "units": "metre"}))
-    parse_spec(minimal(reference={"tiles": "x", "vertical_crs": "EPSG:6360",
-                                  "units": "us_survey_foot"}))
+    parse_spec(
+        minimal(reference={"tiles": "x", "vertical_crs": "EPSG:6360", "units": "us_survey_foot"})
+    )
 
 
 def test_missing_files_are_named(tree: Path):
@@ -89,7 +90,9 @@ def test_paths_outside_data_roots_are_refused(tree: Path, tmp_path_factory):
 def test_yaml_and_json_files(tmp_path: Path):
     (tmp_path / "a.yaml").write_text("name: x\ntest: {tiles: t}\nreference: {tiles: r}\n")
     assert parse_spec(load_spec_file(tmp_path / "a.yaml")).name == "x"
-    (tmp_path / "b.json").write_text('{"name": "y", "test": {"tiles": "t"}, "reference": {"tiles": "r"}}')
+    (tmp_path / "b.json").write_text(
+        '{"name": "y", "test": {"tiles": "t"}, "reference": {"tiles": "r"}}'
+    )
     assert parse_spec(load_spec_file(tmp_path / "b.json")).name == "y"
     (tmp_path / "c.yaml").write_text("name: [unclosed\n")
     with pytest.raises(SpecError, match="not valid YAML"):

@@ -6,11 +6,12 @@ import numpy as np
 import pytest
 from scipy.stats import median_abs_deviation, norm
 
-from workers import summary as S
+from workers import summary as dhs
 
 
-def heavy_tailed(n: int, *, seed: int, sigma: float = 0.3, bias: float = 0.25,
-                 blunders: float = 0.02) -> np.ndarray:
+def heavy_tailed(
+    n: int, *, seed: int, sigma: float = 0.3, bias: float = 0.25, blunders: float = 0.02
+) -> np.ndarray:
     """Normal dh plus a fraction of blunders of +-5 to 50 m."""
     rng = np.random.default_rng(seed)
     dh = rng.normal(bias, sigma, n)
@@ -41,42 +42,42 @@ def assert_within_bound(got: dict, want: dict) -> None:
     for key in ("mean", "std", "rmse", "min", "max"):
         assert got[key] == pytest.approx(want[key], rel=1e-9, abs=1e-12), key
     for key in ("median", "q683_abs", "q95_abs"):
-        assert abs(got[key] - want[key]) <= S.quantile_bound_m(want[key]), key
-    assert abs(got["nmad"] - want["nmad"]) <= S.nmad_bound_m(want["median"], want["nmad"])
+        assert abs(got[key] - want[key]) <= dhs.quantile_bound_m(want[key]), key
+    assert abs(got["nmad"] - want["nmad"]) <= dhs.nmad_bound_m(want["median"], want["nmad"])
 
 
 @pytest.mark.parametrize("seed", [0, 1, 2])
 def test_heavy_tailed_statistics_match_numpy_and_scipy(seed: int) -> None:
     x = heavy_tailed(200_000, seed=seed)
-    assert_within_bound(S.statistics(S.summarise(x)), reference_statistics(x))
+    assert_within_bound(dhs.statistics(dhs.summarise(x)), reference_statistics(x))
 
 
 def test_stated_bound_is_the_issue_bound() -> None:
     # The issue's bound: 1 mm, or 0.1 % of the value where that is larger.
     for value in (0.0, 0.3, 2.5, 40.0):
-        assert S.quantile_bound_m(value) <= max(1e-3, 1e-3 * abs(value))
-    assert S.nmad_bound_m(0.25, 0.3) <= 1e-3
+        assert dhs.quantile_bound_m(value) <= max(1e-3, 1e-3 * abs(value))
+    assert dhs.nmad_bound_m(0.25, 0.3) <= 1e-3
 
 
 def test_sparse_values_with_gaps() -> None:
     x = np.array([0.0, 10.0, 10.5, -3.0])
-    assert_within_bound(S.statistics(S.summarise(x)), reference_statistics(x))
+    assert_within_bound(dhs.statistics(dhs.summarise(x)), reference_statistics(x))
 
 
 def test_nan_and_inf_are_ignored() -> None:
     x = np.array([1.0, np.nan, 2.0, np.inf, -np.inf, 3.0])
-    assert S.summarise(x).count == 3
-    assert S.statistics(S.summarise(x))["median"] == pytest.approx(2.0, abs=2e-4)
+    assert dhs.summarise(x).count == 3
+    assert dhs.statistics(dhs.summarise(x))["median"] == pytest.approx(2.0, abs=2e-4)
 
 
 def test_empty_summary_reports_count_zero_and_no_values() -> None:
-    stats = S.statistics(S.summarise(np.array([np.nan])))
+    stats = dhs.statistics(dhs.summarise(np.array([np.nan])))
     assert stats["count"] == 0
-    assert all(stats[k] is None for k in S.STAT_KEYS if k != "count")
+    assert all(stats[k] is None for k in dhs.STAT_KEYS if k != "count")
 
 
 def test_single_value() -> None:
-    stats = S.statistics(S.summarise(np.array([0.7])))
+    stats = dhs.statistics(dhs.summarise(np.array([0.7])))
     assert stats["median"] == pytest.approx(0.7, abs=2e-4)
     assert stats["std"] == 0.0
     assert stats["nmad"] == pytest.approx(0.0, abs=1e-3)
@@ -88,7 +89,7 @@ def test_normal_dh_gaussian_equivalents() -> None:
     # here against scipy.stats.norm too.
     sigma, n = 0.3, 1_000_000
     x = np.random.default_rng(7).normal(0.0, sigma, n)
-    stats = S.statistics(S.summarise(x))
+    stats = dhs.statistics(dhs.summarise(x))
     assert norm.ppf((1 + 0.683) / 2) == pytest.approx(1.00064, abs=1e-5)
     assert norm.ppf((1 + 0.95) / 2) == pytest.approx(1.95996, abs=1e-5)
     # sampling error of a quantile of 1e6 values is about 0.1 % of sigma; allow 0.5 %.
@@ -99,13 +100,13 @@ def test_normal_dh_gaussian_equivalents() -> None:
 
 def test_nmad_constant() -> None:
     # 1.4826 = 1 / Phi^-1(0.75) (Höhle & Höhle 2009; constant computed with scipy).
-    assert 1.0 / norm.ppf(0.75) == pytest.approx(S.NMAD_FACTOR, abs=1e-4)
+    assert 1.0 / norm.ppf(0.75) == pytest.approx(dhs.NMAD_FACTOR, abs=1e-4)
 
 
 def test_bins_are_ordered_and_contain_their_values() -> None:
     x = np.concatenate([np.linspace(-60, 60, 100_001), [-2.0, 2.0, -1e-9, 0.0]])
-    k = S.bin_index(x)
-    lo, hi = S.bin_edges(k)
+    k = dhs.bin_index(x)
+    lo, hi = dhs.bin_edges(k)
     assert np.all(np.diff(k[np.argsort(x)]) >= 0)
     assert np.all((lo - 1e-12 <= x) & (x <= hi + 1e-12))
 
@@ -113,4 +114,4 @@ def test_bins_are_ordered_and_contain_their_values() -> None:
 def test_summary_stays_small() -> None:
     x = heavy_tailed(1_000_000, seed=3)
     # a tile of a million pixels with 2 % blunders: a few hundred kilobytes at most
-    assert S.summarise(x).nbytes < 600_000
+    assert dhs.summarise(x).nbytes < 600_000
