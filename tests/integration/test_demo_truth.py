@@ -1,0 +1,95 @@
+"""The full chain on the demo archive finds what the generator injected (truth.json)."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import pytest
+
+from service.runner import run_job
+from workers import spec as job_spec
+from workers.demo_archive import clean_options, make_demo_archive
+
+DEMO = Path(__file__).resolve().parents[2] / "demo_tiles"
+
+
+def run(spec_path: Path, out: Path, client) -> dict:
+    spec = job_spec.parse_spec(job_spec.load_spec_file(spec_path))
+    return run_job(job_spec.resolve(spec, base_dir=spec_path.parent), out, client=client)
+
+
+def strata(area: dict) -> dict[str, dict]:
+    return {s["stratum"]: s["stats"] for s in area["strata"]}
+
+
+@pytest.fixture(scope="module")
+def demo_doc(dask_client, tmp_path_factory) -> dict:
+    return run(DEMO / "demo.yaml", tmp_path_factory.mktemp("demo") / "out", dask_client)
+
+
+@pytest.fixture(scope="module")
+def truth() -> dict:
+    return json.loads((DEMO / "truth.json").read_text())
+
+
+def test_clean_archive_gives_the_bias_through_the_full_chain(dask_client, tmp_path):
+    # no shift, noise, canopy or blunders: other CRS, other tiling and the geoid remain.
+    spec = make_demo_archive(tmp_path / "clean", clean_options(tiles_x=3, tiles_y=3, pixels=80))
+    doc = run(spec, tmp_path / "out", dask_client)
+    bias = json.loads((tmp_path / "clean" / "truth.json").read_text())["vertical_bias_m"]
+    open_ground = strata(doc["overall_detail"])["landcover:open ground"]
+    assert open_ground["count"] > 10_000
+    assert abs(open_ground["median"] - bias) < 0.01
+    assert open_ground["nmad"] < 0.01
+
+
+def test_every_tile_and_province_is_reported(demo_doc, truth):
+    assert len(demo_doc["tiles"]) == truth["tiles"]["x"] * truth["tiles"]["y"]
+    assert {t["status"] for t in demo_doc["tiles"]} == {"ok"}
+    assert [r["region"] for r in demo_doc["regions"]] == ["SU", "EW", "HF", "TC"]
+    assert all(r["stats"]["count"] > 0 for r in demo_doc["regions"])
+
+
+def test_nmad_rises_with_slope_on_non_vegetated_ground(demo_doc):
+    # the generator's noise grows with tan(slope), and the uncorrected shift adds slope-dependent
+    # error too: the spread must rise band by band.
+    by_stratum = strata(demo_doc["overall_detail"])
+    bands = ["0-5", "5-15", "15-30"]
+    nmads = [by_stratum[f"cover_group:non_vegetated/slope_deg:{b}"]["nmad"] for b in bands]
+    counts = [by_stratum[f"cover_group:non_vegetated/slope_deg:{b}"]["count"] for b in bands]
+    assert min(counts) > 1000
+    assert nmads == sorted(nmads) and nmads[-1] > 1.5 * nmads[0]
+
+
+def test_canopy_offset_shows_in_the_forest_class(demo_doc, truth):
+    by_stratum = strata(demo_doc["overall_detail"])
+    low, high = truth["canopy"]["forest_m"]
+    offset = (
+        by_stratum["landcover:forest"]["median"] - by_stratum["landcover:open ground"]["median"]
+    )
+    assert low < offset < high
+    assert by_stratum["cover_group:vegetated"]["median"] > 5.0
+
+
+def test_water_is_excluded(demo_doc):
+    by_stratum = strata(demo_doc["overall_detail"])
+    assert not any("water" in key for key in by_stratum)
+    assert demo_doc["overall_detail"]["excluded_pixels"] > 0
+    # the strata of the non-excluded classes add up to every counted pixel
+    classes = ["landcover:open ground", "landcover:forest", "landcover:built-up"]
+    assert sum(by_stratum[c]["count"] for c in classes) == demo_doc["overall"]["count"]
+
+
+def test_open_ground_median_near_the_bias(demo_doc, truth):
+    # The shift is not removed here (co-registration is a separate step), so allow 5 cm.
+    open_ground = strata(demo_doc["overall_detail"])["landcover:open ground"]
+    assert abs(open_ground["median"] - truth["vertical_bias_m"]) < 0.05
+
+
+def test_outlier_rule_and_intervals_are_reported(demo_doc):
+    detail = demo_doc["overall_detail"]
+    assert detail["without_outliers"]["rule"] == "|dh - median| > 5 x NMAD"
+    assert detail["without_outliers"]["removed"] > 0
+    lo, hi = detail["confidence_95"]["median"]
+    assert lo <= demo_doc["overall"]["median"] <= hi

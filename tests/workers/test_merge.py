@@ -1,0 +1,114 @@
+"""Region statistics from merged tile summaries equal numpy on all the region's pixels."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+import shapely
+from pyproj import CRS
+from scipy.stats import median_abs_deviation
+from shapely.geometry import MultiPolygon, Polygon, box
+
+from workers.catalog import TileInfo
+from workers.grid import Grid
+from workers.merge import accumulate
+from workers.regions import Region
+from workers.summary import nmad_bound_m, quantile_bound_m, statistics
+from workers.tile_task import TileOptions, TileSurfaces, summarise_tile
+
+UTM = CRS.from_epsg(32632).to_wkt()
+PIXELS, SIZE, ORIGIN_E, ORIGIN_N = 30, 2.0, 500_000.0, 6_000_000.0
+
+
+def tile(col: int, row: int) -> TileInfo:
+    transform = (
+        SIZE,
+        0.0,
+        ORIGIN_E + col * PIXELS * SIZE,
+        0.0,
+        -SIZE,
+        ORIGIN_N - row * PIXELS * SIZE,
+    )
+    grid = Grid(UTM, transform, PIXELS, PIXELS)  # type: ignore[arg-type]
+    return TileInfo(f"t{col}_{row}", "/dev/null", grid, None, "float32", 0, "")
+
+
+def heavy_tailed(rng, shape):
+    dh = rng.normal(0.2, 0.3, shape)
+    hit = rng.random(shape) < 0.02
+    dh[hit] += rng.uniform(5, 50, hit.sum()) * rng.choice([-1.0, 1.0], hit.sum())
+    return dh
+
+
+REGIONS = [
+    # crosses many tile edges
+    Region(
+        "CROSS",
+        "cross",
+        box(ORIGIN_E + 45.3, ORIGIN_N - 401.3, ORIGIN_E + 333.3, ORIGIN_N - 77.3),
+        UTM,
+    ),
+    # a multipolygon, one part with a hole
+    Region(
+        "HOLED",
+        "holed",
+        MultiPolygon(
+            [
+                Polygon(
+                    [
+                        (ORIGIN_E + 10, ORIGIN_N - 10),
+                        (ORIGIN_E + 200, ORIGIN_N - 10),
+                        (ORIGIN_E + 200, ORIGIN_N - 150),
+                        (ORIGIN_E + 10, ORIGIN_N - 150),
+                    ],
+                    holes=[
+                        [
+                            (ORIGIN_E + 50, ORIGIN_N - 50),
+                            (ORIGIN_E + 120, ORIGIN_N - 50),
+                            (ORIGIN_E + 120, ORIGIN_N - 100),
+                            (ORIGIN_E + 50, ORIGIN_N - 100),
+                        ]
+                    ],
+                ),
+                box(ORIGIN_E + 300, ORIGIN_N - 470, ORIGIN_E + 470, ORIGIN_N - 300),
+            ]
+        ),
+        UTM,
+    ),
+]
+
+
+def test_64_tiles_regions_equal_one_pass_with_numpy():
+    rng = np.random.default_rng(5)
+    results, pixels = [], {r.region_id: [] for r in REGIONS}
+    everything = []
+    for row in range(8):
+        for col in range(8):
+            t = tile(col, row)
+            dh = heavy_tailed(rng, (PIXELS, PIXELS))
+            dh[rng.random(dh.shape) < 0.05] = np.nan  # voids
+            layers = TileSurfaces(dh, np.zeros_like(dh), None)
+            results.append(summarise_tile(t, layers, REGIONS, TileOptions()))
+            # independent membership: pixel centre inside the polygon (shapely)
+            r_idx, c_idx = np.mgrid[0:PIXELS, 0:PIXELS]
+            x, y = t.grid.pixel_centres(r_idx.astype(float), c_idx.astype(float))
+            for region in REGIONS:
+                inside = shapely.contains_xy(region.geometry, x, y) & np.isfinite(dh)
+                pixels[region.region_id].append(dh[inside])
+            everything.append(dh[np.isfinite(dh)])
+    acc = accumulate(results, [r.region_id for r in REGIONS])
+    for region_id, parts in [*pixels.items(), ("*", everything)]:
+        x = np.concatenate(parts)
+        got = statistics(acc.regions[region_id] if region_id != "*" else acc.overall)
+        # reference: numpy / scipy on the concatenation (../shared/CHECK_VALUES.md)
+        assert got["count"] == x.size
+        assert got["mean"] == pytest.approx(x.mean(), rel=1e-9)
+        assert got["rmse"] == pytest.approx(np.sqrt(np.mean(x**2)), rel=1e-9)
+        med = np.median(x)
+        assert abs(got["median"] - med) <= quantile_bound_m(med)
+        nmad = median_abs_deviation(x, scale="normal")
+        assert abs(got["nmad"] - nmad) <= nmad_bound_m(med, nmad)
+        for key, p in (("q683_abs", 0.683), ("q95_abs", 0.95)):
+            q = np.quantile(np.abs(x), p)
+            assert abs(got[key] - q) <= quantile_bound_m(q)
+    assert acc.regions["HOLED"].count < acc.regions["CROSS"].count
