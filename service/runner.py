@@ -7,19 +7,20 @@ result at a time; pixels stay on the workers.
 from __future__ import annotations
 
 import datetime as dt
+import uuid
 from collections.abc import Callable, Sequence
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-from distributed import Client, as_completed
+from distributed import Client, Future, as_completed
 from pyproj import CRS, Transformer
 
 from workers import regions as region_ops
 from workers import summary as dh_summary
 from workers.catalog import ScanFailure, TileIndex, TileInfo, scan_tile
 from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation
-from workers.errors import EmptyOverlapError, TileReadError
+from workers.errors import AuditError, EmptyOverlapError, TileReadError
 from workers.merge import JobAccumulator
 from workers.regions import Region
 from workers.report import area_entry, build_summary, region_entries
@@ -36,6 +37,12 @@ from workers.writers import (
 )
 
 Progress = Callable[[int, int], None]
+
+
+class JobDismissedError(AuditError):
+    """The job was dismissed while it ran; its remaining tile tasks were cancelled."""
+
+
 SOFTWARE = "demaudit 0.1.0"
 
 
@@ -46,10 +53,16 @@ def run_job(
     client: Client,
     grid_dirs: Sequence[str] = DEFAULT_GRID_DIRS,
     progress: Progress | None = None,
+    should_stop: Callable[[], bool] | None = None,
 ) -> dict[str, Any]:
     """Audit job.spec on the cluster behind client; write results.zarr and summary.json into
-    out_dir and return the summary document."""
+    out_dir and return the summary document.
+
+    progress(done, total) is called as tiles finish; when should_stop() turns true the remaining
+    tile tasks are cancelled on the cluster and JobDismissedError is raised.
+    """
     started = _now()
+    run_id = uuid.uuid4().hex[:12]
     out_dir.mkdir(parents=True, exist_ok=True)
     options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
     test_tiles, test_failures = _scan(client, job.test_tiles)
@@ -82,7 +95,7 @@ def run_job(
             options,
             cover_index.overlapping(tile.grid),
             pure=False,
-            key=f"audit-tile-{tile.tile_id}-{started}",
+            key=f"audit-tile-{tile.tile_id}-{run_id}",
         )
         for tile in test_tiles
     ]
@@ -92,7 +105,10 @@ def run_job(
         records[failure.tile_id] = _tile_record(failure.tile_id, FAILED, failure.reason, None, None)
     by_id = {t.tile_id: t for t in test_tiles}
     for future in as_completed(futures):
-        result: TileResult = future.result()
+        if should_stop is not None and should_stop():
+            client.cancel(futures)
+            raise JobDismissedError(f"job {job.spec.name} was dismissed after {acc.tiles_done} tiles")
+        result = _result_of(future)
         future.release()
         acc.add(result)
         store.write_overview(result.tile_id, result.overview)
@@ -135,6 +151,18 @@ def run_job(
     )
     write_summary(out_dir, document)
     return document
+
+
+def _result_of(future: Future) -> TileResult:
+    """The tile's result; a lost worker or a crash outside audit_tile marks the tile failed."""
+    try:
+        result: TileResult = future.result()
+    except Exception as exc:  # noqa: BLE001 - report, never lose the job
+        tile_id = str(future.key).removeprefix("audit-tile-").rsplit("-", 1)[0]
+        return TileResult(
+            tile_id, FAILED, f"task failed on the cluster: {type(exc).__name__}: {exc}"
+        )
+    return result
 
 
 def _scan(client: Client, paths: Sequence[Path]) -> tuple[list[TileInfo], list[ScanFailure]]:
