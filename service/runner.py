@@ -107,7 +107,9 @@ def run_job(
     for future in as_completed(futures):
         if should_stop is not None and should_stop():
             client.cancel(futures)
-            raise JobDismissedError(f"job {job.spec.name} was dismissed after {acc.tiles_done} tiles")
+            raise JobDismissedError(
+                f"job {job.spec.name} was dismissed after {acc.tiles_done} tiles"
+            )
         result = _result_of(future)
         future.release()
         acc.add(result)
