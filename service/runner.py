@@ -54,15 +54,19 @@ def run_job(
     grid_dirs: Sequence[str] = DEFAULT_GRID_DIRS,
     progress: Progress | None = None,
     should_stop: Callable[[], bool] | None = None,
+    run_id: str | None = None,
+    retries: int = 1,
 ) -> dict[str, Any]:
     """Audit job.spec on the cluster behind client; write results.zarr and summary.json into
     out_dir and return the summary document.
 
     progress(done, total) is called as tiles finish; when should_stop() turns true the remaining
-    tile tasks are cancelled on the cluster and JobDismissedError is raised.
+    tile tasks are cancelled on the cluster and JobDismissedError is raised. Tile tasks get the
+    key ``audit-tile-<tile>-<run_id>`` (a job id makes them deterministic) and ``retries``
+    retries when a worker is lost.
     """
     started = _now()
-    run_id = uuid.uuid4().hex[:12]
+    run_id = run_id or uuid.uuid4().hex[:12]
     out_dir.mkdir(parents=True, exist_ok=True)
     options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
     test_tiles, test_failures = _scan(client, job.test_tiles)
@@ -95,6 +99,7 @@ def run_job(
             options,
             cover_index.overlapping(tile.grid),
             pure=False,
+            retries=retries,
             key=f"audit-tile-{tile.tile_id}-{run_id}",
         )
         for tile in test_tiles
