@@ -44,6 +44,21 @@ class Grid:
         xs, ys = zip(*corners, strict=True)
         return (min(xs), min(ys), max(xs), max(ys))
 
+    def pixel_size_m(self) -> tuple[float, float]:
+        """Pixel width and height in metres (geographic grids: at the grid's centre latitude)."""
+        res_x, res_y = self.resolution
+        crs = self.pyproj_crs
+        if crs.is_geographic:
+            lat = np.radians(0.5 * (self.bounds[1] + self.bounds[3]))
+            return res_x * 111_320.0 * float(np.cos(lat)), res_y * 110_574.0
+        factor = crs.axis_info[0].unit_conversion_factor if crs.axis_info else 1.0
+        return res_x * factor, res_y * factor
+
+    def centre_coordinates(self) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """Map coordinates (x, y) of every pixel centre, each of the grid's shape."""
+        rows, cols = np.indices(self.shape, dtype=np.float64)
+        return self.pixel_centres(rows, cols)
+
     def pixel_centres(
         self, rows: NDArray[np.float64], cols: NDArray[np.float64]
     ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:

@@ -159,6 +159,26 @@ class Outliers(_Strict):
     factor: float = Field(default=5.0, gt=0)
 
 
+class Coregistration(_Strict):
+    """Find (and optionally remove) a systematic shift before judging accuracy (Nuth & Kääb)."""
+
+    method: Literal["nuth_kaab"] = "nuth_kaab"
+    estimate_from: Literal["job", "tile"] = Field(
+        default="job",
+        description="Which estimate is applied: one for the whole job, or each tile's own.",
+    )
+    apply: bool = Field(default=True, description="Also report statistics after the correction.")
+    fit_tilt: bool = Field(default=True, description="Fit and remove a planar ramp as well.")
+    fit_elevation_bias: bool = Field(
+        default=False, description="Fit and remove a bias proportional to elevation as well."
+    )
+    max_iterations: int = Field(default=8, ge=1, le=50)
+    tolerance_px: float = Field(default=0.01, gt=0, le=1)
+    tile_stride: int = Field(
+        default=1, ge=1, description="Use every n-th test tile for the job estimate."
+    )
+
+
 class JobSpec(_Strict):
     """One audit: a test DEM against a reference, over regions."""
 
@@ -169,6 +189,7 @@ class JobSpec(_Strict):
     landcover: LandCoverSource | None = None
     strata: Strata = Strata()
     outliers: Outliers = Outliers()
+    coregistration: Coregistration | None = None
     options: Options = Options()
 
 

@@ -1,6 +1,7 @@
 """Strata: land-cover classes, their groups and slope bands, as pixel masks (pure).
 
-Slope is taken from the reference on the test grid (the reference is the better terrain model).
+Slope is taken from the reference on the test grid (the reference is the better terrain model);
+see workers/terrain.py.
 """
 
 from __future__ import annotations
@@ -21,19 +22,6 @@ class ClassInfo:
     value: int
     name: str
     group: str
-
-
-def slope_degrees(
-    heights: NDArray[np.float64], *, pixel_size_x_m: float, pixel_size_y_m: float
-) -> NDArray[np.float64]:
-    """Slope in degrees by central differences (one-sided at edges); NaN next to nodata.
-
-    heights in metres on a grid whose pixels are pixel_size_x_m by pixel_size_y_m.
-    """
-    if min(heights.shape) < 2:
-        return np.full(heights.shape, np.nan)
-    dz_dy, dz_dx = np.gradient(heights, pixel_size_y_m, pixel_size_x_m)
-    return np.degrees(np.arctan(np.hypot(dz_dx, dz_dy)))
 
 
 def slope_band_labels(edges: Sequence[float]) -> list[str]:

@@ -9,7 +9,8 @@ from __future__ import annotations
 
 import traceback
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -20,15 +21,25 @@ from rasterio.warp import transform_bounds
 from workers import summary as dh_summary
 from workers.align import onto_grid
 from workers.catalog import TileInfo
+from workers.coregister_tile import (
+    Correction,
+    TileEquations,
+    corrected_dh,
+    correction_from_record,
+    cover_ok,
+    tile_equations,
+    tile_estimate,
+)
 from workers.datum import DEFAULT_GRID_DIRS, to_metres, vertical_offset_on_grid
 from workers.difference import block_mean, difference
 from workers.errors import AuditError
 from workers.grid import Grid
 from workers.rasters import read_mosaic, read_tile
 from workers.regions import Region, region_mask
-from workers.spec import JobSpec
-from workers.strata import ClassInfo, classes_from_spec, excluded_mask, slope_degrees, stratum_masks
+from workers.spec import Coregistration, JobSpec
+from workers.strata import ClassInfo, classes_from_spec, excluded_mask, stratum_masks
 from workers.summary import DhSummary
+from workers.terrain import slope_degrees
 
 OK = "ok"
 FAILED = "failed"
@@ -51,6 +62,8 @@ class TileOptions:
     grid_dirs: tuple[str, ...] = DEFAULT_GRID_DIRS
     landcover_classes: tuple[ClassInfo, ...] = ()
     slope_edges_deg: tuple[float, ...] = (0.0, 5.0, 15.0, 30.0, 45.0)
+    coregistration: Coregistration | None = None
+    correction: Correction | None = None  # the job-wide correction, set for the main pass
 
     @classmethod
     def from_spec(
@@ -68,6 +81,7 @@ class TileOptions:
             grid_dirs=tuple(grid_dirs),
             landcover_classes=classes_from_spec(spec.landcover.classes) if spec.landcover else (),
             slope_edges_deg=tuple(spec.strata.slope_bands_deg),
+            coregistration=spec.coregistration,
         )
 
 
@@ -88,6 +102,8 @@ class TileResult:
     excluded: int = 0
     overview: NDArray[np.float32] | None = None
     reference_tiles: tuple[str, ...] = ()
+    coregistration: dict[str, Any] | None = None
+    corrected: TileResult | None = None
 
 
 @dataclass(frozen=True, eq=False)
@@ -97,6 +113,7 @@ class TileSurfaces:
     dh: NDArray[np.float64]
     reference: NDArray[np.float64]
     landcover: NDArray[np.float64] | None
+    test: NDArray[np.float64] | None = None
 
 
 def audit_tile(
@@ -121,7 +138,77 @@ def audit_tile(
         where = traceback.format_exc(limit=-1).strip().splitlines()[-2:]
         reason = f"unexpected {type(exc).__name__}: {exc} ({' '.join(s.strip() for s in where)})"
         return TileResult(test.tile_id, FAILED, reason, reference_tiles=ref_ids)
-    return summarise_tile(test, layers, regions, options, reference_tiles=ref_ids)
+    result = summarise_tile(test, layers, regions, options, reference_tiles=ref_ids)
+    if options.coregistration is not None:
+        result = with_coregistration(test, layers, regions, options, result)
+    return result
+
+
+def with_coregistration(
+    test: TileInfo,
+    layers: TileSurfaces,
+    regions: Sequence[Region],
+    options: TileOptions,
+    result: TileResult,
+) -> TileResult:
+    """Add the tile's own shift estimate and, when asked, the statistics after the correction
+    (the job-wide one, or the tile's own as the spec says)."""
+    coreg = options.coregistration
+    assert coreg is not None and layers.test is not None
+    cover = cover_ok(layers.landcover, options.landcover_classes)
+    record = tile_estimate(
+        layers.test,
+        layers.reference,
+        test.grid,
+        cover=cover,
+        max_iterations=coreg.max_iterations,
+        tolerance_px=coreg.tolerance_px,
+    )
+    if not coreg.apply:
+        return replace(result, coregistration=record)
+    if coreg.estimate_from == "job":
+        correction = options.correction
+    else:
+        correction = correction_from_record(record, fit_tilt=coreg.fit_tilt)
+        if correction is not None:
+            x, y = test.grid.centre_coordinates()
+            correction = replace(
+                correction, origin_east=float(x.mean()), origin_north=float(y.mean())
+            )
+    if correction is None:
+        record = record | {"applied": False}
+        return replace(result, coregistration=record)
+    dh = corrected_dh(layers.test, layers.reference, test.grid, correction)
+    corrected = summarise_tile(test, replace(layers, dh=dh), regions, options)
+    return replace(
+        result,
+        coregistration=record | {"applied": True},
+        corrected=replace(corrected, overview=None),
+    )
+
+
+def estimate_tile(
+    test: TileInfo,
+    references: Sequence[TileInfo],
+    regions: Sequence[Region],
+    options: TileOptions,
+    landcover: Sequence[TileInfo],
+    at: Correction,
+) -> TileEquations | None:
+    """One tile's equations for the job-wide co-registration at correction ``at`` (None when the
+    tile cannot be read: the estimate then rests on the other tiles)."""
+    if not references:
+        return None
+    try:
+        layers = tile_surfaces(test, references, options, landcover=landcover)
+    except (AuditError, RasterioError, OSError):
+        return None
+    assert layers.test is not None
+    masks = {r.region_id: region_mask(r, test.grid) for r in regions}
+    cover = cover_ok(layers.landcover, options.landcover_classes)
+    return tile_equations(
+        layers.test, layers.reference, test.grid, at=at, cover=cover, region_masks=masks
+    )
 
 
 def summarise_tile(
@@ -141,7 +228,8 @@ def summarise_tile(
         dropped = int(np.count_nonzero(excluded & valid))
         valid &= ~excluded
     dh_valid = np.where(valid, dh, np.nan)
-    slope = slope_degrees(layers.reference, **_pixel_size_m(test.grid))
+    px, py = test.grid.pixel_size_m()
+    slope = slope_degrees(layers.reference, pixel_size_x_m=px, pixel_size_y_m=py)
     strata = stratum_masks(
         landcover=layers.landcover,
         classes=options.landcover_classes,
@@ -194,7 +282,7 @@ def tile_surfaces(
     classes = None
     if landcover:
         classes = resampled_onto(landcover, test.grid, resampling="nearest", nodata=None)
-    return TileSurfaces(difference(test_heights, reference), reference, classes)
+    return TileSurfaces(difference(test_heights, reference), reference, classes, test_heights)
 
 
 def tile_dh(
@@ -202,20 +290,6 @@ def tile_dh(
 ) -> NDArray[np.float64]:
     """dh = test - reference in metres on the test tile's grid (see tile_surfaces)."""
     return tile_surfaces(test, references, options).dh
-
-
-def _pixel_size_m(grid: Grid) -> dict[str, float]:
-    """Pixel size in metres (geographic grids: at the grid's centre latitude)."""
-    res_x, res_y = grid.resolution
-    crs = CRS.from_wkt(grid.crs)
-    if crs.is_geographic:
-        lat = np.radians(0.5 * (grid.bounds[1] + grid.bounds[3]))
-        return {
-            "pixel_size_x_m": res_x * 111_320.0 * float(np.cos(lat)),
-            "pixel_size_y_m": res_y * 110_574.0,
-        }
-    factor = crs.axis_info[0].unit_conversion_factor if crs.axis_info else 1.0
-    return {"pixel_size_x_m": res_x * factor, "pixel_size_y_m": res_y * factor}
 
 
 def resampled_onto(

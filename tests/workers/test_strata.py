@@ -5,7 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from workers.strata import ClassInfo, excluded_mask, slope_band_labels, slope_degrees, stratum_masks
+from workers.strata import ClassInfo, excluded_mask, slope_band_labels, stratum_masks
+from workers.terrain import aspect_degrees, slope_degrees
 
 CLASSES = (
     ClassInfo(1, "open ground", "non_vegetated"),
@@ -54,3 +55,15 @@ def test_masks_partition_the_pixels():
     excluded = excluded_mask(cover, CLASSES)
     assert excluded is not None and excluded.sum() == (cover == 4).sum()
     assert excluded_mask(None, CLASSES) is None
+
+
+@pytest.mark.parametrize(
+    ("rise_east", "rise_north", "aspect"),
+    [(1.0, 0.0, 270.0), (-1.0, 0.0, 90.0), (0.0, 1.0, 180.0), (0.0, -1.0, 0.0), (1.0, 1.0, 225.0)],
+)
+def test_aspect_points_downslope_clockwise_from_north(rise_east, rise_north, aspect):
+    rows, cols = np.mgrid[0:10, 0:12].astype(float)
+    east, north = cols * 2.0, -rows * 2.0  # rows run south
+    z = 0.1 * (rise_east * east + rise_north * north)
+    got = aspect_degrees(z, pixel_size_x_m=2.0, pixel_size_y_m=2.0)
+    assert np.allclose(got, aspect)
