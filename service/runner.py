@@ -9,6 +9,7 @@ from __future__ import annotations
 import datetime as dt
 import uuid
 from collections.abc import Callable, Sequence
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -16,6 +17,7 @@ import numpy as np
 from distributed import Client, Future, as_completed
 from pyproj import CRS, Transformer
 
+from service.coregistration import estimate_job_correction
 from workers import regions as region_ops
 from workers import summary as dh_summary
 from workers.catalog import ScanFailure, TileIndex, TileInfo, scan_tile
@@ -69,46 +71,46 @@ def run_job(
     run_id = run_id or uuid.uuid4().hex[:12]
     out_dir.mkdir(parents=True, exist_ok=True)
     options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
-    test_tiles, test_failures = _scan(client, job.test_tiles)
-    ref_tiles, ref_failures = _scan(client, job.reference_tiles)
-    cover_tiles, cover_failures = _scan(client, job.landcover_tiles)
-    if not test_tiles:
-        raise TileReadError("no test tile could be read: " + _reasons(test_failures))
-    if not ref_tiles:
-        raise TileReadError("no reference tile could be read: " + _reasons(ref_failures))
-    _check_geoid(options, test_tiles[0])
-    index = TileIndex(ref_tiles)
-    candidates = {t.tile_id: index.overlapping(t.grid) for t in test_tiles}
-    cover_index = TileIndex(cover_tiles)
-    if not any(candidates.values()):
-        raise EmptyOverlapError("the test and reference tiles do not overlap anywhere")
-    region_list = _load_regions(job)
-    region_ids = [r.region_id for r in region_list]
-    regions = _regions_by_crs(region_list, test_tiles)
+    catalog = _catalog(client, job, options)
+    coregistration: dict[str, Any] | None = None
+    tile_shifts: dict[str, dict[str, Any]] = {}
+    if options.coregistration is not None:
+        correction, coregistration, tile_shifts = estimate_job_correction(
+            client,
+            catalog.tests,
+            references=catalog.candidates,
+            landcover=catalog.landcover_of,
+            regions=catalog.regions_by_crs,
+            options=options,
+        )
+        options = replace(options, correction=correction)
 
-    layout = overview_layout(test_tiles, factor=job.spec.options.overview_factor)
+    layout = overview_layout(catalog.tests, factor=job.spec.options.overview_factor)
     store = ResultsStore(out_dir, layout)
+    region_ids = [r.region_id for r in catalog.regions]
     acc = JobAccumulator(region_ids=region_ids)
+    after = JobAccumulator(region_ids=region_ids)
     records: dict[str, dict[str, Any]] = {}
+    for failure in catalog.test_failures:
+        acc.add(TileResult(failure.tile_id, FAILED, failure.reason))
+        records[failure.tile_id] = _tile_record(failure.tile_id, FAILED, failure.reason, None, None)
     futures = [
         client.submit(
             audit_tile,
             tile,
-            candidates[tile.tile_id],
-            region_ops.clip_to(regions.get(tile.grid.crs, []), tile.bounds),
+            catalog.candidates[tile.tile_id],
+            region_ops.clip_to(catalog.regions_by_crs.get(tile.grid.crs, []), tile.bounds),
             options,
-            cover_index.overlapping(tile.grid),
+            catalog.landcover_of(tile),
+            tile_shifts.get(tile.tile_id),
             pure=False,
             retries=retries,
             key=f"audit-tile-{tile.tile_id}-{run_id}",
         )
-        for tile in test_tiles
+        for tile in catalog.tests
     ]
-    total = len(futures) + len(test_failures)
-    for failure in test_failures:
-        acc.add(TileResult(failure.tile_id, FAILED, failure.reason))
-        records[failure.tile_id] = _tile_record(failure.tile_id, FAILED, failure.reason, None, None)
-    by_id = {t.tile_id: t for t in test_tiles}
+    total = len(futures) + len(catalog.test_failures)
+    by_id = {t.tile_id: t for t in catalog.tests}
     for future in as_completed(futures):
         if should_stop is not None and should_stop():
             client.cancel(futures)
@@ -118,21 +120,34 @@ def run_job(
         result = _result_of(future)
         future.release()
         acc.add(result)
+        if result.corrected is not None:
+            after.add(result.corrected)
         store.write_overview(result.tile_id, result.overview)
         if result.status == OK:
             write_tile_summaries(store.path, result.tile_id, entries_of(result))
-        tile = by_id[result.tile_id]
         records[result.tile_id] = _tile_record(
-            result.tile_id, result.status, result.reason, tile, statistics(result.summary)
+            result.tile_id,
+            result.status,
+            result.reason,
+            by_id[result.tile_id],
+            statistics(result.summary),
+            result,
         )
         if progress:
             progress(acc.tiles_done, total)
 
     tile_rows = [records[k] for k in sorted(records)]
-    names = {r.region_id: r.name for r in region_list}
+    names = {r.region_id: r.name for r in catalog.regions}
     outliers = job.spec.outliers
     rule: dict[str, Any] = {"outlier_rule": outliers.rule, "outlier_factor": outliers.factor}
     region_docs = region_entries({r: acc.regions[r] for r in region_ids}, names, acc.strata, **rule)
+    if coregistration is not None and after.tiles_done:
+        coregistration["after"] = {
+            "overall": area_entry(after.overall, after.strata_of(ALL), **rule),
+            "regions": region_entries(
+                {r: after.regions[r] for r in region_ids}, names, after.strata, **rule
+            ),
+        }
     _write_tables(store, tile_rows, region_docs, acc)
     document = build_summary(
         job={
@@ -151,13 +166,56 @@ def run_job(
         | {"excluded_pixels": acc.excluded},
         regions=region_docs,
         tiles=tile_rows,
-        reference_failures=[
-            {"tile": f.tile_id, "reason": f.reason} for f in [*ref_failures, *cover_failures]
-        ],
+        reference_failures=catalog.reference_failures,
         extra_cautions=[] if layout else ["no dh overview: the test tiles are not on one grid"],
+        coregistration=coregistration,
     )
     write_summary(out_dir, document)
     return document
+
+
+@dataclass(frozen=True)
+class _Catalog:
+    """What the job knows before dispatch: readable tiles, candidates, regions."""
+
+    tests: list[TileInfo]
+    test_failures: list[ScanFailure]
+    reference_failures: list[dict[str, str]]
+    candidates: dict[str, list[TileInfo]]
+    cover_index: TileIndex
+    regions: list[Region]
+    regions_by_crs: dict[str, list[Region]]
+
+    def landcover_of(self, tile: TileInfo) -> list[TileInfo]:
+        return self.cover_index.overlapping(tile.grid)
+
+
+def _catalog(client: Client, job: ResolvedJob, options: TileOptions) -> _Catalog:
+    """Scan every tile on the cluster, index the reference, check overlap, geoid and regions."""
+    test_tiles, test_failures = _scan(client, job.test_tiles)
+    ref_tiles, ref_failures = _scan(client, job.reference_tiles)
+    cover_tiles, cover_failures = _scan(client, job.landcover_tiles)
+    if not test_tiles:
+        raise TileReadError("no test tile could be read: " + _reasons(test_failures))
+    if not ref_tiles:
+        raise TileReadError("no reference tile could be read: " + _reasons(ref_failures))
+    _check_geoid(options, test_tiles[0])
+    index = TileIndex(ref_tiles)
+    candidates = {t.tile_id: index.overlapping(t.grid) for t in test_tiles}
+    if not any(candidates.values()):
+        raise EmptyOverlapError("the test and reference tiles do not overlap anywhere")
+    region_list = _load_regions(job)
+    return _Catalog(
+        tests=test_tiles,
+        test_failures=test_failures,
+        reference_failures=[
+            {"tile": f.tile_id, "reason": f.reason} for f in [*ref_failures, *cover_failures]
+        ],
+        candidates=candidates,
+        cover_index=TileIndex(cover_tiles),
+        regions=region_list,
+        regions_by_crs=_regions_by_crs(region_list, test_tiles),
+    )
 
 
 def _result_of(future: Future) -> TileResult:
@@ -221,6 +279,7 @@ def _tile_record(
     reason: str | None,
     tile: TileInfo | None,
     stats: dict[str, Any] | None,
+    result: TileResult | None = None,
 ) -> dict[str, Any]:
     record: dict[str, Any] = {"tile": tile_id, "status": status}
     if reason:
@@ -229,6 +288,10 @@ def _tile_record(
         record["bounds"] = list(tile.bounds)
         record["fingerprint"] = tile.fingerprint
     record["stats"] = stats or statistics(dh_summary.empty())
+    if result is not None and result.coregistration is not None:
+        record["coregistration"] = result.coregistration
+    if result is not None and result.corrected is not None:
+        record["stats_after_coregistration"] = statistics(result.corrected.summary)
     return record
 
 

@@ -1,11 +1,18 @@
-"""Settings, read once from the environment (prefix ``DEMAUDIT_``) and passed down explicitly."""
+"""Settings, read once from the environment (prefix ``DEMAUDIT_``) and passed down explicitly.
+
+List-valued settings (``DEMAUDIT_API_TOKENS``, ``DEMAUDIT_DATA_ROOTS``, ``DEMAUDIT_GRID_DIRS``)
+take either a JSON list or a comma-separated string.
+"""
 
 from __future__ import annotations
 
+import json
 from functools import lru_cache
 from pathlib import Path
+from typing import Annotated, Any
 
-from pydantic_settings import BaseSettings, SettingsConfigDict
+from pydantic import Field, field_validator
+from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
 from workers.datum import DEFAULT_GRID_DIRS
 
@@ -20,11 +27,46 @@ class Settings(BaseSettings):
     local_workers: int = 2
     """Worker processes of the embedded local cluster (one thread each)."""
     worker_memory_limit: str = "4GiB"
-    grid_dirs: tuple[str, ...] = DEFAULT_GRID_DIRS
+    grid_dirs: Annotated[tuple[str, ...], NoDecode] = DEFAULT_GRID_DIRS
     """Folders holding PROJ geoid grids (egm96_15.gtx)."""
-    data_roots: tuple[Path, ...] | None = None
-    """When set, every path a job spec names must lie inside one of these folders."""
+    data_roots: Annotated[tuple[Path, ...] | None, NoDecode] = None
+    """When set, every path a job spec names must lie inside one of these folders. The REST
+    service resolves relative spec paths against the first root."""
     job_store: Path = Path("demaudit-jobs.sqlite")
+    """SQLite file of the REST service's job records."""
+
+    # --- REST service -----------------------------------------------------------------------
+    api_tokens: Annotated[tuple[str, ...], NoDecode] = ()
+    """Bearer tokens accepted by the REST service; without any the service refuses to start
+    unless ``insecure_local`` is set (and then it must bind to a loopback address)."""
+    insecure_local: bool = False
+    """Serve without authentication (loopback only; ``demaudit serve --insecure-local``)."""
+    results_dir: Path = Path("demaudit-results")
+    """Folder of the REST service's job outputs: one sub-folder per job id."""
+    max_running_jobs: int = Field(default=4, ge=1)
+    """Jobs the REST service runs at once; later ones wait (status accepted)."""
+    max_body_bytes: int = Field(default=1_048_576, ge=1024)
+    """Largest request body the REST service reads (HTTP 413 beyond)."""
+    task_retries: int = Field(default=1, ge=0)
+    """Retries of a tile task whose worker was lost."""
+
+    @field_validator("api_tokens", "grid_dirs", "data_roots", mode="before")
+    @classmethod
+    def _split_list(cls, value: Any) -> Any:
+        """Accept a JSON list or a comma-separated string from the environment."""
+        if not isinstance(value, str):
+            return value
+        text = value.strip()
+        if text.startswith("["):
+            return json.loads(text)
+        return [part.strip() for part in text.split(",") if part.strip()]
+
+    @field_validator("api_tokens")
+    @classmethod
+    def _long_enough(cls, value: tuple[str, ...]) -> tuple[str, ...]:
+        if any(len(token) < 16 for token in value):
+            raise ValueError("every API token needs at least 16 characters")
+        return value
 
 
 @lru_cache

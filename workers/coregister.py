@@ -30,6 +30,8 @@ MAX_SLOPE_DEG = 70.0
 ROBUST_FACTOR = 3.0
 #: Fewest stable pixels for an estimate.
 MIN_PIXELS = 200
+#: Largest standard error (pixels) of an accepted shift estimate.
+MAX_STANDARD_ERROR_PX = 0.1
 
 
 @dataclass(frozen=True, eq=False)
@@ -234,6 +236,8 @@ def nuth_kaab(
         if np.hypot(d_east / pixel_size_x_m, d_north / pixel_size_y_m) < tolerance_px:
             converged = True
             break
+    assert fit is not None
+    _check_quality(fit, converged, iterations, pixel_size_x_m, pixel_size_y_m)
     moved = sample_shifted(
         test,
         east_m=east,
@@ -243,7 +247,6 @@ def nuth_kaab(
     )
     dh = moved - reference
     stable = stable_pixels(dh, slope_deg, cover_ok=cover_ok)
-    assert fit is not None
     return ShiftEstimate(
         east_m=east,
         north_m=north,
@@ -256,6 +259,23 @@ def nuth_kaab(
         nmad_before_m=nmad_before,
         nmad_after_m=_stable_nmad(dh, slope_deg, cover_ok),
     )
+
+
+def _check_quality(
+    fit: FitResult, converged: bool, iterations: int, pixel_size_x_m: float, pixel_size_y_m: float
+) -> None:
+    """Refuse an estimate that did not settle or that the pixels barely constrain."""
+    if not converged:
+        raise CannotEstimateError(
+            f"horizontal shift: no convergence in {iterations} iterations (the terrain does not "
+            "determine the shift)"
+        )
+    se_px = max(fit.standard_error(1) / pixel_size_x_m, fit.standard_error(0) / pixel_size_y_m)
+    if se_px > MAX_STANDARD_ERROR_PX:
+        raise CannotEstimateError(
+            f"horizontal shift: standard error {se_px:.2f} px exceeds {MAX_STANDARD_ERROR_PX} px "
+            "(too few or too uniform slopes)"
+        )
 
 
 def _stable_nmad(

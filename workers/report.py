@@ -80,6 +80,7 @@ def build_summary(
     tiles: Sequence[Mapping[str, Any]],
     reference_failures: Sequence[Mapping[str, str]],
     extra_cautions: Sequence[str] = (),
+    coregistration: Mapping[str, Any] | None = None,
 ) -> dict[str, Any]:
     """The summary.json document."""
     failed = [t for t in tiles if t["status"] == "failed"]
@@ -103,5 +104,6 @@ def build_summary(
         "regions": regions,
         "tiles": list(tiles),
         "reference_failures": list(reference_failures),
+        "coregistration": dict(coregistration) if coregistration is not None else None,
         "cautions": cautions,
     }

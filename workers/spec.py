@@ -167,6 +167,12 @@ class Coregistration(_Strict):
         default="job",
         description="Which estimate is applied: one for the whole job, or each tile's own.",
     )
+    job_estimate: Literal["tile_median", "pooled"] = Field(
+        default="tile_median",
+        description="How the job-wide estimate is formed: the median of the tiles' own "
+        "estimates (robust to a bad delivery block) or one fit pooling every stable pixel "
+        "(works where single tiles are too flat).",
+    )
     apply: bool = Field(default=True, description="Also report statistics after the correction.")
     fit_tilt: bool = Field(default=True, description="Fit and remove a planar ramp as well.")
     fit_elevation_bias: bool = Field(

@@ -122,10 +122,12 @@ def audit_tile(
     regions: Sequence[Region],
     options: TileOptions,
     landcover: Sequence[TileInfo] = (),
+    estimate: dict[str, Any] | None = None,
 ) -> TileResult:
     """Difference one test tile against the reference on the test tile's grid and summarise.
 
-    regions must already be in the test tile's CRS (see regions.to_crs / clip_to).
+    regions must already be in the test tile's CRS (see regions.to_crs / clip_to). With
+    co-registration, ``estimate`` is the tile's own shift record when already computed.
     """
     ref_ids = tuple(r.tile_id for r in references)
     if not references:
@@ -140,7 +142,7 @@ def audit_tile(
         return TileResult(test.tile_id, FAILED, reason, reference_tiles=ref_ids)
     result = summarise_tile(test, layers, regions, options, reference_tiles=ref_ids)
     if options.coregistration is not None:
-        result = with_coregistration(test, layers, regions, options, result)
+        result = with_coregistration(test, layers, regions, options, result, estimate=estimate)
     return result
 
 
@@ -150,20 +152,14 @@ def with_coregistration(
     regions: Sequence[Region],
     options: TileOptions,
     result: TileResult,
+    *,
+    estimate: dict[str, Any] | None = None,
 ) -> TileResult:
     """Add the tile's own shift estimate and, when asked, the statistics after the correction
     (the job-wide one, or the tile's own as the spec says)."""
     coreg = options.coregistration
     assert coreg is not None and layers.test is not None
-    cover = cover_ok(layers.landcover, options.landcover_classes)
-    record = tile_estimate(
-        layers.test,
-        layers.reference,
-        test.grid,
-        cover=cover,
-        max_iterations=coreg.max_iterations,
-        tolerance_px=coreg.tolerance_px,
-    )
+    record = estimate or own_estimate(test, layers, options)
     if not coreg.apply:
         return replace(result, coregistration=record)
     if coreg.estimate_from == "job":
@@ -185,6 +181,36 @@ def with_coregistration(
         coregistration=record | {"applied": True},
         corrected=replace(corrected, overview=None),
     )
+
+
+def own_estimate(test: TileInfo, layers: TileSurfaces, options: TileOptions) -> dict[str, Any]:
+    """The tile's own Nuth & Kääb shift and tilt (a record; see coregister_tile.tile_estimate)."""
+    coreg = options.coregistration
+    assert coreg is not None and layers.test is not None
+    return tile_estimate(
+        layers.test,
+        layers.reference,
+        test.grid,
+        cover=cover_ok(layers.landcover, options.landcover_classes),
+        max_iterations=coreg.max_iterations,
+        tolerance_px=coreg.tolerance_px,
+    )
+
+
+def estimate_tile_shift(
+    test: TileInfo,
+    references: Sequence[TileInfo],
+    options: TileOptions,
+    landcover: Sequence[TileInfo],
+) -> dict[str, Any]:
+    """Task: read one tile and return its own shift record (status 'failed' when unreadable)."""
+    if not references:
+        return {"status": "cannot_estimate", "reason": "no reference tile overlaps this tile"}
+    try:
+        layers = tile_surfaces(test, references, options, landcover=landcover)
+    except (AuditError, RasterioError, OSError) as exc:
+        return {"status": "failed", "reason": str(exc)}
+    return own_estimate(test, layers, options)
 
 
 def estimate_tile(

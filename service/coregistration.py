@@ -1,0 +1,287 @@
+"""The job-wide co-registration estimate, formed on the cluster without moving pixels.
+
+Two ways, as the spec says:
+
+* ``tile_median`` (default): one pass in which every tile (or every n-th) finds its own
+  Nuth & Kääb shift, bias and tilt; the job's values are the medians over the tiles that could
+  estimate, their uncertainty the tiles' spread (1.4826 MAD / sqrt(n)), and tiles far from the
+  job's values are listed as outliers (a bad delivery block stands out).
+* ``pooled``: repeated passes, each returning mergeable normal equations of all stable pixels,
+  until the shift update is below the tolerance.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import replace
+from typing import Any
+
+import numpy as np
+from distributed import Client, as_completed
+from shapely.geometry import Point
+
+from workers import regions as region_ops
+from workers.catalog import TileInfo
+from workers.coregister import CannotEstimateError, FitResult, solve
+from workers.coregister_tile import Correction, TileEquations
+from workers.regions import Region
+from workers.summary import quantile
+from workers.tile_task import TileOptions, estimate_tile, estimate_tile_shift
+
+
+def estimate_job_correction(
+    client: Client,
+    tiles: Sequence[TileInfo],
+    *,
+    references: Mapping[str, list[TileInfo]],
+    landcover: Callable[[TileInfo], list[TileInfo]],
+    regions: Mapping[str, list[Region]],
+    options: TileOptions,
+) -> tuple[Correction | None, dict[str, Any], dict[str, dict[str, Any]]]:
+    """The job's correction (None when it cannot be estimated), a report of the estimate and
+    the tiles' own shift records (tile id -> record)."""
+    coreg = options.coregistration
+    assert coreg is not None
+    sample = list(tiles[:: coreg.tile_stride])
+    futures = {
+        t.tile_id: client.submit(
+            estimate_tile_shift, t, references[t.tile_id], options, landcover(t), pure=False
+        )
+        for t in sample
+    }
+    records = {tile_id: f.result() for tile_id, f in futures.items()}
+    origin = _origin(sample)
+    if coreg.job_estimate == "tile_median":
+        correction, report = _tile_median(records, origin, fit_tilt=coreg.fit_tilt)
+        report["regions"] = _region_medians(records, sample, regions)
+    else:
+        correction, report = _pooled(
+            client, sample, references, landcover, regions, options, origin
+        )
+    report["tiles_used"] = len(sample)
+    return correction, report, records
+
+
+def _origin(tiles: Sequence[TileInfo]) -> Correction:
+    bounds = [t.bounds for t in tiles]
+    return Correction(
+        origin_east=float(np.mean([(b[0] + b[2]) / 2 for b in bounds])),
+        origin_north=float(np.mean([(b[1] + b[3]) / 2 for b in bounds])),
+    )
+
+
+_TILE_KEYS = ("east_m", "north_m", "vertical_m", "tilt_east_m_per_km", "tilt_north_m_per_km")
+#: A tile is an outlier when it differs from the job by more than this many tile NMADs ...
+OUTLIER_NMADS = 3.0
+#: ... and by more than these floors (metres; metres per km for tilts).
+OUTLIER_FLOORS = {
+    "east_m": 0.5,
+    "north_m": 0.5,
+    "vertical_m": 0.1,
+    "tilt_east_m_per_km": 0.2,
+    "tilt_north_m_per_km": 0.2,
+}
+MIN_TILES = 3
+
+
+def _tile_median(
+    records: Mapping[str, dict[str, Any]], origin: Correction, *, fit_tilt: bool
+) -> tuple[Correction | None, dict[str, Any]]:
+    ok = {k: r for k, r in records.items() if r.get("status") == "ok"}
+    report: dict[str, Any] = {
+        "method": "median of the tiles' own Nuth & Kääb (2011) estimates",
+        "tiles_estimated": len(ok),
+        "tiles_not_estimated": {k: r.get("reason") for k, r in records.items() if k not in ok},
+    }
+    if len(ok) < MIN_TILES:
+        return None, report | {
+            "status": "cannot_estimate",
+            "reason": f"only {len(ok)} tile(s) could estimate a shift (at least {MIN_TILES} "
+            "needed); try job_estimate: pooled",
+        }
+    values = {key: np.array([r[key] for r in ok.values()]) for key in _TILE_KEYS}
+    centre = {key: float(np.median(v)) for key, v in values.items()}
+    spread = {key: float(1.4826 * np.median(np.abs(v - centre[key]))) for key, v in values.items()}
+    outliers = {}
+    for tile_id, r in ok.items():
+        off = [
+            key
+            for key in _TILE_KEYS
+            if abs(r[key] - centre[key]) > max(OUTLIER_NMADS * spread[key], OUTLIER_FLOORS[key])
+        ]
+        if off:
+            outliers[tile_id] = {key: r[key] for key in off}
+    n = len(ok)
+    report |= {
+        "status": "ok",
+        **centre,
+        **{
+            key.replace("_m", "_se_m", 1) if key.endswith("_m") else key + "_se": spread[key]
+            / np.sqrt(n)
+            for key in _TILE_KEYS
+        },
+        "tile_spread_nmad": spread,
+        "outlier_tiles": outliers,
+    }
+    correction = replace(
+        origin, east_m=centre["east_m"], north_m=centre["north_m"], vertical_m=centre["vertical_m"]
+    )
+    if fit_tilt:
+        correction = replace(
+            correction,
+            tilt_east=centre["tilt_east_m_per_km"] / 1000,
+            tilt_north=centre["tilt_north_m_per_km"] / 1000,
+        )
+    return correction, report
+
+
+def _region_medians(
+    records: Mapping[str, dict[str, Any]],
+    tiles: Sequence[TileInfo],
+    regions: Mapping[str, list[Region]],
+) -> dict[str, Any]:
+    """Each region's median of the estimates of the tiles whose centre lies in it."""
+    members: dict[str, list[dict[str, Any]]] = {}
+    for t in tiles:
+        record = records.get(t.tile_id, {})
+        if record.get("status") != "ok":
+            continue
+        b = t.bounds
+        centre = Point((b[0] + b[2]) / 2, (b[1] + b[3]) / 2)
+        for region in regions.get(t.grid.crs, []):
+            if region.geometry.contains(centre):
+                members.setdefault(region.region_id, []).append(record)
+    out: dict[str, Any] = {}
+    for region_id, recs in members.items():
+        out[region_id] = {"tiles": len(recs)} | {
+            key: float(np.median([r[key] for r in recs])) for key in _TILE_KEYS
+        }
+    return out
+
+
+def _pooled(
+    client: Client,
+    sample: Sequence[TileInfo],
+    references: Mapping[str, list[TileInfo]],
+    landcover: Callable[[TileInfo], list[TileInfo]],
+    regions: Mapping[str, list[Region]],
+    options: TileOptions,
+    at: Correction,
+) -> tuple[Correction | None, dict[str, Any]]:
+    coreg = options.coregistration
+    assert coreg is not None
+    px = min(t.grid.pixel_size_m()[0] for t in sample)
+    history = []
+    converged = False
+    fit: FitResult | None = None
+    try:
+        for _ in range(coreg.max_iterations):
+            equations = _pass(client, sample, references, landcover, regions, options, at)
+            fit = solve(equations.shift, what="horizontal shift")
+            d_north, d_east = fit.beta[0], fit.beta[1]
+            at = replace(at, east_m=at.east_m + d_east, north_m=at.north_m + d_north)
+            history.append({"east_m": at.east_m, "north_m": at.north_m})
+            if np.hypot(d_east, d_north) / px < coreg.tolerance_px:
+                converged = True
+                break
+        equations = _pass(client, sample, references, landcover, regions, options, at)
+    except CannotEstimateError as exc:
+        return None, {"status": "cannot_estimate", "reason": str(exc), "method": "pooled"}
+    assert fit is not None
+    at = replace(at, vertical_m=float(quantile(equations.stable_dh, 0.5)))
+    report: dict[str, Any] = {
+        "status": "ok",
+        "method": "Nuth & Kääb (2011), iterated on all stable pixels of the tiles used",
+        "stable_pixels": equations.shift.n,
+        "iterations": len(history),
+        "converged": converged,
+        "east_m": at.east_m,
+        "north_m": at.north_m,
+        "vertical_m": at.vertical_m,
+        "east_se_m": fit.standard_error(1),
+        "north_se_m": fit.standard_error(0),
+        "standard_error_note": "from the fit's residuals; pixels are spatially correlated, so "
+        "the spread of the per-tile estimates is the more honest uncertainty",
+        "history": history,
+    }
+    at = _with_optional_fits(at, equations, coreg.fit_tilt, coreg.fit_elevation_bias, report)
+    report["regions"] = _region_shifts(equations, at)
+    return at, report
+
+
+def _pass(
+    client: Client,
+    tiles: Sequence[TileInfo],
+    references: Mapping[str, list[TileInfo]],
+    landcover: Callable[[TileInfo], list[TileInfo]],
+    regions: Mapping[str, list[Region]],
+    options: TileOptions,
+    at: Correction,
+) -> TileEquations:
+    futures = [
+        client.submit(
+            estimate_tile,
+            t,
+            references[t.tile_id],
+            region_ops.clip_to(regions.get(t.grid.crs, []), t.bounds),
+            options,
+            landcover(t),
+            at,
+            pure=False,
+        )
+        for t in tiles
+    ]
+    total = TileEquations()
+    for future in as_completed(futures):
+        part = future.result()
+        future.release()
+        if part is not None:
+            total = total.merge(part)
+    return total
+
+
+def _with_optional_fits(
+    at: Correction, eq: TileEquations, tilt: bool, elevation: bool, report: dict[str, Any]
+) -> Correction:
+    if tilt:
+        try:
+            plane = solve(eq.plane, what="tilt")
+            at = replace(at, tilt_east=plane.beta[1], tilt_north=plane.beta[2])
+            report["tilt"] = {
+                "east_m_per_km": plane.beta[1] * 1000,
+                "north_m_per_km": plane.beta[2] * 1000,
+                "origin": [at.origin_east, at.origin_north],
+                "east_se_m_per_km": plane.standard_error(1) * 1000,
+                "north_se_m_per_km": plane.standard_error(2) * 1000,
+            }
+        except CannotEstimateError as exc:
+            report["tilt"] = {"status": "cannot_estimate", "reason": str(exc)}
+    if elevation:
+        try:
+            fit = solve(eq.elevation, what="elevation-dependent bias")
+            at = replace(at, elevation_slope=fit.beta[1])
+            report["elevation_bias"] = {
+                "m_per_100m": fit.beta[1] * 100,
+                "se_m_per_100m": fit.standard_error(1) * 100,
+            }
+        except CannotEstimateError as exc:
+            report["elevation_bias"] = {"status": "cannot_estimate", "reason": str(exc)}
+    return at
+
+
+def _region_shifts(eq: TileEquations, at: Correction) -> dict[str, Any]:
+    """Each region's shift: the job shift plus the region's own one-step update."""
+    out: dict[str, Any] = {}
+    for region_id, fit in eq.regions.items():
+        try:
+            f = solve(fit, what=f"region {region_id}")
+        except CannotEstimateError as exc:
+            out[region_id] = {"status": "cannot_estimate", "reason": str(exc)}
+            continue
+        out[region_id] = {
+            "status": "ok",
+            "east_m": at.east_m + f.beta[1],
+            "north_m": at.north_m + f.beta[0],
+            "stable_pixels": f.n,
+        }
+    return out

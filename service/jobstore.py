@@ -1,0 +1,357 @@
+"""The job store: one record per submitted job, behind a small contract.
+
+:class:`JobStore` is the contract; :class:`SqliteJobStore` is the default (one file, safe to use
+from several threads of one process) and :class:`MemoryJobStore` serves unit tests. A PostgreSQL
+store would implement the same methods; :meth:`JobStore.update` is a compare-and-set on the
+status, which a SQL ``UPDATE ... WHERE status IN (...)`` gives in any database.
+
+One API process owns a store: at start-up it fails the jobs a previous process left unfinished
+(:meth:`JobStore.fail_unfinished`), which would be wrong for several processes sharing one store.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import datetime as dt
+import json
+import sqlite3
+import threading
+from collections.abc import Collection, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Literal, Protocol, get_args
+
+__all__ = [
+    "ACCEPTED",
+    "DISMISSED",
+    "FAILED",
+    "FINISHED",
+    "RUNNING",
+    "STATUSES",
+    "SUCCESSFUL",
+    "JobRecord",
+    "JobStatus",
+    "JobStore",
+    "MemoryJobStore",
+    "SqliteJobStore",
+    "utc_now",
+]
+
+JobStatus = Literal["accepted", "running", "successful", "failed", "dismissed"]
+ACCEPTED: JobStatus = "accepted"
+RUNNING: JobStatus = "running"
+SUCCESSFUL: JobStatus = "successful"
+FAILED: JobStatus = "failed"
+DISMISSED: JobStatus = "dismissed"
+STATUSES: tuple[JobStatus, ...] = get_args(JobStatus)
+FINISHED: frozenset[JobStatus] = frozenset({SUCCESSFUL, FAILED, DISMISSED})
+
+
+def utc_now() -> dt.datetime:
+    """The current time in UTC, to the millisecond."""
+    now = dt.datetime.now(dt.UTC)
+    return now.replace(microsecond=now.microsecond // 1000 * 1000)
+
+
+@dataclass(frozen=True)
+class JobRecord:
+    """What the service knows about one job."""
+
+    job_id: str
+    process_id: str
+    status: JobStatus
+    message: str
+    created: dt.datetime
+    updated: dt.datetime
+    started: dt.datetime | None = None
+    finished: dt.datetime | None = None
+    progress: int = 0
+    """Per cent of the test tiles done (0-100)."""
+    tiles_done: int = 0
+    tiles_total: int = 0
+    inputs: dict[str, Any] = field(default_factory=dict)
+    """The job spec as submitted (JSON-compatible)."""
+
+
+_COLUMNS = tuple(f.name for f in dataclasses.fields(JobRecord))
+_CHANGEABLE = frozenset(_COLUMNS) - {"job_id", "process_id", "created", "inputs"}
+
+
+class JobStore(Protocol):
+    """Where job records live. Every method is safe to call from several threads."""
+
+    def add(self, record: JobRecord) -> None:
+        """Store a new record (its job_id must be new)."""
+        ...
+
+    def get(self, job_id: str) -> JobRecord | None:
+        """The record of job_id, or None."""
+        ...
+
+    def update(
+        self,
+        job_id: str,
+        changes: Mapping[str, Any],
+        *,
+        only_from: Collection[JobStatus] | None = None,
+    ) -> JobRecord | None:
+        """Apply changes (and set ``updated``) if the job's status is in only_from (any status
+        when None); return the new record, or None when the job is missing or in another
+        status."""
+        ...
+
+    def find(
+        self, *, statuses: Collection[JobStatus] | None = None, limit: int = 10, offset: int = 0
+    ) -> list[JobRecord]:
+        """Records newest first, optionally only those in statuses."""
+        ...
+
+    def count(self, *, statuses: Collection[JobStatus] | None = None) -> int:
+        """How many records (in statuses) there are."""
+        ...
+
+    def count_by_status(self) -> dict[JobStatus, int]:
+        """Number of records in each status (every status present, zeros included)."""
+        ...
+
+    def tiles_done_total(self) -> int:
+        """Tiles finished over all jobs ever recorded."""
+        ...
+
+    def fail_unfinished(self, status: JobStatus, message: str) -> list[str]:
+        """Mark every job in status as failed with message (start-up recovery); their ids."""
+        ...
+
+    def close(self) -> None:
+        """Release the store's resources."""
+        ...
+
+
+def _check_changes(changes: Mapping[str, Any]) -> None:
+    unknown = set(changes) - _CHANGEABLE
+    if unknown:
+        raise ValueError(f"cannot change job record fields {sorted(unknown)}")
+    status = changes.get("status")
+    if status is not None and status not in STATUSES:
+        raise ValueError(f"unknown job status {status!r}")
+
+
+class MemoryJobStore:
+    """Records in a dict: for unit tests (nothing survives the process)."""
+
+    def __init__(self) -> None:
+        self._records: dict[str, JobRecord] = {}
+        self._lock = threading.Lock()
+
+    def add(self, record: JobRecord) -> None:
+        with self._lock:
+            if record.job_id in self._records:
+                raise KeyError(f"job {record.job_id} exists")
+            self._records[record.job_id] = record
+
+    def get(self, job_id: str) -> JobRecord | None:
+        with self._lock:
+            return self._records.get(job_id)
+
+    def update(
+        self,
+        job_id: str,
+        changes: Mapping[str, Any],
+        *,
+        only_from: Collection[JobStatus] | None = None,
+    ) -> JobRecord | None:
+        _check_changes(changes)
+        with self._lock:
+            record = self._records.get(job_id)
+            if record is None or (only_from is not None and record.status not in only_from):
+                return None
+            new = dataclasses.replace(record, **{"updated": utc_now(), **changes})
+            self._records[job_id] = new
+            return new
+
+    def find(
+        self, *, statuses: Collection[JobStatus] | None = None, limit: int = 10, offset: int = 0
+    ) -> list[JobRecord]:
+        with self._lock:
+            chosen = [r for r in self._records.values() if statuses is None or r.status in statuses]
+        chosen.sort(key=lambda r: (r.created, r.job_id), reverse=True)
+        return chosen[offset : offset + limit]
+
+    def count(self, *, statuses: Collection[JobStatus] | None = None) -> int:
+        with self._lock:
+            return sum(
+                1 for r in self._records.values() if statuses is None or r.status in statuses
+            )
+
+    def count_by_status(self) -> dict[JobStatus, int]:
+        counts = dict.fromkeys(STATUSES, 0)
+        with self._lock:
+            for record in self._records.values():
+                counts[record.status] += 1
+        return counts
+
+    def tiles_done_total(self) -> int:
+        with self._lock:
+            return sum(r.tiles_done for r in self._records.values())
+
+    def fail_unfinished(self, status: JobStatus, message: str) -> list[str]:
+        with self._lock:
+            ids = [k for k, r in self._records.items() if r.status == status]
+        now = utc_now()
+        changes = {"status": FAILED, "message": message, "finished": now}
+        return [k for k in ids if self.update(k, changes, only_from={status}) is not None]
+
+    def close(self) -> None:
+        pass
+
+
+_SCHEMA = """
+CREATE TABLE IF NOT EXISTS jobs (
+    job_id      TEXT PRIMARY KEY,
+    process_id  TEXT NOT NULL,
+    status      TEXT NOT NULL,
+    message     TEXT NOT NULL,
+    created     TEXT NOT NULL,
+    updated     TEXT NOT NULL,
+    started     TEXT,
+    finished    TEXT,
+    progress    INTEGER NOT NULL DEFAULT 0,
+    tiles_done  INTEGER NOT NULL DEFAULT 0,
+    tiles_total INTEGER NOT NULL DEFAULT 0,
+    inputs      TEXT NOT NULL
+);
+CREATE INDEX IF NOT EXISTS jobs_status_created ON jobs (status, created);
+CREATE INDEX IF NOT EXISTS jobs_created ON jobs (created);
+"""
+_TIMES = ("created", "updated", "started", "finished")
+
+
+class SqliteJobStore:
+    """Records in one SQLite file (WAL journal); one connection shared under a lock."""
+
+    def __init__(self, path: Path) -> None:
+        self.path = Path(path)
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self._lock = threading.Lock()
+        self._db = sqlite3.connect(self.path, check_same_thread=False, isolation_level=None)
+        self._db.row_factory = sqlite3.Row
+        with self._lock:
+            self._db.execute("PRAGMA journal_mode=WAL")
+            self._db.execute("PRAGMA busy_timeout=5000")
+            self._db.executescript(_SCHEMA)
+
+    def add(self, record: JobRecord) -> None:
+        row = _to_row(record)
+        names = ", ".join(row)
+        marks = ", ".join("?" for _ in row)
+        with self._lock:
+            self._db.execute(f"INSERT INTO jobs ({names}) VALUES ({marks})", tuple(row.values()))
+
+    def get(self, job_id: str) -> JobRecord | None:
+        with self._lock:
+            row = self._db.execute("SELECT * FROM jobs WHERE job_id = ?", (job_id,)).fetchone()
+        return None if row is None else _from_row(row)
+
+    def update(
+        self,
+        job_id: str,
+        changes: Mapping[str, Any],
+        *,
+        only_from: Collection[JobStatus] | None = None,
+    ) -> JobRecord | None:
+        _check_changes(changes)
+        values = {k: _encode(k, v) for k, v in {"updated": utc_now(), **changes}.items()}
+        sql = "UPDATE jobs SET " + ", ".join(f"{k} = ?" for k in values) + " WHERE job_id = ?"
+        params: list[Any] = [*values.values(), job_id]
+        if only_from is not None:
+            statuses = list(only_from)
+            sql += f" AND status IN ({', '.join('?' for _ in statuses)})"
+            params += statuses
+        with self._lock:
+            if self._db.execute(sql, params).rowcount == 0:
+                return None
+            row = self._db.execute("SELECT * FROM jobs WHERE job_id = ?", (job_id,)).fetchone()
+        return _from_row(row)
+
+    def find(
+        self, *, statuses: Collection[JobStatus] | None = None, limit: int = 10, offset: int = 0
+    ) -> list[JobRecord]:
+        where, params = _status_filter(statuses)
+        sql = f"SELECT * FROM jobs{where} ORDER BY created DESC, job_id DESC LIMIT ? OFFSET ?"
+        with self._lock:
+            rows = self._db.execute(sql, [*params, limit, offset]).fetchall()
+        return [_from_row(r) for r in rows]
+
+    def count(self, *, statuses: Collection[JobStatus] | None = None) -> int:
+        where, params = _status_filter(statuses)
+        with self._lock:
+            (n,) = self._db.execute(f"SELECT COUNT(*) FROM jobs{where}", params).fetchone()
+        return int(n)
+
+    def count_by_status(self) -> dict[JobStatus, int]:
+        counts = dict.fromkeys(STATUSES, 0)
+        with self._lock:
+            rows = self._db.execute("SELECT status, COUNT(*) FROM jobs GROUP BY status").fetchall()
+        for status, n in rows:
+            if status in counts:
+                counts[status] = int(n)
+        return counts
+
+    def tiles_done_total(self) -> int:
+        with self._lock:
+            (n,) = self._db.execute("SELECT COALESCE(SUM(tiles_done), 0) FROM jobs").fetchone()
+        return int(n)
+
+    def fail_unfinished(self, status: JobStatus, message: str) -> list[str]:
+        now = _encode("finished", utc_now())
+        with self._lock:
+            ids = [
+                r[0]
+                for r in self._db.execute(
+                    "SELECT job_id FROM jobs WHERE status = ?", (status,)
+                ).fetchall()
+            ]
+            self._db.execute(
+                "UPDATE jobs SET status = ?, message = ?, finished = ?, updated = ? "
+                "WHERE status = ?",
+                (FAILED, message, now, now, status),
+            )
+        return ids
+
+    def close(self) -> None:
+        with self._lock:
+            self._db.close()
+
+
+def _status_filter(statuses: Collection[JobStatus] | None) -> tuple[str, list[Any]]:
+    if statuses is None:
+        return "", []
+    chosen = list(statuses)
+    if not chosen:
+        return " WHERE 0", []
+    return f" WHERE status IN ({', '.join('?' for _ in chosen)})", chosen
+
+
+def _encode(name: str, value: Any) -> Any:
+    if name in _TIMES:
+        return None if value is None else value.isoformat(timespec="milliseconds")
+    if name == "inputs":
+        return json.dumps(value, sort_keys=True)
+    return value
+
+
+def _to_row(record: JobRecord) -> dict[str, Any]:
+    return {name: _encode(name, getattr(record, name)) for name in _COLUMNS}
+
+
+def _from_row(row: sqlite3.Row) -> JobRecord:
+    values: dict[str, Any] = {}
+    for name in _COLUMNS:
+        raw = row[name]
+        if name in _TIMES:
+            values[name] = None if raw is None else dt.datetime.fromisoformat(raw)
+        elif name == "inputs":
+            values[name] = json.loads(raw)
+        else:
+            values[name] = raw
+    return JobRecord(**values)

@@ -1,0 +1,153 @@
+"""The process list, the description of ``dem-audit`` and its (asynchronous) execution."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Annotated, Any, Literal
+
+from fastapi import APIRouter, Header, Request, Response
+from pydantic import BaseModel, ConfigDict, Field
+
+from service.deps import DispatcherDep, SettingsDep
+from service.jobs import PROCESS_ID
+from service.problems import NoSuchProcess, responses
+from service.routes.documents import (
+    JSON,
+    REL_EXECUTE,
+    Link,
+    StatusInfo,
+    inline_refs,
+    status_document,
+)
+from workers import spec as job_spec
+from workers.spec import JobSpec
+
+router = APIRouter(prefix="/processes", tags=["Processes"], responses=responses(401))
+
+VERSION = "0.1.0"
+TITLE = "Audit the vertical accuracy of a tiled DEM"
+DESCRIPTION = (
+    "Differences a tiled test DEM against a reference on the test grid and one vertical datum "
+    "(dh = test - reference, metres) on the Dask cluster, and reports robust statistics per "
+    "tile, region, stratum and for the whole release. The inputs are the job spec's top-level "
+    "keys; relative paths resolve against the server's first data root and every path must lie "
+    "inside the data roots."
+)
+_REQUIRED = ("name", "test", "reference")
+
+
+class ExecuteRequest(BaseModel):
+    """An OGC execute request: the job spec as ``inputs``."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    inputs: JobSpec = Field(description="The job spec (see the process description).")
+    outputs: dict[str, Any] | None = Field(
+        default=None, description="Accepted and ignored: every job has both outputs."
+    )
+    response: Literal["document"] = Field(
+        default="document", description="Results are always returned as a JSON document."
+    )
+
+
+def _summary(request: Request) -> dict[str, Any]:
+    return {
+        "id": PROCESS_ID,
+        "version": VERSION,
+        "title": TITLE,
+        "description": DESCRIPTION,
+        "jobControlOptions": ["async-execute", "dismiss"],
+        "outputTransmission": ["value", "reference"],
+        "links": [
+            Link(href=str(request.url_for("describe_process", processID=PROCESS_ID)),
+                 rel="self", type=JSON, title="process description").model_dump(
+                     exclude_none=True),
+            Link(href=str(request.url_for("execute", processID=PROCESS_ID)),
+                 rel=REL_EXECUTE, type=JSON, title="execute this process").model_dump(
+                     exclude_none=True),
+        ],
+    }
+
+
+def _inputs() -> dict[str, Any]:
+    schema = JobSpec.model_json_schema()
+    defs = schema.get("$defs", {})
+    inputs = {}
+    for name, prop in schema["properties"].items():
+        prop = inline_refs(prop, defs)
+        inputs[name] = {
+            "title": prop.pop("title", name),
+            "description": prop.get("description", ""),
+            "schema": prop,
+            "minOccurs": 1 if name in _REQUIRED else 0,
+            "maxOccurs": 1,
+        }
+    return inputs
+
+
+_OUTPUTS = {
+    "summary": {
+        "title": "summary document",
+        "description": "summary.json: job, overall, regions, tiles and cautions.",
+        "schema": {"type": "object", "contentMediaType": JSON},
+    },
+    "results": {
+        "title": "results store",
+        "description": "results.zarr (Zarr v3, consolidated metadata): tiles, regions, strata, "
+        "dh_overview and tile_summaries groups; served read-only by this API.",
+        "schema": {"type": "string", "contentMediaType": "application/vnd+zarr"},
+    },
+}
+
+
+def _check_process(process_id: str) -> None:
+    if process_id != PROCESS_ID:
+        raise NoSuchProcess(f"there is no process {process_id!r}; the one process is "
+                            f"{PROCESS_ID!r}")
+
+
+@router.get("", name="list_processes")
+def list_processes(request: Request) -> dict[str, Any]:
+    """The processes this server offers (one: dem-audit)."""
+    return {
+        "processes": [_summary(request)],
+        "links": [{"href": str(request.url_for("list_processes")), "rel": "self", "type": JSON}],
+    }
+
+
+@router.get("/{processID}", name="describe_process", responses=responses(404))
+def describe_process(processID: str, request: Request) -> dict[str, Any]:  # noqa: N803
+    """The description of a process: its inputs (the job spec) and outputs."""
+    _check_process(processID)
+    return _summary(request) | {"inputs": _inputs(), "outputs": _OUTPUTS}
+
+
+@router.post(
+    "/{processID}/execution",
+    name="execute",
+    status_code=201,
+    response_model=StatusInfo,
+    responses=responses(400, 403, 404, 413, 422),
+)
+def execute(
+    processID: str,  # noqa: N803 - the standard's parameter name
+    body: ExecuteRequest,
+    request: Request,
+    response: Response,
+    settings: SettingsDep,
+    dispatcher: DispatcherDep,
+    prefer: Annotated[str | None, Header()] = None,
+) -> StatusInfo:
+    """Start a job (always asynchronous); the Location header names its status document."""
+    _check_process(processID)
+    roots = settings.data_roots
+    # relative paths resolve against the first data root (the server's folder without roots,
+    # which only --insecure-local allows)
+    base_dir = roots[0] if roots else Path.cwd()
+    job = job_spec.resolve(body.inputs, base_dir=base_dir, data_roots=roots)
+    record = dispatcher.submit(job, body.inputs.model_dump(mode="json"))
+    document = status_document(request, record)
+    response.headers["Location"] = str(request.url_for("get_job", jobID=record.job_id))
+    if prefer and "respond-async" in prefer:
+        response.headers["Preference-Applied"] = "respond-async"
+    return document
