@@ -148,7 +148,7 @@ def run_job(
                 {r: after.regions[r] for r in region_ids}, names, after.strata, **rule
             ),
         }
-    _write_tables(store, tile_rows, region_docs, acc)
+    _write_tables(store, tile_rows, region_docs, acc, coregistration)
     document = build_summary(
         job={
             "name": job.spec.name,
@@ -300,6 +300,7 @@ def _write_tables(
     tiles: list[dict[str, Any]],
     regions: list[dict[str, Any]],
     acc: JobAccumulator,
+    coregistration: dict[str, Any] | None = None,
 ) -> None:
     nan4 = [np.nan] * 4
     bounds = np.array([t.get("bounds", nan4) for t in tiles], dtype=np.float64).reshape(-1, 4)
@@ -327,14 +328,37 @@ def _write_tables(
     stats = {
         (area, key): statistics(part) for area in areas for key, part in acc.strata_of(area).items()
     }
-    store.write_tables(
-        {
-            "tiles": tile_table,
-            "regions": region_table,
-            "strata": strata_table(areas, strata_keys, stats),
-        }
-    )
+    tables = {
+        "tiles": tile_table,
+        "regions": region_table,
+        "strata": strata_table(areas, strata_keys, stats),
+    }
+    if coregistration is not None:
+        for key in TILE_SHIFT_KEYS:
+            values = [t.get("coregistration", {}).get(key, np.nan) for t in tiles]
+            tile_table[f"shift_{key}"] = ("tile", np.array(values, dtype=np.float64))
+        after = coregistration.get("after", {}).get("regions", [])
+        table = statistics_table(
+            "region", [r["region"] for r in after], [r["stats"] for r in after], {}
+        )
+        table.attrs.update(
+            {k: v for k, v in coregistration.items() if isinstance(v, int | float | str)}
+        )
+        tables["after_coregistration"] = table
+    store.write_tables(tables)
     store.finish()
+
+
+#: Per-tile co-registration values stored as ``shift_<key>`` variables of the tiles table.
+TILE_SHIFT_KEYS = (
+    "east_m",
+    "north_m",
+    "vertical_m",
+    "east_se_m",
+    "north_se_m",
+    "tilt_east_m_per_km",
+    "tilt_north_m_per_km",
+)
 
 
 def _now() -> str:

@@ -93,3 +93,66 @@ def test_outlier_rule_and_intervals_are_reported(demo_doc):
     assert detail["without_outliers"]["removed"] > 0
     lo, hi = detail["confidence_95"]["median"]
     assert lo <= demo_doc["overall"]["median"] <= hi
+
+
+@pytest.fixture(scope="module")
+def coregistered_out(tmp_path_factory) -> Path:
+    return tmp_path_factory.mktemp("coreg") / "out"
+
+
+@pytest.fixture(scope="module")
+def coregistered_doc(dask_client, coregistered_out) -> dict:
+    return run(DEMO / "demo_coregistered.yaml", coregistered_out, dask_client)
+
+
+def test_injected_shift_and_bias_are_recovered(coregistered_doc, truth):
+    job = coregistered_doc["coregistration"]
+    pixel = truth["test"]["pixel_size_m"]
+    assert job["status"] == "ok"
+    assert abs(job["east_m"] - truth["shift"]["east_m"]) < 0.1 * pixel
+    assert abs(job["north_m"] - truth["shift"]["north_m"]) < 0.1 * pixel
+    assert abs(job["vertical_m"] - truth["vertical_bias_m"]) < 0.02
+
+
+def test_tilted_block_stands_out(coregistered_doc, truth):
+    job = coregistered_doc["coregistration"]
+    assert set(job["outlier_tiles"]) == set(truth["tilt"]["tiles"])
+    tiles = {t["tile"]: t["coregistration"] for t in coregistered_doc["tiles"]}
+    block = [tiles[t]["tilt_east_m_per_km"] for t in truth["tilt"]["tiles"]]
+    others = [
+        r["tilt_east_m_per_km"]
+        for t, r in tiles.items()
+        if r["status"] == "ok" and t not in truth["tilt"]["tiles"]
+    ]
+    # the block rises to the east; untilted tiles show no ramp
+    assert min(block) > 0.3 and max(abs(v) for v in others) < 0.15
+
+
+def test_statistics_after_coregistration_are_tighter(coregistered_doc):
+    before = strata(coregistered_doc["overall_detail"])["landcover:open ground"]
+    after = strata(coregistered_doc["coregistration"]["after"]["overall"])["landcover:open ground"]
+    assert after["nmad"] < before["nmad"]
+    assert abs(after["median"]) < 0.05  # bias removed
+
+
+def test_tiles_that_cannot_estimate_say_why(coregistered_doc):
+    reasons = [
+        t["coregistration"]["reason"]
+        for t in coregistered_doc["tiles"]
+        if t["coregistration"]["status"] == "cannot_estimate"
+    ]
+    assert reasons and all(("stable pixels" in r) or ("convergence" in r) or ("standard error" in r)
+                           for r in reasons)
+
+
+def test_coregistration_is_in_the_zarr_store(coregistered_doc, coregistered_out):
+    import xarray as xr
+
+    tiles = xr.open_zarr(coregistered_out / "results.zarr", group="tiles")
+    east = float(tiles["shift_east_m"].sel(tile="r26_E02_N00"))
+    doc_tiles = {t["tile"]: t for t in coregistered_doc["tiles"]}
+    assert east == pytest.approx(doc_tiles["r26_E02_N00"]["coregistration"]["east_m"])
+    after = xr.open_zarr(coregistered_out / "results.zarr", group="after_coregistration")
+    assert after.attrs["method"].startswith("median")
+    assert after.attrs["east_m"] == pytest.approx(coregistered_doc["coregistration"]["east_m"])
+    assert list(after["region"].values) == ["SU", "EW", "HF", "TC"]
