@@ -17,12 +17,14 @@ import numpy as np
 from distributed import Client, Future, as_completed
 from pyproj import CRS, Transformer
 
+from service.checkpoint_run import audit_checkpoints, grade
 from service.coregistration import estimate_job_correction
 from workers import regions as region_ops
 from workers import summary as dh_summary
 from workers.catalog import ScanFailure, TileIndex, TileInfo, scan_tile
 from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation
 from workers.errors import AuditError, EmptyOverlapError, TileReadError
+from workers.grading import Measured
 from workers.merge import JobAccumulator
 from workers.regions import Region
 from workers.report import area_entry, build_summary, region_entries
@@ -94,6 +96,12 @@ def run_job(
     for failure in catalog.test_failures:
         acc.add(TileResult(failure.tile_id, FAILED, failure.reason))
         records[failure.tile_id] = _tile_record(failure.tile_id, FAILED, failure.reason, None, None)
+    raster = job.spec.reference is not None
+    if not raster:
+        for tile in catalog.tests:
+            records[tile.tile_id] = _tile_record(
+                tile.tile_id, "not_audited", "no reference tiles: checkpoints only", tile, None
+            )
     futures = [
         client.submit(
             audit_tile,
@@ -107,7 +115,7 @@ def run_job(
             retries=retries,
             key=f"audit-tile-{tile.tile_id}-{run_id}",
         )
-        for tile in catalog.tests
+        for tile in (catalog.tests if raster else [])
     ]
     total = len(futures) + len(catalog.test_failures)
     by_id = {t.tile_id: t for t in catalog.tests}
@@ -170,8 +178,37 @@ def run_job(
         extra_cautions=[] if layout else ["no dh overview: the test tiles are not on one grid"],
         coregistration=coregistration,
     )
+    if job.spec.checkpoints is not None:
+        document["checkpoints"] = audit_checkpoints(
+            client,
+            job,
+            catalog.tests,
+            regions=catalog.regions_by_crs,
+            options=options,
+            out_dir=out_dir,
+        )
+    if raster:
+        document["grading_indicative"] = _indicative_grading(acc, job)
     write_summary(out_dir, document)
     return document
+
+
+def _indicative_grading(acc: JobAccumulator, job: ResolvedJob) -> list[dict[str, Any]]:
+    """Grades from raster-vs-raster pixels (non-vegetated RMSE, vegetated |dh| 95th percentile):
+    indicative only. Without land cover every pixel counts as non-vegetated."""
+    strata = acc.strata_of(ALL)
+    nv = strata.get("cover_group:non_vegetated", acc.overall)
+    veg = strata.get("cover_group:vegetated")
+    nv_stats = statistics(nv)
+    veg_stats = statistics(veg) if veg is not None else {"q95_abs": None, "count": 0}
+    measured = Measured(
+        nv_stats["rmse"],
+        veg_stats["q95_abs"],
+        int(nv_stats["count"] or 0),  # type: ignore[arg-type]
+        int(veg_stats["count"] or 0),
+        indicative=True,
+    )
+    return grade(measured, job)
 
 
 @dataclass(frozen=True)
@@ -197,12 +234,12 @@ def _catalog(client: Client, job: ResolvedJob, options: TileOptions) -> _Catalog
     cover_tiles, cover_failures = _scan(client, job.landcover_tiles)
     if not test_tiles:
         raise TileReadError("no test tile could be read: " + _reasons(test_failures))
-    if not ref_tiles:
+    if job.reference_tiles and not ref_tiles:
         raise TileReadError("no reference tile could be read: " + _reasons(ref_failures))
     _check_geoid(options, test_tiles[0])
     index = TileIndex(ref_tiles)
     candidates = {t.tile_id: index.overlapping(t.grid) for t in test_tiles}
-    if not any(candidates.values()):
+    if job.reference_tiles and not any(candidates.values()):
         raise EmptyOverlapError("the test and reference tiles do not overlap anywhere")
     region_list = _load_regions(job)
     return _Catalog(

@@ -588,6 +588,10 @@ reference:
   tiles: lidar_2021/*.tif
   vertical_crs: EPSG:5773
   units: metre
+checkpoints:
+  file: checkpoints.csv
+  vertical_crs: EPSG:5773
+  units: metre
 region:
   file: provinces.geojson
   id_property: code
@@ -603,6 +607,10 @@ strata:
 outliers:
   rule: nmad
   factor: 5
+grading:
+  standards: [nssda, asprs2014, asprs2023, quality_level]
+  asprs_class_cm: 10
+  quality_level: QL2
 options:
   resampling: bilinear
 """

@@ -44,6 +44,14 @@ class Grid:
         xs, ys = zip(*corners, strict=True)
         return (min(xs), min(ys), max(xs), max(ys))
 
+    def expanded(self, pixels: int) -> Grid:
+        """The grid grown by ``pixels`` on every side."""
+        a, b, c, d, e, f = self.transform
+        c2, f2 = c - pixels * (a + b), f - pixels * (d + e)
+        return Grid(
+            self.crs, (a, b, c2, d, e, f2), self.width + 2 * pixels, self.height + 2 * pixels
+        )
+
     def pixel_size_m(self) -> tuple[float, float]:
         """Pixel width and height in metres (geographic grids: at the grid's centre latitude)."""
         res_x, res_y = self.resolution

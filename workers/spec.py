@@ -39,19 +39,15 @@ class _Strict(BaseModel):
     model_config = ConfigDict(extra="forbid", frozen=True)
 
 
-class TileSource(_Strict):
-    """A set of raster tiles with the vertical datum and unit of their heights."""
+class _Heights(_Strict):
+    """Heights with their vertical datum and unit."""
 
-    tiles: str | list[str] = Field(description="A glob, a folder, or a list of GeoTIFF paths.")
     vertical_crs: str = Field(
         default=ELLIPSOIDAL,
         description="'ellipsoidal' (heights above the WGS 84 ellipsoid) or a vertical CRS code "
         "such as EPSG:5773 (EGM96 height).",
     )
-    units: Units = Field(default="metre", description="Unit of the heights stored in the tiles.")
-    nodata: float | None = Field(
-        default=None, description="Nodata value to use when the tiles declare none."
-    )
+    units: Units = Field(default="metre", description="Unit of the heights.")
 
     @field_validator("vertical_crs")
     @classmethod
@@ -67,7 +63,7 @@ class TileSource(_Strict):
         return value
 
     @model_validator(mode="after")
-    def _units_agree_with_crs(self) -> TileSource:
+    def _units_agree_with_crs(self) -> _Heights:
         if self.vertical_crs == ELLIPSOIDAL:
             return self
         axis_units = {a.unit_name.lower() for a in CRS.from_user_input(self.vertical_crs).axis_info}
@@ -79,6 +75,48 @@ class TileSource(_Strict):
                 f"unit is {', '.join(sorted(axis_units))}"
             )
         return self
+
+
+class TileSource(_Heights):
+    """A set of raster tiles with the vertical datum and unit of their heights."""
+
+    tiles: str | list[str] = Field(description="A glob, a folder, or a list of GeoTIFF paths.")
+    nodata: float | None = Field(
+        default=None, description="Nodata value to use when the tiles declare none."
+    )
+
+
+class CheckpointSource(_Heights):
+    """Surveyed checkpoints: CSV (columns named below; '#' lines may hold 'key: value' such as
+    'horizontal_crs: EPSG:32632' and 'survey_rmse_m: 0.02') or GeoJSON points."""
+
+    file: str
+    crs: str | None = Field(
+        default=None,
+        description="Horizontal CRS of the points (CSV: else the file's 'horizontal_crs' line; "
+        "GeoJSON: else its declared CRS, else EPSG:4326).",
+    )
+    survey_rmse_m: float | None = Field(
+        default=None, ge=0, description="Stated survey accuracy (else the file's header line)."
+    )
+    id_column: str = "id"
+    x_column: str = "easting"
+    y_column: str = "northing"
+    height_column: str = "height"
+    landcover_column: str | None = "landcover"
+
+
+Standard = Literal["nssda", "asprs2014", "asprs2023", "quality_level", "user"]
+
+
+class Grading(_Strict):
+    """Which standards to grade against and the class each requires."""
+
+    standards: list[Standard] = ["nssda", "asprs2014", "asprs2023"]
+    asprs_class_cm: float = Field(default=10.0, gt=0)
+    quality_level: Literal["QL0", "QL1", "QL2", "QL3"] = "QL2"
+    nssda_required_accuracy_m: float | None = Field(default=None, gt=0)
+    user: dict[Literal["required_rmse_m", "required_nva_m", "required_vva_m"], float] = {}
 
 
 class RegionSource(_Strict):
@@ -190,13 +228,23 @@ class JobSpec(_Strict):
 
     name: str = Field(pattern=r"^[A-Za-z0-9][A-Za-z0-9._-]{0,99}$")
     test: TileSource
-    reference: TileSource
+    reference: TileSource | None = None
+    checkpoints: CheckpointSource | None = None
     region: RegionSource | None = None
     landcover: LandCoverSource | None = None
     strata: Strata = Strata()
     outliers: Outliers = Outliers()
     coregistration: Coregistration | None = None
+    grading: Grading = Grading()
     options: Options = Options()
+
+    @model_validator(mode="after")
+    def _some_reference(self) -> JobSpec:
+        if self.reference is None and self.checkpoints is None:
+            raise ValueError("name a reference (tiles), checkpoints, or both")
+        if self.reference is None and self.coregistration is not None:
+            raise ValueError("coregistration needs reference tiles")
+        return self
 
 
 @dataclass(frozen=True)
@@ -208,6 +256,7 @@ class ResolvedJob:
     reference_tiles: tuple[Path, ...]
     region_file: Path | None
     landcover_tiles: tuple[Path, ...] = ()
+    checkpoint_file: Path | None = None
 
 
 def parse_spec(data: dict[str, Any]) -> JobSpec:
@@ -255,9 +304,16 @@ def resolve(
     """
     roots = [Path(r).resolve() for r in data_roots] if data_roots else None
     test = _expand_tiles(spec.test.tiles, base_dir=base_dir, field="test.tiles", roots=roots)
-    ref = _expand_tiles(
-        spec.reference.tiles, base_dir=base_dir, field="reference.tiles", roots=roots
-    )
+    ref: tuple[Path, ...] = ()
+    if spec.reference is not None:
+        ref = _expand_tiles(
+            spec.reference.tiles, base_dir=base_dir, field="reference.tiles", roots=roots
+        )
+    checkpoint_file = None
+    if spec.checkpoints is not None:
+        checkpoint_file = _resolve_path(spec.checkpoints.file, base_dir, "checkpoints.file", roots)
+        if not checkpoint_file.is_file():
+            raise SpecError(f"checkpoints.file: no such file {checkpoint_file}")
     region_file = None
     if spec.region is not None:
         region_file = _resolve_path(spec.region.file, base_dir, "region.file", roots)
@@ -268,7 +324,7 @@ def resolve(
         landcover = _expand_tiles(
             spec.landcover.tiles, base_dir=base_dir, field="landcover.tiles", roots=roots
         )
-    return ResolvedJob(spec, test, ref, region_file, landcover)
+    return ResolvedJob(spec, test, ref, region_file, landcover, checkpoint_file)
 
 
 def _resolve_path(raw: str, base_dir: Path, field: str, roots: list[Path] | None) -> Path:

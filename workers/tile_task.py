@@ -36,7 +36,7 @@ from workers.errors import AuditError
 from workers.grid import Grid
 from workers.rasters import read_mosaic, read_tile
 from workers.regions import Region, region_mask
-from workers.spec import Coregistration, JobSpec
+from workers.spec import Coregistration, JobSpec, TileSource
 from workers.strata import ClassInfo, classes_from_spec, excluded_mask, stratum_masks
 from workers.summary import DhSummary
 from workers.terrain import slope_degrees
@@ -69,13 +69,14 @@ class TileOptions:
     def from_spec(
         cls, spec: JobSpec, *, grid_dirs: Sequence[str] = DEFAULT_GRID_DIRS
     ) -> TileOptions:
+        reference = spec.reference or TileSource(tiles=[])
         return cls(
             test_units=spec.test.units,
             test_vertical_crs=spec.test.vertical_crs,
             test_nodata=spec.test.nodata,
-            reference_units=spec.reference.units,
-            reference_vertical_crs=spec.reference.vertical_crs,
-            reference_nodata=spec.reference.nodata,
+            reference_units=reference.units,
+            reference_vertical_crs=reference.vertical_crs,
+            reference_nodata=reference.nodata,
             resampling=spec.options.resampling,
             overview_factor=spec.options.overview_factor,
             grid_dirs=tuple(grid_dirs),

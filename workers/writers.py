@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import json
 import math
+import shutil
 import warnings
 from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager
@@ -93,10 +94,17 @@ def _quiet_zarr() -> Iterator[None]:
 
 
 class ResultsStore:
-    """Writes one job's ``results.zarr``; overview blocks are written as tiles finish."""
+    """Writes one job's ``results.zarr``; overview blocks are written as tiles finish.
+
+    The store is built as ``results.zarr.partial`` and replaces an earlier ``results.zarr`` only
+    in :meth:`finish`, so a job that fails half-way leaves the previous results intact.
+    """
 
     def __init__(self, out_dir: Path, layout: OverviewLayout | None) -> None:
-        self.path = Path(out_dir) / ZARR_NAME
+        self.final_path = Path(out_dir) / ZARR_NAME
+        self.path = self.final_path.with_name(ZARR_NAME + ".partial")
+        if self.path.exists():
+            shutil.rmtree(self.path)
         self.layout = layout
         if layout is not None:
             self._create_overview(layout)
@@ -133,9 +141,13 @@ class ResultsStore:
             ds.to_zarr(self.path, group="dh_overview", region={"y": rows, "x": cols})
 
     def finish(self) -> None:
-        """Refresh the consolidated metadata of the whole store (after all groups exist)."""
+        """Consolidate the metadata and put the store in place of any earlier results.zarr."""
         with _quiet_zarr():
             zarr.consolidate_metadata(str(self.path))
+        if self.final_path.exists():
+            shutil.rmtree(self.final_path)
+        self.path.rename(self.final_path)
+        self.path = self.final_path
 
     def write_tables(self, tables: Mapping[str, xr.Dataset]) -> None:
         """Write tables (group name -> dataset), e.g. tiles, regions, strata."""

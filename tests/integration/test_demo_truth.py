@@ -141,8 +141,9 @@ def test_tiles_that_cannot_estimate_say_why(coregistered_doc):
         for t in coregistered_doc["tiles"]
         if t["coregistration"]["status"] == "cannot_estimate"
     ]
-    assert reasons and all(("stable pixels" in r) or ("convergence" in r) or ("standard error" in r)
-                           for r in reasons)
+    assert reasons and all(
+        ("stable pixels" in r) or ("convergence" in r) or ("standard error" in r) for r in reasons
+    )
 
 
 def test_coregistration_is_in_the_zarr_store(coregistered_doc, coregistered_out):

@@ -95,8 +95,13 @@ def brute_force_shift(test: np.ndarray, reference: np.ndarray, pixel: float) -> 
             steps_e = steps_n = coarse
         for se in steps_e:
             for sn in steps_n:
-                moved = sample_shifted(test, east_m=se * pixel, north_m=sn * pixel,
-                                       pixel_size_x_m=pixel, pixel_size_y_m=pixel)
+                moved = sample_shifted(
+                    test,
+                    east_m=se * pixel,
+                    north_m=sn * pixel,
+                    pixel_size_x_m=pixel,
+                    pixel_size_y_m=pixel,
+                )
                 dh = (moved - reference)[10:-10, 10:-10]
                 dh = dh[np.isfinite(dh)]
                 nmad = 1.4826 * np.median(np.abs(dh - np.median(dh)))

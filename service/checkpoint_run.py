@@ -1,0 +1,292 @@
+"""Checkpoint audit of a job: sample the test model at every surveyed point on the cluster,
+bring the points to the test's datum and unit, and summarise and grade the residuals."""
+
+from __future__ import annotations
+
+import csv
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from distributed import Client
+from pyproj import CRS, Transformer
+from pyproj.exceptions import CRSError
+from shapely import STRtree, box, points
+
+from workers import grading
+from workers.accuracy import residual_statistics, vertical_accuracy
+from workers.catalog import TileIndex, TileInfo
+from workers.checkpoints import CheckpointFile, read_checkpoints, sample_test_tile
+from workers.datum import geoid_undulation, to_metres
+from workers.regions import Region
+from workers.spec import ResolvedJob
+from workers.strata import ClassInfo
+from workers.tile_task import TileOptions
+
+RESIDUALS_NAME = "checkpoint_residuals.csv"
+
+
+def audit_checkpoints(
+    client: Client,
+    job: ResolvedJob,
+    tests: Sequence[TileInfo],
+    *,
+    regions: Mapping[str, list[Region]],
+    options: TileOptions,
+    out_dir: Path,
+) -> dict[str, Any]:
+    """The checkpoint section of summary.json; also writes checkpoint_residuals.csv."""
+    spec = job.spec.checkpoints
+    assert spec is not None and job.checkpoint_file is not None
+    data = read_checkpoints(
+        job.checkpoint_file,
+        id_column=spec.id_column,
+        x_column=spec.x_column,
+        y_column=spec.y_column,
+        height_column=spec.height_column,
+        landcover_column=spec.landcover_column,
+    )
+    # rejected rows get keys of their own: a duplicated id must not hide the point it repeats
+    records = {
+        f"#rejected-{i}": {"id": r.point_id, "status": "rejected", "reason": r.reason}
+        for i, r in enumerate(data.rejected)
+    }
+    survey = spec.survey_rmse_m
+    if survey is None and "survey_rmse_m" in data.header:
+        survey = float(data.header["survey_rmse_m"])
+    test_crs = CRS.from_wkt(tests[0].grid.crs)
+    crs_name = (
+        spec.crs
+        or data.declared_crs
+        or ("EPSG:4326" if job.checkpoint_file.suffix.lower() in {".geojson", ".json"} else None)
+    )
+    try:
+        point_crs = CRS.from_user_input(crs_name) if crs_name else None
+    except CRSError:
+        point_crs = None
+    if point_crs is None:
+        for p in data.points:
+            records[p.point_id] = {
+                "id": p.point_id,
+                "status": "rejected",
+                "reason": f"unknown CRS {crs_name!r} for the points; name it in checkpoints.crs",
+            }
+        return _section(
+            records,
+            survey,
+            tests,
+            regions={},
+            classes=options.landcover_classes,
+            job=job,
+            out_dir=out_dir,
+        )
+    _sample(client, data, point_crs, test_crs, tests, options, records)
+    _to_test_datum(data, point_crs, options, job, records)
+    return _section(
+        records,
+        survey,
+        tests,
+        regions=regions,
+        classes=options.landcover_classes,
+        job=job,
+        out_dir=out_dir,
+    )
+
+
+def _sample(
+    client: Client,
+    data: CheckpointFile,
+    point_crs: CRS,
+    test_crs: CRS,
+    tests: Sequence[TileInfo],
+    options: TileOptions,
+    records: dict[str, dict[str, Any]],
+) -> None:
+    to_test = Transformer.from_crs(point_crs, test_crs, always_xy=True)
+    xs, ys = to_test.transform([p.x for p in data.points], [p.y for p in data.points])
+    tree = STRtree([box(*t.bounds) for t in tests])
+    index = TileIndex(tests)
+    by_tile: dict[int, list[tuple[str, float, float]]] = {}
+    hits = tree.query(points(np.column_stack([xs, ys])), predicate="intersects")
+    first_tile = dict(zip(hits[0][::-1], hits[1][::-1], strict=True))  # lowest tile index wins
+    for i, p in enumerate(data.points):
+        records[p.point_id] = {
+            "id": p.point_id,
+            "x": p.x,
+            "y": p.y,
+            "height": p.height,
+            "landcover": p.landcover,
+            "x_test_crs": float(xs[i]),
+            "y_test_crs": float(ys[i]),
+        }
+        if i not in first_tile:
+            records[p.point_id] |= {"status": "rejected", "reason": "outside every test tile"}
+            continue
+        by_tile.setdefault(int(first_tile[i]), []).append((p.point_id, float(xs[i]), float(ys[i])))
+    futures = [
+        client.submit(
+            sample_test_tile,
+            tests[k].tile_id,
+            tests[k].bounds,
+            index.overlapping(tests[k].grid.expanded(2)),
+            pts,
+            nodata=options.test_nodata,
+            units=options.test_units,
+            pure=False,
+        )
+        for k, pts in by_tile.items()
+    ]
+    for part in client.gather(futures):
+        for point_id, value, reason in part:
+            if reason:
+                records[point_id] |= {"status": "rejected", "reason": reason}
+            else:
+                records[point_id] |= {"status": "used", "test_height_m": value}
+
+
+def _to_test_datum(
+    data: CheckpointFile,
+    point_crs: CRS,
+    options: TileOptions,
+    job: ResolvedJob,
+    records: dict[str, dict[str, Any]],
+) -> None:
+    """Checkpoint heights in metres in the test's vertical datum, and dh = test - checkpoint."""
+    spec = job.spec.checkpoints
+    assert spec is not None
+    used = [p for p in data.points if records[p.point_id].get("status") == "used"]
+    if not used:
+        return
+    to_lonlat = Transformer.from_crs(point_crs, "EPSG:4326", always_xy=True)
+    lon, lat = to_lonlat.transform([p.x for p in used], [p.y for p in used])
+    lon, lat = np.asarray(lon), np.asarray(lat)
+    heights = to_metres(np.array([p.height for p in used]), spec.units)
+    offset = geoid_undulation(lon, lat, vertical_crs=spec.vertical_crs, grid_dirs=options.grid_dirs)
+    offset -= geoid_undulation(
+        lon, lat, vertical_crs=options.test_vertical_crs, grid_dirs=options.grid_dirs
+    )
+    for p, h, off in zip(used, heights, offset, strict=True):
+        record = records[p.point_id]
+        record["checkpoint_height_m"] = float(h + off)
+        record["dh_m"] = record["test_height_m"] - record["checkpoint_height_m"]
+
+
+def _section(
+    records: dict[str, dict[str, Any]],
+    survey: float | None,
+    tests: Sequence[TileInfo],
+    *,
+    regions: Mapping[str, list[Region]],
+    classes: Sequence[ClassInfo],
+    job: ResolvedJob,
+    out_dir: Path,
+) -> dict[str, Any]:
+    used = [r for r in records.values() if r.get("status") == "used"]
+    group_of = {c.value: c.group for c in classes}
+    for r in used:
+        cover = r.get("landcover")
+        r["cover_group"] = group_of.get(cover, "unknown") if cover is not None else "unknown"
+        r["regions"] = [
+            g.region_id for g in regions.get(tests[0].grid.crs, []) if g.geometry.covers(_point(r))
+        ]
+    dh = np.array([r["dh_m"] for r in used])
+    nv = np.array([r["dh_m"] for r in used if r["cover_group"] == "non_vegetated"])
+    veg = np.array([r["dh_m"] for r in used if r["cover_group"] == "vegetated"])
+    va = vertical_accuracy(nv, veg)
+    area_km2 = sum((t.bounds[2] - t.bounds[0]) * (t.bounds[3] - t.bounds[1]) for t in tests) / 1e6
+    measured = grading.Measured(
+        va["rmse_z_non_vegetated"],
+        va["vva_95"],
+        len(nv),
+        len(veg),  # type: ignore[arg-type]
+        survey_rmse_m=survey,
+        area_km2=area_km2,
+    )
+    _write_residuals(out_dir / RESIDUALS_NAME, records)
+    return {
+        "file": str(job.checkpoint_file),
+        "survey_rmse_m": survey,
+        "counts": {"read": len(records), "used": len(used), "rejected": len(records) - len(used)},
+        "stats": residual_statistics(dh),
+        "vertical_accuracy": va,
+        "by_class": _grouped(used, "landcover"),
+        "by_cover_group": _grouped(used, "cover_group"),
+        "by_region": _by_region(used),
+        "grading": grade(measured, job),
+        "rejected": [
+            {"id": r["id"], "reason": r["reason"]}
+            for r in records.values()
+            if r.get("status") != "used"
+        ],
+        "residuals_file": RESIDUALS_NAME,
+    }
+
+
+def grade(measured: grading.Measured, job: ResolvedJob) -> list[dict[str, Any]]:
+    """Grade the measures against each standard the spec names."""
+    g = job.spec.grading
+    out = []
+    for standard in g.standards:
+        if standard == "nssda":
+            out.append(
+                grading.grade_nssda(measured, required_accuracy_m=g.nssda_required_accuracy_m)
+            )
+        elif standard == "asprs2014":
+            out.append(grading.grade_asprs2014(measured, class_cm=g.asprs_class_cm))
+        elif standard == "asprs2023":
+            out.append(grading.grade_asprs2023(measured, class_cm=g.asprs_class_cm))
+        elif standard == "quality_level":
+            out.append(grading.grade_quality_level(measured, level=g.quality_level))
+        elif standard == "user" and g.user:
+            out.append(grading.grade_user(measured, {str(k): v for k, v in g.user.items()}))
+    if measured.indicative:
+        for entry in out:
+            entry["indicative"] = True
+            entry["note"] = (
+                "graded on raster-vs-raster pixels: indicative only; the standards "
+                "define checkpoint tests"
+            )
+    return out
+
+
+def _point(record: dict[str, Any]):  # type: ignore[no-untyped-def]
+    from shapely.geometry import Point
+
+    return Point(record["x_test_crs"], record["y_test_crs"])
+
+
+def _grouped(used: list[dict[str, Any]], key: str) -> dict[str, Any]:
+    groups: dict[str, list[float]] = {}
+    for r in used:
+        groups.setdefault(str(r.get(key)), []).append(r["dh_m"])
+    return {k: residual_statistics(v) for k, v in sorted(groups.items())}
+
+
+def _by_region(used: list[dict[str, Any]]) -> dict[str, Any]:
+    groups: dict[str, list[float]] = {}
+    for r in used:
+        for region_id in r["regions"]:
+            groups.setdefault(region_id, []).append(r["dh_m"])
+    return {k: residual_statistics(v) for k, v in groups.items()}
+
+
+def _write_residuals(path: Path, records: dict[str, dict[str, Any]]) -> None:
+    columns = [
+        "id",
+        "status",
+        "reason",
+        "x",
+        "y",
+        "height",
+        "landcover",
+        "cover_group",
+        "test_height_m",
+        "checkpoint_height_m",
+        "dh_m",
+    ]
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        writer = csv.DictWriter(fh, fieldnames=columns, extrasaction="ignore")
+        writer.writeheader()
+        for record in records.values():
+            writer.writerow(record)

@@ -1,0 +1,159 @@
+"""Checkpoint audits end to end: the grade the injected errors imply, and bad points."""
+
+from __future__ import annotations
+
+import csv
+import json
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from service.runner import run_job
+from workers import spec as job_spec
+from workers.demo_archive import DemoArchiveOptions, make_demo_archive
+from workers.demo_terrain import build_world, terrain_slope
+from workers.grading import ASPRS_CLASSES_CM
+
+
+def run(spec_path: Path, out: Path, client, **changes) -> dict:
+    data = job_spec.load_spec_file(spec_path)
+    data.update(changes)
+    spec = job_spec.parse_spec(data)
+    return run_job(job_spec.resolve(spec, base_dir=spec_path.parent), out, client=client)
+
+
+@pytest.fixture(scope="module")
+def noisy_archive(tmp_path_factory) -> tuple[Path, DemoArchiveOptions]:
+    # bias and slope-dependent noise only: no shift, canopy, blunders, voids or tilt
+    options = DemoArchiveOptions(
+        tiles_x=5,
+        tiles_y=5,
+        pixels=160,
+        seed=4,
+        shift_east_m=0.0,
+        shift_north_m=0.0,
+        vertical_bias_m=0.10,
+        canopy=False,
+        blunder_fraction=0.0,
+        void_patches=0,
+        tilt_m_per_km=0.0,
+        write_update=False,
+    )
+    root = tmp_path_factory.mktemp("noisy")
+    return make_demo_archive(root, options), options
+
+
+def expected_rmse(root: Path, options: DemoArchiveOptions) -> float:
+    """RMSE_z of the non-vegetated checkpoints implied by truth.json: the bias, the pixel noise
+    sigma + k tan(slope) as bilinear sampling passes it on (independent pixel errors with weights
+    w_i give variance sigma^2 sum(w_i^2)), and the survey error."""
+    truth = json.loads((root / "truth.json").read_text())
+    rows = [
+        r
+        for r in csv.DictReader(
+            line for line in (root / "checkpoints.csv").open() if not line.startswith("#")
+        )
+        if r["landcover"] in {"1", "3"}
+    ]
+    e = np.array([float(r["easting"]) for r in rows])
+    n = np.array([float(r["northing"]) for r in rows])
+    tan_slope = terrain_slope(build_world(options), e, n)
+    sigma = truth["noise"]["sigma_m"] + truth["noise"]["slope_factor"] * tan_slope
+    pixel = truth["test"]["pixel_size_m"]
+    dk = ((e - truth["test"]["domain_west_m"]) / pixel - 0.5) % 1.0
+    dr = ((truth["test"]["domain_north_m"] - n) / pixel - 0.5) % 1.0
+    weight_sq = ((1 - dr) ** 2 + dr**2) * ((1 - dk) ** 2 + dk**2)
+    survey = truth["checkpoints"]["survey_rmse_m"]
+    variance = truth["vertical_bias_m"] ** 2 + np.mean(weight_sq * sigma**2) + survey**2
+    return float(np.sqrt(variance))
+
+
+def test_grade_matches_the_injected_errors(noisy_archive, dask_client, tmp_path):
+    spec_path, options = noisy_archive
+    root = spec_path.parent
+    implied = expected_rmse(root, options)
+    # the class the truth implies: the strictest standard class at least as large
+    implied_class = next(c for c in ASPRS_CLASSES_CM if c / 100 >= implied)
+    doc = run(
+        spec_path,
+        tmp_path / "out",
+        dask_client,
+        grading={
+            "standards": ["nssda", "asprs2023", "user"],
+            "asprs_class_cm": 5.0,
+            "user": {"required_rmse_m": implied * 1.5},
+        },
+    )
+    cp = doc["checkpoints"]
+    measured = cp["vertical_accuracy"]["rmse_z_non_vegetated"]
+    # about 100 points: the realised RMSE is within ~15 % of the implied one
+    assert measured == pytest.approx(implied, rel=0.15)
+    by_standard = {g["standard"].split(" (")[0].split(",")[0]: g for g in cp["grading"]}
+    asprs = by_standard["ASPRS Positional Accuracy Standards"]
+    assert asprs["best_class_met"] == f"{implied_class:g}-cm"
+    assert asprs["met"] is False  # the 5-cm class is stricter than the release
+    assert by_standard["user-defined class"]["met"] is True
+    nssda = by_standard["NSSDA"]
+    assert nssda["accuracy_z_95_m"] == pytest.approx(1.96 * measured)
+    # no voids here: only points within half a pixel of the domain's outer edge may be left out
+    assert all("edge" in r["reason"] for r in cp["rejected"])
+    assert cp["counts"]["used"] > 0.95 * cp["counts"]["read"]
+
+
+def test_bad_checkpoints_are_reported_per_point(make_archive, dask_client, tmp_path, tif_writer):
+    import rasterio
+
+    root = make_archive(tiles=2, pixels=40)
+    # a void in tile t_0_0 around pixel (10, 10)
+    with rasterio.open(root / "test" / "t_0_0.tif", "r+") as dst:
+        data = dst.read(1)
+        data[8:13, 8:13] = -9999.0
+        dst.write(data, 1)
+    rows = [
+        "id,easting,northing,height,landcover",
+        "ok1,480101.0,6229901.0,50.0,1",
+        "nohgt,480101.0,6229899.0,,1",
+        "void,480052.5,6229947.5,50.0,1",
+        "far,600000.0,6000000.0,50.0,1",
+        "ok1,480103.0,6229903.0,50.0,1",
+    ]
+    (root / "cp.csv").write_text("# survey_rmse_m: 0.01\n" + "\n".join(rows) + "\n")
+    checkpoints = {"file": "cp.csv", "crs": "EPSG:32632", "vertical_crs": "EPSG:5773"}
+    doc = run(root / "job.yaml", tmp_path / "out", dask_client, checkpoints=checkpoints)
+    reasons = {r["id"]: r["reason"] for r in doc["checkpoints"]["rejected"]}
+    assert "no height" in reasons["nohgt"]
+    assert "void" in reasons["void"]
+    assert "outside every test tile" in reasons["far"]
+    assert "duplicated id" in reasons["ok1"]
+    assert doc["checkpoints"]["counts"] == {"read": 5, "used": 1, "rejected": 4}
+    used = doc["checkpoints"]["stats"]
+    assert used["count"] == 1
+    residuals = list(csv.DictReader((tmp_path / "out" / "checkpoint_residuals.csv").open()))
+    assert {r["id"] for r in residuals} == {"ok1", "nohgt", "void", "far"}
+
+    unknown = checkpoints | {"crs": "EPSG:99999"}
+    spec = job_spec.load_spec_file(root / "job.yaml") | {"checkpoints": unknown}
+    job = job_spec.resolve(job_spec.parse_spec(spec), base_dir=root)
+    doc = run_job(job, tmp_path / "out2", client=dask_client)
+    reasons2 = [r["reason"] for r in doc["checkpoints"]["rejected"]]
+    # the three readable points are refused for the CRS; the two bad rows keep their reasons
+    assert sum("unknown CRS" in r for r in reasons2) == 3 and len(reasons2) == 5
+    assert doc["overall"]["count"] > 0  # the raster audit went on
+
+
+def test_checkpoints_without_reference_tiles(make_archive, dask_client, tmp_path):
+    root = make_archive(tiles=2, pixels=40, bias=0.25)
+    (root / "cp.csv").write_text("id,easting,northing,height\np,480101.0,6229901.0,0\n")
+    data = job_spec.load_spec_file(root / "job.yaml")
+    del data["reference"]
+    data["checkpoints"] = {
+        "file": "cp.csv",
+        "crs": "EPSG:32632",
+        "vertical_crs": "EPSG:5773",
+        "landcover_column": None,
+    }
+    spec = job_spec.parse_spec(data)
+    doc = run_job(job_spec.resolve(spec, base_dir=root), tmp_path / "out", client=dask_client)
+    assert {t["status"] for t in doc["tiles"]} == {"not_audited"}
+    assert doc["checkpoints"]["counts"]["used"] == 1

@@ -1,0 +1,209 @@
+"""Surveyed checkpoints: read them, and sample the test model at each one.
+
+Reading keeps every row: a point that cannot be used (no height, duplicated id, bad
+coordinates) is returned as :class:`Rejected` with the reason, never dropped silently.
+
+Sampling rule (``bilinear_at``): the test model's value at a point is the bilinear interpolation of
+the four pixel centres around it. If any of the four is nodata the point is rejected as 'on a
+void'; if they are not all inside the test data, as 'at the edge of the test data'. Points near a
+tile edge are sampled from the mosaic of neighbouring tiles, so tile edges do not reject points.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import math
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+from workers.errors import SpecError
+from workers.grid import Grid
+
+
+@dataclass(frozen=True)
+class Checkpoint:
+    """One surveyed point: id, horizontal coordinates, height (file units), land-cover class."""
+
+    point_id: str
+    x: float
+    y: float
+    height: float
+    landcover: int | None = None
+
+
+@dataclass(frozen=True)
+class Rejected:
+    """A point that was not used, and why."""
+
+    point_id: str
+    reason: str
+
+
+@dataclass(frozen=True)
+class CheckpointFile:
+    """What a checkpoint file holds: usable points, rejected rows and header key-values."""
+
+    points: tuple[Checkpoint, ...]
+    rejected: tuple[Rejected, ...]
+    header: dict[str, str]
+    declared_crs: str | None = None
+
+
+def read_checkpoints(
+    path: Path,
+    *,
+    id_column: str = "id",
+    x_column: str = "easting",
+    y_column: str = "northing",
+    height_column: str = "height",
+    landcover_column: str | None = "landcover",
+) -> CheckpointFile:
+    """Read CSV (with '#' header lines of 'key: value') or GeoJSON points."""
+    path = Path(path)
+    try:
+        text = path.read_text(encoding="utf-8")
+    except OSError as exc:
+        raise SpecError(f"checkpoints.file: cannot read {path}: {exc.strerror or exc}") from None
+    if path.suffix.lower() in {".geojson", ".json"}:
+        rows, header, crs = _geojson_rows(text, path, x_column, y_column)
+    else:
+        rows, header, crs = _csv_rows(text)
+    columns = (id_column, x_column, y_column, height_column, landcover_column)
+    points, rejected = _parse_rows(rows, columns)
+    return CheckpointFile(
+        tuple(points), tuple(rejected), header, crs or header.get("horizontal_crs")
+    )
+
+
+def _csv_rows(text: str) -> tuple[list[dict[str, Any]], dict[str, str], str | None]:
+    header: dict[str, str] = {}
+    body = []
+    for line in text.splitlines():
+        if line.startswith("#"):
+            key, sep, value = line[1:].partition(":")
+            if sep:
+                header[key.strip()] = value.strip().split()[0] if value.strip() else ""
+        elif line.strip():
+            body.append(line)
+    return list(csv.DictReader(body)), header, None
+
+
+def _geojson_rows(
+    text: str, path: Path, x_column: str, y_column: str
+) -> tuple[list[dict[str, Any]], dict[str, str], str | None]:
+    try:
+        doc = json.loads(text)
+        features = doc["features"]
+    except (json.JSONDecodeError, KeyError, TypeError) as exc:
+        raise SpecError(
+            f"checkpoints.file: {path.name} is not a GeoJSON FeatureCollection: {exc}"
+        ) from None
+    crs = None
+    if isinstance(doc.get("crs"), dict):
+        crs = (doc["crs"].get("properties") or {}).get("name")
+    rows = []
+    for feature in features:
+        row = dict(feature.get("properties") or {})
+        geometry = feature.get("geometry") or {}
+        coords = geometry.get("coordinates") if geometry.get("type") == "Point" else None
+        row[x_column], row[y_column] = (coords[0], coords[1]) if coords else (None, None)
+        rows.append(row)
+    return rows, {}, crs
+
+
+def _parse_rows(
+    rows: list[dict[str, Any]], columns: tuple[str, str, str, str, str | None]
+) -> tuple[list[Checkpoint], list[Rejected]]:
+    id_col, x_col, y_col, h_col, cover_col = columns
+    points: list[Checkpoint] = []
+    rejected: list[Rejected] = []
+    seen: set[str] = set()
+    for number, row in enumerate(rows, start=1):
+        point_id = str(row.get(id_col) or f"row {number}")
+        if point_id in seen:
+            rejected.append(Rejected(point_id, "duplicated id (the first occurrence is used)"))
+            continue
+        seen.add(point_id)
+        x, y, h = (_number(row.get(c)) for c in (x_col, y_col, h_col))
+        if h is None:
+            rejected.append(Rejected(point_id, f"no height in column {h_col!r}"))
+        elif x is None or y is None:
+            rejected.append(Rejected(point_id, f"no coordinates in {x_col!r}/{y_col!r}"))
+        else:
+            cover = _number(row.get(cover_col)) if cover_col else None
+            points.append(Checkpoint(point_id, x, y, h, None if cover is None else int(cover)))
+    return points, rejected
+
+
+def _number(value: object) -> float | None:
+    if value is None or (isinstance(value, str) and not value.strip()):
+        return None
+    try:
+        number = float(value)  # type: ignore[arg-type]
+    except (TypeError, ValueError):
+        return None
+    return number if math.isfinite(number) else None
+
+
+def bilinear_at(
+    heights: NDArray[np.float64], grid: Grid, x: NDArray[np.float64], y: NDArray[np.float64]
+) -> tuple[NDArray[np.float64], list[str | None]]:
+    """Bilinear values of a north-up grid at map points, and a reason where there is none."""
+    a, _, c, _, e, f = grid.transform
+    col = (np.asarray(x) - c) / a - 0.5
+    row = (np.asarray(y) - f) / e - 0.5
+    values = np.full(col.shape, np.nan)
+    reasons: list[str | None] = []
+    for i, (r, k) in enumerate(zip(row, col, strict=True)):
+        # a point exactly on the last row/column of centres still has four neighbours
+        r0 = min(math.floor(r), heights.shape[0] - 2)
+        k0 = min(math.floor(k), heights.shape[1] - 2)
+        if r < 0 or k < 0 or r > heights.shape[0] - 1 or k > heights.shape[1] - 1:
+            reasons.append("at the edge of the test data (no four pixel centres around it)")
+            continue
+        block = heights[r0 : r0 + 2, k0 : k0 + 2]
+        if not np.all(np.isfinite(block)):
+            reasons.append("on a void of the test model (nodata next to the point)")
+            continue
+        dr, dk = r - r0, k - k0
+        top = block[0, 0] * (1 - dk) + block[0, 1] * dk
+        bottom = block[1, 0] * (1 - dk) + block[1, 1] * dk
+        values[i] = top * (1 - dr) + bottom * dr
+        reasons.append(None)
+    return values, reasons
+
+
+def sample_test_tile(
+    tile_id: str,
+    bounds: tuple[float, float, float, float],
+    tiles: list[Any],
+    points: list[tuple[str, float, float]],
+    *,
+    nodata: float | None,
+    units: str,
+) -> list[tuple[str, float | None, str | None]]:
+    """Task: the test model (metres) at points lying in one tile, from the mosaic of that tile
+    and its neighbours ``tiles``; (id, value, reason it has none)."""
+    from rasterio.errors import RasterioError
+
+    from workers.datum import to_metres
+    from workers.errors import AuditError
+    from workers.rasters import read_mosaic
+
+    try:
+        mosaic, grid = read_mosaic(tiles, bounds, nodata=nodata, margin_px=2)
+    except (AuditError, RasterioError, OSError) as exc:
+        return [(pid, None, f"test tile {tile_id} unreadable: {exc}") for pid, _, _ in points]
+    heights = to_metres(mosaic, units)
+    xs = np.array([p[1] for p in points])
+    ys = np.array([p[2] for p in points])
+    values, reasons = bilinear_at(heights, grid, xs, ys)
+    return [
+        (pid, None if reason else float(v), reason)
+        for (pid, _, _), v, reason in zip(points, values, reasons, strict=True)
+    ]
