@@ -1,9 +1,11 @@
-"""The ``demaudit`` command line: run a job spec, run the shipped demo, make a demo archive."""
+"""The ``demaudit`` command line: run a job spec, run the shipped demo, make a demo archive;
+serve the REST API, submit a spec to it and follow a job."""
 
 from __future__ import annotations
 
 import argparse
 import sys
+import time
 from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
@@ -50,7 +52,40 @@ def _parser() -> argparse.ArgumentParser:
     make.add_argument("--pixels", type=int, default=160, help="test tile side in pixels")
     make.add_argument("--seed", type=int, default=1)
     make.set_defaults(handler=_cmd_make_demo)
+
+    serve = sub.add_parser("serve", help="serve the REST API (OGC API - Processes)")
+    serve.add_argument("--host", default="127.0.0.1", help="address to bind (default 127.0.0.1)")
+    serve.add_argument("--port", type=int, default=8000)
+    serve.add_argument(
+        "--insecure-local",
+        action="store_true",
+        help="allow serving without DEMAUDIT_API_TOKENS (loopback addresses only)",
+    )
+    serve.add_argument("--log-level", default="info", choices=["debug", "info", "warning"])
+    serve.set_defaults(handler=_cmd_serve)
+
+    submit = sub.add_parser("submit", help="submit a job spec to a demaudit server")
+    submit.add_argument(
+        "spec",
+        type=Path,
+        help="job spec (YAML or JSON); relative paths resolve against the server's first data root",
+    )
+    _add_server_options(submit)
+    submit.add_argument("--watch", action="store_true", help="follow the job to its end")
+    submit.set_defaults(handler=_cmd_submit)
+
+    status = sub.add_parser("status", help="show (or follow) a job on a demaudit server")
+    status.add_argument("job", help="job id (or the job's URL)")
+    _add_server_options(status)
+    status.add_argument("--watch", action="store_true", help="progress bar until the job ends")
+    status.set_defaults(handler=_cmd_status)
     return parser
+
+
+def _add_server_options(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--server", required=True, help="base URL, e.g. http://127.0.0.1:8000")
+    p.add_argument("--token", help="bearer token (default: DEMAUDIT_TOKEN)")
+    p.add_argument("--interval", type=float, default=1.0, help="seconds between polls")
 
 
 def _add_run_options(p: argparse.ArgumentParser) -> None:
@@ -58,6 +93,12 @@ def _add_run_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--scheduler", help="external Dask scheduler, e.g. tcp://host:8786")
     p.add_argument("--workers", type=int, help="local cluster worker processes")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
+    p.add_argument(
+        "--baseline",
+        type=Path,
+        help="folder of an earlier run of this spec: recompute only changed tiles and report "
+        "what changed (nightly re-check)",
+    )
 
 
 def _cmd_run(args: argparse.Namespace, settings: Settings) -> int:
@@ -80,7 +121,12 @@ def _cmd_run(args: argparse.Namespace, settings: Settings) -> int:
 
         try:
             document = run_job(
-                job, args.out, client=client, grid_dirs=settings.grid_dirs, progress=progress
+                job,
+                args.out,
+                client=client,
+                grid_dirs=settings.grid_dirs,
+                progress=progress,
+                baseline=args.baseline,
             )
         finally:
             bar.close()
@@ -113,6 +159,118 @@ def _cmd_make_demo(args: argparse.Namespace, settings: Settings) -> int:
     return 0
 
 
+def _cmd_serve(args: argparse.Namespace, settings: Settings) -> int:
+    import uvicorn
+
+    from service.app import check_serving, create_app, log_config
+
+    if args.insecure_local:
+        settings = settings.model_copy(update={"insecure_local": True})
+    try:
+        check_serving(settings, host=args.host)
+    except ValueError as exc:
+        print(f"demaudit: error: {exc}", file=sys.stderr)
+        return 2
+    uvicorn.run(
+        create_app(settings),
+        host=args.host,
+        port=args.port,
+        log_config=log_config(args.log_level.upper()),
+        timeout_graceful_shutdown=5,
+    )
+    return 0
+
+
+def _http(args: argparse.Namespace, settings: Settings) -> Any:
+    import httpx
+
+    token = args.token or settings.token
+    headers = {"Authorization": f"Bearer {token}"} if token else {}
+    return httpx.Client(base_url=args.server.rstrip("/"), headers=headers, timeout=30.0)
+
+
+def _problem_text(response: Any) -> str:
+    try:
+        body = response.json()
+    except ValueError:
+        return f"HTTP {response.status_code}"
+    if isinstance(body, dict) and "detail" in body:
+        return f"{body.get('title', 'error')} (HTTP {response.status_code}): {body['detail']}"
+    return f"HTTP {response.status_code}"
+
+
+def _cmd_submit(args: argparse.Namespace, settings: Settings) -> int:
+    import httpx
+
+    data = job_spec.load_spec_file(args.spec)
+    try:
+        with _http(args, settings) as http:
+            response = http.post(
+                "/processes/dem-audit/execution",
+                json={"inputs": data},
+                headers={"Prefer": "respond-async"},
+            )
+            if response.status_code != 201:
+                print(f"demaudit: error: {_problem_text(response)}", file=sys.stderr)
+                return 2
+            job = response.json()
+            print(f"job {job['jobID']} {job['status']}: {response.headers.get('Location')}")
+            if args.watch:
+                return _watch(http, job["jobID"], interval=args.interval)
+    except httpx.HTTPError as exc:
+        print(f"demaudit: error: cannot reach {args.server}: {exc}", file=sys.stderr)
+        return 2
+    return 0
+
+
+def _cmd_status(args: argparse.Namespace, settings: Settings) -> int:
+    import httpx
+
+    job_id = args.job.rstrip("/").rsplit("/", 1)[-1]
+    try:
+        with _http(args, settings) as http:
+            if args.watch:
+                return _watch(http, job_id, interval=args.interval)
+            response = http.get(f"/jobs/{job_id}")
+            if response.status_code != 200:
+                print(f"demaudit: error: {_problem_text(response)}", file=sys.stderr)
+                return 2
+            job = response.json()
+            print(f"job {job['jobID']} {job['status']} ({job['progress']} %): {job['message']}")
+            return _exit_status(job["status"])
+    except httpx.HTTPError as exc:
+        print(f"demaudit: error: cannot reach {args.server}: {exc}", file=sys.stderr)
+        return 2
+
+
+def _watch(http: Any, job_id: str, *, interval: float) -> int:
+    """Poll the job with a progress bar (tiles) until it ends; the exit status says how."""
+    bar = tqdm(total=None, unit="tile", desc=job_id[:12], file=sys.stderr)
+    try:
+        while True:
+            response = http.get(f"/jobs/{job_id}")
+            if response.status_code != 200:
+                print(f"demaudit: error: {_problem_text(response)}", file=sys.stderr)
+                return 2
+            job = response.json()
+            tiles = job.get("tiles", {})
+            if tiles.get("total"):
+                bar.total = tiles["total"]
+                bar.update(tiles["done"] - bar.n)
+            bar.set_postfix_str(job["status"])
+            if job["status"] in {"successful", "failed", "dismissed"}:
+                break
+            time.sleep(interval)
+    finally:
+        bar.close()
+    print(f"job {job_id} {job['status']}: {job['message']}")
+    return _exit_status(job["status"])
+
+
+def _exit_status(status: str) -> int:
+    return {"successful": 0, "accepted": 0, "running": 0}.get(status, 1)
+
+
 def _print_report(document: dict[str, Any], out_dir: Path) -> None:
     print(f"\nresults: {Path(out_dir).resolve()}/summary.json and results.zarr")
     print(f"dh = {document['sign']}, {document['units']}s\n")
@@ -134,6 +292,15 @@ def _print_report(document: dict[str, Any], out_dir: Path) -> None:
     failed = [t for t in document["tiles"] if t["status"] == "failed"]
     for t in failed:
         print(f"tile {t['tile']} failed: {t.get('reason')}")
+    recheck = document.get("recheck")
+    if recheck:
+        print(
+            f"\nre-check against {recheck['baseline']}: {len(recheck['tiles_recomputed'])} "
+            f"tile(s) recomputed, {recheck['tiles_reused']} reused, "
+            f"{recheck['regressions']} regression(s)"
+        )
+        for t in recheck["tiles"]:
+            print(f"  {t['tile']:<20} {t['verdict']:<10} {t['why']}")
     print("\n" + document["cautions"][0])
 
 

@@ -15,7 +15,7 @@ from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 
 from service.jobs import JobDispatcher
 from service.jobstore import JobStore
-from service.problems import Unauthorized
+from service.problems import UnauthorizedError
 from service.settings import Settings
 
 __all__ = [
@@ -71,10 +71,10 @@ def require_token(
     if not settings.api_tokens and settings.insecure_local:
         return
     if credentials is None:
-        raise Unauthorized("send 'Authorization: Bearer <token>'")
+        raise UnauthorizedError("send 'Authorization: Bearer <token>'")
     given = credentials.credentials.encode()
     if not any(hmac.compare_digest(given, t.encode()) for t in settings.api_tokens):
-        raise Unauthorized("the bearer token is not valid")
+        raise UnauthorizedError("the bearer token is not valid")
 
 
 Authorized = Depends(require_token)

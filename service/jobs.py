@@ -261,8 +261,10 @@ class JobDispatcher:
             log.info("job %s", message, extra={"job_id": job_id})
 
     def _end_unsuccessful(self, job_id: str, failure: str | None) -> None:
-        """Record a failure (or complete a dismissal's record) and remove partial outputs."""
+        """Remove partial outputs, then record the failure (or complete the dismissal's
+        record): once a job reads as ended, its folder is gone."""
         with self._lock:
+            self._remove_results(job_id)
             if failure is not None:
                 self.store.update(
                     job_id,
@@ -279,7 +281,6 @@ class JobDispatcher:
                     },
                     only_from={DISMISSED},
                 )
-            self._remove_results(job_id)
         log.info("job ended without results", extra={"job_id": job_id})
 
     def _progress(self, job_id: str, done: int, total: int) -> None:

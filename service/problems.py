@@ -2,16 +2,16 @@
 
 Hierarchy of the errors the routes raise::
 
-    ProblemError                        an HTTP problem with its status, type and title
-    ├── NoSuchProcess      404          OGC no-such-process
-    ├── NoSuchJob          404          OGC no-such-job
-    ├── ResultNotReady     404          OGC result-not-ready (job accepted or running)
-    ├── NoSuchItem         404          unknown tile, region or results file of a job
-    ├── JobFailed          409          results asked of a failed job
-    ├── JobDismissed       410          results asked of a dismissed job
-    ├── BadRequest         400          malformed request (not JSON, wrong shape)
-    ├── Unauthorized       401          missing or wrong bearer token
-    └── BodyTooLarge       413          request body over the configured limit
+    ProblemError                 an HTTP problem with its status, type and title
+    ├── NoSuchProcessError  404  OGC no-such-process
+    ├── NoSuchJobError      404  OGC no-such-job
+    ├── ResultNotReadyError 404  OGC result-not-ready (job accepted or running)
+    ├── NoSuchItemError     404  unknown tile, region or results file of a job
+    ├── JobFailedError      409  results asked of a failed job
+    ├── JobGoneError        410  results asked of a dismissed job
+    ├── BadRequestError     400  malformed request (not JSON, wrong shape)
+    ├── UnauthorizedError   401  missing or wrong bearer token
+    └── BodyTooLargeError   413  request body over the configured limit
 
 ``install(app)`` also maps the pipeline's own errors (``workers.errors``): a path outside the data
 roots (DataRootError) is 403, any other invalid spec (SpecError and its kin) is 422, request
@@ -36,17 +36,17 @@ from workers.errors import AuditError, DataRootError
 
 __all__ = [
     "MEDIA_TYPE",
-    "BadRequest",
-    "BodyTooLarge",
-    "JobDismissed",
-    "JobFailed",
-    "NoSuchItem",
-    "NoSuchJob",
-    "NoSuchProcess",
+    "BadRequestError",
+    "BodyTooLargeError",
+    "JobGoneError",
+    "JobFailedError",
+    "NoSuchItemError",
+    "NoSuchJobError",
+    "NoSuchProcessError",
     "Problem",
     "ProblemError",
-    "ResultNotReady",
-    "Unauthorized",
+    "ResultNotReadyError",
+    "UnauthorizedError",
     "install",
     "problem_response",
     "responses",
@@ -85,40 +85,40 @@ class ProblemError(Exception):
         self.extensions = extensions
 
 
-class NoSuchProcess(ProblemError):
+class NoSuchProcessError(ProblemError):
     status, type, title = 404, OGC_EXCEPTIONS + "no-such-process", "No such process"
 
 
-class NoSuchJob(ProblemError):
+class NoSuchJobError(ProblemError):
     status, type, title = 404, OGC_EXCEPTIONS + "no-such-job", "No such job"
 
 
-class ResultNotReady(ProblemError):
+class ResultNotReadyError(ProblemError):
     status, type, title = 404, OGC_EXCEPTIONS + "result-not-ready", "Result not ready"
 
 
-class NoSuchItem(ProblemError):
+class NoSuchItemError(ProblemError):
     status, type, title = 404, _OWN + "no-such-item", "Not found"
 
 
-class JobFailed(ProblemError):
+class JobFailedError(ProblemError):
     status, type, title = 409, _OWN + "job-failed", "The job failed"
 
 
-class JobDismissed(ProblemError):
+class JobGoneError(ProblemError):
     status, type, title = 410, _OWN + "job-dismissed", "The job was dismissed"
 
 
-class BadRequest(ProblemError):
+class BadRequestError(ProblemError):
     status, type, title = 400, _OWN + "bad-request", "Bad request"
 
 
-class Unauthorized(ProblemError):
-    status, type, title = 401, _OWN + "unauthorized", "Unauthorized"
+class UnauthorizedError(ProblemError):
+    status, type, title = 401, _OWN + "unauthorized", "UnauthorizedError"
     headers = {"WWW-Authenticate": 'Bearer realm="demaudit"'}
 
 
-class BodyTooLarge(ProblemError):
+class BodyTooLargeError(ProblemError):
     status, type, title = 413, _OWN + "body-too-large", "Request body too large"
 
 
@@ -198,7 +198,7 @@ async def _validation(request: Request, exc: Exception) -> JSONResponse:
     assert isinstance(exc, RequestValidationError)
     errors = [_field_error(e) for e in exc.errors()]
     if any(e["type"] == "json_invalid" for e in exc.errors()):
-        status, type_, title = 400, BadRequest.type, "Request body is not valid JSON"
+        status, type_, title = 400, BadRequestError.type, "Request body is not valid JSON"
     elif all(e["field"].startswith("body") for e in errors):
         status, type_, title = _INVALID_SPEC
     else:

@@ -19,6 +19,7 @@ from pyproj import CRS, Transformer
 
 from service.checkpoint_run import audit_checkpoints, grade
 from service.coregistration import estimate_job_correction
+from service.recheck import change_report, load_baseline, make_plan, reused_result
 from workers import regions as region_ops
 from workers import summary as dh_summary
 from workers.catalog import ScanFailure, TileIndex, TileInfo, scan_tile
@@ -26,6 +27,7 @@ from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation
 from workers.errors import AuditError, EmptyOverlapError, TileReadError
 from workers.grading import Measured
 from workers.merge import JobAccumulator
+from workers.recheck import ChangePlan, Thresholds
 from workers.regions import Region
 from workers.report import area_entry, build_summary, region_entries
 from workers.spec import ELLIPSOIDAL, ResolvedJob
@@ -48,6 +50,7 @@ class JobDismissedError(AuditError):
 
 
 SOFTWARE = "demaudit 0.1.0"
+CHANGE_REPORT_NAME = "change_report.json"
 
 
 def run_job(
@@ -60,6 +63,7 @@ def run_job(
     should_stop: Callable[[], bool] | None = None,
     run_id: str | None = None,
     retries: int = 1,
+    baseline: Path | None = None,
 ) -> dict[str, Any]:
     """Audit job.spec on the cluster behind client; write results.zarr and summary.json into
     out_dir and return the summary document.
@@ -68,6 +72,11 @@ def run_job(
     tile tasks are cancelled on the cluster and JobDismissedError is raised. Tile tasks get the
     key ``audit-tile-<tile>-<run_id>`` (a job id makes them deterministic) and ``retries``
     retries when a worker is lost.
+
+    With ``baseline`` (the folder of an earlier run of the same spec), only new and changed tiles
+    (or tiles whose reference or land cover changed) are recomputed; the others are merged from
+    the baseline's stored summaries, and summary.json gets a ``recheck`` change report (also
+    written as change_report.json).
     """
     started = _now()
     run_id = run_id or uuid.uuid4().hex[:12]
@@ -87,6 +96,21 @@ def run_job(
         )
         options = replace(options, correction=correction)
 
+    sources = catalog.source_fingerprints()
+    change: ChangePlan | None = None
+    prior = load_baseline(baseline) if baseline is not None else None
+    if prior is not None:
+        if options.coregistration is not None and options.coregistration.estimate_from == "job":
+            prior = None  # the job-wide correction touches every tile: recompute all
+        else:
+            change = make_plan(
+                prior,
+                job.spec.model_dump(mode="json"),
+                catalog.tests,
+                sources,
+                {t.tile_id: catalog.sources_of(t) for t in catalog.tests},
+            )
+
     layout = overview_layout(catalog.tests, factor=job.spec.options.overview_factor)
     store = ResultsStore(out_dir, layout)
     region_ids = [r.region_id for r in catalog.regions]
@@ -102,6 +126,14 @@ def run_job(
             records[tile.tile_id] = _tile_record(
                 tile.tile_id, "not_audited", "no reference tiles: checkpoints only", tile, None
             )
+    by_id = {t.tile_id: t for t in catalog.tests}
+    to_compute = catalog.tests if raster else []
+    if change is not None and prior is not None:
+        to_compute = [by_id[t] for t in sorted(change.recompute)] if raster else []
+        for tile_id in change.reuse:
+            result = reused_result(prior, tile_id)
+            _fold(result, acc, after, store)
+            records[tile_id] = prior.tiles[tile_id]
     futures = [
         client.submit(
             audit_tile,
@@ -115,10 +147,9 @@ def run_job(
             retries=retries,
             key=f"audit-tile-{tile.tile_id}-{run_id}",
         )
-        for tile in (catalog.tests if raster else [])
+        for tile in to_compute
     ]
-    total = len(futures) + len(catalog.test_failures)
-    by_id = {t.tile_id: t for t in catalog.tests}
+    total = len(catalog.tests) + len(catalog.test_failures)
     for future in as_completed(futures):
         if should_stop is not None and should_stop():
             client.cancel(futures)
@@ -127,12 +158,7 @@ def run_job(
             )
         result = _result_of(future)
         future.release()
-        acc.add(result)
-        if result.corrected is not None:
-            after.add(result.corrected)
-        store.write_overview(result.tile_id, result.overview)
-        if result.status == OK:
-            write_tile_summaries(store.path, result.tile_id, entries_of(result))
+        _fold(result, acc, after, store)
         records[result.tile_id] = _tile_record(
             result.tile_id,
             result.status,
@@ -140,7 +166,7 @@ def run_job(
             by_id[result.tile_id],
             statistics(result.summary),
             result,
-        )
+        ) | {"sources": catalog.sources_of(by_id[result.tile_id])}
         if progress:
             progress(acc.tiles_done, total)
 
@@ -178,6 +204,7 @@ def run_job(
         extra_cautions=[] if layout else ["no dh overview: the test tiles are not on one grid"],
         coregistration=coregistration,
     )
+    document["sources"] = sources
     if job.spec.checkpoints is not None:
         document["checkpoints"] = audit_checkpoints(
             client,
@@ -189,8 +216,26 @@ def run_job(
         )
     if raster:
         document["grading_indicative"] = _indicative_grading(acc, job)
+    if prior is not None and change is not None:
+        limits = Thresholds(**job.spec.recheck.model_dump())
+        document["recheck"] = change_report(prior, change, document, limits)
+        write_summary(out_dir, document["recheck"], name=CHANGE_REPORT_NAME)
     write_summary(out_dir, document)
     return document
+
+
+def _fold(
+    result: TileResult, acc: JobAccumulator, after: JobAccumulator, store: ResultsStore
+) -> None:
+    """Merge one tile's result into the running totals and write its overview and summaries."""
+    acc.add(result)
+    if result.corrected is not None:
+        after.add(result.corrected)
+    store.write_overview(result.tile_id, result.overview)
+    if result.status == OK:
+        write_tile_summaries(
+            store.path, result.tile_id, entries_of(result), excluded=result.excluded
+        )
 
 
 def _indicative_grading(acc: JobAccumulator, job: ResolvedJob) -> list[dict[str, Any]]:
@@ -223,8 +268,23 @@ class _Catalog:
     regions: list[Region]
     regions_by_crs: dict[str, list[Region]]
 
+    references: tuple[TileInfo, ...] = ()
+    landcover: tuple[TileInfo, ...] = ()
+
     def landcover_of(self, tile: TileInfo) -> list[TileInfo]:
         return self.cover_index.overlapping(tile.grid)
+
+    def sources_of(self, tile: TileInfo) -> list[str]:
+        """Ids (prefixed by kind) of the reference and land-cover tiles a test tile overlaps."""
+        return [f"reference:{t.tile_id}" for t in self.candidates.get(tile.tile_id, [])] + [
+            f"landcover:{t.tile_id}" for t in self.landcover_of(tile)
+        ]
+
+    def source_fingerprints(self) -> dict[str, str]:
+        """Fingerprints of every reference and land-cover tile, ids prefixed by kind."""
+        return {f"reference:{t.tile_id}": t.fingerprint for t in self.references} | {
+            f"landcover:{t.tile_id}": t.fingerprint for t in self.landcover
+        }
 
 
 def _catalog(client: Client, job: ResolvedJob, options: TileOptions) -> _Catalog:
@@ -252,6 +312,8 @@ def _catalog(client: Client, job: ResolvedJob, options: TileOptions) -> _Catalog
         cover_index=TileIndex(cover_tiles),
         regions=region_list,
         regions_by_crs=_regions_by_crs(region_list, test_tiles),
+        references=tuple(ref_tiles),
+        landcover=tuple(cover_tiles),
     )
 
 

@@ -49,6 +49,8 @@ class Settings(BaseSettings):
     """Largest request body the REST service reads (HTTP 413 beyond)."""
     task_retries: int = Field(default=1, ge=0)
     """Retries of a tile task whose worker was lost."""
+    token: str | None = None
+    """Bearer token that ``demaudit submit`` and ``demaudit status`` send (DEMAUDIT_TOKEN)."""
 
     @field_validator("api_tokens", "grid_dirs", "data_roots", mode="before")
     @classmethod

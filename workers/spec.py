@@ -223,6 +223,14 @@ class Coregistration(_Strict):
     )
 
 
+class Recheck(_Strict):
+    """When a nightly re-check flags a tile or region as regressed."""
+
+    nmad_worse_fraction: float = Field(default=0.10, ge=0)
+    nmad_worse_m: float = Field(default=0.05, ge=0)
+    median_moved_m: float = Field(default=0.05, ge=0)
+
+
 class JobSpec(_Strict):
     """One audit: a test DEM against a reference, over regions."""
 
@@ -236,6 +244,7 @@ class JobSpec(_Strict):
     outliers: Outliers = Outliers()
     coregistration: Coregistration | None = None
     grading: Grading = Grading()
+    recheck: Recheck = Recheck()
     options: Options = Options()
 
     @model_validator(mode="after")
@@ -354,6 +363,10 @@ def _expand_tiles(
             raise SpecError(f"{field}: no such file or folder {path}")
         if not matches:
             raise SpecError(f"{field}: {pattern!r} matches no tiles (looked in {path})")
+        for match in matches:  # a match may be a symlink leading out of the roots
+            real = match.resolve()
+            if roots is not None and not any(real.is_relative_to(r) for r in roots):
+                raise DataRootError(f"{field}: {match.name} leads outside the allowed data roots")
         found.extend(matches)
     unique = tuple(dict.fromkeys(found))
     return unique

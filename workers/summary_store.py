@@ -16,22 +16,59 @@ import numpy as np
 import zarr
 
 from workers.summary import DhSummary
-from workers.tile_task import ALL, TileResult
+from workers.tile_task import ALL, OK, TileResult
 
 GROUP = "tile_summaries"
 Key = tuple[str, str]  # (area, stratum)
 
 
-def entries_of(result: TileResult) -> dict[Key, DhSummary]:
-    """All summaries of a tile result, keyed (area, stratum)."""
-    out: dict[Key, DhSummary] = {(ALL, ""): result.summary}
-    out.update({(region, ""): s for region, s in result.regions.items()})
+AFTER = "after:"  # area prefix of the summaries after co-registration
+
+
+def entries_of(result: TileResult, *, prefix: str = "") -> dict[Key, DhSummary]:
+    """All summaries of a tile result, keyed (area, stratum); those after co-registration carry
+    the area prefix ``after:``."""
+    out: dict[Key, DhSummary] = {(prefix + ALL, ""): result.summary}
+    out.update({(prefix + region, ""): s for region, s in result.regions.items()})
     for area, by_stratum in result.strata.items():
-        out.update({(area, stratum): s for stratum, s in by_stratum.items()})
+        out.update({(prefix + area, stratum): s for stratum, s in by_stratum.items()})
+    if result.corrected is not None:
+        out.update(entries_of(result.corrected, prefix=AFTER))
     return out
 
 
-def write_tile_summaries(zarr_path: Path, tile_id: str, entries: dict[Key, DhSummary]) -> None:
+def result_from_entries(
+    tile_id: str, entries: dict[Key, DhSummary], *, excluded: int = 0, prefix: str = ""
+) -> TileResult:
+    """Rebuild a tile's result (status ok) from its stored summaries."""
+    mine = {
+        (a.removeprefix(prefix), st): s
+        for (a, st), s in entries.items()
+        if a.startswith(prefix) and not (prefix == "" and a.startswith(AFTER))
+    }
+    regions = {a: s for (a, st), s in mine.items() if st == "" and a != ALL}
+    strata: dict[str, dict[str, DhSummary]] = {}
+    for (a, st), s in mine.items():
+        if st:
+            strata.setdefault(a, {})[st] = s
+    corrected = None
+    if prefix == "" and any(a.startswith(AFTER) for a, _ in entries):
+        corrected = result_from_entries(tile_id, entries, excluded=excluded, prefix=AFTER)
+    return TileResult(
+        tile_id,
+        OK,
+        None,
+        summary=mine[(ALL, "")],
+        regions=regions,
+        strata=strata,
+        excluded=excluded,
+        corrected=corrected,
+    )
+
+
+def write_tile_summaries(
+    zarr_path: Path, tile_id: str, entries: dict[Key, DhSummary], *, excluded: int = 0
+) -> None:
     """Write (replace) one tile's summaries."""
     root = zarr.open_group(str(zarr_path), mode="a", zarr_format=3, use_consolidated=False)
     parent = root.require_group(GROUP)
@@ -60,6 +97,14 @@ def write_tile_summaries(zarr_path: Path, tile_id: str, entries: dict[Key, DhSum
     group.create_array("bins", data=bins.astype(np.int32), chunks=(max(bins.size, 1),))
     group.create_array("counts", data=counts.astype(np.int64), chunks=(max(counts.size, 1),))
     group.attrs["entries"] = records
+    group.attrs["excluded"] = int(excluded)
+
+
+def read_excluded(zarr_path: Path, tile_id: str) -> int:
+    """The tile's count of valid pixels dropped as excluded land cover."""
+    root = zarr.open_group(str(zarr_path), mode="r", use_consolidated=False)
+    group: Any = root[f"{GROUP}/{tile_id}"]
+    return int(group.attrs.get("excluded", 0))
 
 
 def read_tile_summaries(zarr_path: Path, tile_id: str) -> dict[Key, DhSummary]:

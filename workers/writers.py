@@ -211,9 +211,9 @@ def strata_table(
     return xr.Dataset(data, coords=coords)
 
 
-def write_summary(out_dir: Path, document: Mapping[str, Any]) -> Path:
-    """Write summary.json (NaN and infinities as null)."""
-    path = Path(out_dir) / SUMMARY_NAME
+def write_summary(out_dir: Path, document: Mapping[str, Any], *, name: str = SUMMARY_NAME) -> Path:
+    """Write a JSON document (summary.json by default; NaN and infinities as null)."""
+    path = Path(out_dir) / name
     path.write_text(json.dumps(_json_safe(document), indent=2) + "\n", encoding="utf-8")
     return path
 

@@ -37,8 +37,11 @@ def health(client: ClientDep, store: StoreDep, dispatcher: DispatcherDep) -> dic
     return {
         "status": "pass" if ready else "warn",
         "cluster": {"ready": ready, "workers": workers or 0},
-        "jobs": {"running": counts[RUNNING], "queued": counts[ACCEPTED],
-                 "active_here": dispatcher.active()},
+        "jobs": {
+            "running": counts[RUNNING],
+            "queued": counts[ACCEPTED],
+            "active_here": dispatcher.active(),
+        },
     }
 
 
@@ -51,18 +54,25 @@ class JobCollector(Collector):
 
     def collect(self) -> Iterator[Metric]:
         counts = self._store.count_by_status()
-        jobs = GaugeMetricFamily("demaudit_jobs", "Jobs in the store by status",
-                                 labels=["status"])
+        jobs = GaugeMetricFamily("demaudit_jobs", "Jobs in the store by status", labels=["status"])
         for status, n in counts.items():
             jobs.add_metric([status], n)
         yield jobs
-        yield CounterMetricFamily("demaudit_tiles_done", "Test tiles finished over all jobs",
-                                  value=self._store.tiles_done_total())
-        yield GaugeMetricFamily("demaudit_queue_length",
-                                "Jobs accepted and waiting for a free slot",
-                                value=counts[ACCEPTED])
-        yield GaugeMetricFamily("demaudit_cluster_workers", "Dask workers connected",
-                                value=cluster_workers(self._client) or 0)
+        yield CounterMetricFamily(
+            "demaudit_tiles_done",
+            "Test tiles finished over all jobs",
+            value=self._store.tiles_done_total(),
+        )
+        yield GaugeMetricFamily(
+            "demaudit_queue_length",
+            "Jobs accepted and waiting for a free slot",
+            value=counts[ACCEPTED],
+        )
+        yield GaugeMetricFamily(
+            "demaudit_cluster_workers",
+            "Dask workers connected",
+            value=cluster_workers(self._client) or 0,
+        )
 
 
 def metrics_registry(store: JobStore, client: Any) -> CollectorRegistry:
@@ -72,8 +82,13 @@ def metrics_registry(store: JobStore, client: Any) -> CollectorRegistry:
     return registry
 
 
-@router.get("/metrics", name="metrics", dependencies=[Authorized], responses=responses(401),
-            response_class=Response)
+@router.get(
+    "/metrics",
+    name="metrics",
+    dependencies=[Authorized],
+    responses=responses(401),
+    response_class=Response,
+)
 def metrics(request: Request) -> Response:
     """Prometheus metrics: jobs by status, tiles done, queue length, cluster workers."""
     registry: CollectorRegistry = request.app.state.metrics

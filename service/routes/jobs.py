@@ -4,22 +4,22 @@
 from __future__ import annotations
 
 import json
+import pathlib
 from functools import lru_cache
-from pathlib import Path
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Query, Request
+from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import FileResponse
 
 from service.deps import DispatcherDep, StoreDep
-from service.jobs import PROCESS_ID
+from service.jobs import PROCESS_ID, JobDispatcher
 from service.jobstore import ACCEPTED, DISMISSED, FAILED, RUNNING, JobRecord, JobStatus, JobStore
 from service.problems import (
-    JobDismissed,
-    JobFailed,
-    NoSuchItem,
-    NoSuchJob,
-    ResultNotReady,
+    JobFailedError,
+    JobGoneError,
+    NoSuchItemError,
+    NoSuchJobError,
+    ResultNotReadyError,
     responses,
 )
 from service.routes.documents import JSON, JobList, Link, StatusInfo, job_url, status_document
@@ -28,35 +28,36 @@ router = APIRouter(prefix="/jobs", tags=["Jobs"], responses=responses(401))
 
 ZARR = "application/vnd+zarr"
 MAX_OFFSET = 10**9
+JobId = Annotated[str, Path(alias="jobID", description="The job's id.")]
 
 
 def _record(store: JobStore, job_id: str) -> JobRecord:
     record = store.get(job_id) if len(job_id) <= 64 else None
     if record is None:
-        raise NoSuchJob(f"there is no job {job_id!r}")
+        raise NoSuchJobError(f"there is no job {job_id!r}")
     return record
 
 
-def _finished_output(dispatcher: DispatcherDep, record: JobRecord) -> Path:
+def _finished_output(dispatcher: JobDispatcher, record: JobRecord) -> pathlib.Path:
     """The output folder of a successful job; the right problem for any other status."""
     if record.status in (ACCEPTED, RUNNING):
-        raise ResultNotReady(
+        raise ResultNotReadyError(
             f"job {record.job_id} is {record.status} ({record.progress} %); "
             "its results are not ready"
         )
     if record.status == FAILED:
-        raise JobFailed(f"job {record.job_id} failed: {record.message}")
+        raise JobFailedError(f"job {record.job_id} failed: {record.message}")
     if record.status == DISMISSED:
-        raise JobDismissed(f"job {record.job_id} was dismissed; it has no results")
+        raise JobGoneError(f"job {record.job_id} was dismissed; it has no results")
     return dispatcher.results_path(record.job_id)
 
 
-def _summary_of(dispatcher: DispatcherDep, record: JobRecord) -> dict[str, Any]:
+def _summary_of(dispatcher: JobDispatcher, record: JobRecord) -> dict[str, Any]:
     path = _finished_output(dispatcher, record) / "summary.json"
     try:
         stamp = path.stat().st_mtime_ns
     except OSError:
-        raise JobDismissed(f"the results of job {record.job_id} are gone") from None
+        raise JobGoneError(f"the results of job {record.job_id} are gone") from None
     return _load_summary(str(path), stamp)
 
 
@@ -73,27 +74,34 @@ def list_jobs(
     request: Request,
     store: StoreDep,
     status: Annotated[list[JobStatus] | None, Query(description="Only jobs in these.")] = None,
-    processID: Annotated[list[str] | None, Query()] = None,  # noqa: N803
+    process_id: Annotated[list[str] | None, Query(alias="processID")] = None,
     limit: Annotated[int, Query(ge=1, le=1000)] = 10,
     offset: Annotated[int, Query(ge=0, le=MAX_OFFSET)] = 0,
 ) -> JobList:
     """The jobs, newest first; filter by status and page with limit and offset."""
     statuses = set(status) if status else None
-    if processID is not None and PROCESS_ID not in processID:
+    if process_id is not None and PROCESS_ID not in process_id:
         statuses = set()
     matched = store.count(statuses=statuses)
     records = store.find(statuses=statuses, limit=limit, offset=offset)
     links = [Link(href=str(request.url), rel="self", type=JSON)]
     if offset + len(records) < matched:
         links.append(
-            Link(href=str(request.url.include_query_params(offset=offset + limit, limit=limit)),
-                 rel="next", type=JSON)
+            Link(
+                href=str(request.url.include_query_params(offset=offset + limit, limit=limit)),
+                rel="next",
+                type=JSON,
+            )
         )
     if offset > 0:
         links.append(
-            Link(href=str(request.url.include_query_params(offset=max(0, offset - limit),
-                                                           limit=limit)),
-                 rel="prev", type=JSON)
+            Link(
+                href=str(
+                    request.url.include_query_params(offset=max(0, offset - limit), limit=limit)
+                ),
+                rel="prev",
+                type=JSON,
+            )
         )
     return JobList(
         jobs=[status_document(request, r) for r in records],
@@ -104,35 +112,40 @@ def list_jobs(
 
 
 @router.get("/{jobID}", name="get_job", response_model=StatusInfo, responses=responses(404))
-def get_job(jobID: str, request: Request, store: StoreDep) -> StatusInfo:  # noqa: N803
+def get_job(job_id: JobId, request: Request, store: StoreDep) -> StatusInfo:
     """The status of a job."""
-    return status_document(request, _record(store, jobID))
+    return status_document(request, _record(store, job_id))
 
 
-@router.delete("/{jobID}", name="dismiss_job", response_model=StatusInfo,
-               responses=responses(404))
+@router.delete("/{jobID}", name="dismiss_job", response_model=StatusInfo, responses=responses(404))
 def dismiss_job(
-    jobID: str, request: Request, store: StoreDep, dispatcher: DispatcherDep  # noqa: N803
+    job_id: JobId,
+    request: Request,
+    store: StoreDep,
+    dispatcher: DispatcherDep,
 ) -> StatusInfo:
     """Dismiss a job: stop it (its tile tasks are cancelled on the cluster), drop its results."""
-    _record(store, jobID)
-    record = dispatcher.dismiss(jobID)
+    _record(store, job_id)
+    record = dispatcher.dismiss(job_id)
     if record is None:
-        raise NoSuchJob(f"there is no job {jobID!r}")
+        raise NoSuchJobError(f"there is no job {job_id!r}")
     return status_document(request, record)
 
 
 @router.get("/{jobID}/results", name="job_results", responses=responses(404, 409, 410))
 def job_results(
-    jobID: str, request: Request, store: StoreDep, dispatcher: DispatcherDep  # noqa: N803
+    job_id: JobId,
+    request: Request,
+    store: StoreDep,
+    dispatcher: DispatcherDep,
 ) -> dict[str, Any]:
     """The results of a successful job: the summary document and a link to results.zarr."""
-    record = _record(store, jobID)
+    record = _record(store, job_id)
     summary = _summary_of(dispatcher, record)
     return {
         "summary": summary,
         "results": {
-            "href": f"{job_url(request, jobID)}/results.zarr",
+            "href": f"{job_url(request, job_id)}/results.zarr",
             "type": ZARR,
             "title": "results.zarr (read with xarray.open_zarr(href, group=...))",
         },
@@ -141,45 +154,54 @@ def job_results(
 
 @router.get("/{jobID}/tiles/{tile}", name="job_tile", responses=responses(404, 409, 410))
 def job_tile(
-    jobID: str, tile: str, request: Request, store: StoreDep,  # noqa: N803
+    job_id: JobId,
+    tile: str,
+    request: Request,
+    store: StoreDep,
     dispatcher: DispatcherDep,
 ) -> dict[str, Any]:
     """One test tile of a successful job: status, reason, bounds and statistics."""
-    summary = _summary_of(dispatcher, _record(store, jobID))
+    summary = _summary_of(dispatcher, _record(store, job_id))
     for entry in summary["tiles"]:
         if entry["tile"] == tile:
-            return entry | {"links": _item_links(request, jobID)}
-    raise NoSuchItem(f"job {jobID} has no tile {tile!r}")
+            return entry | {"links": _item_links(request, job_id)}
+    raise NoSuchItemError(f"job {job_id} has no tile {tile!r}")
 
 
-@router.get("/{jobID}/regions/{region}", name="job_region",
-            responses=responses(404, 409, 410))
+@router.get("/{jobID}/regions/{region}", name="job_region", responses=responses(404, 409, 410))
 def job_region(
-    jobID: str, region: str, request: Request, store: StoreDep,  # noqa: N803
+    job_id: JobId,
+    region: str,
+    request: Request,
+    store: StoreDep,
     dispatcher: DispatcherDep,
 ) -> dict[str, Any]:
     """One region of a successful job: statistics, outlier-free statistics and strata."""
-    summary = _summary_of(dispatcher, _record(store, jobID))
+    summary = _summary_of(dispatcher, _record(store, job_id))
     for entry in summary["regions"]:
         if entry["region"] == region:
-            return entry | {"links": _item_links(request, jobID)}
-    raise NoSuchItem(f"job {jobID} has no region {region!r}")
+            return entry | {"links": _item_links(request, job_id)}
+    raise NoSuchItemError(f"job {job_id} has no region {region!r}")
 
 
-@router.get("/{jobID}/results.zarr/{path:path}", name="job_results_file",
-            responses=responses(404, 409, 410))
+@router.get(
+    "/{jobID}/results.zarr/{path:path}", name="job_results_file", responses=responses(404, 409, 410)
+)
 def job_results_file(
-    jobID: str, path: str, store: StoreDep, dispatcher: DispatcherDep  # noqa: N803
+    job_id: JobId,
+    path: str,
+    store: StoreDep,
+    dispatcher: DispatcherDep,
 ) -> FileResponse:
     """A file of the job's results.zarr (read-only), so Zarr readers can open it over HTTP."""
-    zarr_dir = _finished_output(dispatcher, _record(store, jobID)) / "results.zarr"
+    zarr_dir = _finished_output(dispatcher, _record(store, job_id)) / "results.zarr"
     try:
         root = zarr_dir.resolve(strict=True)
         target = (root / path).resolve(strict=True)
     except (OSError, ValueError, RuntimeError):
-        raise NoSuchItem(f"results.zarr of job {jobID} has no file {path!r}") from None
+        raise NoSuchItemError(f"results.zarr of job {job_id} has no file {path!r}") from None
     if not target.is_relative_to(root) or not target.is_file():
-        raise NoSuchItem(f"results.zarr of job {jobID} has no file {path!r}")
+        raise NoSuchItemError(f"results.zarr of job {job_id} has no file {path!r}")
     media = JSON if target.suffix == ".json" else "application/octet-stream"
     return FileResponse(target, media_type=media)
 

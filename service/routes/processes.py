@@ -2,15 +2,17 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
 from fastapi import APIRouter, Header, Request, Response
+from fastapi import Path as PathParam
 from pydantic import BaseModel, ConfigDict, Field
 
 from service.deps import DispatcherDep, SettingsDep
 from service.jobs import PROCESS_ID
-from service.problems import NoSuchProcess, responses
+from service.problems import NoSuchProcessError, responses
 from service.routes.documents import (
     JSON,
     REL_EXECUTE,
@@ -20,7 +22,10 @@ from service.routes.documents import (
     status_document,
 )
 from workers import spec as job_spec
-from workers.spec import JobSpec
+from workers.errors import DataRootError
+from workers.spec import JobSpec, ResolvedJob
+
+ProcessId = Annotated[str, PathParam(alias="processID", description="The process's id.")]
 
 router = APIRouter(prefix="/processes", tags=["Processes"], responses=responses(401))
 
@@ -33,7 +38,6 @@ DESCRIPTION = (
     "keys; relative paths resolve against the server's first data root and every path must lie "
     "inside the data roots."
 )
-_REQUIRED = ("name", "test", "reference")
 
 
 class ExecuteRequest(BaseModel):
@@ -59,12 +63,18 @@ def _summary(request: Request) -> dict[str, Any]:
         "jobControlOptions": ["async-execute", "dismiss"],
         "outputTransmission": ["value", "reference"],
         "links": [
-            Link(href=str(request.url_for("describe_process", processID=PROCESS_ID)),
-                 rel="self", type=JSON, title="process description").model_dump(
-                     exclude_none=True),
-            Link(href=str(request.url_for("execute", processID=PROCESS_ID)),
-                 rel=REL_EXECUTE, type=JSON, title="execute this process").model_dump(
-                     exclude_none=True),
+            Link(
+                href=str(request.url_for("describe_process", processID=PROCESS_ID)),
+                rel="self",
+                type=JSON,
+                title="process description",
+            ).model_dump(exclude_none=True),
+            Link(
+                href=str(request.url_for("execute", processID=PROCESS_ID)),
+                rel=REL_EXECUTE,
+                type=JSON,
+                title="execute this process",
+            ).model_dump(exclude_none=True),
         ],
     }
 
@@ -72,6 +82,7 @@ def _summary(request: Request) -> dict[str, Any]:
 def _inputs() -> dict[str, Any]:
     schema = JobSpec.model_json_schema()
     defs = schema.get("$defs", {})
+    required = set(schema.get("required", ()))
     inputs = {}
     for name, prop in schema["properties"].items():
         prop = inline_refs(prop, defs)
@@ -79,7 +90,7 @@ def _inputs() -> dict[str, Any]:
             "title": prop.pop("title", name),
             "description": prop.get("description", ""),
             "schema": prop,
-            "minOccurs": 1 if name in _REQUIRED else 0,
+            "minOccurs": 1 if name in required else 0,
             "maxOccurs": 1,
         }
     return inputs
@@ -100,10 +111,31 @@ _OUTPUTS = {
 }
 
 
+def _confine(job: ResolvedJob, roots: Sequence[Path]) -> None:
+    """Refuse a job whose files (not only its patterns) resolve outside the data roots: a tile
+    inside a root may be a symlink to elsewhere (workers.spec.resolve checks the patterns)."""
+    resolved_roots = [root.resolve() for root in roots]
+    named = {
+        "test.tiles": job.test_tiles,
+        "reference.tiles": job.reference_tiles,
+        "landcover.tiles": job.landcover_tiles,
+        "region.file": (job.region_file,) if job.region_file else (),
+        "checkpoints.file": (job.checkpoint_file,) if job.checkpoint_file else (),
+    }
+    for field, paths in named.items():
+        for path in paths:
+            target = path.resolve()
+            if not any(target.is_relative_to(root) for root in resolved_roots):
+                raise DataRootError(
+                    f"{field}: {path.name} links to a file outside the allowed data roots"
+                )
+
+
 def _check_process(process_id: str) -> None:
     if process_id != PROCESS_ID:
-        raise NoSuchProcess(f"there is no process {process_id!r}; the one process is "
-                            f"{PROCESS_ID!r}")
+        raise NoSuchProcessError(
+            f"there is no process {process_id!r}; the one process is {PROCESS_ID!r}"
+        )
 
 
 @router.get("", name="list_processes")
@@ -116,9 +148,9 @@ def list_processes(request: Request) -> dict[str, Any]:
 
 
 @router.get("/{processID}", name="describe_process", responses=responses(404))
-def describe_process(processID: str, request: Request) -> dict[str, Any]:  # noqa: N803
+def describe_process(process_id: ProcessId, request: Request) -> dict[str, Any]:
     """The description of a process: its inputs (the job spec) and outputs."""
-    _check_process(processID)
+    _check_process(process_id)
     return _summary(request) | {"inputs": _inputs(), "outputs": _OUTPUTS}
 
 
@@ -130,7 +162,7 @@ def describe_process(processID: str, request: Request) -> dict[str, Any]:  # noq
     responses=responses(400, 403, 404, 413, 422),
 )
 def execute(
-    processID: str,  # noqa: N803 - the standard's parameter name
+    process_id: ProcessId,
     body: ExecuteRequest,
     request: Request,
     response: Response,
@@ -139,12 +171,14 @@ def execute(
     prefer: Annotated[str | None, Header()] = None,
 ) -> StatusInfo:
     """Start a job (always asynchronous); the Location header names its status document."""
-    _check_process(processID)
+    _check_process(process_id)
     roots = settings.data_roots
     # relative paths resolve against the first data root (the server's folder without roots,
     # which only --insecure-local allows)
     base_dir = roots[0] if roots else Path.cwd()
     job = job_spec.resolve(body.inputs, base_dir=base_dir, data_roots=roots)
+    if roots:
+        _confine(job, roots)
     record = dispatcher.submit(job, body.inputs.model_dump(mode="json"))
     document = status_document(request, record)
     response.headers["Location"] = str(request.url_for("get_job", jobID=record.job_id))

@@ -99,3 +99,11 @@ def test_yaml_and_json_files(tmp_path: Path):
         load_spec_file(tmp_path / "c.yaml")
     with pytest.raises(SpecError, match="must be a mapping"):
         parse_spec(["not", "a", "mapping"])  # type: ignore[arg-type]
+
+
+def test_symlinked_tile_leading_outside_the_roots_is_refused(tree: Path, tmp_path_factory):
+    outside = tmp_path_factory.mktemp("outside") / "secret.tif"
+    outside.write_bytes(b"")
+    (tree / "test" / "link.tif").symlink_to(outside)
+    with pytest.raises(DataRootError, match="link.tif leads outside"):
+        resolve(parse_spec(minimal()), base_dir=tree, data_roots=[tree])

@@ -1,0 +1,249 @@
+"""The REST service: ``create_app(settings)`` builds the FastAPI app (OGC API - Processes).
+
+::
+
+    request ─► BodyLimit ─► router (landing | processes | jobs | health) ─► deps (token, store)
+                                 │ POST execution: workers.spec.resolve (data roots)
+                                 ▼
+                    service.jobs.JobDispatcher ── thread per running job ──► service.runner.run_job
+                                 │                                             │ one shared
+                    service.jobstore (SQLite) ◄── status, progress ────────────┘ Dask client
+
+The lifespan opens the job store (failing jobs a dead process left unfinished), connects the Dask
+client (``Settings.scheduler`` or an embedded LocalCluster) and starts the dispatcher; at shut-down
+it fails and stops the jobs still running. Exceptions become problem documents in
+``service.problems`` only.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextvars
+import datetime as dt
+import ipaddress
+import json
+import logging
+from collections.abc import AsyncIterator, Callable
+from contextlib import AbstractContextManager, asynccontextmanager
+from typing import Any
+
+from fastapi import FastAPI
+from starlette.types import ASGIApp, Message, Receive, Scope, Send
+
+from service import problems
+from service.cluster import dask_client
+from service.deps import Authorized
+from service.jobs import JobDispatcher, Runner, current_job_id, recover_after_restart
+from service.jobstore import JobStore, SqliteJobStore
+from service.routes import health, jobs, landing, processes
+from service.runner import run_job
+from service.settings import Settings
+
+__all__ = ["BodyLimit", "JsonFormatter", "check_serving", "create_app", "log_config"]
+
+ClientFactory = Callable[[Settings], AbstractContextManager[Any]]
+SHUTDOWN_WAIT_S = 30.0
+
+log = logging.getLogger("demaudit.api")
+
+
+def _default_client(settings: Settings) -> AbstractContextManager[Any]:
+    return dask_client(
+        settings.scheduler,
+        workers=settings.local_workers,
+        memory_limit=settings.worker_memory_limit,
+    )
+
+
+def check_serving(settings: Settings, *, host: str | None = None) -> None:
+    """Refuse unsafe settings: no tokens without insecure_local, insecure_local off loopback,
+    no data roots without insecure_local. Raises ValueError saying what to change."""
+    if not settings.api_tokens and not settings.insecure_local:
+        raise ValueError(
+            "no API tokens: set DEMAUDIT_API_TOKENS (comma-separated), or pass --insecure-local "
+            "to serve without authentication on a loopback address"
+        )
+    local_only = settings.insecure_local and not settings.api_tokens
+    if local_only and host is not None and not _is_loopback(host):
+        raise ValueError(f"--insecure-local serves only on a loopback address, not {host!r}")
+    if settings.data_roots is None and not settings.insecure_local:
+        raise ValueError("no data roots: set DEMAUDIT_DATA_ROOTS to the folders job specs may read")
+
+
+def _is_loopback(host: str) -> bool:
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+def create_app(
+    settings: Settings,
+    *,
+    store: JobStore | None = None,
+    runner: Runner = run_job,
+    client_factory: ClientFactory = _default_client,
+) -> FastAPI:
+    """The app. store, runner and client_factory replace the SQLite store, the real runner and
+    the Dask client (tests)."""
+    check_serving(settings)
+
+    @asynccontextmanager
+    async def lifespan(app: FastAPI) -> AsyncIterator[None]:
+        job_store = store if store is not None else SqliteJobStore(settings.job_store)
+        recover_after_restart(job_store)
+        cluster = client_factory(settings)
+        # enter and leave the client in one context: distributed.Client keeps a ContextVar token
+        context = contextvars.copy_context()
+        loop = asyncio.get_running_loop()
+        client = await loop.run_in_executor(None, context.run, cluster.__enter__)
+        dispatcher = JobDispatcher(
+            job_store,
+            client=client,
+            results_dir=settings.results_dir,
+            grid_dirs=settings.grid_dirs,
+            max_running_jobs=settings.max_running_jobs,
+            retries=settings.task_retries,
+            runner=runner,
+        )
+        app.state.store = job_store
+        app.state.client = client
+        app.state.dispatcher = dispatcher
+        app.state.metrics = health.metrics_registry(job_store, client)
+        log.info("serving; results in %s", settings.results_dir.resolve())
+        try:
+            yield
+        finally:
+            await asyncio.to_thread(dispatcher.close, timeout=SHUTDOWN_WAIT_S)
+            await loop.run_in_executor(None, context.run, cluster.__exit__, None, None, None)
+            if store is None:
+                job_store.close()
+
+    app = FastAPI(
+        title="demaudit",
+        version="0.1.0",
+        summary="Vertical accuracy audits of tiled DEMs (OGC API - Processes - Part 1: Core)",
+        lifespan=lifespan,
+    )
+    app.state.settings = settings
+    problems.install(app)
+    app.include_router(landing.router, dependencies=[Authorized])
+    app.include_router(processes.router, dependencies=[Authorized])
+    app.include_router(jobs.router, dependencies=[Authorized])
+    app.include_router(health.router)
+    app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
+    return app
+
+
+class BodyLimit:
+    """ASGI middleware: refuse request bodies over max_bytes with 413 (a problem document).
+
+    A declared Content-Length is checked before reading; a body without one is read up to the
+    limit and replayed to the app.
+    """
+
+    def __init__(self, app: ASGIApp, *, max_bytes: int) -> None:
+        self.app = app
+        self.max_bytes = max_bytes
+
+    async def __call__(self, scope: Scope, receive: Receive, send: Send) -> None:
+        if scope["type"] != "http":
+            await self.app(scope, receive, send)
+            return
+        headers = dict(scope.get("headers") or [])
+        declared = headers.get(b"content-length")
+        if declared is not None:
+            size = int(declared) if declared.isdigit() else -1
+            if size < 0:
+                await self._refuse(scope, receive, send, 400, "Content-Length is not a number")
+                return
+            if size > self.max_bytes:
+                await self._too_large(scope, receive, send)
+                return
+            await self.app(scope, receive, send)  # the server stops at Content-Length
+            return
+        if b"transfer-encoding" not in headers:
+            await self.app(scope, receive, send)
+            return
+        chunks: list[bytes] = []
+        size = 0
+        while True:
+            message = await receive()
+            if message["type"] != "http.request":
+                return  # the client went away
+            chunk = message.get("body", b"")
+            size += len(chunk)
+            if size > self.max_bytes:
+                await self._too_large(scope, receive, send)
+                return
+            chunks.append(chunk)
+            if not message.get("more_body", False):
+                break
+        replayed = False
+
+        async def replay() -> Message:
+            nonlocal replayed
+            if replayed:
+                return await receive()
+            replayed = True
+            return {"type": "http.request", "body": b"".join(chunks), "more_body": False}
+
+        await self.app(scope, replay, send)
+
+    async def _too_large(self, scope: Scope, receive: Receive, send: Send) -> None:
+        await self._refuse(
+            scope, receive, send, 413, f"request bodies are limited to {self.max_bytes} bytes"
+        )
+
+    async def _refuse(
+        self, scope: Scope, receive: Receive, send: Send, status: int, detail: str
+    ) -> None:
+        problem = problems.BodyTooLargeError if status == 413 else problems.BadRequestError
+        response = problems.problem_response(
+            status,
+            type=problem.type,
+            title=problem.title,
+            detail=detail,
+            instance=scope.get("path"),
+            headers={"Connection": "close"},
+        )
+        await response(scope, receive, send)
+
+
+class JsonFormatter(logging.Formatter):
+    """One JSON object per line: time (UTC), level, logger, message, job_id (when known), exc."""
+
+    def format(self, record: logging.LogRecord) -> str:
+        entry: dict[str, Any] = {
+            "time": dt.datetime.fromtimestamp(record.created, dt.UTC)
+            .isoformat(timespec="milliseconds")
+            .replace("+00:00", "Z"),
+            "level": record.levelname,
+            "logger": record.name,
+            "message": record.getMessage(),
+        }
+        job_id = getattr(record, "job_id", None) or current_job_id.get()
+        if job_id:
+            entry["job_id"] = job_id
+        if record.exc_info:
+            entry["exc"] = self.formatException(record.exc_info)
+        return json.dumps(entry, default=str)
+
+
+def log_config(level: str = "INFO") -> dict[str, Any]:
+    """A logging configuration (for uvicorn's log_config) writing JSON lines to stderr."""
+    handler = {"class": "logging.StreamHandler", "formatter": "json", "stream": "ext://sys.stderr"}
+    return {
+        "version": 1,
+        "disable_existing_loggers": False,
+        "formatters": {"json": {"()": JsonFormatter}},
+        "handlers": {"default": handler},
+        "loggers": {
+            "uvicorn": {"handlers": ["default"], "level": level, "propagate": False},
+            "uvicorn.error": {"level": level},
+            "uvicorn.access": {"handlers": ["default"], "level": level, "propagate": False},
+            "demaudit": {"handlers": ["default"], "level": level, "propagate": False},
+        },
+    }
