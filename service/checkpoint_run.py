@@ -128,7 +128,6 @@ def _sample(
         client.submit(
             sample_test_tile,
             tests[k].tile_id,
-            tests[k].bounds,
             index.overlapping(tests[k].grid.expanded(2)),
             pts,
             nodata=options.test_nodata,

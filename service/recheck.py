@@ -6,16 +6,17 @@ from __future__ import annotations
 import json
 from collections.abc import Mapping
 from dataclasses import dataclass
+from functools import cached_property
 from pathlib import Path
 from typing import Any
 
 import numpy as np
-import xarray as xr
+import zarr
 
 from workers.catalog import TileInfo
 from workers.errors import SpecError
 from workers.recheck import ChangePlan, Thresholds, compare, lost_grades, plan
-from workers.summary_store import read_excluded, read_tile_summaries, result_from_entries
+from workers.summary_store import TileSummaryStore, result_from_entries
 from workers.tile_task import TileResult
 from workers.writers import SUMMARY_NAME, ZARR_NAME
 
@@ -42,9 +43,23 @@ class Baseline:
     def zarr(self) -> Path:
         return self.folder / ZARR_NAME
 
-    @property
+    @cached_property
     def tiles(self) -> dict[str, dict[str, Any]]:
         return {t["tile"]: t for t in self.document.get("tiles", [])}
+
+    @cached_property
+    def summaries(self) -> TileSummaryStore:
+        return TileSummaryStore(self.zarr)
+
+    @cached_property
+    def overview(self) -> tuple[Any, np.ndarray, np.ndarray] | None:
+        """The baseline's dh overview array and its x and y centre coordinates (None if none)."""
+        try:
+            root: Any = zarr.open_group(str(self.zarr), mode="r")
+            group = root["dh_overview"]
+            return group["dh"], np.asarray(group["x"][:]), np.asarray(group["y"][:])
+        except (KeyError, FileNotFoundError, OSError):
+            return None
 
 
 def load_baseline(folder: Path) -> Baseline:
@@ -88,8 +103,8 @@ def make_plan(
 
 def reused_result(baseline: Baseline, tile_id: str) -> TileResult:
     """A tile's result rebuilt from the baseline's stored summaries (no pixel is read)."""
-    entries = read_tile_summaries(baseline.zarr, tile_id)
-    result = result_from_entries(tile_id, entries, excluded=read_excluded(baseline.zarr, tile_id))
+    entries, excluded = baseline.summaries.read(tile_id)
+    result = result_from_entries(tile_id, entries, excluded=excluded)
     record = baseline.tiles[tile_id]
     overview = _overview_block(baseline, record.get("bounds"))
     return TileResult(
@@ -107,14 +122,15 @@ def reused_result(baseline: Baseline, tile_id: str) -> TileResult:
 
 
 def _overview_block(baseline: Baseline, bounds: list[float] | None) -> np.ndarray | None:
-    if not bounds:
+    if not bounds or baseline.overview is None:
         return None
-    try:
-        ds = xr.open_zarr(baseline.zarr, group="dh_overview")
-    except (KeyError, FileNotFoundError, OSError):
-        return None
+    array, x, y = baseline.overview
     left, bottom, right, top = bounds
-    block = ds["dh"].sel(x=slice(left, right), y=slice(top, bottom)).values
+    cols = np.flatnonzero((x > left) & (x < right))
+    rows = np.flatnonzero((y > bottom) & (y < top))
+    if cols.size == 0 or rows.size == 0:
+        return None
+    block = array[rows[0] : rows[-1] + 1, cols[0] : cols[-1] + 1]
     return np.asarray(block, dtype=np.float32)
 
 

@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import datetime as dt
 import uuid
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -22,7 +22,7 @@ from service.coregistration import estimate_job_correction
 from service.recheck import change_report, load_baseline, make_plan, reused_result
 from workers import regions as region_ops
 from workers import summary as dh_summary
-from workers.catalog import ScanFailure, TileIndex, TileInfo, scan_tile
+from workers.catalog import Known, ScanFailure, TileIndex, TileInfo, scan_tile
 from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation
 from workers.errors import AuditError, EmptyOverlapError, TileReadError
 from workers.grading import Measured
@@ -32,7 +32,7 @@ from workers.regions import Region
 from workers.report import area_entry, build_summary, region_entries
 from workers.spec import ELLIPSOIDAL, ResolvedJob
 from workers.summary import statistics
-from workers.summary_store import entries_of, write_tile_summaries
+from workers.summary_store import TileSummaryStore, entries_of
 from workers.tile_task import ALL, FAILED, OK, TileOptions, TileResult, audit_tile
 from workers.writers import (
     ResultsStore,
@@ -82,7 +82,9 @@ def run_job(
     run_id = run_id or uuid.uuid4().hex[:12]
     out_dir.mkdir(parents=True, exist_ok=True)
     options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
-    catalog = _catalog(client, job, options)
+    prior = load_baseline(baseline) if baseline is not None else None
+    known = {k: tuple(v) for k, v in (prior.document.get("files", {}) if prior else {}).items()}
+    catalog = _catalog(client, job, options, known)  # type: ignore[arg-type]
     coregistration: dict[str, Any] | None = None
     tile_shifts: dict[str, dict[str, Any]] = {}
     if options.coregistration is not None:
@@ -98,7 +100,6 @@ def run_job(
 
     sources = catalog.source_fingerprints()
     change: ChangePlan | None = None
-    prior = load_baseline(baseline) if baseline is not None else None
     if prior is not None:
         if options.coregistration is not None and options.coregistration.estimate_from == "job":
             prior = None  # the job-wide correction touches every tile: recompute all
@@ -113,6 +114,7 @@ def run_job(
 
     layout = overview_layout(catalog.tests, factor=job.spec.options.overview_factor)
     store = ResultsStore(out_dir, layout)
+    summaries = TileSummaryStore(store.path, mode="a")
     region_ids = [r.region_id for r in catalog.regions]
     acc = JobAccumulator(region_ids=region_ids)
     after = JobAccumulator(region_ids=region_ids)
@@ -132,7 +134,8 @@ def run_job(
         to_compute = [by_id[t] for t in sorted(change.recompute)] if raster else []
         for tile_id in change.reuse:
             result = reused_result(prior, tile_id)
-            _fold(result, acc, after, store)
+            _fold(result, acc, after, store, None)
+            summaries.copy_from(prior.zarr, tile_id)
             records[tile_id] = prior.tiles[tile_id]
     futures = [
         client.submit(
@@ -158,7 +161,7 @@ def run_job(
             )
         result = _result_of(future)
         future.release()
-        _fold(result, acc, after, store)
+        _fold(result, acc, after, store, summaries)
         records[result.tile_id] = _tile_record(
             result.tile_id,
             result.status,
@@ -205,6 +208,7 @@ def run_job(
         coregistration=coregistration,
     )
     document["sources"] = sources
+    document["files"] = catalog.files()
     if job.spec.checkpoints is not None:
         document["checkpoints"] = audit_checkpoints(
             client,
@@ -225,17 +229,20 @@ def run_job(
 
 
 def _fold(
-    result: TileResult, acc: JobAccumulator, after: JobAccumulator, store: ResultsStore
+    result: TileResult,
+    acc: JobAccumulator,
+    after: JobAccumulator,
+    store: ResultsStore,
+    summaries: TileSummaryStore | None,
 ) -> None:
-    """Merge one tile's result into the running totals and write its overview and summaries."""
+    """Merge one tile's result into the running totals and write its overview and (unless
+    summaries is None) its tile summaries."""
     acc.add(result)
     if result.corrected is not None:
         after.add(result.corrected)
     store.write_overview(result.tile_id, result.overview)
-    if result.status == OK:
-        write_tile_summaries(
-            store.path, result.tile_id, entries_of(result), excluded=result.excluded
-        )
+    if result.status == OK and summaries is not None:
+        summaries.write(result.tile_id, entries_of(result), excluded=result.excluded)
 
 
 def _indicative_grading(acc: JobAccumulator, job: ResolvedJob) -> list[dict[str, Any]]:
@@ -280,6 +287,13 @@ class _Catalog:
             f"landcover:{t.tile_id}" for t in self.landcover_of(tile)
         ]
 
+    def files(self) -> dict[str, list[Any]]:
+        """Path -> [size, modification time ns, fingerprint] of every tile scanned."""
+        return {
+            t.path: [t.size_bytes, t.mtime_ns, t.fingerprint]
+            for t in (*self.tests, *self.references, *self.landcover)
+        }
+
     def source_fingerprints(self) -> dict[str, str]:
         """Fingerprints of every reference and land-cover tile, ids prefixed by kind."""
         return {f"reference:{t.tile_id}": t.fingerprint for t in self.references} | {
@@ -287,11 +301,13 @@ class _Catalog:
         }
 
 
-def _catalog(client: Client, job: ResolvedJob, options: TileOptions) -> _Catalog:
+def _catalog(
+    client: Client, job: ResolvedJob, options: TileOptions, known: Mapping[str, Known]
+) -> _Catalog:
     """Scan every tile on the cluster, index the reference, check overlap, geoid and regions."""
-    test_tiles, test_failures = _scan(client, job.test_tiles)
-    ref_tiles, ref_failures = _scan(client, job.reference_tiles)
-    cover_tiles, cover_failures = _scan(client, job.landcover_tiles)
+    test_tiles, test_failures = _scan(client, job.test_tiles, known)
+    ref_tiles, ref_failures = _scan(client, job.reference_tiles, known)
+    cover_tiles, cover_failures = _scan(client, job.landcover_tiles, known)
     if not test_tiles:
         raise TileReadError("no test tile could be read: " + _reasons(test_failures))
     if job.reference_tiles and not ref_tiles:
@@ -329,8 +345,11 @@ def _result_of(future: Future) -> TileResult:
     return result
 
 
-def _scan(client: Client, paths: Sequence[Path]) -> tuple[list[TileInfo], list[ScanFailure]]:
-    futures = client.map(scan_tile, [str(p) for p in paths], pure=False)
+def _scan(
+    client: Client, paths: Sequence[Path], known: Mapping[str, Known]
+) -> tuple[list[TileInfo], list[ScanFailure]]:
+    names = [str(p) for p in paths]
+    futures = client.map(scan_tile, names, [known.get(n) for n in names], pure=False)
     scanned = client.gather(futures)
     ok = [s for s in scanned if isinstance(s, TileInfo)]
     failed = [s for s in scanned if isinstance(s, ScanFailure)]

@@ -9,13 +9,13 @@ from __future__ import annotations
 import hashlib
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 from pathlib import Path
 
 import numpy as np
 import rasterio
-from pyproj import CRS
+from pyproj import CRS, Transformer
 from rasterio.errors import RasterioIOError
-from rasterio.warp import transform_bounds
 from shapely import STRtree, box
 
 from workers.errors import MissingCRSError, TileReadError
@@ -35,6 +35,7 @@ class TileInfo:
     dtype: str
     size_bytes: int
     fingerprint: str
+    mtime_ns: int = 0
 
     @property
     def bounds(self) -> tuple[float, float, float, float]:
@@ -55,15 +56,23 @@ def tile_id_of(path: str | Path) -> str:
     return Path(path).stem
 
 
-def scan_tile(path: str | Path) -> TileInfo | ScanFailure:
-    """Read a tile's header and fingerprint; a failure is returned, not raised."""
+Known = tuple[int, int, str]  # size in bytes, modification time (ns), fingerprint
+
+
+def scan_tile(path: str | Path, known: Known | None = None) -> TileInfo | ScanFailure:
+    """Read a tile's header and fingerprint; a failure is returned, not raised.
+
+    ``known`` is what an earlier scan found for this path: when size and modification time are
+    unchanged its fingerprint is reused, otherwise the content is hashed again (so a touched but
+    unchanged file keeps its fingerprint, only costing the hash).
+    """
     try:
-        return _scan(Path(path))
+        return _scan(Path(path), known)
     except (TileReadError, MissingCRSError) as exc:
         return ScanFailure(tile_id_of(path), str(path), str(exc))
 
 
-def _scan(path: Path) -> TileInfo:
+def _scan(path: Path, known: Known | None) -> TileInfo:
     try:
         with rasterio.open(path) as src:
             if src.crs is None:
@@ -80,14 +89,17 @@ def _scan(path: Path) -> TileInfo:
             dtype = src.dtypes[0]
     except RasterioIOError as exc:
         raise TileReadError(f"tile {path.name} cannot be opened: {exc}") from None
+    stat = path.stat()
+    same = known is not None and (known[0], known[1]) == (stat.st_size, stat.st_mtime_ns)
     return TileInfo(
         tile_id=tile_id_of(path),
         path=str(path),
         grid=grid,
         nodata=nodata,
         dtype=dtype,
-        size_bytes=path.stat().st_size,
-        fingerprint=file_fingerprint(path),
+        size_bytes=stat.st_size,
+        fingerprint=known[2] if same and known is not None else file_fingerprint(path),
+        mtime_ns=stat.st_mtime_ns,
     )
 
 
@@ -98,6 +110,21 @@ def file_fingerprint(path: Path) -> str:
         while block := fh.read(_FINGERPRINT_BLOCK):
             digest.update(block)
     return digest.hexdigest()
+
+
+@lru_cache(maxsize=64)
+def _crs(wkt: str) -> CRS:
+    return CRS.from_wkt(wkt)
+
+
+@lru_cache(maxsize=64)
+def _transformer(source: str, target: str) -> Transformer:
+    return Transformer.from_crs(_crs(source), _crs(target), always_xy=True)
+
+
+@lru_cache(maxsize=256)
+def _same_crs(a: str, b: str) -> bool:
+    return _crs(a).equals(_crs(b))
 
 
 class TileIndex:
@@ -118,11 +145,10 @@ class TileIndex:
     def overlapping(self, grid: Grid) -> list[TileInfo]:
         """Tiles whose footprint overlaps the footprint of grid (any CRS)."""
         found: list[TileInfo] = []
-        source = CRS.from_wkt(grid.crs)
         for crs, (members, tree) in self._groups.items():
             bounds = grid.bounds
-            if not CRS.from_wkt(crs).equals(source):
-                bounds = transform_bounds(source, CRS.from_wkt(crs), *bounds, densify_pts=21)
+            if crs != grid.crs and not _same_crs(crs, grid.crs):
+                bounds = _transformer(grid.crs, crs).transform_bounds(*bounds, densify_pts=21)
             query = box(*bounds)
             hits = tree.query(query, predicate="intersects")
             found.extend(

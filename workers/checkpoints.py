@@ -180,7 +180,6 @@ def bilinear_at(
 
 def sample_test_tile(
     tile_id: str,
-    bounds: tuple[float, float, float, float],
     tiles: list[Any],
     points: list[tuple[str, float, float]],
     *,
@@ -195,13 +194,15 @@ def sample_test_tile(
     from workers.errors import AuditError
     from workers.rasters import read_mosaic
 
+    xs = np.array([p[1] for p in points])
+    ys = np.array([p[2] for p in points])
+    # read only the window around the points (plus two pixels), not the whole tile
+    window = (float(xs.min()), float(ys.min()), float(xs.max()), float(ys.max()))
     try:
-        mosaic, grid = read_mosaic(tiles, bounds, nodata=nodata, margin_px=2)
+        mosaic, grid = read_mosaic(tiles, window, nodata=nodata, margin_px=2)
     except (AuditError, RasterioError, OSError) as exc:
         return [(pid, None, f"test tile {tile_id} unreadable: {exc}") for pid, _, _ in points]
     heights = to_metres(mosaic, units)
-    xs = np.array([p[1] for p in points])
-    ys = np.array([p[2] for p in points])
     values, reasons = bilinear_at(heights, grid, xs, ys)
     return [
         (pid, None if reason else float(v), reason)

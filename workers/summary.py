@@ -81,33 +81,42 @@ def summarise(values: ArrayLike) -> DhSummary:
 
 def merge(a: DhSummary, b: DhSummary) -> DhSummary:
     """Merge two summaries; the result summarises the union of their values."""
-    if a.count == 0:
-        return b
-    if b.count == 0:
-        return a
-    n = a.count + b.count
-    delta = b.mean - a.mean
-    mean = a.mean + delta * b.count / n
-    m2 = a.m2 + b.m2 + delta * delta * a.count * b.count / n
-    bins, inverse = np.unique(np.concatenate([a.bins, b.bins]), return_inverse=True)
-    counts = np.bincount(inverse, weights=np.concatenate([a.counts, b.counts]))
+    return merge_all((a, b))
+
+
+def merge_all(summaries: Iterable[DhSummary]) -> DhSummary:
+    """Merge any number of summaries at once (the empty summary when there are none).
+
+    Moments merge with Chan's formula; histograms by one sort of all their bins, with integer
+    counts added exactly.
+    """
+    parts = [s for s in summaries if s.count]
+    if not parts:
+        return empty()
+    if len(parts) == 1:
+        return parts[0]
+    n, mean, m2 = 0, 0.0, 0.0
+    for s in parts:
+        total = n + s.count
+        delta = s.mean - mean
+        mean += delta * s.count / total
+        m2 += s.m2 + delta * delta * n * s.count / total
+        n = total
+    all_bins = np.concatenate([s.bins for s in parts])
+    all_counts = np.concatenate([s.counts for s in parts])
+    order = np.argsort(all_bins, kind="stable")
+    sorted_bins = all_bins[order]
+    starts = np.flatnonzero(np.r_[True, sorted_bins[1:] != sorted_bins[:-1]])
+    counts = np.add.reduceat(all_counts[order], starts)
     return DhSummary(
         n,
         float(mean),
         float(m2),
-        min(a.minimum, b.minimum),
-        max(a.maximum, b.maximum),
-        bins.astype(np.int64),
-        np.rint(counts).astype(np.int64),
+        min(s.minimum for s in parts),
+        max(s.maximum for s in parts),
+        sorted_bins[starts].astype(np.int64),
+        counts.astype(np.int64),
     )
-
-
-def merge_all(summaries: Iterable[DhSummary]) -> DhSummary:
-    """Merge any number of summaries (the empty summary when there are none)."""
-    result = empty()
-    for s in summaries:
-        result = merge(result, s)
-    return result
 
 
 def statistics(s: DhSummary) -> dict[str, float | int | None]:

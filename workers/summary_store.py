@@ -9,8 +9,9 @@ a region id or ``*`` (the whole tile); stratum is a stratum key or ``""`` (no st
 from __future__ import annotations
 
 import math
+import shutil
 from pathlib import Path
-from typing import Any
+from typing import Any, Literal
 
 import numpy as np
 import zarr
@@ -66,67 +67,89 @@ def result_from_entries(
     )
 
 
+class TileSummaryStore:
+    """The ``tile_summaries`` group of one results.zarr, opened once (mode 'r' or 'a')."""
+
+    def __init__(self, zarr_path: Path, *, mode: Literal["r", "a"] = "r") -> None:
+        self.zarr_path = Path(zarr_path)
+        root: Any = zarr.open_group(
+            str(zarr_path),
+            mode=mode,
+            zarr_format=3 if mode == "a" else None,
+            use_consolidated=False,
+        )
+        self._parent: Any = root.require_group(GROUP) if mode == "a" else root[GROUP]
+
+    def write(self, tile_id: str, entries: dict[Key, DhSummary], *, excluded: int = 0) -> None:
+        """Write (replace) one tile's summaries."""
+        group = self._parent.create_group(tile_id, overwrite=True)
+        records: list[dict[str, Any]] = []
+        offset = 0
+        for (area, stratum), s in entries.items():
+            records.append(
+                {
+                    "area": area,
+                    "stratum": stratum,
+                    "count": s.count,
+                    "mean": s.mean,
+                    "m2": s.m2,
+                    "min": _finite_or_none(s.minimum),
+                    "max": _finite_or_none(s.maximum),
+                    "offset": offset,
+                    "length": int(s.bins.size),
+                }
+            )
+            offset += int(s.bins.size)
+        empty = np.zeros(0, np.int64)
+        bins = np.concatenate([s.bins for s in entries.values()]) if entries else empty
+        counts = np.concatenate([s.counts for s in entries.values()]) if entries else empty
+        group.create_array("bins", data=bins.astype(np.int32), chunks=(max(bins.size, 1),))
+        group.create_array("counts", data=counts.astype(np.int64), chunks=(max(counts.size, 1),))
+        group.attrs.update({"entries": records, "excluded": int(excluded)})
+
+    def read(self, tile_id: str) -> tuple[dict[Key, DhSummary], int]:
+        """A tile's summaries and its excluded-pixel count (KeyError when not stored)."""
+        group = self._parent[tile_id]
+        bins = np.asarray(group["bins"][:], dtype=np.int64)
+        counts = np.asarray(group["counts"][:], dtype=np.int64)
+        out: dict[Key, DhSummary] = {}
+        attrs = group.attrs.asdict()
+        for r in attrs["entries"]:
+            part = slice(r["offset"], r["offset"] + r["length"])
+            out[(r["area"], r["stratum"])] = DhSummary(
+                int(r["count"]),
+                float(r["mean"]),
+                float(r["m2"]),
+                math.inf if r["min"] is None else float(r["min"]),
+                -math.inf if r["max"] is None else float(r["max"]),
+                bins[part].copy(),
+                counts[part].copy(),
+            )
+        return out, int(attrs.get("excluded", 0))
+
+    def copy_from(self, other: Path, tile_id: str) -> None:
+        """Copy one tile's stored summaries from another results.zarr, file by file."""
+        target = self.zarr_path / GROUP / tile_id
+        if target.exists():
+            shutil.rmtree(target)
+        shutil.copytree(Path(other) / GROUP / tile_id, target)
+
+
 def write_tile_summaries(
     zarr_path: Path, tile_id: str, entries: dict[Key, DhSummary], *, excluded: int = 0
 ) -> None:
-    """Write (replace) one tile's summaries."""
-    root = zarr.open_group(str(zarr_path), mode="a", zarr_format=3, use_consolidated=False)
-    parent = root.require_group(GROUP)
-    group = parent.create_group(tile_id, overwrite=True)
-    records: list[dict[str, Any]] = []
-    offset = 0
-    for (area, stratum), s in entries.items():
-        records.append(
-            {
-                "area": area,
-                "stratum": stratum,
-                "count": s.count,
-                "mean": s.mean,
-                "m2": s.m2,
-                "min": _finite_or_none(s.minimum),
-                "max": _finite_or_none(s.maximum),
-                "offset": offset,
-                "length": int(s.bins.size),
-            }
-        )
-        offset += int(s.bins.size)
-    bins = np.concatenate([s.bins for s in entries.values()]) if entries else np.zeros(0, np.int64)
-    counts = (
-        np.concatenate([s.counts for s in entries.values()]) if entries else np.zeros(0, np.int64)
-    )
-    group.create_array("bins", data=bins.astype(np.int32), chunks=(max(bins.size, 1),))
-    group.create_array("counts", data=counts.astype(np.int64), chunks=(max(counts.size, 1),))
-    group.attrs["entries"] = records
-    group.attrs["excluded"] = int(excluded)
+    """Write (replace) one tile's summaries (opens the store; see TileSummaryStore)."""
+    TileSummaryStore(zarr_path, mode="a").write(tile_id, entries, excluded=excluded)
 
 
 def read_excluded(zarr_path: Path, tile_id: str) -> int:
     """The tile's count of valid pixels dropped as excluded land cover."""
-    root = zarr.open_group(str(zarr_path), mode="r", use_consolidated=False)
-    group: Any = root[f"{GROUP}/{tile_id}"]
-    return int(group.attrs.get("excluded", 0))
+    return TileSummaryStore(zarr_path).read(tile_id)[1]
 
 
 def read_tile_summaries(zarr_path: Path, tile_id: str) -> dict[Key, DhSummary]:
     """Read back what write_tile_summaries wrote (KeyError when the tile is not stored)."""
-    root = zarr.open_group(str(zarr_path), mode="r", use_consolidated=False)
-    group: Any = root[f"{GROUP}/{tile_id}"]
-    bins = np.asarray(group["bins"][:], dtype=np.int64)
-    counts = np.asarray(group["counts"][:], dtype=np.int64)
-    out: dict[Key, DhSummary] = {}
-    records: list[dict[str, Any]] = group.attrs["entries"]
-    for r in records:
-        part = slice(r["offset"], r["offset"] + r["length"])
-        out[(r["area"], r["stratum"])] = DhSummary(
-            int(r["count"]),
-            float(r["mean"]),
-            float(r["m2"]),
-            math.inf if r["min"] is None else float(r["min"]),
-            -math.inf if r["max"] is None else float(r["max"]),
-            bins[part].copy(),
-            counts[part].copy(),
-        )
-    return out
+    return TileSummaryStore(zarr_path).read(tile_id)[0]
 
 
 def stored_tiles(zarr_path: Path) -> list[str]:

@@ -106,6 +106,7 @@ class ResultsStore:
         if self.path.exists():
             shutil.rmtree(self.path)
         self.layout = layout
+        self._overview_array: Any = None
         if layout is not None:
             self._create_overview(layout)
 
@@ -125,7 +126,12 @@ class ResultsStore:
         dh.encoding["_FillValue"] = np.float32(np.nan)
         with _quiet_zarr():
             dh.to_dataset().to_zarr(  # type: ignore[call-overload]
-                self.path, group="dh_overview", mode="w", compute=False, zarr_format=3
+                self.path,
+                group="dh_overview",
+                mode="w",
+                compute=False,
+                zarr_format=3,
+                consolidated=False,
             )
 
     def write_overview(self, tile_id: str, block: NDArray[np.float32] | None) -> None:
@@ -136,9 +142,11 @@ class ResultsStore:
         rows = slice(row, min(row + block.shape[0], self.layout.height))
         cols = slice(col, min(col + block.shape[1], self.layout.width))
         part = block[: rows.stop - rows.start, : cols.stop - cols.start]
-        ds = xr.Dataset({"dh": (("y", "x"), part)})
-        with _quiet_zarr():
-            ds.to_zarr(self.path, group="dh_overview", region={"y": rows, "x": cols})
+        if self._overview_array is None:
+            self._overview_array = zarr.open_array(
+                str(self.path / "dh_overview" / "dh"), mode="r+", use_consolidated=False
+            )
+        self._overview_array[rows, cols] = part
 
     def finish(self) -> None:
         """Consolidate the metadata and put the store in place of any earlier results.zarr."""
@@ -154,7 +162,9 @@ class ResultsStore:
         for group, table in tables.items():
             mode: Literal["a", "w"] = "a" if self.path.exists() else "w"
             with _quiet_zarr():
-                table.to_zarr(self.path, group=group, mode=mode, zarr_format=3)
+                table.to_zarr(
+                    self.path, group=group, mode=mode, zarr_format=3, consolidated=False
+                )
 
 
 def _affine(t: tuple[float, ...]):  # type: ignore[no-untyped-def]
