@@ -157,3 +157,13 @@ def test_unknown_unit_and_missing_file_are_named(make_archive):
     (root / "job.yaml").write_text(text)
     with pytest.raises(SpecError, match=r"reference\.tiles: no such file"):
         load(root)
+
+
+def test_figures_are_drawn(make_archive, dask_client, tmp_path):
+    from PIL import Image
+
+    root = make_archive(tiles=2, pixels=40)
+    doc = run_job(load(root), tmp_path / "out", client=dask_client)
+    assert "dh_map.png" in doc["figures"]
+    with Image.open(tmp_path / "out" / "dh_map.png") as image:
+        assert image.size[0] > 300 and image.size[1] > 300
