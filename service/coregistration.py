@@ -22,7 +22,7 @@ from shapely.geometry import Point
 
 from workers import regions as region_ops
 from workers.catalog import TileInfo
-from workers.coregister import CannotEstimateError, FitResult, solve
+from workers.coregister import MAX_STANDARD_ERROR_PX, CannotEstimateError, FitResult, solve
 from workers.coregister_tile import Correction, TileEquations
 from workers.regions import Region
 from workers.summary import quantile
@@ -205,7 +205,7 @@ def _pooled(
         "history": history,
     }
     at = _with_optional_fits(at, equations, coreg.fit_tilt, coreg.fit_elevation_bias, report)
-    report["regions"] = _region_shifts(equations, at)
+    report["regions"] = _region_shifts(equations, at, px)
     return at, report
 
 
@@ -269,14 +269,28 @@ def _with_optional_fits(
     return at
 
 
-def _region_shifts(eq: TileEquations, at: Correction) -> dict[str, Any]:
-    """Each region's shift: the job shift plus the region's own one-step update."""
+#: A region's one-step update larger than this (pixels) is not trusted.
+MAX_REGION_UPDATE_PX = 2.0
+
+
+def _region_shifts(eq: TileEquations, at: Correction, pixel_m: float) -> dict[str, Any]:
+    """Each region's shift: the job shift plus the region's own one-step update, refused when
+    the update is large or poorly determined (one step cannot be trusted there)."""
     out: dict[str, Any] = {}
     for region_id, fit in eq.regions.items():
         try:
             f = solve(fit, what=f"region {region_id}")
         except CannotEstimateError as exc:
             out[region_id] = {"status": "cannot_estimate", "reason": str(exc)}
+            continue
+        step_px = float(np.hypot(f.beta[0], f.beta[1])) / pixel_m
+        se_px = max(f.standard_error(0), f.standard_error(1)) / pixel_m
+        if step_px > MAX_REGION_UPDATE_PX or se_px > MAX_STANDARD_ERROR_PX:
+            out[region_id] = {
+                "status": "cannot_estimate",
+                "reason": f"region {region_id}: one-step update {step_px:.1f} px (standard "
+                f"error {se_px:.2f} px) is not trustworthy; try job_estimate: tile_median",
+            }
             continue
         out[region_id] = {
             "status": "ok",

@@ -157,3 +157,18 @@ def test_coregistration_is_in_the_zarr_store(coregistered_doc, coregistered_out)
     assert after.attrs["method"].startswith("median")
     assert after.attrs["east_m"] == pytest.approx(coregistered_doc["coregistration"]["east_m"])
     assert list(after["region"].values) == ["SU", "EW", "HF", "TC"]
+
+
+def test_pooled_estimate_recovers_the_shift(dask_client, tmp_path, truth):
+    # one Nuth & Kääb fit over every stable pixel; the tilted block pulls the bias (not checked)
+    data = job_spec.load_spec_file(DEMO / "demo_coregistered.yaml")
+    data["coregistration"] |= {"job_estimate": "pooled", "fit_elevation_bias": True}
+    job = job_spec.resolve(job_spec.parse_spec(data), base_dir=DEMO)
+    doc = run_job(job, tmp_path / "out", client=dask_client)
+    pooled = doc["coregistration"]
+    pixel = truth["test"]["pixel_size_m"]
+    assert pooled["status"] == "ok" and pooled["converged"]
+    assert abs(pooled["east_m"] - truth["shift"]["east_m"]) < 0.1 * pixel
+    assert abs(pooled["north_m"] - truth["shift"]["north_m"]) < 0.1 * pixel
+    assert "m_per_100m" in pooled["elevation_bias"]
+    assert pooled["regions"]["HF"]["status"] == "cannot_estimate"  # flat fen
