@@ -30,8 +30,10 @@ def archive(cache: Path, tiles: int, pixels: int) -> Path:
     root = cache / f"recheck-{tiles}x{tiles}-{pixels}"
     if not (root / "demo.yaml").is_file():
         t0 = time.perf_counter()
-        make_demo_archive(root, DemoArchiveOptions(tiles_x=tiles, tiles_y=tiles, pixels=pixels,
-                                                   write_update=False))
+        make_demo_archive(
+            root,
+            DemoArchiveOptions(tiles_x=tiles, tiles_y=tiles, pixels=pixels, write_update=False),
+        )
         print(f"generated {tiles * tiles} tiles of {pixels} px in {time.perf_counter() - t0:.0f} s")
     return root
 

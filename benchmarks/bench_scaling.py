@@ -14,7 +14,10 @@ What one run does:
    slow (one process, several seconds per 1000 px tile), so timings are printed as it goes;
 2. runs the real pipeline (``service.runner.run_job``) on each archive on a FRESH local Dask
    cluster (2 worker processes, 1 thread each, 6 GiB limit each), so each worker's peak resident
-   memory (``ru_maxrss``) belongs to that size alone; reports wall time and tiles/s;
+   memory belongs to that size alone; reports wall time and tiles/s. The peak is the worker's
+   ``VmHWM`` (/proc/self/status, reset by exec). ``ru_maxrss`` is printed too but is NOT used:
+   Linux carries the RSS of the process that forked the worker (here the client, which also
+   generated the archives) over fork + exec into ``ru_maxrss``, so it measures the client;
 3. prints the ratio of the peak worker memory of the largest size to that of the smallest and
    whether it stays within 15 % (the acceptance criterion of the "robust statistics at national
    scale" issue);
@@ -92,22 +95,31 @@ def machine_facts() -> dict[str, str]:
     }
 
 
-def worker_peak_rss_kib() -> int:
-    """Peak resident set size of the calling process (Linux: KiB). Run on each worker."""
+@dataclass(frozen=True)
+class ProcessMemory:
+    """Resident memory of one process, KiB: now, peak of its own (exec'd) image, ru_maxrss."""
+
+    rss_kib: int
+    hwm_kib: int
+    ru_maxrss_kib: int
+
+
+def process_memory() -> ProcessMemory:
+    """Memory of the calling process (Linux). Run on each worker with client.run.
+
+    VmHWM belongs to the process's own address space since its exec; ru_maxrss also keeps the
+    peak of the address space it was forked from (see the module docstring).
+    """
     import resource
 
-    return int(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
-
-
-def client_rss_kib() -> tuple[int, int]:
-    """Current and peak resident memory of this (client) process, KiB, from /proc."""
     values: dict[str, int] = {}
     with open("/proc/self/status") as fh:
         for line in fh:
             key, _, rest = line.partition(":")
             if key in ("VmRSS", "VmHWM"):
                 values[key] = int(rest.split()[0])
-    return values.get("VmRSS", 0), values.get("VmHWM", 0)
+    ru_maxrss = int(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss)
+    return ProcessMemory(values.get("VmRSS", 0), values.get("VmHWM", 0), ru_maxrss)
 
 
 def reset_client_peak() -> bool:
@@ -202,10 +214,15 @@ class RunMeasurement:
     wall_s: float
     tiles_ok: int
     tiles_failed: int
-    worker_idle_kib: list[int]
-    worker_peak_kib: list[int]
-    client_rss_kib: int
+    workers_before: list[ProcessMemory]  # after the cluster started, before run_job
+    workers_after: list[ProcessMemory]
+    client_before_kib: int
+    client_after_kib: int
     client_peak_kib: int | None  # None when the kernel refused to reset the peak
+
+    @property
+    def worker_peak_kib(self) -> list[int]:
+        return [m.hwm_kib for m in self.workers_after]
 
     @property
     def tiles_per_s(self) -> float:
@@ -235,16 +252,17 @@ def run_size(archive: Archive, out_dir: Path) -> RunMeasurement:
     job = load_job(archive.spec)
     shutil.rmtree(out_dir, ignore_errors=True)
     peak_reset = reset_client_peak()
+    client_before = process_memory()
     say(f"[run {archive.size}] starting a fresh local cluster ({WORKERS} workers, {MEMORY_LIMIT})")
     started = time.perf_counter()
     with dask_client(None, workers=WORKERS, memory_limit=MEMORY_LIMIT) as client:
         cluster_start_s = time.perf_counter() - started
-        idle = client.run(worker_peak_rss_kib)
+        before = client.run(process_memory)
         started = time.perf_counter()
         document = run_job(job, out_dir, client=client, progress=progress_printer(archive.size))
         wall_s = time.perf_counter() - started
-        peaks = client.run(worker_peak_rss_kib)
-    rss, peak = client_rss_kib()
+        after = client.run(process_memory)
+    client_after = process_memory()
     tiles = document["tiles"]
     failed = sum(1 for t in tiles if t["status"] == "failed")
     for t in tiles:
@@ -257,14 +275,16 @@ def run_size(archive: Archive, out_dir: Path) -> RunMeasurement:
         wall_s=wall_s,
         tiles_ok=sum(1 for t in tiles if t["status"] == "ok"),
         tiles_failed=failed,
-        worker_idle_kib=[idle[k] for k in sorted(idle)],
-        worker_peak_kib=[peaks[k] for k in sorted(peaks)],
-        client_rss_kib=rss,
-        client_peak_kib=peak if peak_reset else None,
+        workers_before=[before[k] for k in sorted(before)],
+        workers_after=[after[k] for k in sorted(after)],
+        client_before_kib=client_before.rss_kib,
+        client_after_kib=client_after.rss_kib,
+        client_peak_kib=client_after.hwm_kib if peak_reset else None,
     )
     say(
         f"[run {archive.size}] {wall_s:.1f} s, {measurement.tiles_per_s:.2f} tiles/s, "
-        f"peak worker RSS {mib(measurement.max_worker_peak_kib)} MiB"
+        f"peak worker RSS {mib(measurement.max_worker_peak_kib)} MiB (VmHWM), "
+        f"ru_maxrss {mib(max(m.ru_maxrss_kib for m in measurement.workers_after))} MiB"
     )
     return measurement
 
@@ -454,20 +474,25 @@ def flatness(runs: Sequence[RunMeasurement]) -> tuple[float, bool]:
 
 def report_runs(runs: Sequence[RunMeasurement], archives: dict[int, Archive]) -> list[str]:
     header = (
-        f"{'tiles':>5} {'layout':>6} {'px':>5} {'archive':>13} {'run_s':>8} {'tiles/s':>8} "
-        f"{'worker peak MiB':>17} {'max MiB':>8} {'idle MiB':>9} {'client MiB':>11} {'failed':>6}"
+        f"{'tiles':>5} {'layout':>6} {'px':>5} {'archive':>12} {'run_s':>7} {'tiles/s':>7} "
+        f"{'worker peak MiB':>15} {'max':>5} {'idle':>5} {'end':>5} {'ru_maxrss':>9} "
+        f"{'client MiB':>16} {'failed':>6}"
     )
     lines = [header]
     for r in runs:
         a = archives[r.size]
         made = "reused" if a.reused else f"made {a.seconds:.0f}s"
         side = a.options.tiles_x
-        client = mib(r.client_peak_kib) if r.client_peak_kib is not None else mib(r.client_rss_kib)
+        peak = mib(r.client_peak_kib) if r.client_peak_kib is not None else "?"
+        client = f"{mib(r.client_before_kib)}/{peak}/{mib(r.client_after_kib)}"
         lines.append(
-            f"{r.size:>5} {f'{side}x{side}':>6} {r.pixels:>5} {made:>13} {r.wall_s:>8.1f} "
-            f"{r.tiles_per_s:>8.2f} {' / '.join(mib(k) for k in r.worker_peak_kib):>17} "
-            f"{mib(r.max_worker_peak_kib):>8} {mib(max(r.worker_idle_kib)):>9} {client:>11} "
-            f"{r.tiles_failed:>6}"
+            f"{r.size:>5} {f'{side}x{side}':>6} {r.pixels:>5} {made:>12} {r.wall_s:>7.1f} "
+            f"{r.tiles_per_s:>7.2f} {' / '.join(mib(k) for k in r.worker_peak_kib):>15} "
+            f"{mib(r.max_worker_peak_kib):>5} "
+            f"{mib(max(m.hwm_kib for m in r.workers_before)):>5} "
+            f"{mib(max(m.rss_kib for m in r.workers_after)):>5} "
+            f"{mib(max(m.ru_maxrss_kib for m in r.workers_after)):>9} "
+            f"{client:>16} {r.tiles_failed:>6}"
         )
     if len(runs) >= 2:
         ratio, ok = flatness(runs)
@@ -550,8 +575,10 @@ def final_table(
         "",
         f"Pipeline: run_job on a fresh LocalCluster per size ({WORKERS} worker processes x 1 "
         f"thread, memory_limit {MEMORY_LIMIT} each).",
-        "worker peak = ru_maxrss of each worker process after the run; idle = the same before "
-        "the run; client = this process's peak RSS during the run.",
+        "worker peak = VmHWM of each worker process after the run (max = the larger); idle = "
+        "VmHWM before the run; end = VmRSS after it;",
+        "ru_maxrss = what getrusage reports on the workers (includes the client's RSS at fork, "
+        "so not used); client = this process's RSS before / peak during / after the run.",
         *report_runs(runs, archives),
         "",
         "Mergeable summaries (workers/summary.py) against numpy, in this process:",

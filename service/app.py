@@ -2,17 +2,18 @@
 
 ::
 
-    request ─► BodyLimit ─► router (landing | processes | jobs | health) ─► deps (token, store)
+    request ─► BodyLimit ─► router (landing | processes | jobs | schedules | health) ─► deps
                                  │ POST execution: workers.spec.resolve (data roots)
                                  ▼
-                    service.jobs.JobDispatcher ── thread per running job ──► service.runner.run_job
-                                 │                                             │ one shared
-                    service.jobstore (SQLite) ◄── status, progress ────────────┘ Dask client
+    service.scheduler ──► service.jobs.JobDispatcher ── thread per job ──► service.runner.run_job
+    (lease holder only)          │ on_end ──► service.notify (webhooks)      │ one shared
+                    service.jobstore (SQLite) ◄── status, progress ──────────┘ Dask client
 
 The lifespan opens the job store (failing jobs a dead process left unfinished), connects the Dask
-client (``Settings.scheduler`` or an embedded LocalCluster) and starts the dispatcher; at shut-down
-it fails and stops the jobs still running. Exceptions become problem documents in
-``service.problems`` only.
+client (``Settings.scheduler`` or an embedded LocalCluster), starts the dispatcher and the
+scheduler loop; at shut-down it stops the scheduler, fails and stops the jobs still running and
+gives pending webhook calls a moment. Exceptions become problem documents in ``service.problems``
+only.
 """
 
 from __future__ import annotations
@@ -35,14 +36,17 @@ from service.cluster import dask_client
 from service.deps import Authorized
 from service.jobs import JobDispatcher, Runner, current_job_id, recover_after_restart
 from service.jobstore import JobStore, SqliteJobStore
-from service.routes import health, jobs, landing, processes
+from service.notify import Notifier
+from service.routes import health, jobs, landing, processes, schedules
 from service.runner import run_job
+from service.scheduler import Clock, Scheduler, resolve_inputs, scaled_clock
 from service.settings import Settings
 
 __all__ = ["BodyLimit", "JsonFormatter", "check_serving", "create_app", "log_config"]
 
 ClientFactory = Callable[[Settings], AbstractContextManager[Any]]
 SHUTDOWN_WAIT_S = 30.0
+WEBHOOK_SHUTDOWN_WAIT_S = 5.0
 
 log = logging.getLogger("demaudit.api")
 
@@ -85,10 +89,16 @@ def create_app(
     store: JobStore | None = None,
     runner: Runner = run_job,
     client_factory: ClientFactory = _default_client,
+    clock: Clock | None = None,
+    webhook_transport: Any = None,
 ) -> FastAPI:
-    """The app. store, runner and client_factory replace the SQLite store, the real runner and
-    the Dask client (tests)."""
+    """The app. store, runner, client_factory, clock and webhook_transport (an httpx
+    transport) replace the SQLite store, the real runner, the Dask client, the scheduler's
+    clock and the network of webhook calls (tests)."""
     check_serving(settings)
+    schedule_clock = clock or scaled_clock(
+        speed=settings.schedule_clock_speed, anchor=settings.schedule_clock_anchor
+    )
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
@@ -99,6 +109,14 @@ def create_app(
         context = contextvars.copy_context()
         loop = asyncio.get_running_loop()
         client = await loop.run_in_executor(None, context.run, cluster.__enter__)
+        notifier = Notifier(
+            job_store,
+            attempts=settings.webhook_attempts,
+            backoff_s=settings.webhook_backoff_s,
+            timeout_s=settings.webhook_timeout_s,
+            public_url=settings.public_url,
+            transport=webhook_transport,
+        )
         dispatcher = JobDispatcher(
             job_store,
             client=client,
@@ -107,16 +125,28 @@ def create_app(
             max_running_jobs=settings.max_running_jobs,
             retries=settings.task_retries,
             runner=runner,
+            on_end=notifier.after_job,
+        )
+        scheduler = Scheduler(
+            job_store,
+            dispatcher,
+            resolve=lambda inputs: resolve_inputs(inputs, data_roots=settings.data_roots),
+            clock=schedule_clock,
+            lease_s=settings.schedule_lease_s,
         )
         app.state.store = job_store
         app.state.client = client
         app.state.dispatcher = dispatcher
+        app.state.scheduler = scheduler
         app.state.metrics = health.metrics_registry(job_store, client)
+        scheduler.start(interval_s=settings.schedule_tick_s)
         log.info("serving; results in %s", settings.results_dir.resolve())
         try:
             yield
         finally:
+            await asyncio.to_thread(scheduler.stop)
             await asyncio.to_thread(dispatcher.close, timeout=SHUTDOWN_WAIT_S)
+            await asyncio.to_thread(notifier.close, timeout=WEBHOOK_SHUTDOWN_WAIT_S)
             await loop.run_in_executor(None, context.run, cluster.__exit__, None, None, None)
             if store is None:
                 job_store.close()
@@ -128,10 +158,12 @@ def create_app(
         lifespan=lifespan,
     )
     app.state.settings = settings
+    app.state.clock = schedule_clock
     problems.install(app)
     app.include_router(landing.router, dependencies=[Authorized])
     app.include_router(processes.router, dependencies=[Authorized])
     app.include_router(jobs.router, dependencies=[Authorized])
+    app.include_router(schedules.router, dependencies=[Authorized])
     app.include_router(health.router)
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
     return app

@@ -1,5 +1,5 @@
 """The ``demaudit`` command line: run a job spec, run the shipped demo, make a demo archive;
-serve the REST API, submit a spec to it and follow a job."""
+serve the REST API, submit a spec to it and follow a job; manage a server's schedules."""
 
 from __future__ import annotations
 
@@ -79,12 +79,48 @@ def _parser() -> argparse.ArgumentParser:
     _add_server_options(status)
     status.add_argument("--watch", action="store_true", help="progress bar until the job ends")
     status.set_defaults(handler=_cmd_status)
+
+    schedule = sub.add_parser("schedule", help="run a job spec on a server on a cron schedule")
+    schedules = schedule.add_subparsers(required=True, metavar="ACTION")
+    add = schedules.add_parser("add", help="add a schedule (e.g. a nightly re-check)")
+    add.add_argument(
+        "spec",
+        type=Path,
+        help="job spec (YAML or JSON); relative paths resolve against the server's first data root",
+    )
+    add.add_argument("--cron", required=True, help="when, in UTC: e.g. '0 2 * * *' (02:00 daily)")
+    add.add_argument("--name", help="name of the schedule (default: the spec's name)")
+    add.add_argument("--webhook", help="URL to POST the change report to")
+    add.add_argument(
+        "--notify",
+        choices=["regressions", "always"],
+        default="regressions",
+        help="call the webhook after runs with regressions (default) or after every run",
+    )
+    add.add_argument(
+        "--baseline",
+        choices=["latest"],
+        help="'latest': re-check against the schedule's last successful run (else full runs)",
+    )
+    _add_connection_options(add)
+    add.set_defaults(handler=_cmd_schedule_add)
+    listing = schedules.add_parser("list", help="list the schedules and their last runs")
+    _add_connection_options(listing)
+    listing.set_defaults(handler=_cmd_schedule_list)
+    remove = schedules.add_parser("remove", help="delete a schedule (its jobs stay)")
+    remove.add_argument("id", help="schedule id")
+    _add_connection_options(remove)
+    remove.set_defaults(handler=_cmd_schedule_remove)
     return parser
 
 
-def _add_server_options(p: argparse.ArgumentParser) -> None:
+def _add_connection_options(p: argparse.ArgumentParser) -> None:
     p.add_argument("--server", required=True, help="base URL, e.g. http://127.0.0.1:8000")
     p.add_argument("--token", help="bearer token (default: DEMAUDIT_TOKEN)")
+
+
+def _add_server_options(p: argparse.ArgumentParser) -> None:
+    _add_connection_options(p)
     p.add_argument("--interval", type=float, default=1.0, help="seconds between polls")
 
 
@@ -241,6 +277,86 @@ def _cmd_status(args: argparse.Namespace, settings: Settings) -> int:
     except httpx.HTTPError as exc:
         print(f"demaudit: error: cannot reach {args.server}: {exc}", file=sys.stderr)
         return 2
+
+
+def _cmd_schedule_add(args: argparse.Namespace, settings: Settings) -> int:
+    data = job_spec.load_spec_file(args.spec)
+    name = args.name or (data.get("name") if isinstance(data, dict) else None) or args.spec.stem
+    body: dict[str, Any] = {"name": str(name), "cron": args.cron, "inputs": data}
+    body["notify"] = args.notify
+    if args.webhook:
+        body["webhook"] = args.webhook
+    if args.baseline:
+        body["baseline"] = args.baseline
+
+    def added(response: Any) -> int:
+        if response.status_code != 201:
+            print(f"demaudit: error: {_problem_text(response)}", file=sys.stderr)
+            return 2
+        schedule = response.json()
+        print(f"schedule {schedule['id']} added: next run {_when(schedule['nextRun'])}")
+        return 0
+
+    return _call(args, settings, lambda http: added(http.post("/schedules", json=body)))
+
+
+def _cmd_schedule_list(args: argparse.Namespace, settings: Settings) -> int:
+    def listed(response: Any) -> int:
+        if response.status_code != 200:
+            print(f"demaudit: error: {_problem_text(response)}", file=sys.stderr)
+            return 2
+        rows = response.json()["schedules"]
+        if not rows:
+            print("no schedules")
+            return 0
+        print(f"{'id':<34}{'name':<22}{'cron':<16}{'next run (UTC)':<19}last run")
+        for s in rows:
+            last = s.get("lastRun")
+            done = "-"
+            if last:
+                done = f"{_when(last['slot'])} {last['outcome']}"
+                if last.get("jobStatus"):
+                    done += f" (job {last['jobID'][:12]} {last['jobStatus']})"
+            print(
+                f"{s['id']:<34}{s['name'][:21]:<22}{s['cron']:<16}{_when(s['nextRun']):<19}{done}"
+            )
+        return 0
+
+    return _call(
+        args, settings, lambda http: listed(http.get("/schedules", params={"limit": 1000}))
+    )
+
+
+def _cmd_schedule_remove(args: argparse.Namespace, settings: Settings) -> int:
+    def removed(response: Any) -> int:
+        if response.status_code != 204:
+            print(f"demaudit: error: {_problem_text(response)}", file=sys.stderr)
+            return 2
+        print(f"schedule {args.id} removed")
+        return 0
+
+    return _call(args, settings, lambda http: removed(http.delete(f"/schedules/{args.id}")))
+
+
+def _call(args: argparse.Namespace, settings: Settings, request: Any) -> int:
+    """request(http client) -> exit status, with a readable error when the server is away."""
+    import httpx
+
+    try:
+        with _http(args, settings) as http:
+            return int(request(http))
+    except httpx.HTTPError as exc:
+        print(f"demaudit: error: cannot reach {args.server}: {exc}", file=sys.stderr)
+        return 2
+
+
+def _when(stamp: str | None) -> str:
+    """An ISO time as 'YYYY-MM-DD HH:MM' (UTC), or '-'."""
+    if not stamp:
+        return "-"
+    from datetime import UTC, datetime
+
+    return datetime.fromisoformat(stamp).astimezone(UTC).strftime("%Y-%m-%d %H:%M")
 
 
 def _watch(http: Any, job_id: str, *, interval: float) -> int:

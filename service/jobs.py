@@ -10,6 +10,8 @@
 (``max_running_jobs``); the rest wait as ``accepted``. All jobs share one Dask client. Every
 status change is a compare-and-set in the job store, so a dismissal racing the end of a job
 leaves one consistent record. A job that does not end successfully leaves no results behind.
+A scheduled run (``service.scheduler``) carries its schedule's id and may name a baseline run;
+``on_end`` hears of every job's end (``service.notify`` sends the schedules' webhooks).
 """
 
 from __future__ import annotations
@@ -43,6 +45,7 @@ from workers.spec import ResolvedJob
 __all__ = [
     "PROCESS_ID",
     "RESTART_MESSAGE",
+    "EndHook",
     "JobDispatcher",
     "Runner",
     "current_job_id",
@@ -66,7 +69,8 @@ log = logging.getLogger("demaudit.jobs")
 
 
 class Runner(Protocol):
-    """What runs one job: ``service.runner.run_job`` or a stand-in in tests."""
+    """What runs one job: ``service.runner.run_job`` or a stand-in in tests (``baseline`` is
+    passed only when a scheduled run names one)."""
 
     def __call__(
         self,
@@ -79,7 +83,13 @@ class Runner(Protocol):
         should_stop: Callable[[], bool],
         run_id: str,
         retries: int,
+        baseline: Path | None = None,
     ) -> dict[str, Any]: ...
+
+
+EndHook = Callable[[JobRecord, dict[str, Any] | None], None]
+"""Called on the job's thread once a job has ended: its final record and, when it succeeded,
+its summary document."""
 
 
 def new_job_id() -> str:
@@ -113,8 +123,10 @@ class JobDispatcher:
         max_running_jobs: int = 4,
         retries: int = 1,
         runner: Runner = run_job,
+        on_end: EndHook | None = None,
     ) -> None:
         self.store = store
+        self._on_end = on_end
         self.results_dir = Path(results_dir)
         self._client = client
         self._grid_dirs = tuple(grid_dirs)
@@ -130,8 +142,16 @@ class JobDispatcher:
         """The output folder of job_id (summary.json, results.zarr)."""
         return self.results_dir / job_id
 
-    def submit(self, job: ResolvedJob, inputs: dict[str, Any]) -> JobRecord:
-        """Record a new job as accepted and queue it; return its record."""
+    def submit(
+        self,
+        job: ResolvedJob,
+        inputs: dict[str, Any],
+        *,
+        schedule_id: str | None = None,
+        baseline: Path | None = None,
+    ) -> JobRecord:
+        """Record a new job as accepted and queue it; return its record. A scheduled run gives
+        its schedule_id, and baseline when it re-checks against an earlier run's folder."""
         now = utc_now()
         record = JobRecord(
             job_id=new_job_id(),
@@ -141,13 +161,16 @@ class JobDispatcher:
             created=now,
             updated=now,
             inputs=inputs,
+            schedule_id=schedule_id,
         )
         with self._lock:
             if self._closing:
                 raise RuntimeError("the dispatcher is shutting down")
             self.store.add(record)
             self._stops[record.job_id] = threading.Event()
-            self._futures[record.job_id] = self._pool.submit(self._run, record.job_id, job)
+            self._futures[record.job_id] = self._pool.submit(
+                self._run, record.job_id, job, baseline
+            )
         log.info("job accepted", extra={"job_id": record.job_id})
         return record
 
@@ -201,17 +224,34 @@ class JobDispatcher:
 
     # --- the job's thread -----------------------------------------------------------------
 
-    def _run(self, job_id: str, job: ResolvedJob) -> None:
+    def _run(self, job_id: str, job: ResolvedJob, baseline: Path | None = None) -> None:
         token = current_job_id.set(job_id)
         try:
-            self._run_job(job_id, job)
+            try:
+                document = self._run_job(job_id, job, baseline)
+            finally:
+                with self._lock:
+                    self._stops.pop(job_id, None)
+                    self._futures.pop(job_id, None)
+            self._ended(job_id, document)
         finally:
-            with self._lock:
-                self._stops.pop(job_id, None)
-                self._futures.pop(job_id, None)
             current_job_id.reset(token)
 
-    def _run_job(self, job_id: str, job: ResolvedJob) -> None:
+    def _ended(self, job_id: str, document: dict[str, Any] | None) -> None:
+        """Tell on_end of the job's end (its failures are logged, never raised)."""
+        if self._on_end is None:
+            return
+        try:
+            record = self.store.get(job_id)
+            if record is not None:
+                self._on_end(record, document if record.status == SUCCESSFUL else None)
+        except Exception:
+            log.exception("end-of-job hook failed", extra={"job_id": job_id})
+
+    def _run_job(
+        self, job_id: str, job: ResolvedJob, baseline: Path | None
+    ) -> dict[str, Any] | None:
+        """Run the job to its end and record it; the summary document when it succeeded."""
         stop = self._stops[job_id]
         started = self.store.update(
             job_id,
@@ -219,9 +259,10 @@ class JobDispatcher:
             only_from={ACCEPTED},
         )
         if started is None:  # dismissed (or the server shut down) while it waited
-            return
+            return None
         log.info("job started", extra={"job_id": job_id})
         out_dir = self.results_path(job_id)
+        extra: dict[str, Any] = {} if baseline is None else {"baseline": baseline}
         try:
             document = self._runner(
                 job,
@@ -232,6 +273,7 @@ class JobDispatcher:
                 should_stop=stop.is_set,
                 run_id=job_id,
                 retries=self._retries,
+                **extra,
             )
         except JobDismissedError:
             self._end_unsuccessful(job_id, None)
@@ -259,6 +301,8 @@ class JobDispatcher:
                 if done is None:  # dismissed or shut down at the last moment
                     self._remove_results(job_id)
             log.info("job %s", message, extra={"job_id": job_id})
+            return document
+        return None
 
     def _end_unsuccessful(self, job_id: str, failure: str | None) -> None:
         """Remove partial outputs, then record the failure (or complete the dismissal's

@@ -7,6 +7,9 @@ status, which a SQL ``UPDATE ... WHERE status IN (...)`` gives in any database.
 
 One API process owns a store: at start-up it fails the jobs a previous process left unfinished
 (:meth:`JobStore.fail_unfinished`), which would be wrong for several processes sharing one store.
+
+The store also keeps the schedules of nightly re-checks: the contract and both implementations
+of that part are in ``service.schedulestore`` (:class:`ScheduleStore`, which JobStore extends).
 """
 
 from __future__ import annotations
@@ -21,6 +24,17 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal, Protocol, get_args
 
+from service.schedulestore import (
+    SCHEDULE_SCHEMA,
+    MemorySchedules,
+    NotifyWhen,
+    RunOutcome,
+    ScheduleRecord,
+    ScheduleRun,
+    ScheduleStore,
+    SqliteSchedules,
+)
+
 __all__ = [
     "ACCEPTED",
     "DISMISSED",
@@ -33,6 +47,10 @@ __all__ = [
     "JobStatus",
     "JobStore",
     "MemoryJobStore",
+    "NotifyWhen",
+    "RunOutcome",
+    "ScheduleRecord",
+    "ScheduleRun",
     "SqliteJobStore",
     "utc_now",
 ]
@@ -71,14 +89,19 @@ class JobRecord:
     tiles_total: int = 0
     inputs: dict[str, Any] = field(default_factory=dict)
     """The job spec as submitted (JSON-compatible)."""
+    schedule_id: str | None = None
+    """The schedule that started this job (None for a job submitted by hand)."""
+    notification: dict[str, Any] | None = None
+    """How the schedule's webhook call after this job went (see ``service.notify``)."""
 
 
 _COLUMNS = tuple(f.name for f in dataclasses.fields(JobRecord))
-_CHANGEABLE = frozenset(_COLUMNS) - {"job_id", "process_id", "created", "inputs"}
+_CHANGEABLE = frozenset(_COLUMNS) - {"job_id", "process_id", "created", "inputs", "schedule_id"}
 
 
-class JobStore(Protocol):
-    """Where job records live. Every method is safe to call from several threads."""
+class JobStore(ScheduleStore, Protocol):
+    """Where job records (and schedules) live. Every method is safe to call from several
+    threads."""
 
     def add(self, record: JobRecord) -> None:
         """Store a new record (its job_id must be new)."""
@@ -136,12 +159,13 @@ def _check_changes(changes: Mapping[str, Any]) -> None:
         raise ValueError(f"unknown job status {status!r}")
 
 
-class MemoryJobStore:
+class MemoryJobStore(MemorySchedules):
     """Records in a dict: for unit tests (nothing survives the process)."""
 
     def __init__(self) -> None:
         self._records: dict[str, JobRecord] = {}
         self._lock = threading.Lock()
+        self._open_schedules()
 
     def add(self, record: JobRecord) -> None:
         with self._lock:
@@ -218,15 +242,20 @@ CREATE TABLE IF NOT EXISTS jobs (
     progress    INTEGER NOT NULL DEFAULT 0,
     tiles_done  INTEGER NOT NULL DEFAULT 0,
     tiles_total INTEGER NOT NULL DEFAULT 0,
-    inputs      TEXT NOT NULL
+    inputs      TEXT NOT NULL,
+    schedule_id TEXT,
+    notification TEXT
 );
 CREATE INDEX IF NOT EXISTS jobs_status_created ON jobs (status, created);
 CREATE INDEX IF NOT EXISTS jobs_created ON jobs (created);
 """
+_ADDED_COLUMNS = {"schedule_id": "TEXT", "notification": "TEXT"}
+"""Columns newer than the first jobs table: added when an older file is opened."""
 _TIMES = ("created", "updated", "started", "finished")
+_JSON = ("inputs", "notification")
 
 
-class SqliteJobStore:
+class SqliteJobStore(SqliteSchedules):
     """Records in one SQLite file (WAL journal); one connection shared under a lock."""
 
     def __init__(self, path: Path) -> None:
@@ -238,7 +267,11 @@ class SqliteJobStore:
         with self._lock:
             self._db.execute("PRAGMA journal_mode=WAL")
             self._db.execute("PRAGMA busy_timeout=5000")
-            self._db.executescript(_SCHEMA)
+            self._db.executescript(_SCHEMA + SCHEDULE_SCHEMA)
+            present = {row[1] for row in self._db.execute("PRAGMA table_info(jobs)")}
+            for name, kind in _ADDED_COLUMNS.items():
+                if name not in present:
+                    self._db.execute(f"ALTER TABLE jobs ADD COLUMN {name} {kind}")
 
     def add(self, record: JobRecord) -> None:
         row = _to_row(record)
@@ -335,8 +368,8 @@ def _status_filter(statuses: Collection[JobStatus] | None) -> tuple[str, list[An
 def _encode(name: str, value: Any) -> Any:
     if name in _TIMES:
         return None if value is None else value.isoformat(timespec="milliseconds")
-    if name == "inputs":
-        return json.dumps(value, sort_keys=True)
+    if name in _JSON:
+        return None if value is None else json.dumps(value, sort_keys=True)
     return value
 
 
@@ -350,8 +383,8 @@ def _from_row(row: sqlite3.Row) -> JobRecord:
         raw = row[name]
         if name in _TIMES:
             values[name] = None if raw is None else dt.datetime.fromisoformat(raw)
-        elif name == "inputs":
-            values[name] = json.loads(raw)
+        elif name in _JSON:
+            values[name] = None if raw is None else json.loads(raw)
         else:
             values[name] = raw
     return JobRecord(**values)

@@ -7,6 +7,7 @@ Hierarchy of the errors the routes raise::
     ├── NoSuchJobError      404  OGC no-such-job
     ├── ResultNotReadyError 404  OGC result-not-ready (job accepted or running)
     ├── NoSuchItemError     404  unknown tile, region or results file of a job
+    ├── NoSuchScheduleError 404  unknown schedule
     ├── JobFailedError      409  results asked of a failed job
     ├── JobGoneError        410  results asked of a dismissed job
     ├── BadRequestError     400  malformed request (not JSON, wrong shape)
@@ -43,6 +44,7 @@ __all__ = [
     "NoSuchItemError",
     "NoSuchJobError",
     "NoSuchProcessError",
+    "NoSuchScheduleError",
     "Problem",
     "ProblemError",
     "ResultNotReadyError",
@@ -99,6 +101,10 @@ class ResultNotReadyError(ProblemError):
 
 class NoSuchItemError(ProblemError):
     status, type, title = 404, _OWN + "no-such-item", "Not found"
+
+
+class NoSuchScheduleError(ProblemError):
+    status, type, title = 404, _OWN + "no-such-schedule", "No such schedule"
 
 
 class JobFailedError(ProblemError):
@@ -164,7 +170,7 @@ _DESCRIPTIONS = {
     400: "Malformed request (problem document).",
     401: "Missing or wrong bearer token (problem document).",
     403: "A path of the spec lies outside the data roots (problem document).",
-    404: "No such process, job, tile, region or file; or the result is not ready.",
+    404: "No such process, job, schedule, tile, region or file; or the result is not ready.",
     409: "The job failed (problem document with its reason).",
     410: "The job was dismissed (problem document).",
     413: "Request body too large (problem document).",

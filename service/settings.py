@@ -6,12 +6,13 @@ take either a JSON list or a comma-separated string.
 
 from __future__ import annotations
 
+import datetime as dt
 import json
 from functools import lru_cache
 from pathlib import Path
 from typing import Annotated, Any
 
-from pydantic import Field, field_validator
+from pydantic import Field, field_validator, model_validator
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
 from workers.datum import DEFAULT_GRID_DIRS
@@ -51,6 +52,27 @@ class Settings(BaseSettings):
     """Retries of a tile task whose worker was lost."""
     token: str | None = None
     """Bearer token that ``demaudit submit`` and ``demaudit status`` send (DEMAUDIT_TOKEN)."""
+    public_url: str | None = None
+    """The API's public base URL, for links in webhook notifications (default: the URL a
+    schedule was created through)."""
+
+    # --- schedules (nightly re-checks) --------------------------------------------------------
+    schedule_tick_s: float = Field(default=15.0, gt=0)
+    """Seconds between scheduler ticks: renew the lease, start the runs that are due."""
+    schedule_lease_s: float = Field(default=60.0, gt=0)
+    """Life of the scheduler lease (seconds of the scheduler's clock) without renewal; another
+    API process on the same job store takes over once it runs out."""
+    schedule_clock_speed: float = Field(default=1.0, ge=1.0)
+    """Testing only: the scheduler's clock runs this many times faster than real time, from
+    schedule_clock_anchor on (set both alike in every process sharing a job store)."""
+    schedule_clock_anchor: dt.datetime | None = None
+    """Testing only: the instant (UTC) where the fast scheduler clock meets real time."""
+    webhook_attempts: int = Field(default=5, ge=1, le=20)
+    """Tries of one webhook notification (the first included)."""
+    webhook_backoff_s: float = Field(default=0.5, ge=0)
+    """Wait before the second try; it doubles before each further one."""
+    webhook_timeout_s: float = Field(default=10.0, gt=0)
+    """Time limit of one webhook request."""
 
     @field_validator("api_tokens", "grid_dirs", "data_roots", mode="before")
     @classmethod
@@ -62,6 +84,14 @@ class Settings(BaseSettings):
         if text.startswith("["):
             return json.loads(text)
         return [part.strip() for part in text.split(",") if part.strip()]
+
+    @model_validator(mode="after")
+    def _schedule_clock(self) -> Settings:
+        if self.schedule_clock_speed != 1.0 and self.schedule_clock_anchor is None:
+            raise ValueError("schedule_clock_speed needs schedule_clock_anchor")
+        if self.schedule_lease_s / self.schedule_clock_speed <= self.schedule_tick_s:
+            raise ValueError("schedule_lease_s must outlast schedule_tick_s (real seconds)")
+        return self
 
     @field_validator("api_tokens")
     @classmethod

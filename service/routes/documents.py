@@ -80,6 +80,15 @@ def status_document(request: Request, record: JobRecord) -> StatusInfo:
         links.append(
             Link(href=f"{url}/results", rel=REL_RESULTS, type=JSON, title="results of this job")
         )
+    scheduled: dict[str, Any] = {}
+    if record.schedule_id is not None:
+        schedule_url = str(request.url_for("get_schedule", scheduleID=record.schedule_id))
+        links.append(
+            Link(href=schedule_url, rel="related", type=JSON, title="the schedule that ran it")
+        )
+        scheduled["scheduleID"] = record.schedule_id
+    if record.notification is not None:
+        scheduled["notification"] = record.notification
     return StatusInfo(
         jobID=record.job_id,
         processID=record.process_id,
@@ -92,6 +101,7 @@ def status_document(request: Request, record: JobRecord) -> StatusInfo:
         progress=record.progress,
         tiles=TileCounts(done=record.tiles_done, total=record.tiles_total),
         links=links,
+        **scheduled,
     )
 
 
