@@ -217,7 +217,8 @@ def nuth_kaab(
     fit: FitResult | None = None
     converged = False
     iterations = 0
-    for iterations in range(1, max_iterations + 1):  # noqa: B007 - reported below
+
+    def dh_at(east: float, north: float) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
         moved = sample_shifted(
             test,
             east_m=east,
@@ -226,7 +227,10 @@ def nuth_kaab(
             pixel_size_y_m=pixel_size_y_m,
         )
         dh = moved - reference
-        stable = stable_pixels(dh, slope_deg, cover_ok=cover_ok)
+        return dh, stable_pixels(dh, slope_deg, cover_ok=cover_ok)
+
+    for iterations in range(1, max_iterations + 1):  # noqa: B007 - reported below
+        dh, stable = dh_at(east, north)
         bias = float(np.median(dh[stable])) if stable.any() else 0.0
         fit = solve(
             nuth_kaab_fit(dh - bias, slope_deg, aspect_deg, stable), what="horizontal shift"
@@ -238,15 +242,7 @@ def nuth_kaab(
             break
     assert fit is not None
     _check_quality(fit, converged, iterations, pixel_size_x_m, pixel_size_y_m)
-    moved = sample_shifted(
-        test,
-        east_m=east,
-        north_m=north,
-        pixel_size_x_m=pixel_size_x_m,
-        pixel_size_y_m=pixel_size_y_m,
-    )
-    dh = moved - reference
-    stable = stable_pixels(dh, slope_deg, cover_ok=cover_ok)
+    dh, stable = dh_at(east, north)
     return ShiftEstimate(
         east_m=east,
         north_m=north,
