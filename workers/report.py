@@ -72,6 +72,23 @@ def region_entries(
     ]
 
 
+#: A median |dh| beyond this (metres) hints at a wrong vertical datum or unit, not at DEM error.
+SUSPECT_MEDIAN_M = 10.0
+
+
+def datum_cautions(stats: Mapping[str, Any]) -> list[str]:
+    """A warning when the overall median dh is so large that datum or units are the likelier
+    cause (a geoid undulation is tens of metres; feet vs metres scales heights by 3.28)."""
+    median = stats.get("median")
+    if median is None or abs(median) <= SUSPECT_MEDIAN_M:
+        return []
+    return [
+        f"the median dh is {median:.2f} m: check the vertical datum (ellipsoidal vs geoid "
+        "heights) and the units (metre, foot, US survey foot) of both sides before reading "
+        "these figures as accuracy"
+    ]
+
+
 def build_summary(
     *,
     job: Mapping[str, Any],
@@ -94,6 +111,7 @@ def build_summary(
             f"{len(reference_failures)} reference tile(s) could not be read; test "
             "pixels they would cover have no reference."
         )
+    cautions += datum_cautions(overall.get("stats") or {})
     return {
         "job": dict(job),
         "sign": SIGN,

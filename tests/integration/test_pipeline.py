@@ -167,3 +167,14 @@ def test_figures_are_drawn(make_archive, dask_client, tmp_path):
     assert "dh_map.png" in doc["figures"]
     with Image.open(tmp_path / "out" / "dh_map.png") as image:
         assert image.size[0] > 300 and image.size[1] > 300
+
+
+def test_a_wrong_datum_is_flagged(make_archive, dask_client, tmp_path):
+    # the reference declared ellipsoidal although it holds EGM96 heights: dh is off by N (~40 m)
+    root = make_archive(tiles=1, pixels=40)
+    data = job_spec.load_spec_file(root / "job.yaml")
+    data["reference"]["vertical_crs"] = "ellipsoidal"
+    job = job_spec.resolve(job_spec.parse_spec(data), base_dir=root)
+    doc = run_job(job, tmp_path / "out", client=dask_client)
+    assert doc["overall"]["median"] > 30
+    assert any("check the vertical datum" in c for c in doc["cautions"])
