@@ -26,6 +26,7 @@ from workers.catalog import Known, ScanFailure, TileIndex, TileInfo, scan_tile
 from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation
 from workers.errors import AuditError, EmptyOverlapError, TileReadError
 from workers.figures import write_figures
+from workers.report_html import write_report
 from workers.grading import Measured
 from workers.merge import JobAccumulator
 from workers.recheck import ChangePlan, Thresholds
@@ -223,9 +224,10 @@ def run_job(
         document["grading_indicative"] = _indicative_grading(acc, job)
     try:
         document["figures"] = write_figures(out_dir, document)
+        write_report(out_dir, document)
     except (OSError, ValueError, KeyError) as exc:  # a figure never costs the results
         document["figures"] = []
-        document["cautions"].append(f"figures could not be drawn: {exc}")
+        document["cautions"].append(f"figures or report.html could not be drawn: {exc}")
     if prior is not None and change is not None:
         limits = Thresholds(**job.spec.recheck.model_dump())
         document["recheck"] = change_report(prior, change, document, limits)
