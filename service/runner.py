@@ -26,12 +26,12 @@ from workers.catalog import Known, ScanFailure, TileIndex, TileInfo, scan_tile
 from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation
 from workers.errors import AuditError, EmptyOverlapError, TileReadError
 from workers.figures import write_figures
-from workers.report_html import write_report
 from workers.grading import Measured
 from workers.merge import JobAccumulator
 from workers.recheck import ChangePlan, Thresholds
 from workers.regions import Region
 from workers.report import area_entry, build_summary, region_entries
+from workers.report_html import write_report
 from workers.spec import ELLIPSOIDAL, ResolvedJob
 from workers.summary import statistics
 from workers.summary_store import TileSummaryStore, entries_of

@@ -6,7 +6,6 @@ import os
 import shutil
 import subprocess
 import tempfile
-from pathlib import Path
 
 import numpy as np
 import pytest
