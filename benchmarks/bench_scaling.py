@@ -54,14 +54,16 @@ from numpy.typing import NDArray
 
 from service.cluster import dask_client
 from service.runner import run_job
+from workers import regions as region_ops
 from workers import summary as dh_summary
 from workers.catalog import ScanFailure, TileIndex, TileInfo, scan_tile
 from workers.demo_archive import make_demo_archive
 from workers.demo_terrain import DemoArchiveOptions
+from workers.regions import Region
 from workers.spec import ResolvedJob, load_spec_file, parse_spec, resolve
 from workers.strata import excluded_mask
 from workers.summary import DhSummary
-from workers.tile_task import TileOptions, tile_surfaces
+from workers.tile_task import TileOptions, TileResult, audit_tile, tile_surfaces
 
 WORKERS = 2
 MEMORY_LIMIT = "6GiB"
@@ -308,6 +310,9 @@ class TileComparison:
     bins: int
     differences: dict[str, float] = field(default_factory=dict)
     bound_use: dict[str, float] = field(default_factory=dict)
+    tail_fraction: float = 0.0  # share of pixels with |dh| >= 2 m (geometric bins)
+    result_summaries: int = 0  # summaries in the tile's TileResult (tile, regions, strata)
+    result_bytes: int = 0  # pickled TileResult, what a worker sends to the client
 
     @property
     def summary_ms(self) -> float:
@@ -419,8 +424,36 @@ def compare_tile(tile_id: str, v: NDArray[np.float64]) -> tuple[TileComparison, 
         bins=int(s.bins.size),
         differences=differences(stats, reference),
         bound_use=bound_use(stats, reference),
+        tail_fraction=float(np.mean(np.abs(v) >= dh_summary.LINEAR_LIMIT_M)),
     )
     return comparison, s
+
+
+def tile_result_payload(
+    test: TileInfo,
+    refs: TileIndex,
+    cover: TileIndex,
+    regions: Sequence[Region],
+    options: TileOptions,
+) -> tuple[int, int]:
+    """Number of summaries in the tile's full TileResult and its pickled size in bytes."""
+    result: TileResult = audit_tile(
+        test,
+        refs.overlapping(test.grid),
+        region_ops.clip_to(regions, test.bounds),
+        options,
+        cover.overlapping(test.grid),
+    )
+    count = 1 + len(result.regions) + sum(len(d) for d in result.strata.values())
+    return count, len(pickle.dumps(result, protocol=pickle.HIGHEST_PROTOCOL))
+
+
+def job_regions(job: ResolvedJob, crs: str) -> list[Region]:
+    """The job's regions in the given CRS (none without a region file)."""
+    if job.region_file is None or job.spec.region is None:
+        return []
+    regions = region_ops.read_regions(job.region_file, id_property=job.spec.region.id_property)
+    return region_ops.to_crs(regions, crs)
 
 
 def compare_summaries(archive: Archive, count: int) -> SummaryComparison:
@@ -434,12 +467,16 @@ def compare_summaries(archive: Archive, count: int) -> SummaryComparison:
     tiles: list[TileComparison] = []
     summaries: list[DhSummary] = []
     pixels: list[NDArray[np.float64]] = []
+    regions_by_crs = {crs: job_regions(job, crs) for crs in {t.grid.crs for t in tests}}
     for test in tests:
         v = valid_dh(test, refs, cover, options)
         comparison, s = compare_tile(test.tile_id, v)
+        comparison.result_summaries, comparison.result_bytes = tile_result_payload(
+            test, refs, cover, regions_by_crs[test.grid.crs], options
+        )
         say(
             f"[compare] {test.tile_id}: {v.size:,} px, summary {comparison.summary_ms:.1f} ms, "
-            f"numpy {comparison.numpy_ms:.1f} ms"
+            f"numpy {comparison.numpy_ms:.1f} ms, TileResult {comparison.result_bytes:,} bytes"
         )
         tiles.append(comparison)
         summaries.append(s)
@@ -540,6 +577,9 @@ def report_comparison(c: SummaryComparison) -> list[str]:
         f"{mean([t.bins for t in c.tiles]):,.0f} non-empty bins; "
         f"raw dh {pixels * 8:,.0f} bytes)",
         f"  merged summary size                   {c.merged_bytes:9,} bytes",
+        f"  whole TileResult per tile (pickled)   {mean([t.result_bytes for t in c.tiles]):9,.0f}"
+        f" bytes ({mean([t.result_summaries for t in c.tiles]):.0f} summaries: tile, regions, "
+        "region x stratum)",
         "  largest |(a) - (b)| over the tiles, mm (x stated bound): "
         + ", ".join(f"{k} {v * 1000:.3f} ({worst_use[k]:.2f})" for k, v in worst.items()),
         "  |(a) - (b)| after merging, mm (x stated bound):          "
@@ -548,11 +588,15 @@ def report_comparison(c: SummaryComparison) -> list[str]:
             for k, v in c.merged_differences.items()
         ),
     ]
-    lines.append("  per tile (ms): summarise / statistics / numpy")
+    lines.append(
+        "  per tile: summarise / statistics / numpy (ms); share of |dh| >= 2 m; "
+        "summaries and pickled TileResult"
+    )
     for t in c.tiles:
         lines.append(
             f"    {t.tile_id:<14} {t.pixels:>10,} px  {t.summarise_ms:7.1f} / "
-            f"{t.statistics_ms:6.1f} / {t.numpy_ms:7.1f}"
+            f"{t.statistics_ms:6.1f} / {t.numpy_ms:7.1f}   {t.tail_fraction:6.1%}   "
+            f"{t.result_summaries:3d} {t.result_bytes / 1e6:6.1f} MB"
         )
     return lines
 

@@ -28,6 +28,7 @@ from collections.abc import AsyncIterator, Callable
 from contextlib import AbstractContextManager, asynccontextmanager
 from typing import Any
 
+import httpx
 from fastapi import FastAPI
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
@@ -90,7 +91,7 @@ def create_app(
     runner: Runner = run_job,
     client_factory: ClientFactory = _default_client,
     clock: Clock | None = None,
-    webhook_transport: Any = None,
+    webhook_transport: httpx.BaseTransport | None = None,
 ) -> FastAPI:
     """The app. store, runner, client_factory, clock and webhook_transport (an httpx
     transport) replace the SQLite store, the real runner, the Dask client, the scheduler's

@@ -12,8 +12,6 @@ from typing import Any
 
 from tqdm import tqdm
 
-from service.cluster import dask_client
-from service.runner import run_job
 from service.settings import Settings, get_settings
 from workers import spec as job_spec
 from workers.errors import AuditError
@@ -138,6 +136,10 @@ def _add_run_options(p: argparse.ArgumentParser) -> None:
 
 
 def _cmd_run(args: argparse.Namespace, settings: Settings) -> int:
+    # imported here: the client commands (submit, status, schedule) start without Dask
+    from service.cluster import dask_client
+    from service.runner import run_job
+
     spec_path = Path(args.spec)
     data = job_spec.load_spec_file(spec_path)
     spec = job_spec.parse_spec(data)

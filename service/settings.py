@@ -87,8 +87,11 @@ class Settings(BaseSettings):
 
     @model_validator(mode="after")
     def _schedule_clock(self) -> Settings:
-        if self.schedule_clock_speed != 1.0 and self.schedule_clock_anchor is None:
+        anchor = self.schedule_clock_anchor
+        if self.schedule_clock_speed != 1.0 and anchor is None:
             raise ValueError("schedule_clock_speed needs schedule_clock_anchor")
+        if anchor is not None and anchor.tzinfo is None:
+            raise ValueError("schedule_clock_anchor needs a time zone (e.g. +00:00)")
         if self.schedule_lease_s / self.schedule_clock_speed <= self.schedule_tick_s:
             raise ValueError("schedule_lease_s must outlast schedule_tick_s (real seconds)")
         return self

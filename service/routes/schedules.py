@@ -1,0 +1,254 @@
+"""Schedules: a job spec run on a cron schedule (nightly re-checks), with its runs and webhook.
+
+The runs are ordinary jobs (``/jobs``) whose status documents name the schedule; the scheduler
+that starts them is ``service.scheduler``.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import uuid
+from typing import Annotated, Any, Literal
+
+from fastapi import APIRouter, Path, Query, Request, Response
+from pydantic import BaseModel, ConfigDict, Field, HttpUrl, field_validator
+
+from service.deps import SettingsDep, StoreDep
+from service.jobstore import (
+    JobStatus,
+    JobStore,
+    NotifyWhen,
+    RunOutcome,
+    ScheduleRecord,
+    ScheduleRun,
+)
+from service.problems import NoSuchScheduleError, responses
+from service.routes.documents import JSON, Link
+from service.scheduler import Clock, check_cron, due_runs, next_slot, resolve_inputs
+from workers.spec import JobSpec
+
+router = APIRouter(prefix="/schedules", tags=["Schedules"], responses=responses(401))
+
+RUNS_SHOWN = 20
+ScheduleId = Annotated[str, Path(alias="scheduleID", description="The schedule's id.")]
+
+
+class ScheduleRequest(BaseModel):
+    """A new schedule: a job spec, when to run it, and whom to tell."""
+
+    model_config = ConfigDict(extra="forbid")
+
+    name: str = Field(min_length=1, max_length=200, description="A name for people.")
+    cron: str = Field(
+        max_length=200,
+        description="When to run, in UTC: five cron fields (minute hour day month weekday), "
+        "e.g. '0 2 * * *' for 02:00 every night, or @daily, @hourly and kin.",
+    )
+    inputs: JobSpec = Field(description="The job spec, as in an execute request.")
+    webhook: HttpUrl | None = Field(
+        default=None, description="URL to POST the change report to (see notify)."
+    )
+    notify: NotifyWhen = Field(
+        default="regressions",
+        description="'regressions': call the webhook after a run that found regressions; "
+        "'always': after every run.",
+    )
+    baseline: Literal["latest"] | None = Field(
+        default=None,
+        description="'latest': each run re-checks against this schedule's last successful run "
+        "(only changed tiles are recomputed; a full run when there is none).",
+    )
+
+    @field_validator("cron")
+    @classmethod
+    def _cron(cls, value: str) -> str:
+        return check_cron(value)
+
+
+class ScheduleRunInfo(BaseModel):
+    """One handled slot of a schedule."""
+
+    slot: dt.datetime
+    outcome: RunOutcome
+    reason: str
+    claimedBy: str  # noqa: N815 - the API's member style
+    jobID: str | None = None  # noqa: N815
+    jobStatus: JobStatus | None = None  # noqa: N815
+    links: list[Link] = []
+
+
+class ScheduleInfo(BaseModel):
+    """A schedule and what it did last."""
+
+    id: str
+    name: str
+    cron: str
+    notify: NotifyWhen
+    baseline: Literal["latest"] | None
+    webhook: str | None
+    created: dt.datetime
+    nextRun: dt.datetime | None  # noqa: N815
+    lastRun: ScheduleRunInfo | None  # noqa: N815
+    links: list[Link]
+
+
+class ScheduleDetail(ScheduleInfo):
+    """A schedule with its spec and recent runs (newest first)."""
+
+    inputs: dict[str, Any]
+    runs: list[ScheduleRunInfo]
+
+
+class ScheduleList(BaseModel):
+    """A page of schedules, oldest first."""
+
+    schedules: list[ScheduleInfo]
+    numberMatched: int  # noqa: N815
+    numberReturned: int  # noqa: N815
+    links: list[Link]
+
+
+def _clock(request: Request) -> Clock:
+    clock: Clock = request.app.state.clock
+    return clock
+
+
+def _schedule(store: JobStore, schedule_id: str) -> ScheduleRecord:
+    schedule = store.get_schedule(schedule_id) if len(schedule_id) <= 64 else None
+    if schedule is None:
+        raise NoSuchScheduleError(f"there is no schedule {schedule_id!r}")
+    return schedule
+
+
+def _run_info(request: Request, store: JobStore, run: ScheduleRun) -> ScheduleRunInfo:
+    job = store.get(run.job_id) if run.job_id else None
+    links = []
+    if run.job_id:
+        href = str(request.url_for("get_job", jobID=run.job_id))
+        links.append(Link(href=href, rel="related", type=JSON, title="the job of this run"))
+    return ScheduleRunInfo(
+        slot=run.slot,
+        outcome=run.outcome,
+        reason=run.reason,
+        claimedBy=run.owner,
+        jobID=run.job_id,
+        jobStatus=job.status if job is not None else None,
+        links=links,
+    )
+
+
+def _next_run(schedule: ScheduleRecord, now: dt.datetime) -> dt.datetime | None:
+    due = due_runs(schedule, schedule.last_slot, now)
+    if due:
+        return due[0]  # runs at the next tick
+    after = max(now, schedule.last_slot or schedule.created, schedule.created)
+    return next_slot(schedule.cron, after)
+
+
+def _info(request: Request, store: JobStore, schedule: ScheduleRecord) -> dict[str, Any]:
+    url = str(request.url_for("get_schedule", scheduleID=schedule.schedule_id))
+    last = store.find_runs(schedule.schedule_id, limit=1)
+    return {
+        "id": schedule.schedule_id,
+        "name": schedule.name,
+        "cron": schedule.cron,
+        "notify": schedule.notify,
+        "baseline": schedule.baseline,
+        "webhook": schedule.webhook,
+        "created": schedule.created,
+        "nextRun": _next_run(schedule, _clock(request)()),
+        "lastRun": _run_info(request, store, last[0]) if last else None,
+        "links": [
+            Link(href=url, rel="self", type=JSON, title="this schedule"),
+            Link(
+                href=str(request.url_for("list_schedules")),
+                rel="up",
+                type=JSON,
+                title="all schedules",
+            ),
+        ],
+    }
+
+
+def _detail(request: Request, store: JobStore, schedule: ScheduleRecord) -> ScheduleDetail:
+    runs = store.find_runs(schedule.schedule_id, limit=RUNS_SHOWN)
+    return ScheduleDetail(
+        **_info(request, store, schedule),
+        inputs=schedule.inputs,
+        runs=[_run_info(request, store, run) for run in runs],
+    )
+
+
+@router.post(
+    "",
+    name="create_schedule",
+    status_code=201,
+    response_model=ScheduleDetail,
+    responses=responses(400, 403, 413, 422),
+)
+def create_schedule(
+    body: ScheduleRequest,
+    request: Request,
+    response: Response,
+    settings: SettingsDep,
+    store: StoreDep,
+) -> ScheduleDetail:
+    """Run a job spec on a cron schedule; the Location header names the new schedule."""
+    inputs = body.inputs.model_dump(mode="json")
+    resolve_inputs(inputs, data_roots=settings.data_roots)  # refuse what could never run
+    now = _clock(request)()
+    schedule = ScheduleRecord(
+        schedule_id=uuid.uuid4().hex,
+        name=body.name,
+        cron=body.cron,
+        inputs=inputs,
+        created=now.replace(microsecond=now.microsecond // 1000 * 1000),
+        webhook=str(body.webhook) if body.webhook is not None else None,
+        notify=body.notify,
+        baseline=body.baseline,
+        base_url=str(request.base_url).rstrip("/"),
+    )
+    store.add_schedule(schedule)
+    response.headers["Location"] = str(
+        request.url_for("get_schedule", scheduleID=schedule.schedule_id)
+    )
+    return _detail(request, store, schedule)
+
+
+@router.get("", name="list_schedules", response_model=ScheduleList, responses=responses(400))
+def list_schedules(
+    request: Request,
+    store: StoreDep,
+    limit: Annotated[int, Query(ge=1, le=1000)] = 100,
+    offset: Annotated[int, Query(ge=0, le=10**9)] = 0,
+) -> ScheduleList:
+    """The schedules, oldest first; page with limit and offset."""
+    matched = store.count_schedules()
+    chosen = store.find_schedules(limit=limit, offset=offset)
+    links = [Link(href=str(request.url), rel="self", type=JSON)]
+    if offset + len(chosen) < matched:
+        href = str(request.url.include_query_params(offset=offset + limit, limit=limit))
+        links.append(Link(href=href, rel="next", type=JSON))
+    return ScheduleList(
+        schedules=[ScheduleInfo(**_info(request, store, s)) for s in chosen],
+        numberMatched=matched,
+        numberReturned=len(chosen),
+        links=links,
+    )
+
+
+@router.get(
+    "/{scheduleID}", name="get_schedule", response_model=ScheduleDetail, responses=responses(404)
+)
+def get_schedule(schedule_id: ScheduleId, request: Request, store: StoreDep) -> ScheduleDetail:
+    """A schedule: its spec, next run and recent runs with their jobs."""
+    return _detail(request, store, _schedule(store, schedule_id))
+
+
+@router.delete("/{scheduleID}", name="delete_schedule", status_code=204, responses=responses(404))
+def delete_schedule(schedule_id: ScheduleId, store: StoreDep) -> Response:
+    """Delete a schedule: no further runs; its jobs (and a run still going) stay."""
+    _schedule(store, schedule_id)
+    if not store.remove_schedule(schedule_id):
+        raise NoSuchScheduleError(f"there is no schedule {schedule_id!r}")
+    return Response(status_code=204)
