@@ -36,7 +36,6 @@ from typing import Any, Protocol
 from croniter import CroniterBadDateError, croniter
 
 from service.jobstore import ACCEPTED, RUNNING, SUCCESSFUL, JobRecord, JobStore, ScheduleRecord
-from service.routes.processes import _confine
 from workers import spec as job_spec
 from workers.errors import AuditError
 from workers.spec import ResolvedJob
@@ -214,12 +213,7 @@ class Submitter(Protocol):
 def resolve_inputs(inputs: Mapping[str, Any], *, data_roots: Sequence[Path] | None) -> ResolvedJob:
     """A stored spec (execute-request inputs) resolved as the REST service resolves specs:
     relative paths against the first data root, every file inside the roots."""
-    spec = job_spec.parse_spec(dict(inputs))
-    base_dir = data_roots[0] if data_roots else Path.cwd()
-    job = job_spec.resolve(spec, base_dir=base_dir, data_roots=data_roots)
-    if data_roots:
-        _confine(job, data_roots)
-    return job
+    return job_spec.resolve_in_roots(job_spec.parse_spec(dict(inputs)), data_roots=data_roots)
 
 
 class Scheduler:

@@ -336,6 +336,14 @@ def resolve(
     return ResolvedJob(spec, test, ref, region_file, landcover, checkpoint_file)
 
 
+def resolve_in_roots(spec: JobSpec, *, data_roots: Sequence[Path] | None) -> ResolvedJob:
+    """Resolve a spec that arrived without a file (over HTTP, from a schedule): relative paths
+    against the first data root (the working folder when there are none), every file inside
+    the roots, symlinks included."""
+    base_dir = Path(data_roots[0]) if data_roots else Path.cwd()
+    return resolve(spec, base_dir=base_dir, data_roots=data_roots)
+
+
 def _resolve_path(raw: str, base_dir: Path, field: str, roots: list[Path] | None) -> Path:
     path = Path(raw).expanduser()
     if not path.is_absolute():

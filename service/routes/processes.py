@@ -2,8 +2,6 @@
 
 from __future__ import annotations
 
-from collections.abc import Sequence
-from pathlib import Path
 from typing import Annotated, Any, Literal
 
 from fastapi import APIRouter, Header, Request, Response
@@ -22,8 +20,7 @@ from service.routes.documents import (
     status_document,
 )
 from workers import spec as job_spec
-from workers.errors import DataRootError
-from workers.spec import JobSpec, ResolvedJob
+from workers.spec import JobSpec
 
 ProcessId = Annotated[str, PathParam(alias="processID", description="The process's id.")]
 
@@ -111,26 +108,6 @@ _OUTPUTS = {
 }
 
 
-def _confine(job: ResolvedJob, roots: Sequence[Path]) -> None:
-    """Refuse a job whose files (not only its patterns) resolve outside the data roots: a tile
-    inside a root may be a symlink to elsewhere (workers.spec.resolve checks the patterns)."""
-    resolved_roots = [root.resolve() for root in roots]
-    named = {
-        "test.tiles": job.test_tiles,
-        "reference.tiles": job.reference_tiles,
-        "landcover.tiles": job.landcover_tiles,
-        "region.file": (job.region_file,) if job.region_file else (),
-        "checkpoints.file": (job.checkpoint_file,) if job.checkpoint_file else (),
-    }
-    for field, paths in named.items():
-        for path in paths:
-            target = path.resolve()
-            if not any(target.is_relative_to(root) for root in resolved_roots):
-                raise DataRootError(
-                    f"{field}: {path.name} links to a file outside the allowed data roots"
-                )
-
-
 def _check_process(process_id: str) -> None:
     if process_id != PROCESS_ID:
         raise NoSuchProcessError(
@@ -172,13 +149,9 @@ def execute(
 ) -> StatusInfo:
     """Start a job (always asynchronous); the Location header names its status document."""
     _check_process(process_id)
-    roots = settings.data_roots
     # relative paths resolve against the first data root (the server's folder without roots,
     # which only --insecure-local allows)
-    base_dir = roots[0] if roots else Path.cwd()
-    job = job_spec.resolve(body.inputs, base_dir=base_dir, data_roots=roots)
-    if roots:
-        _confine(job, roots)
+    job = job_spec.resolve_in_roots(body.inputs, data_roots=settings.data_roots)
     record = dispatcher.submit(job, body.inputs.model_dump(mode="json"))
     document = status_document(request, record)
     response.headers["Location"] = str(request.url_for("get_job", jobID=record.job_id))
