@@ -52,8 +52,8 @@ class DhSummary:
     m2: float
     minimum: float
     maximum: float
-    bins: NDArray[np.int64]
-    counts: NDArray[np.int64]
+    bins: NDArray[np.integer]
+    counts: NDArray[np.integer]
 
     @property
     def nbytes(self) -> int:
@@ -102,8 +102,8 @@ def merge_all(summaries: Iterable[DhSummary]) -> DhSummary:
         mean += delta * s.count / total
         m2 += s.m2 + delta * delta * n * s.count / total
         n = total
-    all_bins = np.concatenate([s.bins for s in parts])
-    all_counts = np.concatenate([s.counts for s in parts])
+    all_bins = np.concatenate([s.bins for s in parts]).astype(np.int64)
+    all_counts = np.concatenate([s.counts for s in parts]).astype(np.int64)
     order = np.argsort(all_bins, kind="stable")
     sorted_bins = all_bins[order]
     starts = np.flatnonzero(np.r_[True, sorted_bins[1:] != sorted_bins[:-1]])
@@ -182,7 +182,7 @@ def bin_index(x: NDArray[np.float64]) -> NDArray[np.int64]:
     return k
 
 
-def bin_edges(k: NDArray[np.int64]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+def bin_edges(k: NDArray[np.integer]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Lower and upper edge of each bin index."""
     k = np.asarray(k, dtype=np.int64)
     lo = k * LINEAR_WIDTH_M
@@ -198,14 +198,17 @@ def bin_edges(k: NDArray[np.int64]) -> tuple[NDArray[np.float64], NDArray[np.flo
     return lo.astype(np.float64), hi.astype(np.float64)
 
 
-def _histogram(x: NDArray[np.float64]) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+def _histogram(x: NDArray[np.float64]) -> tuple[NDArray[np.int32], NDArray[np.integer]]:
+    """Sparse histogram: sorted bin indices (int32) and counts (int32 while they fit: a tile's
+    summaries travel from the workers, so they are kept compact; merges widen to int64)."""
     k = bin_index(x)
     linear = (k >= -_K_LIMIT) & (k < _K_LIMIT)
     dense = np.bincount(k[linear] + _K_LIMIT, minlength=2 * _K_LIMIT)
     (nonzero,) = np.nonzero(dense)
     tail_bins, tail_counts = np.unique(k[~linear], return_counts=True)
-    bins = np.concatenate([nonzero - _K_LIMIT, tail_bins]).astype(np.int64)
-    counts = np.concatenate([dense[nonzero], tail_counts]).astype(np.int64)
+    bins = np.concatenate([nonzero - _K_LIMIT, tail_bins]).astype(np.int32)
+    counts = np.concatenate([dense[nonzero], tail_counts])
+    counts = counts.astype(np.int32 if x.size < 2**31 else np.int64)
     order = np.argsort(bins, kind="stable")
     return bins[order], counts[order]
 
