@@ -65,8 +65,9 @@ def main() -> None:
     parser.add_argument("--tiles", type=int, default=10, help="tiles per side (default 10)")
     parser.add_argument("--pixels", type=int, default=400)
     parser.add_argument("--cache", type=Path, default=Path("/tmp/demaudit-bench"))
+    parser.add_argument("--archive", type=Path, help="use this demo archive instead (a copy)")
     args = parser.parse_args()
-    source = archive(args.cache, args.tiles, args.pixels)
+    source = args.archive or archive(args.cache, args.tiles, args.pixels)
     work = args.cache / "recheck-work"
     shutil.rmtree(work, ignore_errors=True)
     shutil.copytree(source, work / "archive")
@@ -74,8 +75,8 @@ def main() -> None:
         full_s, full_n, _ = timed_run(client, work / "archive", work / "full", None)
         changed = change_tiles(work / "archive", 0.01)
         re_s, re_n, doc = timed_run(client, work / "archive", work / "night", work / "full")
-    n = args.tiles**2
-    print(f"\narchive: {n} test tiles of {args.pixels} x {args.pixels} px; changed: {changed}")
+    n = len(list((work / "archive" / "release_2026_11").glob("*.tif")))
+    print(f"\narchive: {source} ({n} test tiles); changed: {changed}")
     print(f"{'run':<22}{'wall s':>10}{'tiles audited':>16}")
     print(f"{'full':<22}{full_s:>10.2f}{full_n:>16}")
     print(f"{'re-check (1 % changed)':<22}{re_s:>10.2f}{re_n:>16}")

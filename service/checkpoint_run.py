@@ -9,6 +9,7 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
+import shapely
 from distributed import Client
 from pyproj import CRS, Transformer
 from pyproj.exceptions import CRSError
@@ -16,7 +17,7 @@ from shapely import STRtree, box, points
 
 from workers import grading
 from workers.accuracy import residual_statistics, vertical_accuracy
-from workers.catalog import TileIndex, TileInfo
+from workers.catalog import TileIndex, TileInfo, file_fingerprint
 from workers.checkpoints import CheckpointFile, read_checkpoints, sample_test_tile
 from workers.datum import geoid_undulation, to_metres
 from workers.regions import Region
@@ -35,8 +36,14 @@ def audit_checkpoints(
     regions: Mapping[str, list[Region]],
     options: TileOptions,
     out_dir: Path,
+    earlier: Mapping[str, float] | None = None,
+    clean_tiles: frozenset[str] = frozenset(),
 ) -> dict[str, Any]:
-    """The checkpoint section of summary.json; also writes checkpoint_residuals.csv."""
+    """The checkpoint section of summary.json; also writes checkpoint_residuals.csv.
+
+    earlier: test heights (metres) sampled by a baseline run, by point id; points whose tile and
+    neighbours are all in clean_tiles take them instead of being sampled again.
+    """
     spec = job.spec.checkpoints
     assert spec is not None and job.checkpoint_file is not None
     data = read_checkpoints(
@@ -81,7 +88,17 @@ def audit_checkpoints(
             job=job,
             out_dir=out_dir,
         )
-    _sample(client, data, point_crs, test_crs, tests, options, records)
+    _sample(
+        client,
+        data,
+        point_crs,
+        test_crs,
+        tests,
+        options,
+        records,
+        earlier=earlier or {},
+        clean_tiles=clean_tiles,
+    )
     _to_test_datum(data, point_crs, options, job, records)
     return _section(
         records,
@@ -102,6 +119,9 @@ def _sample(
     tests: Sequence[TileInfo],
     options: TileOptions,
     records: dict[str, dict[str, Any]],
+    *,
+    earlier: Mapping[str, float],
+    clean_tiles: frozenset[str],
 ) -> None:
     to_test = Transformer.from_crs(point_crs, test_crs, always_xy=True)
     xs, ys = to_test.transform([p.x for p in data.points], [p.y for p in data.points])
@@ -124,18 +144,24 @@ def _sample(
             records[p.point_id] |= {"status": "rejected", "reason": "outside every test tile"}
             continue
         by_tile.setdefault(int(first_tile[i]), []).append((p.point_id, float(xs[i]), float(ys[i])))
-    futures = [
-        client.submit(
-            sample_test_tile,
-            tests[k].tile_id,
-            index.overlapping(tests[k].grid.expanded(2)),
-            pts,
-            nodata=options.test_nodata,
-            units=options.test_units,
-            pure=False,
+    futures = []
+    for k, pts in by_tile.items():
+        neighbours = index.overlapping(tests[k].grid.expanded(2))
+        if {t.tile_id for t in neighbours} <= clean_tiles and all(p[0] in earlier for p in pts):
+            for point_id, _, _ in pts:  # nothing under these points changed since the baseline
+                records[point_id] |= {"status": "used", "test_height_m": earlier[point_id]}
+            continue
+        futures.append(
+            client.submit(
+                sample_test_tile,
+                tests[k].tile_id,
+                neighbours,
+                pts,
+                nodata=options.test_nodata,
+                units=options.test_units,
+                pure=False,
+            )
         )
-        for k, pts in by_tile.items()
-    ]
     for part in client.gather(futures):
         for point_id, value, reason in part:
             if reason:
@@ -183,12 +209,16 @@ def _section(
 ) -> dict[str, Any]:
     used = [r for r in records.values() if r.get("status") == "used"]
     group_of = {c.value: c.group for c in classes}
-    for r in used:
+    xs = np.array([r["x_test_crs"] for r in used])
+    ys = np.array([r["y_test_crs"] for r in used])
+    inside = {
+        g.region_id: shapely.intersects_xy(g.geometry, xs, ys)
+        for g in regions.get(tests[0].grid.crs, [])
+    }
+    for i, r in enumerate(used):
         cover = r.get("landcover")
         r["cover_group"] = group_of.get(cover, "unknown") if cover is not None else "unknown"
-        r["regions"] = [
-            g.region_id for g in regions.get(tests[0].grid.crs, []) if g.geometry.covers(_point(r))
-        ]
+        r["regions"] = [region_id for region_id, mask in inside.items() if mask[i]]
     dh = np.array([r["dh_m"] for r in used])
     nv = np.array([r["dh_m"] for r in used if r["cover_group"] == "non_vegetated"])
     veg = np.array([r["dh_m"] for r in used if r["cover_group"] == "vegetated"])
@@ -205,6 +235,7 @@ def _section(
     _write_residuals(out_dir / RESIDUALS_NAME, records)
     return {
         "file": str(job.checkpoint_file),
+        "file_fingerprint": file_fingerprint(job.checkpoint_file) if job.checkpoint_file else None,
         "survey_rmse_m": survey,
         "counts": {"read": len(records), "used": len(used), "rejected": len(records) - len(used)},
         "stats": residual_statistics(dh),
@@ -249,12 +280,6 @@ def grade(measured: grading.Measured, job: ResolvedJob) -> list[dict[str, Any]]:
     return out
 
 
-def _point(record: dict[str, Any]):  # type: ignore[no-untyped-def]
-    from shapely.geometry import Point
-
-    return Point(record["x_test_crs"], record["y_test_crs"])
-
-
 def _grouped(used: list[dict[str, Any]], key: str) -> dict[str, Any]:
     groups: dict[str, list[float]] = {}
     for r in used:
@@ -268,6 +293,25 @@ def _by_region(used: list[dict[str, Any]]) -> dict[str, Any]:
         for region_id in r["regions"]:
             groups.setdefault(region_id, []).append(r["dh_m"])
     return {k: residual_statistics(v) for k, v in groups.items()}
+
+
+def earlier_heights(
+    folder: Path, document: Mapping[str, Any], job: ResolvedJob
+) -> dict[str, float]:
+    """Test heights a baseline run sampled, by point id (empty when the checkpoint file or the
+    test's unit changed, or the baseline has none)."""
+    section = document.get("checkpoints") or {}
+    path = Path(folder) / RESIDUALS_NAME
+    if job.checkpoint_file is None or not path.is_file():
+        return {}
+    if section.get("file_fingerprint") != file_fingerprint(job.checkpoint_file):
+        return {}
+    with open(path, newline="", encoding="utf-8") as fh:
+        return {
+            row["id"]: float(row["test_height_m"])
+            for row in csv.DictReader(fh)
+            if row.get("status") == "used" and row.get("test_height_m")
+        }
 
 
 def _write_residuals(path: Path, records: dict[str, dict[str, Any]]) -> None:

@@ -103,9 +103,11 @@ def make_plan(
 
 def reused_result(baseline: Baseline, tile_id: str) -> TileResult:
     """A tile's result rebuilt from the baseline's stored summaries (no pixel is read)."""
+    record = baseline.tiles[tile_id]
+    if record.get("status") != "ok":
+        return TileResult(tile_id, record["status"], record.get("reason"))
     entries, excluded = baseline.summaries.read(tile_id)
     result = result_from_entries(tile_id, entries, excluded=excluded)
-    record = baseline.tiles[tile_id]
     overview = _overview_block(baseline, record.get("bounds"))
     return TileResult(
         tile_id,

@@ -17,7 +17,7 @@ import numpy as np
 from distributed import Client, Future, as_completed
 from pyproj import CRS, Transformer
 
-from service.checkpoint_run import audit_checkpoints, grade
+from service.checkpoint_run import audit_checkpoints, earlier_heights, grade
 from service.coregistration import estimate_job_correction
 from service.recheck import change_report, load_baseline, make_plan, reused_result
 from workers import regions as region_ops
@@ -137,7 +137,8 @@ def run_job(
         for tile_id in change.reuse:
             result = reused_result(prior, tile_id)
             _fold(result, acc, after, store, None)
-            summaries.copy_from(prior.zarr, tile_id)
+            if result.status == OK:
+                summaries.copy_from(prior.zarr, tile_id)
             records[tile_id] = prior.tiles[tile_id]
     futures = [
         client.submit(
@@ -212,6 +213,10 @@ def run_job(
     document["sources"] = sources
     document["files"] = catalog.files()
     if job.spec.checkpoints is not None:
+        earlier, clean = {}, frozenset[str]()
+        if prior is not None and change is not None:
+            earlier = earlier_heights(prior.folder, prior.document, job)
+            clean = frozenset(change.reuse)
         document["checkpoints"] = audit_checkpoints(
             client,
             job,
@@ -219,6 +224,8 @@ def run_job(
             regions=catalog.regions_by_crs,
             options=options,
             out_dir=out_dir,
+            earlier=earlier,
+            clean_tiles=clean,
         )
     if raster:
         document["grading_indicative"] = _indicative_grading(acc, job)

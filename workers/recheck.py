@@ -14,6 +14,10 @@ from dataclasses import dataclass, field
 from typing import Any
 
 
+#: Baseline tile statuses that may be carried over when nothing they depend on changed.
+REUSABLE = ("ok", "no_reference")
+
+
 @dataclass(frozen=True)
 class Thresholds:
     """When a change counts as a regression: NMAD worse by more than ``nmad_worse_fraction`` of
@@ -65,7 +69,7 @@ def plan(
         )
         if before is None:
             recompute[tile_id] = "new test tile"
-        elif before.get("status") != "ok":
+        elif before.get("status") not in REUSABLE:
             recompute[tile_id] = f"baseline status was {before.get('status')}"
         elif before.get("fingerprint") != fingerprint:
             recompute[tile_id] = "test tile content changed"

@@ -89,3 +89,15 @@ def test_touching_recomputes_nothing_and_a_reference_change_its_overlaps(
     doc, recomputed = audited(dask_client, archive, tmp_path / "ref", tmp_path / "touched")
     assert expected and recomputed == expected
     assert all(ref.stem in t["why"] for t in doc["recheck"]["tiles"])
+
+
+def test_recheck_resamples_only_checkpoints_near_changed_tiles(archive, dask_client, tmp_path):
+    base, _ = audited(dask_client, archive, tmp_path / "base")
+    for update in (archive / "release_2026_11_update").glob("*.tif"):
+        shutil.copy(update, archive / "release_2026_11" / update.name)
+    night, _ = audited(dask_client, archive, tmp_path / "night", tmp_path / "base")
+    fresh, _ = audited(dask_client, archive, tmp_path / "fresh")
+    # checkpoints reused where nothing changed, resampled near the new block: same as a fresh run
+    assert night["checkpoints"]["stats"] == pytest.approx(fresh["checkpoints"]["stats"])
+    assert night["checkpoints"]["counts"] == fresh["checkpoints"]["counts"]
+    assert night["checkpoints"]["stats"] != pytest.approx(base["checkpoints"]["stats"])

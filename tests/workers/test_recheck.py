@@ -80,3 +80,10 @@ def test_lost_grades():
     before = [{"standard": "X", "met": True}, {"standard": "Y", "met": False}]
     after = [{"standard": "X", "met": False}, {"standard": "Y", "met": True}]
     assert lost_grades(before, after) == [{"standard": "X", "flag": "grade lost"}]
+
+
+def test_tiles_without_reference_are_carried_over():
+    tiles = {"edge": {"fingerprint": "fe", "status": "no_reference", "sources": []}}
+    change = plan(baseline_tiles=tiles, baseline_sources={}, current_tiles={"edge": "fe"},
+                  current_sources={}, overlaps={"edge": []})
+    assert change.reuse == ("edge",) and not change.recompute
