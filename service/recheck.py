@@ -13,7 +13,7 @@ from typing import Any
 import numpy as np
 import zarr
 
-from workers.catalog import TileInfo
+from workers.catalog import TileInfo, tiles_from_catalog
 from workers.errors import SpecError
 from workers.recheck import ChangePlan, Thresholds, compare, lost_grades, plan
 from workers.summary_store import TileSummaryStore, result_from_entries
@@ -46,6 +46,15 @@ class Baseline:
     @cached_property
     def tiles(self) -> dict[str, dict[str, Any]]:
         return {t["tile"]: t for t in self.document.get("tiles", [])}
+
+    @cached_property
+    def catalog(self) -> dict[str, TileInfo]:
+        """Path -> TileInfo of the baseline's scan (empty when it wrote no catalog.json)."""
+        try:
+            doc = json.loads((self.folder / "catalog.json").read_text(encoding="utf-8"))
+        except (OSError, json.JSONDecodeError):
+            return {}
+        return tiles_from_catalog(doc)
 
     @cached_property
     def summaries(self) -> TileSummaryStore:

@@ -22,7 +22,15 @@ from service.coregistration import estimate_job_correction
 from service.recheck import change_report, load_baseline, make_plan, reused_result
 from workers import regions as region_ops
 from workers import summary as dh_summary
-from workers.catalog import Known, ScanFailure, TileIndex, TileInfo, scan_tile
+from workers.catalog import (
+    Known,
+    ScanFailure,
+    TileIndex,
+    TileInfo,
+    catalog_document,
+    scan_tile,
+    unchanged,
+)
 from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation
 from workers.errors import AuditError, EmptyOverlapError, TileReadError
 from workers.figures import write_figures
@@ -53,6 +61,7 @@ class JobDismissedError(AuditError):
 
 SOFTWARE = "demaudit 0.1.0"
 CHANGE_REPORT_NAME = "change_report.json"
+CATALOG_NAME = "catalog.json"
 
 
 def run_job(
@@ -85,8 +94,7 @@ def run_job(
     out_dir.mkdir(parents=True, exist_ok=True)
     options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
     prior = load_baseline(baseline) if baseline is not None else None
-    known = {k: tuple(v) for k, v in (prior.document.get("files", {}) if prior else {}).items()}
-    catalog = _catalog(client, job, options, known)  # type: ignore[arg-type]
+    catalog = _catalog(client, job, options, prior.catalog if prior else {})
     coregistration: dict[str, Any] | None = None
     tile_shifts: dict[str, dict[str, Any]] = {}
     if options.coregistration is not None:
@@ -211,7 +219,7 @@ def run_job(
         coregistration=coregistration,
     )
     document["sources"] = sources
-    document["files"] = catalog.files()
+    write_summary(out_dir, catalog.document(), name=CATALOG_NAME)
     if job.spec.checkpoints is not None:
         earlier, clean = {}, frozenset[str]()
         if prior is not None and change is not None:
@@ -302,12 +310,9 @@ class _Catalog:
             f"landcover:{t.tile_id}" for t in self.landcover_of(tile)
         ]
 
-    def files(self) -> dict[str, list[Any]]:
-        """Path -> [size, modification time ns, fingerprint] of every tile scanned."""
-        return {
-            t.path: [t.size_bytes, t.mtime_ns, t.fingerprint]
-            for t in (*self.tests, *self.references, *self.landcover)
-        }
+    def document(self) -> dict[str, Any]:
+        """catalog.json: every tile scanned, so a re-check need not open unchanged files."""
+        return catalog_document([*self.tests, *self.references, *self.landcover])
 
     def source_fingerprints(self) -> dict[str, str]:
         """Fingerprints of every reference and land-cover tile, ids prefixed by kind."""
@@ -317,7 +322,7 @@ class _Catalog:
 
 
 def _catalog(
-    client: Client, job: ResolvedJob, options: TileOptions, known: Mapping[str, Known]
+    client: Client, job: ResolvedJob, options: TileOptions, known: Mapping[str, TileInfo]
 ) -> _Catalog:
     """Scan every tile on the cluster, index the reference, check overlap, geoid and regions."""
     test_tiles, test_failures = _scan(client, job.test_tiles, known)
@@ -361,13 +366,23 @@ def _result_of(future: Future) -> TileResult:
 
 
 def _scan(
-    client: Client, paths: Sequence[Path], known: Mapping[str, Known]
+    client: Client, paths: Sequence[Path], known: Mapping[str, TileInfo]
 ) -> tuple[list[TileInfo], list[ScanFailure]]:
-    names = [str(p) for p in paths]
-    futures = client.map(scan_tile, names, [known.get(n) for n in names], pure=False)
-    scanned = client.gather(futures)
-    ok = [s for s in scanned if isinstance(s, TileInfo)]
-    failed = [s for s in scanned if isinstance(s, ScanFailure)]
+    """Scan tiles on the cluster; a tile an earlier scan knows, with the same size and
+    modification time, is taken from that scan without opening the file."""
+    reused = {
+        str(p): known[str(p)] for p in paths if str(p) in known and unchanged(known[str(p)], p)
+    }
+    names = [str(p) for p in paths if str(p) not in reused]
+    hints: list[Known | None] = [
+        (known[n].size_bytes, known[n].mtime_ns, known[n].fingerprint) if n in known else None
+        for n in names
+    ]
+    scanned = client.gather(client.map(scan_tile, names, hints, pure=False)) if names else []
+    by_path = reused | {s.path: s for s in scanned}
+    ordered = [by_path[str(p)] for p in paths]
+    ok = [s for s in ordered if isinstance(s, TileInfo)]
+    failed = [s for s in ordered if isinstance(s, ScanFailure)]
     return ok, failed
 
 

@@ -11,6 +11,7 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import rasterio
@@ -157,3 +158,55 @@ class TileIndex:
                 if box(*members[i].bounds).intersection(query).area > 0
             )
         return found
+
+
+def catalog_document(tiles: Sequence[TileInfo]) -> dict[str, object]:
+    """A JSON-ready record of scanned tiles (CRS definitions stored once)."""
+    crs_list = list(dict.fromkeys(t.grid.crs for t in tiles))
+    return {
+        "crs": crs_list,
+        "tiles": [
+            {
+                "path": t.path,
+                "tile": t.tile_id,
+                "crs": crs_list.index(t.grid.crs),
+                "transform": list(t.grid.transform),
+                "width": t.grid.width,
+                "height": t.grid.height,
+                "nodata": t.nodata,
+                "dtype": t.dtype,
+                "size": t.size_bytes,
+                "mtime_ns": t.mtime_ns,
+                "fingerprint": t.fingerprint,
+            }
+            for t in tiles
+        ],
+    }
+
+
+def tiles_from_catalog(document: dict[str, Any]) -> dict[str, TileInfo]:
+    """Path -> TileInfo from a catalog_document."""
+    crs_list = document.get("crs", [])
+    out = {}
+    for t in document.get("tiles", []):
+        grid = Grid(crs_list[t["crs"]], tuple(t["transform"]), t["width"], t["height"])  # type: ignore[arg-type]
+        out[t["path"]] = TileInfo(
+            t["tile"],
+            t["path"],
+            grid,
+            t["nodata"],
+            t["dtype"],
+            t["size"],
+            t["fingerprint"],
+            t["mtime_ns"],
+        )
+    return out
+
+
+def unchanged(known: TileInfo, path: Path) -> bool:
+    """True when the file still has the size and modification time it had when scanned."""
+    try:
+        stat = path.stat()
+    except OSError:
+        return False
+    return (stat.st_size, stat.st_mtime_ns) == (known.size_bytes, known.mtime_ns)

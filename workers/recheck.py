@@ -13,7 +13,6 @@ from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
 
-
 #: Baseline tile statuses that may be carried over when nothing they depend on changed.
 REUSABLE = ("ok", "no_reference")
 

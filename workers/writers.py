@@ -162,9 +162,7 @@ class ResultsStore:
         for group, table in tables.items():
             mode: Literal["a", "w"] = "a" if self.path.exists() else "w"
             with _quiet_zarr():
-                table.to_zarr(
-                    self.path, group=group, mode=mode, zarr_format=3, consolidated=False
-                )
+                table.to_zarr(self.path, group=group, mode=mode, zarr_format=3, consolidated=False)
 
 
 def _affine(t: tuple[float, ...]):  # type: ignore[no-untyped-def]
