@@ -22,6 +22,7 @@ from workers.writers import ZARR_NAME  # noqa: E402
 MAP_NAME = "dh_map.png"
 STRATA_NAME = "dh_by_stratum.png"
 SHIFTS_NAME = "tile_shifts.png"
+MAP_PIXELS = 700
 
 
 def write_figures(out_dir: Path, document: Mapping[str, Any]) -> list[str]:
@@ -38,9 +39,13 @@ def write_figures(out_dir: Path, document: Mapping[str, Any]) -> list[str]:
 
 def _dh_map(out_dir: Path, document: Mapping[str, Any]) -> bool:
     try:
-        dh = xr.open_zarr(Path(out_dir) / ZARR_NAME, group="dh_overview")["dh"].load()
+        dh = xr.open_zarr(Path(out_dir) / ZARR_NAME, group="dh_overview")["dh"]
     except (KeyError, FileNotFoundError, OSError):
         return False
+    factor = -(-max(dh.shape) // MAP_PIXELS)  # no more map pixels than the figure shows
+    if factor > 1:
+        dh = dh.coarsen(y=factor, x=factor, boundary="pad").mean()
+    dh = dh.load()
     overall = document.get("overall") or {}
     if not overall.get("count"):
         return False
