@@ -7,14 +7,11 @@ nothing outlives a failing test.
 
 from __future__ import annotations
 
-import contextlib
 import json
 import os
 import shutil
 import signal
-import socket
 import subprocess
-import sys
 import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -25,54 +22,18 @@ import pytest
 import yaml
 
 from service.runner import run_job
+from tests.support.processes import VENV_BIN, Process, free_port, start_dask
 from workers import spec as job_spec
 from workers.demo_archive import DemoArchiveOptions, make_demo_archive
 
 pytestmark = pytest.mark.slow
 
-VENV_BIN = Path(sys.executable).parent
 REPO = Path(__file__).resolve().parents[2]
 TOKEN = "integration-token-0123456789"
 AUTH = {"Authorization": f"Bearer {TOKEN}"}
 OGC = "http://www.opengis.net/def/exceptions/ogcapi-processes-1/1.0/"
 EXECUTE = "/processes/dem-audit/execution"
 FINISHED = {"successful", "failed", "dismissed"}
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
-
-
-class Process:
-    """A child process in its own session, its output in a log file."""
-
-    def __init__(self, args: list[str], log: Path, env: dict[str, str] | None = None) -> None:
-        self.log = log
-        self._out = open(log, "wb")  # noqa: SIM115 - closed in stop()
-        self.popen = subprocess.Popen(
-            args, stdout=self._out, stderr=subprocess.STDOUT, env=env, start_new_session=True
-        )
-
-    def alive(self) -> bool:
-        return self.popen.poll() is None
-
-    def stop(self, sig: int = signal.SIGTERM, timeout: float = 15.0) -> None:
-        """Signal the process group, wait, then kill whatever is left of it."""
-        try:
-            if self.alive():
-                os.killpg(self.popen.pid, sig)
-                with contextlib.suppress(subprocess.TimeoutExpired):
-                    self.popen.wait(timeout)
-            os.killpg(self.popen.pid, signal.SIGKILL)  # stragglers of the group
-        except ProcessLookupError:
-            pass
-        self.popen.wait(timeout)
-        self._out.close()
-
-    def tail(self, n: int = 4000) -> str:
-        return self.log.read_bytes()[-n:].decode(errors="replace")
 
 
 @pytest.fixture(scope="module")
@@ -87,41 +48,7 @@ def processes() -> Iterator[list[Process]]:
 @pytest.fixture(scope="module")
 def scheduler(processes: list[Process], tmp_path_factory: pytest.TempPathFactory) -> str:
     """Address of a Dask scheduler process with two single-threaded worker processes."""
-    logs = tmp_path_factory.mktemp("dask")
-    port = free_port()
-    address = f"tcp://127.0.0.1:{port}"
-    processes.append(
-        Process(
-            [
-                str(VENV_BIN / "dask"),
-                "scheduler",
-                "--host",
-                "127.0.0.1",
-                "--port",
-                str(port),
-                "--no-dashboard",
-            ],
-            logs / "scheduler.log",
-        )
-    )
-    for n in range(2):
-        processes.append(
-            Process(
-                [
-                    str(VENV_BIN / "dask"),
-                    "worker",
-                    address,
-                    "--nthreads",
-                    "1",
-                    "--no-dashboard",
-                    "--memory-limit",
-                    "2GiB",
-                    "--local-directory",
-                    str(logs / f"w{n}"),
-                ],
-                logs / f"worker{n}.log",
-            )
-        )
+    address = start_dask(processes, tmp_path_factory.mktemp("dask"), workers=2, memory="2GiB")
     from distributed import Client
 
     with Client(address, timeout="30s") as client:

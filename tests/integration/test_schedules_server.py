@@ -13,10 +13,8 @@ import contextlib
 import datetime as dt
 import os
 import signal
-import socket
 import sqlite3
 import subprocess
-import sys
 import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -26,51 +24,14 @@ import httpx
 import pytest
 import yaml
 
+from tests.support.processes import VENV_BIN, Process, free_port, start_dask
 from workers.demo_archive import DemoArchiveOptions, make_demo_archive
 
 pytestmark = pytest.mark.slow
 
-VENV_BIN = Path(sys.executable).parent
 TOKEN = "schedule-token-0123456789"
 AUTH = {"Authorization": f"Bearer {TOKEN}"}
 SPEED = 60  # scheduler seconds per real second: a minute-by-minute cron fires every second
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
-
-
-class Process:
-    """A child process in its own session, its output in a log file."""
-
-    def __init__(self, args: list[str], log: Path, env: dict[str, str] | None = None) -> None:
-        self.log = log
-        self._out = open(log, "wb")  # noqa: SIM115 - closed in stop()
-        self.popen = subprocess.Popen(
-            args, stdout=self._out, stderr=subprocess.STDOUT, env=env, start_new_session=True
-        )
-
-    def alive(self) -> bool:
-        return self.popen.poll() is None
-
-    def stop(self, sig: int = signal.SIGTERM, timeout: float = 15.0) -> None:
-        """Signal the process group, wait, then kill whatever is left of it."""
-        try:
-            if self.alive():
-                os.killpg(self.popen.pid, sig)
-                with contextlib.suppress(subprocess.TimeoutExpired):
-                    self.popen.wait(timeout)
-            os.killpg(self.popen.pid, signal.SIGKILL)
-        except ProcessLookupError:
-            pass
-        self.popen.wait(timeout)
-        if not self._out.closed:
-            self._out.close()
-
-    def tail(self, n: int = 3000) -> str:
-        return self.log.read_bytes()[-n:].decode(errors="replace")
 
 
 @pytest.fixture(scope="module")
@@ -84,33 +45,7 @@ def processes() -> Iterator[list[Process]]:
 @pytest.fixture(scope="module")
 def cluster(processes: list[Process], tmp_path_factory: pytest.TempPathFactory) -> str:
     """A Dask scheduler with one single-threaded worker (tiny jobs; two cores to share)."""
-    logs = tmp_path_factory.mktemp("dask")
-    address = f"tcp://127.0.0.1:{free_port()}"
-    dask = str(VENV_BIN / "dask")
-    port = address.rsplit(":", 1)[1]
-    processes.append(
-        Process(
-            [dask, "scheduler", "--host", "127.0.0.1", "--port", port, "--no-dashboard"],
-            logs / "scheduler.log",
-        )
-    )
-    processes.append(
-        Process(
-            [
-                dask,
-                "worker",
-                address,
-                "--nthreads",
-                "1",
-                "--no-dashboard",
-                "--memory-limit",
-                "1GiB",
-                "--local-directory",
-                str(logs / "w"),
-            ],
-            logs / "worker.log",
-        )  # fmt: skip
-    )
+    address = start_dask(processes, tmp_path_factory.mktemp("dask"), workers=1, memory="1GiB")
     return address
 
 
