@@ -120,7 +120,7 @@ class BadRequestError(ProblemError):
 
 
 class UnauthorizedError(ProblemError):
-    status, type, title = 401, _OWN + "unauthorized", "UnauthorizedError"
+    status, type, title = 401, _OWN + "unauthorized", "Unauthorized"
     headers = {"WWW-Authenticate": 'Bearer realm="demaudit"'}
 
 
