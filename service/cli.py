@@ -390,23 +390,40 @@ def _exit_status(status: str) -> int:
 
 
 def _print_report(document: dict[str, Any], out_dir: Path) -> None:
-    print(f"\nresults: {Path(out_dir).resolve()}/summary.json and results.zarr")
+    folder = Path(out_dir).resolve()
+    print(f"\nresults: {folder}/report.html (for people), summary.json, results.zarr")
     print(f"dh = {document['sign']}, {document['units']}s\n")
     header = (
-        f"{'region':<16}{'pixels':>12}{'median':>9}{'nmad':>9}{'q683_abs':>10}"
+        f"{'region':<26}{'pixels':>12}{'median':>9}{'nmad':>9}{'q683_abs':>10}"
         f"{'q95_abs':>9}{'rmse':>9}"
     )
     print(header)
-    rows = [(r["region"], r["stats"]) for r in document["regions"]]
+    rows = [(f"{r['region']} {r.get('name', '')}", r["stats"]) for r in document["regions"]]
     rows.append(("(all)", document["overall"]))
+    by_stratum = {s["stratum"]: s["stats"] for s in document["overall_detail"]["strata"]}
+    if "cover_group:non_vegetated" in by_stratum:
+        rows.append(("(all) non-vegetated", by_stratum["cover_group:non_vegetated"]))
     for name, s in rows:
         if not s["count"]:
-            print(f"{name:<16}{0:>12}  no valid pixels")
+            print(f"{name:<26}{0:>12}  no valid pixels")
             continue
         print(
-            f"{name:<16}{s['count']:>12,}{s['median']:>9.3f}{s['nmad']:>9.3f}"
+            f"{name:<26}{s['count']:>12,}{s['median']:>9.3f}{s['nmad']:>9.3f}"
             f"{s['q683_abs']:>10.3f}{s['q95_abs']:>9.3f}{s['rmse']:>9.3f}"
         )
+    checkpoints = document.get("checkpoints")
+    if checkpoints:
+        counts, stats = checkpoints["counts"], checkpoints["stats"]
+        print(
+            f"\ncheckpoints: {counts['used']} of {counts['read']} used; median "
+            f"{_metres(stats['median'])}, RMSE_z {_metres(stats['rmse'])}"
+        )
+        for grade in checkpoints["grading"]:
+            verdict = {True: "met", False: "NOT met", None: "not decided"}[grade.get("met")]
+            if "accuracy_z_95_m" in grade and "met" not in grade:
+                verdict = f"Accuracy_z (95 %) {_metres(grade['accuracy_z_95_m'])}"
+            label = f"{grade['standard']} {grade.get('class', '')}".strip()
+            print(f"  {label}: {verdict}")
     failed = [t for t in document["tiles"] if t["status"] == "failed"]
     for t in failed:
         print(f"tile {t['tile']} failed: {t.get('reason')}")
@@ -420,6 +437,10 @@ def _print_report(document: dict[str, Any], out_dir: Path) -> None:
         for t in recheck["tiles"]:
             print(f"  {t['tile']:<20} {t['verdict']:<10} {t['why']}")
     print("\n" + document["cautions"][0])
+
+
+def _metres(value: float | None) -> str:
+    return "–" if value is None else f"{value:.3f} m"
 
 
 if __name__ == "__main__":
