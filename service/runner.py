@@ -110,9 +110,14 @@ def run_job(
 
     sources = catalog.source_fingerprints()
     change: ChangePlan | None = None
+    baseline_note = ""
     if prior is not None:
         if options.coregistration is not None and options.coregistration.estimate_from == "job":
             prior = None  # the job-wide correction touches every tile: recompute all
+            baseline_note = (
+                "the baseline was not used: an applied job-wide co-registration changes every "
+                "tile's corrected statistics, so every tile was recomputed"
+            )
         else:
             change = make_plan(
                 prior,
@@ -219,6 +224,8 @@ def run_job(
         coregistration=coregistration,
     )
     document["sources"] = sources
+    if baseline_note:
+        document["cautions"].append(baseline_note)
     write_summary(out_dir, catalog.document(), name=CATALOG_NAME)
     if job.spec.checkpoints is not None:
         earlier, clean = {}, frozenset[str]()
