@@ -172,3 +172,14 @@ def test_pooled_estimate_recovers_the_shift(dask_client, tmp_path, truth):
     assert abs(pooled["north_m"] - truth["shift"]["north_m"]) < 0.1 * pixel
     assert "m_per_100m" in pooled["elevation_bias"]
     assert pooled["regions"]["HF"]["status"] == "cannot_estimate"  # flat fen
+
+
+def test_baseline_with_applied_job_coregistration_recomputes_all(
+    coregistered_doc, coregistered_out, dask_client, tmp_path
+):
+    spec = job_spec.parse_spec(job_spec.load_spec_file(DEMO / "demo_coregistered.yaml"))
+    job = job_spec.resolve(spec, base_dir=DEMO)
+    doc = run_job(job, tmp_path / "out", client=dask_client, baseline=coregistered_out)
+    assert "recheck" not in doc
+    assert any("baseline was not used" in c for c in doc["cautions"])
+    assert doc["overall"] == pytest.approx(coregistered_doc["overall"])
