@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import cached_property
 from pathlib import Path
 from typing import Any
@@ -117,18 +117,10 @@ def reused_result(baseline: Baseline, tile_id: str) -> TileResult:
         return TileResult(tile_id, record["status"], record.get("reason"))
     entries, excluded = baseline.summaries.read(tile_id)
     result = result_from_entries(tile_id, entries, excluded=excluded)
-    overview = _overview_block(baseline, record.get("bounds"))
-    return TileResult(
-        tile_id,
-        result.status,
-        None,
-        summary=result.summary,
-        regions=result.regions,
-        strata=result.strata,
-        excluded=result.excluded,
-        overview=overview,
+    return replace(
+        result,
+        overview=_overview_block(baseline, record.get("bounds")),
         coregistration=record.get("coregistration"),
-        corrected=result.corrected,
     )
 
 

@@ -37,15 +37,6 @@ FINISHED = {"successful", "failed", "dismissed"}
 
 
 @pytest.fixture(scope="module")
-def processes() -> Iterator[list[Process]]:
-    """Every process this module starts; all are stopped at the end, newest first."""
-    started: list[Process] = []
-    yield started
-    for proc in reversed(started):
-        proc.stop()
-
-
-@pytest.fixture(scope="module")
 def scheduler(processes: list[Process], tmp_path_factory: pytest.TempPathFactory) -> str:
     """Address of a Dask scheduler process with two single-threaded worker processes."""
     address = start_dask(processes, tmp_path_factory.mktemp("dask"), workers=2, memory="2GiB")

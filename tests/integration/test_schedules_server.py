@@ -16,7 +16,7 @@ import signal
 import sqlite3
 import subprocess
 import time
-from collections.abc import Callable, Iterator
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -32,14 +32,6 @@ pytestmark = pytest.mark.slow
 TOKEN = "schedule-token-0123456789"
 AUTH = {"Authorization": f"Bearer {TOKEN}"}
 SPEED = 60  # scheduler seconds per real second: a minute-by-minute cron fires every second
-
-
-@pytest.fixture(scope="module")
-def processes() -> Iterator[list[Process]]:
-    started: list[Process] = []
-    yield started
-    for proc in reversed(started):
-        proc.stop()
 
 
 @pytest.fixture(scope="module")
