@@ -5,19 +5,24 @@ from __future__ import annotations
 
 import json
 from collections.abc import Mapping
-from dataclasses import dataclass, replace
+from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
 from typing import Any
 
-import numpy as np
-import zarr
-
 from workers.catalog import TileInfo, tiles_from_catalog
 from workers.errors import SpecError
+from workers.merge import JobAccumulator
 from workers.recheck import ChangePlan, Thresholds, compare, lost_grades, plan
-from workers.summary_store import TileSummaryStore, result_from_entries
-from workers.tile_task import TileResult
+from workers.summary_store import (
+    AFTER_PART,
+    ALL_PART,
+    JOB_GROUP,
+    TileSummaryStore,
+    read_job_totals,
+    split_after,
+)
+from workers.tile_task import OK
 from workers.writers import SUMMARY_NAME, ZARR_NAME
 
 #: Spec sections whose change forces every tile to be recomputed.
@@ -56,19 +61,13 @@ class Baseline:
             return {}
         return tiles_from_catalog(doc)
 
+    @property
+    def has_job_totals(self) -> bool:
+        return (self.zarr / JOB_GROUP / ALL_PART / "zarr.json").is_file()
+
     @cached_property
     def summaries(self) -> TileSummaryStore:
         return TileSummaryStore(self.zarr)
-
-    @cached_property
-    def overview(self) -> tuple[Any, np.ndarray, np.ndarray] | None:
-        """The baseline's dh overview array and its x and y centre coordinates (None if none)."""
-        try:
-            root: Any = zarr.open_group(str(self.zarr), mode="r")
-            group = root["dh_overview"]
-            return group["dh"], np.asarray(group["x"][:]), np.asarray(group["y"][:])
-        except (KeyError, FileNotFoundError, OSError):
-            return None
 
 
 def load_baseline(folder: Path) -> Baseline:
@@ -110,31 +109,26 @@ def make_plan(
     )
 
 
-def reused_result(baseline: Baseline, tile_id: str) -> TileResult:
-    """A tile's result rebuilt from the baseline's stored summaries (no pixel is read)."""
-    record = baseline.tiles[tile_id]
-    if record.get("status") != "ok":
-        return TileResult(tile_id, record["status"], record.get("reason"))
-    entries, excluded = baseline.summaries.read(tile_id)
-    result = result_from_entries(tile_id, entries, excluded=excluded)
-    return replace(
-        result,
-        overview=_overview_block(baseline, record.get("bounds")),
-        coregistration=record.get("coregistration"),
-    )
-
-
-def _overview_block(baseline: Baseline, bounds: list[float] | None) -> np.ndarray | None:
-    if not bounds or baseline.overview is None:
-        return None
-    array, x, y = baseline.overview
-    left, bottom, right, top = bounds
-    cols = np.flatnonzero((x > left) & (x < right))
-    rows = np.flatnonzero((y > bottom) & (y < top))
-    if cols.size == 0 or rows.size == 0:
-        return None
-    block = array[rows[0] : rows[-1] + 1, cols[0] : cols[-1] + 1]
-    return np.asarray(block, dtype=np.float32)
+def resumed_totals(
+    baseline: Baseline, change: ChangePlan, region_ids: list[str]
+) -> tuple[JobAccumulator, JobAccumulator]:
+    """The baseline's job totals (and those after co-registration) without the tiles that are
+    recomputed or gone: what the tiles carried over contribute. Reads only those tiles' stored
+    summaries. SpecError when the baseline holds no job totals."""
+    acc = read_job_totals(baseline.zarr, ALL_PART, region_ids)
+    if acc is None:
+        raise SpecError(f"baseline: {baseline.zarr} holds no job totals ({JOB_GROUP})")
+    after = read_job_totals(baseline.zarr, AFTER_PART, region_ids)
+    after = after or JobAccumulator(region_ids=region_ids)
+    for tile_id in sorted({*change.recompute, *change.removed}):
+        if baseline.tiles.get(tile_id, {}).get("status") != OK:
+            continue  # failed or not audited: it added nothing
+        entries, excluded = baseline.summaries.read(tile_id)
+        own, corrected = split_after(entries)
+        acc.remove(tile_id, own, excluded=excluded)
+        if corrected:
+            after.remove(tile_id, corrected, excluded=excluded)
+    return acc, after
 
 
 def change_report(

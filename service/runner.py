@@ -19,7 +19,7 @@ from pyproj import CRS, Transformer
 
 from service.checkpoint_run import audit_checkpoints, earlier_heights, grade
 from service.coregistration import estimate_job_correction
-from service.recheck import change_report, load_baseline, make_plan, reused_result
+from service.recheck import Baseline, change_report, load_baseline, make_plan, resumed_totals
 from workers import regions as region_ops
 from workers import summary as dh_summary
 from workers.catalog import (
@@ -42,7 +42,13 @@ from workers.report import area_entry, build_summary, region_entries
 from workers.report_html import write_report
 from workers.spec import ELLIPSOIDAL, ResolvedJob
 from workers.summary import statistics
-from workers.summary_store import TileSummaryStore, entries_of
+from workers.summary_store import (
+    AFTER_PART,
+    ALL_PART,
+    TileSummaryStore,
+    entries_of,
+    write_job_totals,
+)
 from workers.tile_task import ALL, FAILED, OK, TileOptions, TileResult, audit_tile
 from workers.writers import (
     ResultsStore,
@@ -118,6 +124,12 @@ def run_job(
                 "the baseline was not used: an applied job-wide co-registration changes every "
                 "tile's corrected statistics, so every tile was recomputed"
             )
+        elif not prior.has_job_totals:
+            prior = None
+            baseline_note = (
+                "the baseline was not used: it holds no stored job totals (written by an "
+                "earlier version), so every tile was recomputed"
+            )
         else:
             change = make_plan(
                 prior,
@@ -135,7 +147,6 @@ def run_job(
     after = JobAccumulator(region_ids=region_ids)
     records: dict[str, dict[str, Any]] = {}
     for failure in catalog.test_failures:
-        acc.add(TileResult(failure.tile_id, FAILED, failure.reason))
         records[failure.tile_id] = _tile_record(failure.tile_id, FAILED, failure.reason, None, None)
     raster = job.spec.reference is not None
     if not raster:
@@ -147,12 +158,9 @@ def run_job(
     to_compute = catalog.tests if raster else []
     if change is not None and prior is not None:
         to_compute = [by_id[t] for t in sorted(change.recompute)] if raster else []
-        for tile_id in change.reuse:
-            result = reused_result(prior, tile_id)
-            _fold(result, acc, after, store, None)
-            if result.status == OK:
-                summaries.copy_from(prior.zarr, tile_id)
-            records[tile_id] = prior.tiles[tile_id]
+        if change.reuse:
+            acc, after = _carry_over(prior, change, region_ids, store, summaries)
+            records |= {t: prior.tiles[t] for t in change.reuse}
     futures = [
         client.submit(
             audit_tile,
@@ -169,12 +177,11 @@ def run_job(
         for tile in to_compute
     ]
     total = len(catalog.tests) + len(catalog.test_failures)
+    done = total - len(futures)
     for future in as_completed(futures):
         if should_stop is not None and should_stop():
             client.cancel(futures)
-            raise JobDismissedError(
-                f"job {job.spec.name} was dismissed after {acc.tiles_done} tiles"
-            )
+            raise JobDismissedError(f"job {job.spec.name} was dismissed after {done} tiles")
         result = _result_of(future)
         future.release()
         _fold(result, acc, after, store, summaries)
@@ -186,22 +193,27 @@ def run_job(
             statistics(result.summary),
             result,
         ) | {"sources": catalog.sources_of(by_id[result.tile_id])}
+        done += 1
         if progress:
-            progress(acc.tiles_done, total)
+            progress(done, total)
+    write_job_totals(store.path, ALL_PART, acc)
+    if after.extremes().keys:
+        write_job_totals(store.path, AFTER_PART, after)
 
     tile_rows = [records[k] for k in sorted(records)]
     names = {r.region_id: r.name for r in catalog.regions}
     outliers = job.spec.outliers
     rule: dict[str, Any] = {"outlier_rule": outliers.rule, "outlier_factor": outliers.factor}
     region_docs = region_entries({r: acc.regions[r] for r in region_ids}, names, acc.strata, **rule)
-    if coregistration is not None and after.tiles_done:
+    if coregistration is not None and after.extremes().keys:
         coregistration["after"] = {
             "overall": area_entry(after.overall, after.strata_of(ALL), **rule),
             "regions": region_entries(
                 {r: after.regions[r] for r in region_ids}, names, after.strata, **rule
             ),
         }
-    _write_tables(store, tile_rows, region_docs, acc, coregistration)
+    overall = area_entry(acc.overall, acc.strata_of(ALL), **rule)
+    _write_tables(store, tile_rows, overall, region_docs, coregistration)
     document = build_summary(
         job={
             "name": job.spec.name,
@@ -212,11 +224,10 @@ def run_job(
             "tiles": {
                 "test": len(job.test_tiles),
                 "reference": len(job.reference_tiles),
-                "failed": acc.tiles_failed,
+                "failed": sum(r["status"] == FAILED for r in tile_rows),
             },
         },
-        overall=area_entry(acc.overall, acc.strata_of(ALL), **rule)
-        | {"excluded_pixels": acc.excluded},
+        overall=overall | {"excluded_pixels": acc.excluded},
         regions=region_docs,
         tiles=tile_rows,
         reference_failures=catalog.reference_failures,
@@ -273,6 +284,24 @@ def _fold(
     store.write_overview(result.tile_id, result.overview)
     if result.status == OK and summaries is not None:
         summaries.write(result.tile_id, entries_of(result), excluded=result.excluded)
+
+
+def _carry_over(
+    prior: Baseline,
+    change: ChangePlan,
+    region_ids: list[str],
+    store: ResultsStore,
+    summaries: TileSummaryStore,
+) -> tuple[JobAccumulator, JobAccumulator]:
+    """Start from the baseline's totals without the tiles that changed or went away, and bring
+    the kept tiles' stored summaries and overview blocks over. Reads no kept tile."""
+    acc, after = resumed_totals(prior, change, region_ids)
+    summaries.link_from(prior.zarr, [t for t in change.reuse if prior.tiles[t]["status"] == OK])
+    keep = {t: prior.tiles[t]["bounds"] for t in change.reuse if prior.tiles[t].get("bounds")}
+    gone = [*change.recompute, *change.removed]
+    blank = [prior.tiles[t]["bounds"] for t in gone if prior.tiles.get(t, {}).get("bounds")]
+    store.carry_overview(prior.zarr, keep, blank)
+    return acc, after
 
 
 def _indicative_grading(acc: JobAccumulator, job: ResolvedJob) -> list[dict[str, Any]]:
@@ -453,8 +482,8 @@ def _tile_record(
 def _write_tables(
     store: ResultsStore,
     tiles: list[dict[str, Any]],
+    overall: dict[str, Any],
     regions: list[dict[str, Any]],
-    acc: JobAccumulator,
     coregistration: dict[str, Any] | None = None,
 ) -> None:
     nan4 = [np.nan] * 4
@@ -478,11 +507,10 @@ def _write_tables(
         [r["stats"] for r in regions],
         {"name": [r["name"] for r in regions]},
     )
-    areas = [ALL, *acc.region_ids]
-    strata_keys = list(dict.fromkeys(k for a in areas for k in acc.strata_of(a)))
-    stats = {
-        (area, key): statistics(part) for area in areas for key, part in acc.strata_of(area).items()
-    }
+    by_area = {ALL: overall["strata"]} | {r["region"]: r["strata"] for r in regions}
+    areas = list(by_area)
+    strata_keys = list(dict.fromkeys(e["stratum"] for a in areas for e in by_area[a]))
+    stats = {(area, e["stratum"]): e["stats"] for area in areas for e in by_area[area]}
     tables = {
         "tiles": tile_table,
         "regions": region_table,

@@ -16,6 +16,7 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import xarray as xr  # noqa: E402
+from numpy.typing import NDArray  # noqa: E402
 
 from workers.writers import ZARR_NAME  # noqa: E402
 
@@ -39,20 +40,20 @@ def write_figures(out_dir: Path, document: Mapping[str, Any]) -> list[str]:
 
 def _dh_map(out_dir: Path, document: Mapping[str, Any]) -> bool:
     try:
-        dh = xr.open_zarr(Path(out_dir) / ZARR_NAME, group="dh_overview")["dh"]
+        # chunks=None: plain numpy in this process; a Dask array would be computed on whatever
+        # cluster the caller has open and ship every block back and forth
+        dh = xr.open_zarr(Path(out_dir) / ZARR_NAME, group="dh_overview", chunks=None)["dh"]
     except (KeyError, FileNotFoundError, OSError):
         return False
     factor = -(-max(dh.shape) // MAP_PIXELS)  # no more map pixels than the figure shows
-    if factor > 1:
-        dh = dh.coarsen(y=factor, x=factor, boundary="pad").mean()
-    dh = dh.load()
+    values = block_mean(np.asarray(dh.values, dtype=np.float32), factor)
     overall = document.get("overall") or {}
     if not overall.get("count"):
         return False
     centre, spread = overall["median"], max(3 * overall["nmad"], 0.05)
     fig, ax = plt.subplots(figsize=(7, 6), layout="constrained")
     image = ax.imshow(
-        dh.values,
+        values,
         cmap="RdBu_r",
         vmin=centre - spread,
         vmax=centre + spread,
@@ -81,6 +82,21 @@ def _dh_map(out_dir: Path, document: Mapping[str, Any]) -> bool:
     fig.savefig(Path(out_dir) / MAP_NAME, dpi=110)
     plt.close(fig)
     return True
+
+
+def block_mean(values: NDArray[np.float32], factor: int) -> NDArray[np.float32]:
+    """Mean of each factor x factor block, ignoring NaN (the last blocks may be partial)."""
+    if factor <= 1:
+        return values
+    rows, cols = -(-values.shape[0] // factor), -(-values.shape[1] // factor)
+    padded = np.full((rows * factor, cols * factor), np.nan, dtype=np.float32)
+    padded[: values.shape[0], : values.shape[1]] = values
+    blocks = padded.reshape(rows, factor, cols, factor)
+    finite = np.isfinite(blocks)
+    counts = finite.sum(axis=(1, 3))
+    sums = np.where(finite, blocks, 0.0).sum(axis=(1, 3), dtype=np.float64)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(counts > 0, sums / counts, np.nan).astype(np.float32)
 
 
 def _by_stratum(out_dir: Path, document: Mapping[str, Any]) -> bool:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from affine import Affine
@@ -37,9 +38,10 @@ class Grid:
         a, b, _, d, e, _ = self.transform
         return (float(np.hypot(a, d)), float(np.hypot(b, e)))
 
-    @property
+    @cached_property
     def bounds(self) -> tuple[float, float, float, float]:
-        """(left, bottom, right, top) of the grid's footprint in its CRS."""
+        """(left, bottom, right, top) of the grid's footprint in its CRS (computed once: the
+        catalog asks for it many times per tile)."""
         corners = [self.affine @ (c, r) for c in (0, self.width) for r in (0, self.height)]
         xs, ys = zip(*corners, strict=True)
         return (min(xs), min(ys), max(xs), max(ys))

@@ -119,6 +119,44 @@ def merge_all(summaries: Iterable[DhSummary]) -> DhSummary:
     )
 
 
+def subtract(total: DhSummary, part: DhSummary, *, minimum: float, maximum: float) -> DhSummary:
+    """The summary of total's values without part's: undoes ``merge(rest, part)``.
+
+    part must be contained in total (every bin of part holds no more in total), else ValueError.
+    Histogram counts subtract exactly, and the moments by inverting Chan's formula. The minimum
+    and maximum of what remains cannot be derived from the two summaries, so the caller passes
+    them (the extremes of the remaining parts); they are ignored when nothing remains.
+    """
+    if part.count == 0:
+        return total
+    rest_n = total.count - part.count
+    at = np.searchsorted(total.bins, part.bins)
+    inside = at < total.bins.size
+    found = np.zeros(part.bins.shape, dtype=bool)
+    found[inside] = total.bins[at[inside]] == part.bins[inside]
+    counts = total.counts.astype(np.int64)
+    if rest_n < 0 or not found.all():
+        raise ValueError("cannot subtract a summary that is not part of the total")
+    np.subtract.at(counts, at, part.counts.astype(np.int64))
+    if (counts < 0).any():
+        raise ValueError("cannot subtract a summary that is not part of the total")
+    if rest_n == 0:
+        return empty()
+    keep = counts > 0
+    mean = total.mean + (total.mean - part.mean) * part.count / rest_n
+    delta = part.mean - mean
+    m2 = total.m2 - part.m2 - delta * delta * rest_n * part.count / total.count
+    return DhSummary(
+        rest_n,
+        float(mean),
+        max(float(m2), 0.0),
+        float(minimum),
+        float(maximum),
+        total.bins[keep].astype(np.int64),
+        counts[keep],
+    )
+
+
 def statistics(s: DhSummary) -> dict[str, float | int | None]:
     """The statistics of STAT_KEYS; all but count are None for an empty summary.
 

@@ -1,9 +1,14 @@
-"""Persist tile summaries in results.zarr so later runs merge them without reading pixels.
+"""Persist summaries in results.zarr so later runs merge them without reading pixels.
 
 Layout: ``results.zarr/tile_summaries/<tile id>/`` holds two arrays, ``bins`` and ``counts`` (the
 histograms of all the tile's entries, concatenated), and an attribute ``entries``: one record per
 (area, stratum) with the exact moments and the slice of the arrays that is its histogram. Area is
 a region id or ``*`` (the whole tile); stratum is a stratum key or ``""`` (no stratum).
+
+``results.zarr/job_summaries/<part>/`` (part ``all``, or ``after`` for the statistics after
+co-registration) holds the job's merged totals in the same layout, plus ``extremes`` (tiles x
+entries x 2: each tile's minimum and maximum per entry, attributes ``tiles`` and ``keys``) and the
+total of excluded pixels: what a re-check needs to continue the merge (workers/merge.py).
 """
 
 from __future__ import annotations
@@ -16,10 +21,14 @@ from typing import Any, Literal
 import numpy as np
 import zarr
 
+from workers.merge import JobAccumulator, TileExtremes, keyed_summaries
 from workers.summary import DhSummary
-from workers.tile_task import ALL, OK, TileResult
+from workers.tile_task import TileResult
+from workers.writers import link_or_copy
 
 GROUP = "tile_summaries"
+JOB_GROUP = "job_summaries"
+ALL_PART, AFTER_PART = "all", "after"  # job totals: all results / after co-registration
 Key = tuple[str, str]  # (area, stratum)
 
 
@@ -29,42 +38,20 @@ AFTER = "after:"  # area prefix of the summaries after co-registration
 def entries_of(result: TileResult, *, prefix: str = "") -> dict[Key, DhSummary]:
     """All summaries of a tile result, keyed (area, stratum); those after co-registration carry
     the area prefix ``after:``."""
-    out: dict[Key, DhSummary] = {(prefix + ALL, ""): result.summary}
-    out.update({(prefix + region, ""): s for region, s in result.regions.items()})
-    for area, by_stratum in result.strata.items():
-        out.update({(prefix + area, stratum): s for stratum, s in by_stratum.items()})
+    out = {(prefix + area, stratum): s for (area, stratum), s in keyed_summaries(result).items()}
     if result.corrected is not None:
         out.update(entries_of(result.corrected, prefix=AFTER))
     return out
 
 
-def result_from_entries(
-    tile_id: str, entries: dict[Key, DhSummary], *, excluded: int = 0, prefix: str = ""
-) -> TileResult:
-    """Rebuild a tile's result (status ok) from its stored summaries."""
-    mine = {
-        (a.removeprefix(prefix), st): s
-        for (a, st), s in entries.items()
-        if a.startswith(prefix) and not (prefix == "" and a.startswith(AFTER))
+def split_after(entries: dict[Key, DhSummary]) -> tuple[dict[Key, DhSummary], dict[Key, DhSummary]]:
+    """A tile's stored entries split into those of its result and those after co-registration
+    (prefix removed)."""
+    own = {k: s for k, s in entries.items() if not k[0].startswith(AFTER)}
+    after = {
+        (a.removeprefix(AFTER), st): s for (a, st), s in entries.items() if a.startswith(AFTER)
     }
-    regions = {a: s for (a, st), s in mine.items() if st == "" and a != ALL}
-    strata: dict[str, dict[str, DhSummary]] = {}
-    for (a, st), s in mine.items():
-        if st:
-            strata.setdefault(a, {})[st] = s
-    corrected = None
-    if prefix == "" and any(a.startswith(AFTER) for a, _ in entries):
-        corrected = result_from_entries(tile_id, entries, excluded=excluded, prefix=AFTER)
-    return TileResult(
-        tile_id,
-        OK,
-        None,
-        summary=mine[(ALL, "")],
-        regions=regions,
-        strata=strata,
-        excluded=excluded,
-        corrected=corrected,
-    )
+    return own, after
 
 
 class TileSummaryStore:
@@ -83,56 +70,100 @@ class TileSummaryStore:
     def write(self, tile_id: str, entries: dict[Key, DhSummary], *, excluded: int = 0) -> None:
         """Write (replace) one tile's summaries."""
         group = self._parent.create_group(tile_id, overwrite=True)
-        records: list[dict[str, Any]] = []
-        offset = 0
-        for (area, stratum), s in entries.items():
-            records.append(
-                {
-                    "area": area,
-                    "stratum": stratum,
-                    "count": s.count,
-                    "mean": s.mean,
-                    "m2": s.m2,
-                    "min": _finite_or_none(s.minimum),
-                    "max": _finite_or_none(s.maximum),
-                    "offset": offset,
-                    "length": int(s.bins.size),
-                }
-            )
-            offset += int(s.bins.size)
-        empty = np.zeros(0, np.int64)
-        bins = np.concatenate([s.bins for s in entries.values()]) if entries else empty
-        counts = np.concatenate([s.counts for s in entries.values()]) if entries else empty
-        group.create_array("bins", data=bins.astype(np.int32), chunks=(max(bins.size, 1),))
-        group.create_array("counts", data=counts.astype(np.int64), chunks=(max(counts.size, 1),))
-        group.attrs.update({"entries": records, "excluded": int(excluded)})
+        _write_entries(group, entries, {"excluded": int(excluded)})
 
     def read(self, tile_id: str) -> tuple[dict[Key, DhSummary], int]:
         """A tile's summaries and its excluded-pixel count (KeyError when not stored)."""
         group = self._parent[tile_id]
-        bins = np.asarray(group["bins"][:], dtype=np.int64)
-        counts = np.asarray(group["counts"][:], dtype=np.int64)
-        out: dict[Key, DhSummary] = {}
-        attrs = group.attrs.asdict()
-        for r in attrs["entries"]:
-            part = slice(r["offset"], r["offset"] + r["length"])
-            out[(r["area"], r["stratum"])] = DhSummary(
-                int(r["count"]),
-                float(r["mean"]),
-                float(r["m2"]),
-                math.inf if r["min"] is None else float(r["min"]),
-                -math.inf if r["max"] is None else float(r["max"]),
-                bins[part].copy(),
-                counts[part].copy(),
-            )
-        return out, int(attrs.get("excluded", 0))
+        entries, attrs = _read_entries(group)
+        return entries, int(attrs.get("excluded", 0))
 
-    def copy_from(self, other: Path, tile_id: str) -> None:
-        """Copy one tile's stored summaries from another results.zarr, file by file."""
-        target = self.zarr_path / GROUP / tile_id
-        if target.exists():
-            shutil.rmtree(target)
-        shutil.copytree(Path(other) / GROUP / tile_id, target)
+    def link_from(self, other: Path, tile_ids: list[str]) -> None:
+        """Bring tiles' stored summaries over from another results.zarr: hard links where the
+        file system allows (zarr replaces a file on write, never rewrites it in place, so the
+        other store stays as it was), copies elsewhere."""
+        for tile_id in tile_ids:
+            target = self.zarr_path / GROUP / tile_id
+            if target.exists():
+                shutil.rmtree(target)
+            shutil.copytree(Path(other) / GROUP / tile_id, target, copy_function=link_or_copy)
+
+
+def write_job_totals(zarr_path: Path, part: str, acc: JobAccumulator) -> None:
+    """Store a job's merged totals and per-tile extremes under job_summaries/<part>."""
+    root: Any = zarr.open_group(str(zarr_path), mode="a", zarr_format=3, use_consolidated=False)
+    group = root.require_group(JOB_GROUP).create_group(part, overwrite=True)
+    tiles, keys, extremes = acc.extremes().to_array()
+    _write_entries(group, acc.totals(), {"excluded": int(acc.excluded)})
+    array = group.create_array(
+        "extremes", data=extremes, chunks=tuple(max(n, 1) for n in extremes.shape)
+    )
+    array.attrs.update({"tiles": tiles, "keys": [list(k) for k in keys]})
+
+
+def read_job_totals(zarr_path: Path, part: str, region_ids: list[str]) -> JobAccumulator | None:
+    """A job accumulator resumed from job_summaries/<part> (None when the store has none)."""
+    try:
+        root: Any = zarr.open_group(str(zarr_path), mode="r", use_consolidated=False)
+        group = root[JOB_GROUP][part]
+    except (KeyError, FileNotFoundError):
+        return None
+    totals, attrs = _read_entries(group)
+    array = group["extremes"]
+    extremes = TileExtremes.from_array(
+        array.attrs["tiles"],
+        [(a, st) for a, st in array.attrs["keys"]],
+        np.asarray(array[...], dtype=np.float64),
+    )
+    return JobAccumulator.resume(
+        totals, extremes, excluded=int(attrs.get("excluded", 0)), region_ids=region_ids
+    )
+
+
+def _write_entries(group: Any, entries: dict[Key, DhSummary], attrs: dict[str, Any]) -> None:
+    """Histograms concatenated in two arrays; moments and slices in the attribute entries."""
+    records: list[dict[str, Any]] = []
+    offset = 0
+    for (area, stratum), s in entries.items():
+        records.append(
+            {
+                "area": area,
+                "stratum": stratum,
+                "count": s.count,
+                "mean": s.mean,
+                "m2": s.m2,
+                "min": _finite_or_none(s.minimum),
+                "max": _finite_or_none(s.maximum),
+                "offset": offset,
+                "length": int(s.bins.size),
+            }
+        )
+        offset += int(s.bins.size)
+    empty = np.zeros(0, np.int64)
+    bins = np.concatenate([s.bins for s in entries.values()]) if entries else empty
+    counts = np.concatenate([s.counts for s in entries.values()]) if entries else empty
+    group.create_array("bins", data=bins.astype(np.int32), chunks=(max(bins.size, 1),))
+    group.create_array("counts", data=counts.astype(np.int64), chunks=(max(counts.size, 1),))
+    group.attrs.update({"entries": records, **attrs})
+
+
+def _read_entries(group: Any) -> tuple[dict[Key, DhSummary], dict[str, Any]]:
+    bins = np.asarray(group["bins"][:], dtype=np.int64)
+    counts = np.asarray(group["counts"][:], dtype=np.int64)
+    out: dict[Key, DhSummary] = {}
+    attrs = group.attrs.asdict()
+    for r in attrs["entries"]:
+        part = slice(r["offset"], r["offset"] + r["length"])
+        out[(r["area"], r["stratum"])] = DhSummary(
+            int(r["count"]),
+            float(r["mean"]),
+            float(r["m2"]),
+            math.inf if r["min"] is None else float(r["min"]),
+            -math.inf if r["max"] is None else float(r["max"]),
+            bins[part].copy(),
+            counts[part].copy(),
+        )
+    return out, attrs
 
 
 def write_tile_summaries(

@@ -1,19 +1,24 @@
 """Write results: ``results.zarr`` (tile and region tables, georeferenced dh overview) and
 ``summary.json``. The I/O edge at the end of the pipeline.
 
-Zarr layout (Zarr format 3, consolidated metadata)::
+Zarr layout (Zarr format 3, consolidated metadata at the root except for the summaries)::
 
     results.zarr/
       tiles/        dim tile:   one variable per statistic;
                     coords tile, left/bottom/right/top, status, reason
       regions/      dim region: one variable per statistic; coords region, name
+      strata/       dims area, stratum: one variable per statistic
+      after_coregistration/  dim region (when co-registration was applied)
       dh_overview/  dims y, x:  block mean of dh (1:factor), CF grid_mapping ``spatial_ref``
+      tile_summaries/, job_summaries/: mergeable summaries (workers/summary_store.py), not in the
+                    consolidated metadata: open them with use_consolidated=False
 """
 
 from __future__ import annotations
 
 import json
 import math
+import os
 import shutil
 import warnings
 from collections.abc import Iterator, Mapping, Sequence
@@ -33,6 +38,8 @@ from workers.catalog import TileInfo
 from workers.summary import STAT_KEYS
 
 ZARR_NAME = "results.zarr"
+#: Groups read with the zarr API, left out of the root's consolidated metadata.
+UNCONSOLIDATED_GROUPS = frozenset({"tile_summaries", "job_summaries"})
 SUMMARY_NAME = "summary.json"
 
 
@@ -111,9 +118,7 @@ class ResultsStore:
             self._create_overview(layout)
 
     def _create_overview(self, layout: OverviewLayout) -> None:
-        a, _, c, _, e, f = layout.transform
-        x = c + a * (np.arange(layout.width) + 0.5)
-        y = f + e * (np.arange(layout.height) + 0.5)
+        x, y = self._overview_coords()
         blank = da.full(
             (layout.height, layout.width),
             np.nan,
@@ -142,16 +147,90 @@ class ResultsStore:
         rows = slice(row, min(row + block.shape[0], self.layout.height))
         cols = slice(col, min(col + block.shape[1], self.layout.width))
         part = block[: rows.stop - rows.start, : cols.stop - cols.start]
+        self._overview()[rows, cols] = part
+
+    def carry_overview(
+        self,
+        baseline: Path,
+        keep: Mapping[str, Sequence[float]],
+        blank: Sequence[Sequence[float]],
+    ) -> None:
+        """Bring over the overview blocks of the tiles in keep (tile id -> bounds) from an
+        earlier results.zarr; blank the footprints in blank (tiles recomputed or gone).
+
+        When both overviews share one grid, the chunk files are linked (or copied) wholesale and
+        only the blanked footprints are written: the cost does not grow with the tiles kept.
+        Otherwise each kept tile's block is read and written.
+        """
+        if self.layout is None or not keep:
+            return
+        try:
+            source: Any = zarr.open_group(str(baseline / "dh_overview"), mode="r")
+            old, old_x, old_y = source["dh"], source["x"][:], source["y"][:]
+        except (KeyError, FileNotFoundError, OSError):
+            return
+        new = self._overview()
+        x, y = self._overview_coords()
+        if (
+            old.shape == new.shape
+            and old.chunks == new.chunks
+            and np.array_equal(old_x, x)
+            and (np.array_equal(old_y, y))
+        ):
+            chunks = baseline / "dh_overview" / "dh" / "c"
+            if chunks.is_dir():
+                shutil.copytree(
+                    chunks,
+                    self.path / "dh_overview" / "dh" / "c",
+                    dirs_exist_ok=True,
+                    copy_function=link_or_copy,
+                )
+            for bounds in blank:
+                rows, cols = _window(x, y, bounds)
+                if rows.stop > rows.start and cols.stop > cols.start:
+                    new[rows, cols] = np.nan
+            return
+        for bounds in keep.values():
+            old_rows, old_cols = _window(old_x, old_y, bounds)
+            rows, cols = _window(x, y, bounds)
+            if rows.stop > rows.start and cols.stop > cols.start:
+                new[rows, cols] = old[old_rows, old_cols]
+
+    def _overview(self) -> Any:
         if self._overview_array is None:
             self._overview_array = zarr.open_array(
                 str(self.path / "dh_overview" / "dh"), mode="r+", use_consolidated=False
             )
-        self._overview_array[rows, cols] = part
+        return self._overview_array
+
+    def _overview_coords(self) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        assert self.layout is not None
+        a, _, c, _, e, f = self.layout.transform
+        x = c + a * (np.arange(self.layout.width, dtype=np.float64) + 0.5)
+        y = f + e * (np.arange(self.layout.height, dtype=np.float64) + 0.5)
+        return x.astype(np.float64), y.astype(np.float64)
 
     def finish(self) -> None:
-        """Consolidate the metadata and put the store in place of any earlier results.zarr."""
+        """Consolidate the metadata and put the store in place of any earlier results.zarr.
+
+        The stored summaries (a group per tile, with large attributes) are moved aside while the
+        root is consolidated: gathering them would cost every run time in proportion to the
+        archive and make the root's metadata grow with it. Open them directly, without
+        consolidated metadata (see workers/summary_store.py).
+        """
+        aside = self.path.with_name(self.path.name + ".aside")
+        if aside.exists():
+            shutil.rmtree(aside)
+        moved = [name for name in UNCONSOLIDATED_GROUPS if (self.path / name).is_dir()]
+        for name in moved:
+            aside.mkdir(exist_ok=True)
+            (self.path / name).rename(aside / name)
         with _quiet_zarr():
             zarr.consolidate_metadata(str(self.path))
+        for name in moved:
+            (aside / name).rename(self.path / name)
+        if aside.exists():
+            aside.rmdir()
         if self.final_path.exists():
             shutil.rmtree(self.final_path)
         self.path.rename(self.final_path)
@@ -163,6 +242,27 @@ class ResultsStore:
             mode: Literal["a", "w"] = "a" if self.path.exists() else "w"
             with _quiet_zarr():
                 table.to_zarr(self.path, group=group, mode=mode, zarr_format=3, consolidated=False)
+
+
+def _window(
+    x: NDArray[np.float64], y: NDArray[np.float64], bounds: Sequence[float]
+) -> tuple[slice, slice]:
+    """Rows and columns of the overview cells whose centres lie inside bounds."""
+    left, bottom, right, top = bounds
+    cols = np.flatnonzero((x > left) & (x < right))
+    rows = np.flatnonzero((y > bottom) & (y < top))
+    if cols.size == 0 or rows.size == 0:
+        return slice(0, 0), slice(0, 0)
+    return slice(int(rows[0]), int(rows[-1]) + 1), slice(int(cols[0]), int(cols[-1]) + 1)
+
+
+def link_or_copy(source: str, target: str) -> None:
+    """Hard-link a file where the file system allows, else copy it. Safe for zarr stores: zarr
+    writes a new file and renames it over the old, never rewriting a file in place."""
+    try:
+        os.link(source, target)
+    except OSError:  # another file system, or links not allowed
+        shutil.copy2(source, target)
 
 
 def _affine(t: tuple[float, ...]):  # type: ignore[no-untyped-def]

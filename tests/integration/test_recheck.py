@@ -10,6 +10,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import rasterio
+import zarr
 from distributed import get_task_stream
 from rasterio.warp import transform_bounds
 from shapely.geometry import box
@@ -47,12 +48,19 @@ def archive(tmp_path) -> Path:
     return root
 
 
+def files_of(folder: Path) -> dict[str, bytes]:
+    return {str(p.relative_to(folder)): p.read_bytes() for p in folder.rglob("*") if p.is_file()}
+
+
 def test_nightly_update_recomputes_only_the_replaced_block(archive, dask_client, tmp_path):
     base, first = audited(dask_client, archive, tmp_path / "base")
     assert len(first) == 36
     for update in (archive / "release_2026_11_update").glob("*.tif"):
         shutil.copy(update, archive / "release_2026_11" / update.name)
+    before = files_of(tmp_path / "base" / "results.zarr")
     night, recomputed = audited(dask_client, archive, tmp_path / "night", tmp_path / "base")
+    # the re-check links the baseline's files; it must leave every one of them as it was
+    assert files_of(tmp_path / "base" / "results.zarr") == before
     block = sorted(p.stem for p in (archive / "release_2026_11_update").glob("*.tif"))
     assert recomputed == block  # counted on the cluster's task stream
     report = night["recheck"]
@@ -101,3 +109,45 @@ def test_recheck_resamples_only_checkpoints_near_changed_tiles(archive, dask_cli
     assert night["checkpoints"]["stats"] == pytest.approx(fresh["checkpoints"]["stats"])
     assert night["checkpoints"]["counts"] == fresh["checkpoints"]["counts"]
     assert night["checkpoints"]["stats"] != pytest.approx(base["checkpoints"]["stats"])
+
+
+def test_a_recheck_of_a_recheck_equals_a_full_run(archive, dask_client, tmp_path):
+    """Totals carried from night to night do not drift: two re-checks in a row, the second on a
+    reference change, equal a fresh full run of the final archive."""
+    audited(dask_client, archive, tmp_path / "base")
+    for update in (archive / "release_2026_11_update").glob("*.tif"):
+        shutil.copy(update, archive / "release_2026_11" / update.name)
+    audited(dask_client, archive, tmp_path / "night1", tmp_path / "base")
+    ref = sorted((archive / "lidar_2021").glob("*.tif"))[7]
+    with rasterio.open(ref, "r+") as dst:
+        data = dst.read(1)
+        dst.write(np.where(data == dst.nodata, data, data - 0.3).astype(data.dtype), 1)
+    night2, recomputed = audited(dask_client, archive, tmp_path / "night2", tmp_path / "night1")
+    assert 0 < len(recomputed) < 36
+    fresh, _ = audited(dask_client, archive, tmp_path / "fresh")
+    assert night2["overall"] == pytest.approx(fresh["overall"], rel=1e-12)
+    for area in ("regions",):
+        for a, b in zip(night2[area], fresh[area], strict=True):
+            assert a["stats"] == pytest.approx(b["stats"], rel=1e-12)
+            for sa, sb in zip(a["strata"], b["strata"], strict=True):
+                assert sa["stratum"] == sb["stratum"]
+                for key, want in sb["stats"].items():  # None where a stratum is empty
+                    got = sa["stats"][key]
+                    assert got == (want if want is None else pytest.approx(want, rel=1e-12))
+    night_map = np.asarray(
+        zarr.open_array(str(tmp_path / "night2" / "results.zarr" / "dh_overview" / "dh"))[...]
+    )
+    fresh_map = np.asarray(
+        zarr.open_array(str(tmp_path / "fresh" / "results.zarr" / "dh_overview" / "dh"))[...]
+    )
+    assert np.array_equal(night_map, fresh_map, equal_nan=True)
+
+
+def test_a_baseline_without_job_totals_recomputes_everything_and_says_so(
+    archive, dask_client, tmp_path
+):
+    audited(dask_client, archive, tmp_path / "base")
+    shutil.rmtree(tmp_path / "base" / "results.zarr" / "job_summaries")  # as an older version
+    doc, recomputed = audited(dask_client, archive, tmp_path / "night", tmp_path / "base")
+    assert len(recomputed) == 36 and "recheck" not in doc
+    assert any("holds no stored job totals" in c for c in doc["cautions"])

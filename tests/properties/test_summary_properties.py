@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import numpy as np
+import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
@@ -68,3 +69,29 @@ def test_constant_shift_moves_median_keeps_nmad(x, c) -> None:
 )
 def test_dh_is_antisymmetric(a, b) -> None:
     assert np.array_equal(difference(a, b), -difference(b, a))
+
+
+@given(dh_arrays, dh_arrays)
+@settings(max_examples=80, deadline=None)
+def test_subtract_undoes_merge(a, b) -> None:
+    sa, sb = dhs.summarise(a), dhs.summarise(b)
+    rest = dhs.subtract(dhs.merge(sa, sb), sb, minimum=float(a.min()), maximum=float(a.max()))
+    assert rest.count == sa.count
+    assert np.array_equal(rest.bins, sa.bins) and np.array_equal(rest.counts, sa.counts)
+    # the moments come back up to rounding (one merge and one inversion of Chan's formula)
+    assert rest.mean == pytest.approx(sa.mean, rel=1e-9, abs=1e-9)
+    assert rest.m2 == pytest.approx(sa.m2, rel=1e-6, abs=1e-6)
+    assert dhs.statistics(rest)["median"] == dhs.statistics(sa)["median"]
+
+
+@given(dh_arrays, dh_arrays)
+@settings(max_examples=40, deadline=None)
+def test_subtracting_what_is_not_there_is_refused(a, b) -> None:
+    sa, sb = dhs.summarise(a), dhs.summarise(np.concatenate([b, b, b]))
+    in_a = dict(zip(sa.bins.tolist(), sa.counts.tolist(), strict=True))
+    pairs = zip(sb.bins.tolist(), sb.counts.tolist(), strict=True)
+    contained = all(in_a.get(k, 0) >= n for k, n in pairs)
+    if contained:  # b's histogram fits inside a's: nothing to refuse for this draw
+        return
+    with pytest.raises(ValueError, match="not part of the total"):
+        dhs.subtract(sa, sb, minimum=0.0, maximum=0.0)

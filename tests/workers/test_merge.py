@@ -11,9 +11,9 @@ from shapely.geometry import MultiPolygon, Polygon, box
 
 from workers.catalog import TileInfo
 from workers.grid import Grid
-from workers.merge import accumulate
+from workers.merge import JobAccumulator, TileExtremes, accumulate, keyed_summaries
 from workers.regions import Region
-from workers.summary import nmad_bound_m, quantile_bound_m, statistics
+from workers.summary import empty, nmad_bound_m, quantile_bound_m, statistics
 from workers.tile_task import TileOptions, TileSurfaces, summarise_tile
 
 UTM = CRS.from_epsg(32632).to_wkt()
@@ -112,3 +112,50 @@ def test_64_tiles_regions_equal_one_pass_with_numpy():
             q = np.quantile(np.abs(x), p)
             assert abs(got[key] - q) <= quantile_bound_m(q)
     assert acc.regions["HOLED"].count < acc.regions["CROSS"].count
+
+
+def test_resumed_merge_with_removals_equals_a_fresh_merge():
+    """A re-check's merge: earlier totals, minus replaced tiles, plus their new results, equals
+    merging the final set of tiles from scratch, including min and max when a replaced tile held
+    the extreme."""
+    rng = np.random.default_rng(11)
+    tiles = [tile(col, row) for row in range(4) for col in range(4)]
+
+    def result(t, shift):
+        dh = heavy_tailed(rng, (PIXELS, PIXELS)) + shift
+        return summarise_tile(t, TileSurfaces(dh, np.zeros_like(dh), None), REGIONS, TileOptions())
+
+    first = [result(t, 0.0) for t in tiles]
+    earlier = accumulate(first, [r.region_id for r in REGIONS])
+    # the tile holding the job's extreme values is among those replaced
+    lowest = min(range(len(first)), key=lambda i: first[i].summary.minimum)
+    replaced = sorted({lowest, 3, 9})
+    stored = TileExtremes.from_array(*earlier.extremes().to_array())
+    resumed = JobAccumulator.resume(
+        earlier.totals(), stored, excluded=earlier.excluded, region_ids=earlier.region_ids
+    )
+    final = list(first)
+    for i in replaced:
+        resumed.remove(tiles[i].tile_id, keyed_summaries(first[i]), excluded=first[i].excluded)
+        final[i] = result(tiles[i], 0.4)
+        resumed.add(final[i])
+    fresh = accumulate(final, [r.region_id for r in REGIONS])
+    assert resumed.totals().keys() == fresh.totals().keys()
+    for key, want in fresh.totals().items():
+        got = resumed.summary(key)
+        assert np.array_equal(got.bins, want.bins) and np.array_equal(got.counts, want.counts)
+        a, b = statistics(got), statistics(want)
+        for stat in ("count", "median", "nmad", "q683_abs", "q95_abs", "min", "max"):
+            assert a[stat] == b[stat], (key, stat)
+        for stat in ("mean", "std", "rmse"):
+            assert a[stat] == (None if b[stat] is None else pytest.approx(b[stat], rel=1e-12))
+
+
+def test_removing_every_tile_leaves_empty_totals():
+    rng = np.random.default_rng(3)
+    t = tile(0, 0)
+    dh = heavy_tailed(rng, (PIXELS, PIXELS))
+    only = summarise_tile(t, TileSurfaces(dh, np.zeros_like(dh), None), REGIONS, TileOptions())
+    acc = accumulate([only])
+    acc.remove(t.tile_id, keyed_summaries(only), excluded=0)
+    assert statistics(acc.overall) == statistics(empty())

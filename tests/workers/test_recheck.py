@@ -84,6 +84,11 @@ def test_lost_grades():
 
 def test_tiles_without_reference_are_carried_over():
     tiles = {"edge": {"fingerprint": "fe", "status": "no_reference", "sources": []}}
-    change = plan(baseline_tiles=tiles, baseline_sources={}, current_tiles={"edge": "fe"},
-                  current_sources={}, overlaps={"edge": []})
+    change = plan(
+        baseline_tiles=tiles,
+        baseline_sources={},
+        current_tiles={"edge": "fe"},
+        current_sources={},
+        overlaps={"edge": []},
+    )
     assert change.reuse == ("edge",) and not change.recompute
