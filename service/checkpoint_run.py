@@ -215,10 +215,9 @@ def _section(
         g.region_id: shapely.intersects_xy(g.geometry, xs, ys)
         for g in regions.get(tests[0].grid.crs, [])
     }
-    for i, r in enumerate(used):
+    for r in used:
         cover = r.get("landcover")
         r["cover_group"] = group_of.get(cover, "unknown") if cover is not None else "unknown"
-        r["regions"] = [region_id for region_id, mask in inside.items() if mask[i]]
     dh = np.array([r["dh_m"] for r in used])
     nv = np.array([r["dh_m"] for r in used if r["cover_group"] == "non_vegetated"])
     veg = np.array([r["dh_m"] for r in used if r["cover_group"] == "vegetated"])
@@ -242,7 +241,11 @@ def _section(
         "vertical_accuracy": va,
         "by_class": _grouped(used, "landcover"),
         "by_cover_group": _grouped(used, "cover_group"),
-        "by_region": _by_region(used),
+        "by_region": {
+            region_id: residual_statistics(dh[mask])
+            for region_id, mask in inside.items()
+            if mask.any()
+        },
         "grading": grade(measured, job),
         "rejected": [
             {"id": r["id"], "reason": r["reason"]}
@@ -287,14 +290,6 @@ def _grouped(used: list[dict[str, Any]], key: str) -> dict[str, Any]:
     return {k: residual_statistics(v) for k, v in sorted(groups.items())}
 
 
-def _by_region(used: list[dict[str, Any]]) -> dict[str, Any]:
-    groups: dict[str, list[float]] = {}
-    for r in used:
-        for region_id in r["regions"]:
-            groups.setdefault(region_id, []).append(r["dh_m"])
-    return {k: residual_statistics(v) for k, v in groups.items()}
-
-
 def earlier_heights(
     folder: Path, document: Mapping[str, Any], job: ResolvedJob
 ) -> dict[str, float]:
@@ -329,7 +324,6 @@ def _write_residuals(path: Path, records: dict[str, dict[str, Any]]) -> None:
         "dh_m",
     ]
     with open(path, "w", newline="", encoding="utf-8") as fh:
-        writer = csv.DictWriter(fh, fieldnames=columns, extrasaction="ignore")
-        writer.writeheader()
-        for record in records.values():
-            writer.writerow(record)
+        writer = csv.writer(fh)
+        writer.writerow(columns)
+        writer.writerows([r.get(c, "") for c in columns] for r in records.values())

@@ -7,6 +7,7 @@ result at a time; pixels stay on the workers.
 from __future__ import annotations
 
 import datetime as dt
+import time
 import uuid
 from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, replace
@@ -96,6 +97,7 @@ def run_job(
     written as change_report.json).
     """
     started = _now()
+    clock = Phases()
     run_id = run_id or uuid.uuid4().hex[:12]
     out_dir.mkdir(parents=True, exist_ok=True)
     options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
@@ -114,6 +116,7 @@ def run_job(
         )
         options = replace(options, correction=correction)
 
+    clock.mark("catalog_and_coregistration")
     sources = catalog.source_fingerprints()
     change: ChangePlan | None = None
     baseline_note = ""
@@ -161,6 +164,7 @@ def run_job(
         if change.reuse:
             acc, after = _carry_over(prior, change, region_ids, store, summaries)
             records |= {t: prior.tiles[t] for t in change.reuse}
+            clock.mark("carry_over")
     futures = [
         client.submit(
             audit_tile,
@@ -196,9 +200,11 @@ def run_job(
         done += 1
         if progress:
             progress(done, total)
+    clock.mark("tiles")
     write_job_totals(store.path, ALL_PART, acc)
     if after.extremes().keys:
         write_job_totals(store.path, AFTER_PART, after)
+    clock.mark("job_totals")
 
     tile_rows = [records[k] for k in sorted(records)]
     names = {r.region_id: r.name for r in catalog.regions}
@@ -213,7 +219,9 @@ def run_job(
             ),
         }
     overall = area_entry(acc.overall, acc.strata_of(ALL), **rule)
+    clock.mark("statistics")
     _write_tables(store, tile_rows, overall, region_docs, coregistration)
+    clock.mark("tables")
     document = build_summary(
         job={
             "name": job.spec.name,
@@ -253,6 +261,7 @@ def run_job(
             earlier=earlier,
             clean_tiles=clean,
         )
+    clock.mark("checkpoints")
     if raster:
         document["grading_indicative"] = _indicative_grading(acc, job)
     try:
@@ -261,12 +270,28 @@ def run_job(
     except (OSError, ValueError, KeyError) as exc:  # a figure never costs the results
         document["figures"] = []
         document["cautions"].append(f"figures or report.html could not be drawn: {exc}")
+    clock.mark("figures_and_report")
     if prior is not None and change is not None:
         limits = Thresholds(**job.spec.recheck.model_dump())
         document["recheck"] = change_report(prior, change, document, limits)
         write_summary(out_dir, document["recheck"], name=CHANGE_REPORT_NAME)
+    clock.mark("change_report")
+    document["job"]["timings_s"] = clock.seconds
     write_summary(out_dir, document)
     return document
+
+
+class Phases:
+    """Wall time of the phases of a run (seconds, in the order they ran), for summary.json."""
+
+    def __init__(self) -> None:
+        self.seconds: dict[str, float] = {}
+        self._last = time.perf_counter()
+
+    def mark(self, phase: str) -> None:
+        now = time.perf_counter()
+        self.seconds[phase] = round(self.seconds.get(phase, 0.0) + now - self._last, 3)
+        self._last = now
 
 
 def _fold(

@@ -150,14 +150,16 @@ class TileIndex:
             bounds = grid.bounds
             if crs != grid.crs and not _same_crs(crs, grid.crs):
                 bounds = _transformer(grid.crs, crs).transform_bounds(*bounds, densify_pts=21)
-            query = box(*bounds)
-            hits = tree.query(query, predicate="intersects")
+            hits = tree.query(box(*bounds), predicate="intersects")
             found.extend(
-                members[i]
-                for i in np.sort(hits)
-                if box(*members[i].bounds).intersection(query).area > 0
+                m for m in (members[i] for i in np.sort(hits)) if _overlap(m.bounds, bounds)
             )
         return found
+
+
+def _overlap(a: Sequence[float], b: Sequence[float]) -> bool:
+    """Whether two (left, bottom, right, top) boxes share an area (touching is not enough)."""
+    return min(a[2], b[2]) > max(a[0], b[0]) and min(a[3], b[3]) > max(a[1], b[1])
 
 
 def catalog_document(tiles: Sequence[TileInfo]) -> dict[str, object]:

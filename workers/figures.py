@@ -15,7 +15,7 @@ import matplotlib
 matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
-import xarray as xr  # noqa: E402
+import zarr  # noqa: E402
 from numpy.typing import NDArray  # noqa: E402
 
 from workers.writers import ZARR_NAME  # noqa: E402
@@ -40,13 +40,14 @@ def write_figures(out_dir: Path, document: Mapping[str, Any]) -> list[str]:
 
 def _dh_map(out_dir: Path, document: Mapping[str, Any]) -> bool:
     try:
-        # chunks=None: plain numpy in this process; a Dask array would be computed on whatever
-        # cluster the caller has open and ship every block back and forth
-        dh = xr.open_zarr(Path(out_dir) / ZARR_NAME, group="dh_overview", chunks=None)["dh"]
+        # read with zarr into this process: through xarray and Dask, the blocks would be
+        # computed on whatever cluster the caller has open and shipped back
+        group: Any = zarr.open_group(str(Path(out_dir) / ZARR_NAME / "dh_overview"), mode="r")
+        dh, x, y = group["dh"][...], group["x"][...], group["y"][...]
     except (KeyError, FileNotFoundError, OSError):
         return False
     factor = -(-max(dh.shape) // MAP_PIXELS)  # no more map pixels than the figure shows
-    values = block_mean(np.asarray(dh.values, dtype=np.float32), factor)
+    values = block_mean(np.asarray(dh, dtype=np.float32), factor)
     overall = document.get("overall") or {}
     if not overall.get("count"):
         return False
@@ -57,7 +58,7 @@ def _dh_map(out_dir: Path, document: Mapping[str, Any]) -> bool:
         cmap="RdBu_r",
         vmin=centre - spread,
         vmax=centre + spread,
-        extent=(float(dh.x.min()), float(dh.x.max()), float(dh.y.min()), float(dh.y.max())),
+        extent=(float(x.min()), float(x.max()), float(y.min()), float(y.max())),
         interpolation="nearest",
     )
     for tile in document.get("tiles", []):
