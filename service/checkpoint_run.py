@@ -302,10 +302,13 @@ def earlier_heights(
     if section.get("file_fingerprint") != file_fingerprint(job.checkpoint_file):
         return {}
     with open(path, newline="", encoding="utf-8") as fh:
+        reader = csv.reader(fh)
+        columns = next(reader, [])
+        if not {"id", "status", "test_height_m"} <= set(columns):
+            return {}
+        pid, status, height = (columns.index(c) for c in ("id", "status", "test_height_m"))
         return {
-            row["id"]: float(row["test_height_m"])
-            for row in csv.DictReader(fh)
-            if row.get("status") == "used" and row.get("test_height_m")
+            row[pid]: float(row[height]) for row in reader if row[status] == "used" and row[height]
         }
 
 

@@ -37,19 +37,30 @@ def estimate_job_correction(
     landcover: Callable[[TileInfo], list[TileInfo]],
     regions: Mapping[str, list[Region]],
     options: TileOptions,
+    known: Mapping[str, dict[str, Any]] | None = None,
 ) -> tuple[Correction | None, dict[str, Any], dict[str, dict[str, Any]]]:
     """The job's correction (None when it cannot be estimated), a report of the estimate and
-    the tiles' own shift records (tile id -> record)."""
+    the tiles' own shift records (tile id -> record).
+
+    known: tile id -> shift record from an earlier run of tiles whose inputs did not change
+    (a re-check); those tiles are not estimated again. The pooled estimate ignores it (its
+    passes depend on the whole job's shift) and visits every sampled tile.
+    """
     coreg = options.coregistration
     assert coreg is not None
     sample = list(tiles[:: coreg.tile_stride])
+    reuse = dict(known or {}) if coreg.job_estimate == "tile_median" else {}
     futures = {
         t.tile_id: client.submit(
             estimate_tile_shift, t, references[t.tile_id], options, landcover(t), pure=False
         )
         for t in sample
+        if t.tile_id not in reuse
     }
-    records = {tile_id: f.result() for tile_id, f in futures.items()}
+    records = {
+        t.tile_id: reuse[t.tile_id] if t.tile_id in reuse else futures[t.tile_id].result()
+        for t in sample
+    }
     origin = _origin(sample)
     if coreg.job_estimate == "tile_median":
         correction, report = _tile_median(records, origin, fit_tilt=coreg.fit_tilt)
@@ -59,6 +70,7 @@ def estimate_job_correction(
             client, sample, references, landcover, regions, options, origin
         )
     report["tiles_used"] = len(sample)
+    report["tiles_estimated_earlier"] = sum(t.tile_id in reuse for t in sample)
     return correction, report, records
 
 

@@ -109,6 +109,15 @@ def make_plan(
     )
 
 
+def known_shifts(baseline: Baseline, change: ChangePlan) -> dict[str, dict[str, Any]]:
+    """The baseline's per-tile co-registration estimates of the tiles carried over."""
+    return {
+        tile_id: {k: v for k, v in record.items() if k != "applied"}
+        for tile_id in change.reuse
+        if (record := baseline.tiles[tile_id].get("coregistration"))
+    }
+
+
 def resumed_totals(
     baseline: Baseline, change: ChangePlan, region_ids: list[str]
 ) -> tuple[JobAccumulator, JobAccumulator]:

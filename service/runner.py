@@ -20,7 +20,14 @@ from pyproj import CRS, Transformer
 
 from service.checkpoint_run import audit_checkpoints, earlier_heights, grade
 from service.coregistration import estimate_job_correction
-from service.recheck import Baseline, change_report, load_baseline, make_plan, resumed_totals
+from service.recheck import (
+    Baseline,
+    change_report,
+    known_shifts,
+    load_baseline,
+    make_plan,
+    resumed_totals,
+)
 from workers import regions as region_ops
 from workers import summary as dh_summary
 from workers.catalog import (
@@ -103,25 +110,12 @@ def run_job(
     options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
     prior = load_baseline(baseline) if baseline is not None else None
     catalog = _catalog(client, job, options, prior.catalog if prior else {})
-    coregistration: dict[str, Any] | None = None
-    tile_shifts: dict[str, dict[str, Any]] = {}
-    if options.coregistration is not None:
-        correction, coregistration, tile_shifts = estimate_job_correction(
-            client,
-            catalog.tests,
-            references=catalog.candidates,
-            landcover=catalog.landcover_of,
-            regions=catalog.regions_by_crs,
-            options=options,
-        )
-        options = replace(options, correction=correction)
-
-    clock.mark("catalog_and_coregistration")
     sources = catalog.source_fingerprints()
     change: ChangePlan | None = None
     baseline_note = ""
+    coreg = options.coregistration
     if prior is not None:
-        if options.coregistration is not None and options.coregistration.estimate_from == "job":
+        if coreg is not None and coreg.estimate_from == "job" and coreg.apply:
             prior = None  # the job-wide correction touches every tile: recompute all
             baseline_note = (
                 "the baseline was not used: an applied job-wide co-registration changes every "
@@ -141,6 +135,20 @@ def run_job(
                 sources,
                 {t.tile_id: catalog.sources_of(t) for t in catalog.tests},
             )
+    coregistration: dict[str, Any] | None = None
+    tile_shifts: dict[str, dict[str, Any]] = {}
+    if coreg is not None:
+        correction, coregistration, tile_shifts = estimate_job_correction(
+            client,
+            catalog.tests,
+            references=catalog.candidates,
+            landcover=catalog.landcover_of,
+            regions=catalog.regions_by_crs,
+            options=options,
+            known=known_shifts(prior, change) if prior is not None and change else {},
+        )
+        options = replace(options, correction=correction)
+    clock.mark("catalog_and_coregistration")
 
     layout = overview_layout(catalog.tests, factor=job.spec.options.overview_factor)
     store = ResultsStore(out_dir, layout)

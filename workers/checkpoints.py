@@ -120,24 +120,35 @@ def _parse_rows(
     rows: list[dict[str, Any]], columns: tuple[str, str, str, str, str | None]
 ) -> tuple[list[Checkpoint], list[Rejected]]:
     id_col, x_col, y_col, h_col, cover_col = columns
+    xs, ys, hs = (_numbers([row.get(c) for row in rows]) for c in (x_col, y_col, h_col))
+    covers = _numbers([row.get(cover_col) for row in rows]) if cover_col else None
     points: list[Checkpoint] = []
     rejected: list[Rejected] = []
     seen: set[str] = set()
-    for number, row in enumerate(rows, start=1):
-        point_id = str(row.get(id_col) or f"row {number}")
+    for i, row in enumerate(rows):
+        point_id = str(row.get(id_col) or f"row {i + 1}")
         if point_id in seen:
             rejected.append(Rejected(point_id, "duplicated id (the first occurrence is used)"))
             continue
         seen.add(point_id)
-        x, y, h = (_number(row.get(c)) for c in (x_col, y_col, h_col))
-        if h is None:
+        x, y, h = xs[i], ys[i], hs[i]
+        if math.isnan(h):
             rejected.append(Rejected(point_id, f"no height in column {h_col!r}"))
-        elif x is None or y is None:
+        elif math.isnan(x) or math.isnan(y):
             rejected.append(Rejected(point_id, f"no coordinates in {x_col!r}/{y_col!r}"))
         else:
-            cover = _number(row.get(cover_col)) if cover_col else None
-            points.append(Checkpoint(point_id, x, y, h, None if cover is None else int(cover)))
+            cover = None if covers is None or math.isnan(covers[i]) else int(covers[i])
+            points.append(Checkpoint(point_id, float(x), float(y), float(h), cover))
     return points, rejected
+
+
+def _numbers(values: list[object]) -> list[float]:
+    """Values as floats, NaN where a value is missing, not a number or not finite."""
+    try:  # the common case: a clean numeric column, converted at once
+        array = np.asarray(values, dtype=np.float64)
+    except (TypeError, ValueError):
+        return [math.nan if (n := _number(v)) is None else n for v in values]
+    return np.where(np.isfinite(array), array, np.nan).tolist()
 
 
 def _number(value: object) -> float | None:

@@ -3,6 +3,7 @@ fresh full run."""
 
 from __future__ import annotations
 
+import functools
 import os
 import shutil
 from pathlib import Path
@@ -10,6 +11,7 @@ from pathlib import Path
 import numpy as np
 import pytest
 import rasterio
+import yaml
 import zarr
 from distributed import get_task_stream
 from rasterio.warp import transform_bounds
@@ -21,16 +23,19 @@ from workers import spec as job_spec
 DEMO = Path(__file__).resolve().parents[2] / "demo_tiles"
 
 
-def job_of(root: Path):
-    spec = job_spec.parse_spec(job_spec.load_spec_file(root / "demo.yaml"))
+def job_of(root: Path, spec_name: str = "demo.yaml"):
+    spec = job_spec.parse_spec(job_spec.load_spec_file(root / spec_name))
     return job_spec.resolve(spec, base_dir=root)
 
 
-def audited(client, root: Path, out: Path, baseline: Path | None = None) -> tuple[dict, list[str]]:
+def audited(
+    client, root: Path, out: Path, baseline: Path | None = None, spec_name: str = "demo.yaml"
+) -> tuple[dict, list[str]]:
     """Run and return the document and the tiles the cluster actually audited."""
     with get_task_stream(client) as stream:
-        doc = run_job(job_of(root), out, client=client, baseline=baseline)
+        doc = run_job(job_of(root, spec_name), out, client=client, baseline=baseline)
     keys = {str(t["key"]) for t in stream.data}
+    doc["_shift_estimates"] = sum(k.startswith("estimate_tile_shift") for k in keys)
     tiles = sorted(
         {
             k.removeprefix("audit-tile-").rsplit("-", 1)[0]
@@ -151,3 +156,36 @@ def test_a_baseline_without_job_totals_recomputes_everything_and_says_so(
     doc, recomputed = audited(dask_client, archive, tmp_path / "night", tmp_path / "base")
     assert len(recomputed) == 36 and "recheck" not in doc
     assert any("holds no stored job totals" in c for c in doc["cautions"])
+
+
+@pytest.mark.parametrize(
+    "coregistration",
+    [
+        {"estimate_from": "tile", "apply": True},
+        {"estimate_from": "job", "apply": False},
+    ],
+)
+def test_recheck_with_coregistration_estimates_only_the_changed_tiles(
+    archive, dask_client, tmp_path, coregistration
+):
+    """Shift estimates of unchanged tiles come from the baseline; the job's estimate and the
+    statistics after correction equal a fresh full run."""
+    spec = job_spec.load_spec_file(archive / "demo_coregistered.yaml")
+    spec["coregistration"] = coregistration | {"fit_tilt": True}
+    (archive / "recheck_coreg.yaml").write_text(yaml.safe_dump(spec), encoding="utf-8")
+    run = functools.partial(audited, dask_client, archive, spec_name="recheck_coreg.yaml")
+    base, _ = run(tmp_path / "base")
+    assert base["_shift_estimates"] == 36
+    for update in (archive / "release_2026_11_update").glob("*.tif"):
+        shutil.copy(update, archive / "release_2026_11" / update.name)
+    night, recomputed = run(tmp_path / "night", tmp_path / "base")
+    assert len(recomputed) == 4 and night["_shift_estimates"] == 4
+    assert night["coregistration"]["tiles_estimated_earlier"] == 32
+    fresh, _ = run(tmp_path / "fresh")
+    for key in ("east_m", "north_m", "vertical_m", "tilt_east_m_per_km", "outlier_tiles"):
+        assert night["coregistration"][key] == pytest.approx(fresh["coregistration"][key])
+    if coregistration["apply"]:
+        got, want = night["coregistration"]["after"], fresh["coregistration"]["after"]
+        assert got["overall"]["stats"] == pytest.approx(want["overall"]["stats"], rel=1e-12)
+        for a, b in zip(got["regions"], want["regions"], strict=True):
+            assert a["stats"] == pytest.approx(b["stats"], rel=1e-12)
