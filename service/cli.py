@@ -86,7 +86,17 @@ def _parser() -> argparse.ArgumentParser:
         type=Path,
         help="job spec (YAML or JSON); relative paths resolve against the server's first data root",
     )
-    add.add_argument("--cron", required=True, help="when, in UTC: e.g. '0 2 * * *' (02:00 daily)")
+    add.add_argument(
+        "--cron",
+        required=True,
+        help="when, on the --timezone clock: e.g. '0 2 * * *' (02:00 daily)",
+    )
+    add.add_argument(
+        "--timezone",
+        default="UTC",
+        help="IANA time zone the cron follows, daylight-saving time included, e.g. Europe/Oslo "
+        "(default UTC)",
+    )
     add.add_argument("--name", help="name of the schedule (default: the spec's name)")
     add.add_argument("--webhook", help="URL to POST the change report to")
     add.add_argument(
@@ -285,6 +295,7 @@ def _cmd_schedule_add(args: argparse.Namespace, settings: Settings) -> int:
     data = job_spec.load_spec_file(args.spec)
     name = args.name or (data.get("name") if isinstance(data, dict) else None) or args.spec.stem
     body: dict[str, Any] = {"name": str(name), "cron": args.cron, "inputs": data}
+    body["timezone"] = args.timezone
     body["notify"] = args.notify
     if args.webhook:
         body["webhook"] = args.webhook
@@ -296,7 +307,11 @@ def _cmd_schedule_add(args: argparse.Namespace, settings: Settings) -> int:
             print(f"demaudit: error: {_problem_text(response)}", file=sys.stderr)
             return 2
         schedule = response.json()
-        print(f"schedule {schedule['id']} added: next run {_when(schedule['nextRun'])}")
+        next_run = _when(schedule["nextRun"])
+        zone = schedule.get("timezone", "UTC")
+        if zone != "UTC" and schedule["nextRun"]:
+            next_run += f" UTC ({_when(schedule['nextRun'], zone)} {zone})"
+        print(f"schedule {schedule['id']} added: next run {next_run}")
         return 0
 
     return _call(args, settings, lambda http: added(http.post("/schedules", json=body)))
@@ -311,7 +326,7 @@ def _cmd_schedule_list(args: argparse.Namespace, settings: Settings) -> int:
         if not rows:
             print("no schedules")
             return 0
-        print(f"{'id':<34}{'name':<22}{'cron':<16}{'next run (UTC)':<19}last run")
+        print(f"{'id':<34}{'name':<22}{'cron':<16}{'time zone':<20}{'next run (UTC)':<19}last run")
         for s in rows:
             last = s.get("lastRun")
             done = "-"
@@ -319,8 +334,10 @@ def _cmd_schedule_list(args: argparse.Namespace, settings: Settings) -> int:
                 done = f"{_when(last['slot'])} {last['outcome']}"
                 if last.get("jobStatus"):
                     done += f" (job {last['jobID'][:12]} {last['jobStatus']})"
+            zone = s.get("timezone", "UTC")
             print(
-                f"{s['id']:<34}{s['name'][:21]:<22}{s['cron']:<16}{_when(s['nextRun']):<19}{done}"
+                f"{s['id']:<34}{s['name'][:21]:<22}{s['cron']:<16}{zone[:19]:<20}"
+                f"{_when(s['nextRun']):<19}{done}"
             )
         return 0
 
@@ -352,13 +369,15 @@ def _call(args: argparse.Namespace, settings: Settings, request: Any) -> int:
         return 2
 
 
-def _when(stamp: str | None) -> str:
-    """An ISO time as 'YYYY-MM-DD HH:MM' (UTC), or '-'."""
+def _when(stamp: str | None, zone: str | None = None) -> str:
+    """An ISO time as 'YYYY-MM-DD HH:MM' in UTC (or on the clock of the IANA zone), or '-'."""
     if not stamp:
         return "-"
     from datetime import UTC, datetime
+    from zoneinfo import ZoneInfo
 
-    return datetime.fromisoformat(stamp).astimezone(UTC).strftime("%Y-%m-%d %H:%M")
+    clock = ZoneInfo(zone) if zone else UTC
+    return datetime.fromisoformat(stamp).astimezone(clock).strftime("%Y-%m-%d %H:%M")
 
 
 def _watch(http: Any, job_id: str, *, interval: float) -> int:

@@ -272,6 +272,7 @@ class SqliteJobStore(SqliteSchedules):
             for name, kind in _ADDED_COLUMNS.items():
                 if name not in present:
                     self._db.execute(f"ALTER TABLE jobs ADD COLUMN {name} {kind}")
+            self._upgrade_schedules()
 
     def add(self, record: JobRecord) -> None:
         row = _to_row(record)

@@ -123,12 +123,17 @@ def resumed_totals(
 ) -> tuple[JobAccumulator, JobAccumulator]:
     """The baseline's job totals (and those after co-registration) without the tiles that are
     recomputed or gone: what the tiles carried over contribute. Reads only those tiles' stored
-    summaries. SpecError when the baseline holds no job totals."""
+    summaries. SpecError when the baseline holds no job totals; KeyError or ValueError when its
+    stored summaries are missing or do not add up."""
     acc = read_job_totals(baseline.zarr, ALL_PART, region_ids)
     if acc is None:
         raise SpecError(f"baseline: {baseline.zarr} holds no job totals ({JOB_GROUP})")
     after = read_job_totals(baseline.zarr, AFTER_PART, region_ids)
     after = after or JobAccumulator(region_ids=region_ids)
+    kept = [t for t in change.reuse if baseline.tiles[t].get("status") == OK]
+    missing = [t for t in kept if not baseline.summaries.has(t)]
+    if missing:
+        raise KeyError(f"no stored summaries for {len(missing)} tile(s), e.g. {missing[0]}")
     for tile_id in sorted({*change.recompute, *change.removed}):
         if baseline.tiles.get(tile_id, {}).get("status") != OK:
             continue  # failed or not audited: it added nothing

@@ -135,6 +135,17 @@ def run_job(
                 sources,
                 {t.tile_id: catalog.sources_of(t) for t in catalog.tests},
             )
+    region_ids = [r.region_id for r in catalog.regions]
+    resumed: tuple[JobAccumulator, JobAccumulator] | None = None
+    if prior is not None and change is not None and change.reuse:
+        try:
+            resumed = resumed_totals(prior, change, region_ids)
+        except (KeyError, ValueError, OSError) as exc:  # a damaged baseline costs time only
+            prior, change = None, None
+            baseline_note = (
+                f"the baseline was not used: its stored summaries could not be read ({exc}), "
+                "so every tile was recomputed"
+            )
     coregistration: dict[str, Any] | None = None
     tile_shifts: dict[str, dict[str, Any]] = {}
     if coreg is not None:
@@ -153,9 +164,10 @@ def run_job(
     layout = overview_layout(catalog.tests, factor=job.spec.options.overview_factor)
     store = ResultsStore(out_dir, layout)
     summaries = TileSummaryStore(store.path, mode="a")
-    region_ids = [r.region_id for r in catalog.regions]
-    acc = JobAccumulator(region_ids=region_ids)
-    after = JobAccumulator(region_ids=region_ids)
+    acc, after = resumed or (
+        JobAccumulator(region_ids=region_ids),
+        JobAccumulator(region_ids=region_ids),
+    )
     records: dict[str, dict[str, Any]] = {}
     for failure in catalog.test_failures:
         records[failure.tile_id] = _tile_record(failure.tile_id, FAILED, failure.reason, None, None)
@@ -170,7 +182,7 @@ def run_job(
     if change is not None and prior is not None:
         to_compute = [by_id[t] for t in sorted(change.recompute)] if raster else []
         if change.reuse:
-            acc, after = _carry_over(prior, change, region_ids, store, summaries)
+            _carry_over(prior, change, store, summaries)
             records |= {t: prior.tiles[t] for t in change.reuse}
             clock.mark("carry_over")
     futures = [
@@ -320,21 +332,15 @@ def _fold(
 
 
 def _carry_over(
-    prior: Baseline,
-    change: ChangePlan,
-    region_ids: list[str],
-    store: ResultsStore,
-    summaries: TileSummaryStore,
-) -> tuple[JobAccumulator, JobAccumulator]:
-    """Start from the baseline's totals without the tiles that changed or went away, and bring
-    the kept tiles' stored summaries and overview blocks over. Reads no kept tile."""
-    acc, after = resumed_totals(prior, change, region_ids)
+    prior: Baseline, change: ChangePlan, store: ResultsStore, summaries: TileSummaryStore
+) -> None:
+    """Bring the kept tiles' stored summaries and overview blocks over from the baseline
+    (linked, not read)."""
     summaries.link_from(prior.zarr, [t for t in change.reuse if prior.tiles[t]["status"] == OK])
     keep = {t: prior.tiles[t]["bounds"] for t in change.reuse if prior.tiles[t].get("bounds")}
     gone = [*change.recompute, *change.removed]
     blank = [prior.tiles[t]["bounds"] for t in gone if prior.tiles.get(t, {}).get("bounds")]
     store.carry_overview(prior.zarr, keep, blank)
-    return acc, after
 
 
 def _indicative_grading(acc: JobAccumulator, job: ResolvedJob) -> list[dict[str, Any]]:

@@ -11,13 +11,21 @@
                                                           ─► dispatcher.submit(baseline=...)
                                                           ─► record 'submitted' (or 'failed')
 
-Cron expressions have five fields (or @daily and kin) and are evaluated in UTC. The slots of a
-schedule are its cron times after its creation. A tick runs the latest slot not yet handled, and
-only that one however many were missed while no server ran; a slot that comes while the previous
-run of its schedule is still going is skipped and recorded as skipped. With ``baseline: latest``
-a run re-checks against the results of the schedule's last successful run (a full run when there
-is none). Claims are compare-and-sets in the job store (``service.schedulestore``), so API
-processes sharing a store run each slot once.
+Cron expressions have five fields (or @daily and kin) and are evaluated on the wall clock of the
+schedule's IANA time zone (``timezone``, default UTC): "0 2 * * *" in Europe/Oslo runs at 02:00
+local time in winter and in summer. Slots are stored and compared as UTC times. Where the clocks
+change, slots follow cron's custom: a time the clocks skip in spring (02:30 on the night they jump
+from 02:00 to 03:00) runs when they jump, at 03:00; a time that comes twice in autumn runs once,
+at its first occurrence, when the minute and hour fields are fixed, while schedules with ``*`` in
+the minute or hour field (every 15 minutes, hourly) follow real time and run in both repeated
+hours.
+
+The slots of a schedule are its cron times after its creation. A tick runs the latest slot not
+yet handled, and only that one however many were missed while no server ran; a slot that comes
+while the previous run of its schedule is still going is skipped and recorded as skipped. With
+``baseline: latest`` a run re-checks against the results of the schedule's last successful run
+(a full run when there is none). Claims are compare-and-sets in the job store
+(``service.schedulestore``), so API processes sharing a store run each slot once.
 """
 
 from __future__ import annotations
@@ -28,14 +36,17 @@ import os
 import socket
 import threading
 import uuid
-from collections.abc import Callable, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
+from itertools import islice, takewhile
 from pathlib import Path
 from typing import Any, Protocol
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from croniter import CroniterBadDateError, croniter
 
 from service.jobstore import ACCEPTED, RUNNING, SUCCESSFUL, JobRecord, JobStore, ScheduleRecord
+from service.schedulestore import DEFAULT_TIMEZONE
 from workers import spec as job_spec
 from workers.errors import AuditError
 from workers.spec import ResolvedJob
@@ -48,8 +59,10 @@ __all__ = [
     "Scheduler",
     "Skip",
     "check_cron",
+    "check_timezone",
     "due_runs",
     "latest_slot",
+    "missed_slots",
     "next_slot",
     "plan",
     "resolve_inputs",
@@ -89,25 +102,43 @@ def check_cron(expression: str) -> str:
     return text
 
 
-def latest_slot(cron: str, now: dt.datetime) -> dt.datetime | None:
-    """The latest cron time at or before now (UTC), or None when there is none."""
+def check_timezone(name: str) -> str:
+    """The name, stripped, if it is an IANA time zone the tz database knows (Europe/Oslo, UTC);
+    else ValueError naming it. 'localtime' is refused: it means whatever zone the server happens
+    to be set to, so a schedule's times would move with the machine."""
+    text = name.strip()
+    if text == "localtime":
+        raise ValueError(
+            f"time zone {name!r} depends on the server's settings; name the zone, e.g. Europe/Oslo"
+        )
+    try:
+        ZoneInfo(text)
+    except (ZoneInfoNotFoundError, ValueError, OSError):  # unknown, malformed, a folder
+        raise ValueError(
+            f"unknown time zone {name!r}; use an IANA name such as Europe/Oslo or UTC"
+        ) from None
+    return text
+
+
+def latest_slot(
+    cron: str, now: dt.datetime, *, timezone: str = DEFAULT_TIMEZONE
+) -> dt.datetime | None:
+    """The latest slot at or before now (UTC), or None when there is none."""
     try:
         # croniter looks strictly before its start: one microsecond later includes now itself
-        found: dt.datetime = croniter(cron, _utc(now) + dt.timedelta(microseconds=1)).get_prev(
-            dt.datetime
-        )
+        return next(_slots(cron, now + dt.timedelta(microseconds=1), timezone, backward=True))
     except CroniterBadDateError:
         return None
-    return found
 
 
-def next_slot(cron: str, after: dt.datetime) -> dt.datetime | None:
-    """The first cron time strictly after after (UTC), or None when there is none."""
+def next_slot(
+    cron: str, after: dt.datetime, *, timezone: str = DEFAULT_TIMEZONE
+) -> dt.datetime | None:
+    """The first slot strictly after after (UTC), or None when there is none."""
     try:
-        found: dt.datetime = croniter(cron, _utc(after)).get_next(dt.datetime)
+        return next(_slots(cron, after, timezone))
     except CroniterBadDateError:
         return None
-    return found
 
 
 def due_runs(
@@ -120,19 +151,54 @@ def due_runs(
     with one run, not one per missed slot.
     """
     after = last_run if last_run is not None else schedule.created
-    latest = latest_slot(schedule.cron, now)
+    latest = latest_slot(schedule.cron, now, timezone=schedule.timezone)
     if latest is None or latest <= _utc(after):
         return []
     return [latest]
 
 
-def missed_slots(cron: str, after: dt.datetime, latest: dt.datetime) -> int:
+def missed_slots(
+    cron: str, after: dt.datetime, latest: dt.datetime, *, timezone: str = DEFAULT_TIMEZONE
+) -> int:
     """How many slots lie strictly between after and latest (counted up to a limit)."""
-    times = croniter(cron, _utc(after))
-    missed = 0
-    while missed < MISSED_COUNT_LIMIT and times.get_next(dt.datetime) < latest:
-        missed += 1
-    return missed
+    slots = islice(_slots(cron, after, timezone), MISSED_COUNT_LIMIT)
+    return sum(1 for _ in takewhile(lambda slot: slot < latest, slots))
+
+
+def _slots(
+    cron: str, start: dt.datetime, timezone: str, *, backward: bool = False
+) -> Iterator[dt.datetime]:
+    """The slots of cron strictly after start (before it, backward), as UTC times: its times on
+    the wall clock of timezone, a fixed time of day once on the night it comes twice.
+
+    croniter gives both occurrences of a repeated wall-clock time (and CroniterBadDateError
+    when it runs out of times); the second is dropped here unless the schedule follows real
+    time (see _follows_real_time).
+    """
+    zone = ZoneInfo(timezone)
+    times = croniter(cron, _utc(start).astimezone(zone))
+    step = times.get_prev if backward else times.get_next
+    keep_repeats = _follows_real_time(cron)
+    while True:
+        slot = step(dt.datetime).astimezone(dt.UTC)
+        if keep_repeats or not _second_occurrence(slot, zone):
+            yield slot
+
+
+def _follows_real_time(cron: str) -> bool:
+    """Whether cron has * in its minute or hour field (every 15 minutes, hourly, @hourly): such
+    schedules run in both hours the clocks repeat, as cron runs them; fixed times run once."""
+    if cron.startswith("@"):
+        return cron.lower() == "@hourly"
+    minute, hour = cron.split()[:2]
+    return minute.startswith("*") or hour.startswith("*")
+
+
+def _second_occurrence(slot: dt.datetime, zone: ZoneInfo) -> bool:
+    """Whether slot's wall-clock time in zone came already an hour (the offset change) earlier:
+    the repeated hour after the clocks go back. (croniter's own fold flags are unreliable, so
+    the instant is converted afresh.)"""
+    return slot.astimezone(zone).fold == 1
 
 
 @dataclass(frozen=True)
@@ -174,7 +240,7 @@ def plan(schedule: ScheduleRecord, last: LastRun | None, now: dt.datetime) -> Ru
     if last is not None and last.running:
         return Skip(slot, f"the previous run (job {last.job_id}) was still running")
     after = last.slot if last is not None else schedule.created
-    return Run(slot, missed=missed_slots(schedule.cron, after, slot))
+    return Run(slot, missed=missed_slots(schedule.cron, after, slot, timezone=schedule.timezone))
 
 
 def scaled_clock(*, speed: float = 1.0, anchor: dt.datetime | None = None) -> Clock:

@@ -28,6 +28,8 @@ from dataclasses import dataclass
 from typing import Any, Literal, Protocol
 
 __all__ = [
+    "DEFAULT_TIMEZONE",
+    "SCHEDULE_ADDED_COLUMNS",
     "SCHEDULE_SCHEMA",
     "MemorySchedules",
     "NotifyWhen",
@@ -38,6 +40,8 @@ __all__ = [
     "SqliteSchedules",
 ]
 
+DEFAULT_TIMEZONE = "UTC"
+"""The time zone of a schedule that names none (every schedule made before zones existed)."""
 NotifyWhen = Literal["regressions", "always"]
 """When a schedule's webhook is called: after a run that found regressions, or after every run."""
 RunOutcome = Literal["claimed", "submitted", "skipped", "failed"]
@@ -47,16 +51,20 @@ skipped (the previous run was still going) or failed (no job could be started)."
 
 @dataclass(frozen=True)
 class ScheduleRecord:
-    """A job spec run on a cron schedule (times in UTC)."""
+    """A job spec run on a cron schedule (its cron read on the wall clock of its time zone;
+    the times kept here, created and last_slot, are UTC)."""
 
     schedule_id: str
     name: str
     cron: str
-    """Five-field cron expression (or @daily and kin), evaluated in UTC."""
+    """Five-field cron expression (or @daily and kin), evaluated in timezone."""
     inputs: dict[str, Any]
     """The job spec, as in an execute request (JSON-compatible)."""
     created: dt.datetime
     """No slot at or before this time runs."""
+    timezone: str = DEFAULT_TIMEZONE
+    """IANA time zone whose wall clock the cron follows, e.g. Europe/Oslo for 02:00 local time
+    in winter and summer alike (see ``service.scheduler`` for the nights the clocks change)."""
     webhook: str | None = None
     notify: NotifyWhen = "regressions"
     baseline: Literal["latest"] | None = None
@@ -254,6 +262,7 @@ CREATE TABLE IF NOT EXISTS schedules (
     schedule_id TEXT PRIMARY KEY,
     name        TEXT NOT NULL,
     cron        TEXT NOT NULL,
+    timezone    TEXT NOT NULL DEFAULT 'UTC',
     inputs      TEXT NOT NULL,
     created     TEXT NOT NULL,
     webhook     TEXT,
@@ -280,6 +289,9 @@ CREATE TABLE IF NOT EXISTS leases (
 );
 """
 """Tables of the schedules (run by ``SqliteJobStore`` beside its own)."""
+SCHEDULE_ADDED_COLUMNS = {"timezone": f"TEXT NOT NULL DEFAULT '{DEFAULT_TIMEZONE}'"}
+"""Columns newer than the first schedules table: added when an older file is opened (its
+schedules were all made in UTC, the default)."""
 
 _SCHEDULE_COLUMNS = tuple(f.name for f in dataclasses.fields(ScheduleRecord))
 _RUN_COLUMNS = tuple(f.name for f in dataclasses.fields(ScheduleRun))
@@ -295,6 +307,16 @@ class SqliteSchedules:
 
     _db: sqlite3.Connection
     _lock: threading.Lock
+
+    def _upgrade_schedules(self) -> None:
+        """Add the columns an older file's schedules table lacks (SCHEDULE_ADDED_COLUMNS); call
+        with the lock held, after SCHEDULE_SCHEMA. In one write transaction, so two processes
+        opening the same old file do not both add a column."""
+        with self._transaction():
+            present = {row[1] for row in self._db.execute("PRAGMA table_info(schedules)")}
+            for name, kind in SCHEDULE_ADDED_COLUMNS.items():
+                if name not in present:
+                    self._db.execute(f"ALTER TABLE schedules ADD COLUMN {name} {kind}")
 
     def add_schedule(self, schedule: ScheduleRecord) -> None:
         row = {name: _encode(name, getattr(schedule, name)) for name in _SCHEDULE_COLUMNS}

@@ -78,6 +78,10 @@ class TileSummaryStore:
         entries, attrs = _read_entries(group)
         return entries, int(attrs.get("excluded", 0))
 
+    def has(self, tile_id: str) -> bool:
+        """Whether the tile's summaries are stored (a file check, nothing is read)."""
+        return (self.zarr_path / GROUP / tile_id / "zarr.json").is_file()
+
     def link_from(self, other: Path, tile_ids: list[str]) -> None:
         """Bring tiles' stored summaries over from another results.zarr: hard links where the
         file system allows (zarr replaces a file on write, never rewrites it in place, so the

@@ -24,7 +24,15 @@ from service.jobstore import (
 )
 from service.problems import NoSuchScheduleError, responses
 from service.routes.documents import JSON, Link
-from service.scheduler import Clock, check_cron, due_runs, next_slot, resolve_inputs
+from service.scheduler import (
+    Clock,
+    check_cron,
+    check_timezone,
+    due_runs,
+    next_slot,
+    resolve_inputs,
+)
+from service.schedulestore import DEFAULT_TIMEZONE
 from workers.spec import JobSpec
 
 router = APIRouter(prefix="/schedules", tags=["Schedules"], responses=responses(401))
@@ -41,8 +49,15 @@ class ScheduleRequest(BaseModel):
     name: str = Field(min_length=1, max_length=200, description="A name for people.")
     cron: str = Field(
         max_length=200,
-        description="When to run, in UTC: five cron fields (minute hour day month weekday), "
-        "e.g. '0 2 * * *' for 02:00 every night, or @daily, @hourly and kin.",
+        description="When to run, on the clock of timezone: five cron fields (minute hour day "
+        "month weekday), e.g. '0 2 * * *' for 02:00 every night, or @daily, @hourly and kin.",
+    )
+    timezone: str = Field(
+        default=DEFAULT_TIMEZONE,
+        max_length=64,
+        description="IANA time zone whose wall clock the cron follows, daylight-saving time "
+        "included, e.g. 'Europe/Oslo' (default 'UTC'). A time the clocks skip runs when they "
+        "jump; a fixed time that comes twice runs once.",
     )
     inputs: JobSpec = Field(description="The job spec, as in an execute request.")
     webhook: HttpUrl | None = Field(
@@ -64,6 +79,16 @@ class ScheduleRequest(BaseModel):
     def _cron(cls, value: str) -> str:
         return check_cron(value)
 
+    @field_validator("timezone")
+    @classmethod
+    def _timezone(cls, value: str) -> str:
+        try:
+            return check_timezone(value)
+        except ValueError:  # problem details never echo submitted values
+            raise ValueError(
+                "unknown time zone; use an IANA name such as Europe/Oslo or UTC"
+            ) from None
+
 
 class ScheduleRunInfo(BaseModel):
     """One handled slot of a schedule."""
@@ -83,11 +108,14 @@ class ScheduleInfo(BaseModel):
     id: str
     name: str
     cron: str
+    timezone: str = Field(description="IANA time zone whose wall clock the cron follows.")
     notify: NotifyWhen
     baseline: Literal["latest"] | None
     webhook: str | None
     created: dt.datetime
-    nextRun: dt.datetime | None  # noqa: N815
+    nextRun: dt.datetime | None = Field(  # noqa: N815
+        description="The next slot, as a UTC time (the cron read in timezone)."
+    )
     lastRun: ScheduleRunInfo | None  # noqa: N815
     links: list[Link]
 
@@ -142,7 +170,7 @@ def _next_run(schedule: ScheduleRecord, now: dt.datetime) -> dt.datetime | None:
     if due:
         return due[0]  # runs at the next tick
     after = max(now, schedule.last_slot or schedule.created, schedule.created)
-    return next_slot(schedule.cron, after)
+    return next_slot(schedule.cron, after, timezone=schedule.timezone)
 
 
 def _info(request: Request, store: JobStore, schedule: ScheduleRecord) -> dict[str, Any]:
@@ -152,6 +180,7 @@ def _info(request: Request, store: JobStore, schedule: ScheduleRecord) -> dict[s
         "id": schedule.schedule_id,
         "name": schedule.name,
         "cron": schedule.cron,
+        "timezone": schedule.timezone,
         "notify": schedule.notify,
         "baseline": schedule.baseline,
         "webhook": schedule.webhook,
@@ -201,6 +230,7 @@ def create_schedule(
         schedule_id=uuid.uuid4().hex,
         name=body.name,
         cron=body.cron,
+        timezone=body.timezone,
         inputs=inputs,
         created=now.replace(microsecond=now.microsecond // 1000 * 1000),
         webhook=str(body.webhook) if body.webhook is not None else None,

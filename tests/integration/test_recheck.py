@@ -189,3 +189,12 @@ def test_recheck_with_coregistration_estimates_only_the_changed_tiles(
         assert got["overall"]["stats"] == pytest.approx(want["overall"]["stats"], rel=1e-12)
         for a, b in zip(got["regions"], want["regions"], strict=True):
             assert a["stats"] == pytest.approx(b["stats"], rel=1e-12)
+
+
+def test_a_damaged_baseline_recomputes_everything_and_says_so(archive, dask_client, tmp_path):
+    audited(dask_client, archive, tmp_path / "base")
+    kept = sorted((tmp_path / "base" / "results.zarr" / "tile_summaries").iterdir())[3]
+    shutil.rmtree(kept)  # one carried-over tile's summaries lost
+    doc, recomputed = audited(dask_client, archive, tmp_path / "night", tmp_path / "base")
+    assert len(recomputed) == 36 and "recheck" not in doc
+    assert any("stored summaries could not be read" in c for c in doc["cautions"])

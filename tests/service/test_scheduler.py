@@ -10,6 +10,7 @@ from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
+from zoneinfo import ZoneInfo
 
 import pytest
 from croniter import croniter
@@ -33,8 +34,10 @@ from service.scheduler import (
     Scheduler,
     Skip,
     check_cron,
+    check_timezone,
     due_runs,
     latest_slot,
+    next_slot,
     plan,
 )
 from workers.errors import SpecError
@@ -174,6 +177,140 @@ def test_check_cron_refuses_with_the_reason(bad, why):
 def test_naive_times_are_refused():
     with pytest.raises(ValueError, match="timezone"):
         due_runs(schedule(), None, dt.datetime(2026, 11, 2, 2))
+
+
+# --- time zones: the cron read on a local wall clock ----------------------------------------------
+# The expected UTC instants come from the standard library's zoneinfo (the IANA tz database),
+# computed independently of croniter, which the scheduler uses.
+
+OSLO = ZoneInfo("Europe/Oslo")
+
+
+def ticked(
+    sched: ScheduleRecord, start: dt.datetime, end: dt.datetime, every: dt.timedelta
+) -> list[Run]:
+    """The runs the scheduler starts for sched when it ticks every `every` from start to end,
+    passing the last slot run on as the Scheduler does (each run ends before the next tick)."""
+    runs: list[Run] = []
+    last: LastRun | None = None
+    now = start
+    while now <= end:
+        action = plan(sched, last, now)
+        if action is not None:
+            assert isinstance(action, Run)
+            runs.append(action)
+            last = LastRun(action.slot, f"job-{len(runs)}")
+        now += every
+    return runs
+
+
+@pytest.mark.parametrize(("month", "utc_hour"), [(1, 1), (7, 0)])
+def test_a_0200_schedule_in_oslo_follows_daylight_saving_time(month, utc_hour):
+    """02:00 in Europe/Oslo is 01:00 UTC in January (CET, UTC+1) and 00:00 UTC in July (CEST,
+    UTC+2): the schedule is due at that UTC instant, not before, and its slot is a UTC time."""
+    # reference: the IANA tz database via zoneinfo
+    expected = dt.datetime(2027, month, 15, 2, 0, tzinfo=ZoneInfo("Europe/Oslo")).astimezone(UTC)
+    assert expected == dt.datetime(2027, month, 15, utc_hour, 0, tzinfo=UTC)
+    created = dt.datetime(2027, month, 14, 12, 0, tzinfo=UTC)
+    nightly = schedule("0 2 * * *", created, timezone="Europe/Oslo")
+    assert due_runs(nightly, None, expected - dt.timedelta(seconds=1)) == []
+    assert due_runs(nightly, None, expected) == [expected]
+    assert due_runs(nightly, None, expected + dt.timedelta(hours=5)) == [expected]
+    assert due_runs(nightly, None, expected)[0].tzinfo is UTC
+    assert next_slot("0 2 * * *", created, timezone="Europe/Oslo") == expected
+    assert latest_slot("0 2 * * *", expected, timezone="Europe/Oslo") == expected
+
+
+def test_the_spring_forward_night_runs_a_skipped_time_once_when_the_clocks_jump():
+    """Europe/Oslo, 28 March 2027: the clocks jump from 02:00 CET to 03:00 CEST, so 02:30 does
+    not exist that night. A daily 02:30 schedule ticked every five minutes from the evening
+    before to the morning after next runs once that night, at 03:00 CEST (01:00 UTC, the moment
+    of the jump, as cron runs a skipped time), and once the next night at 02:30 CEST (00:30
+    UTC): no run doubled, none lost, none counted as missed, no error."""
+    # reference: the IANA tz database via zoneinfo; 02:30 that night reads back as 03:30
+    skipped = dt.datetime(2027, 3, 28, 2, 30, tzinfo=OSLO)
+    assert skipped.astimezone(UTC).astimezone(OSLO).time() == dt.time(3, 30)
+    jump = dt.datetime(2027, 3, 28, 3, 0, tzinfo=OSLO).astimezone(UTC)
+    next_night = dt.datetime(2027, 3, 29, 2, 30, tzinfo=OSLO).astimezone(UTC)
+    assert (jump.hour, next_night.hour, next_night.minute) == (1, 0, 30)
+    daily = schedule("30 2 * * *", dt.datetime(2027, 3, 27, 12, tzinfo=UTC), timezone="Europe/Oslo")
+    start, end = dt.datetime(2027, 3, 27, 18, tzinfo=UTC), dt.datetime(2027, 3, 29, 12, tzinfo=UTC)
+    assert ticked(daily, start, end, dt.timedelta(minutes=5)) == [Run(jump), Run(next_night)]
+
+
+def test_the_fall_back_night_runs_a_repeated_time_once():
+    """Europe/Oslo, 31 October 2027: the clocks go back from 03:00 CEST to 02:00 CET, so 02:30
+    comes twice, at 00:30 and at 01:30 UTC. A daily 02:30 schedule ticked every five minutes
+    runs once that night, at the first 02:30 (00:30 UTC); the second is no slot (not run, not
+    counted as missed). The next night it runs at 02:30 CET (01:30 UTC)."""
+    # reference: the IANA tz database via zoneinfo (fold=1 is the second 02:30)
+    first = dt.datetime(2027, 10, 31, 2, 30, tzinfo=OSLO).astimezone(UTC)
+    second = dt.datetime(2027, 10, 31, 2, 30, fold=1, tzinfo=OSLO).astimezone(UTC)
+    next_night = dt.datetime(2027, 11, 1, 2, 30, tzinfo=OSLO).astimezone(UTC)
+    assert (first.hour, second - first) == (0, dt.timedelta(hours=1))
+    daily = schedule(
+        "30 2 * * *", dt.datetime(2027, 10, 30, 12, tzinfo=UTC), timezone="Europe/Oslo"
+    )
+    start, end = dt.datetime(2027, 10, 30, 18, tzinfo=UTC), dt.datetime(2027, 11, 1, 12, tzinfo=UTC)
+    assert ticked(daily, start, end, dt.timedelta(minutes=5)) == [Run(first), Run(next_night)]
+    # a server that was down all night still runs the first 02:30 once, on waking after both
+    assert due_runs(daily, None, second + dt.timedelta(minutes=10)) == [first]
+    assert due_runs(daily, first, second + dt.timedelta(minutes=10)) == []
+
+
+def test_an_hourly_schedule_follows_real_time_on_the_fall_back_night():
+    """With * in the hour field a schedule runs by real time, as cron does: hourly in
+    Europe/Oslo on 31 October 2027 runs at both 02:00 (00:00 and 01:00 UTC), every UTC hour."""
+    start = dt.datetime(2027, 10, 30, 22, 30, tzinfo=UTC)
+    hourly = schedule("0 * * * *", start, timezone="Europe/Oslo")
+    runs = ticked(hourly, start, start + dt.timedelta(hours=6), dt.timedelta(minutes=5))
+    assert [r.slot for r in runs] == [start + dt.timedelta(minutes=30 + 60 * n) for n in range(6)]
+    assert {r.missed for r in runs} == {0}
+
+
+def test_a_schedule_without_a_zone_is_read_in_utc():
+    plain = schedule("0 2 * * *")
+    assert plain.timezone == "UTC"
+    assert due_runs(plain, None, at(2, 2, 30)) == [at(2, 2)]
+    assert due_runs(schedule("0 2 * * *", timezone="UTC"), None, at(2, 2, 30)) == [at(2, 2)]
+
+
+@settings(max_examples=150, deadline=None)
+@given(
+    cron=st.sampled_from(CRONS),
+    now=st.datetimes(
+        min_value=dt.datetime(2026, 1, 1),
+        max_value=dt.datetime(2027, 12, 31),
+        timezones=st.just(UTC),
+    ),
+)
+def test_the_default_zone_gives_the_utc_cron_times_of_before(cron, now):
+    """Without a zone the slots are croniter's UTC times exactly, as the scheduler computed
+    them before schedules had zones."""
+    before = croniter(cron, now + dt.timedelta(microseconds=1)).get_prev(dt.datetime)
+    assert latest_slot(cron, now) == before and latest_slot(cron, now).tzinfo is UTC
+    assert next_slot(cron, now) == croniter(cron, now).get_next(dt.datetime)
+
+
+@pytest.mark.parametrize(
+    "good", ["UTC", "Europe/Oslo", "America/Argentina/Buenos_Aires", " Asia/Kolkata "]
+)
+def test_check_timezone_accepts_iana_names(good):
+    assert check_timezone(good) == good.strip()
+
+
+@pytest.mark.parametrize(
+    "bad", ["Mars/Olympus", "", "Europe", "Europe/", "../etc/passwd", "/etc/localtime", "CET+1"]
+)
+def test_check_timezone_refuses_unknown_zones_naming_them(bad):
+    with pytest.raises(ValueError, match="unknown time zone") as refused:
+        check_timezone(bad)
+    assert repr(bad) in str(refused.value)
+
+
+def test_check_timezone_refuses_the_servers_localtime():
+    with pytest.raises(ValueError, match="server"):
+        check_timezone("localtime")
 
 
 # --- the loop on fake jobs ------------------------------------------------------------------------

@@ -3,14 +3,19 @@ documents for bad requests; scheduled runs as ordinary jobs (a frozen scheduler 
 
 from __future__ import annotations
 
+import contextlib
 import datetime as dt
+import json
 import time
 from collections.abc import Iterator
+from pathlib import Path
 from typing import Any
+from zoneinfo import ZoneInfo
 
 import pytest
 from fastapi.testclient import TestClient
 
+from service import cli
 from service.app import create_app
 from service.jobstore import MemoryJobStore
 from service.settings import Settings
@@ -74,6 +79,7 @@ def test_create_read_list_and_delete_a_schedule(frozen_api, spec):
     url = f"http://testserver/schedules/{schedule['id']}"
     assert created.headers["Location"] == url
     assert schedule["cron"] == "0 2 * * *" and schedule["notify"] == "always"
+    assert schedule["timezone"] == "UTC"
     assert schedule["webhook"] == "https://hooks.example.org/dem"
     assert schedule["baseline"] is None and schedule["inputs"]["name"] == spec["name"]
     assert schedule["nextRun"] == "2026-11-02T02:00:00Z"
@@ -139,6 +145,42 @@ def test_bad_schedules_are_problems_naming_the_field(frozen_api, spec, changes, 
     assert [e["field"] for e in problem["errors"]] == [field]
     assert words in problem["detail"]
     assert frozen_api.get("/schedules").json()["numberMatched"] == 0
+
+
+@pytest.mark.parametrize("zone", ["Mars/Olympus", "", "../etc/passwd", "localtime", 7])
+def test_an_unknown_time_zone_is_a_problem_naming_the_field(frozen_api, spec, zone):
+    """Refused like a bad cron (the body's content: 422), the detail without the value sent."""
+    problem = assert_problem(frozen_api.post("/schedules", json=body(spec, timezone=zone)), 422)
+    assert [e["field"] for e in problem["errors"]] == ["body.timezone"]
+    assert "timezone" in problem["detail"]
+    if isinstance(zone, str) and zone:
+        assert zone not in problem["detail"]
+    assert frozen_api.get("/schedules").json()["numberMatched"] == 0
+
+
+def test_a_schedule_in_a_time_zone_runs_on_its_local_clock(frozen_api, spec, clock, runner):
+    """02:00 in Europe/Oslo on 2 November 2026 (CET, UTC+1) is 01:00 UTC: the next run is
+    reported, and the slot run, at that UTC time; the zone is echoed wherever the schedule is."""
+    # reference: the IANA tz database via zoneinfo
+    slot = dt.datetime(2026, 11, 2, 2, 0, tzinfo=ZoneInfo("Europe/Oslo")).astimezone(dt.UTC)
+    stamp = slot.strftime("%Y-%m-%dT%H:%M:%SZ")
+    assert stamp == "2026-11-02T01:00:00Z"
+    created = frozen_api.post("/schedules", json=body(spec, timezone=" Europe/Oslo "))
+    assert created.status_code == 201, created.text
+    schedule = created.json()
+    assert schedule["timezone"] == "Europe/Oslo" and schedule["nextRun"] == stamp
+    shown = frozen_api.get(f"/schedules/{schedule['id']}").json()
+    assert shown["timezone"] == "Europe/Oslo" and shown["nextRun"] == stamp
+    assert frozen_api.get("/schedules").json()["schedules"][0]["timezone"] == "Europe/Oslo"
+
+    clock.now = slot - dt.timedelta(seconds=1)
+    assert frozen_api.app.state.scheduler.tick() == []
+    clock.now = slot + dt.timedelta(seconds=5)
+    assert len(frozen_api.app.state.scheduler.tick()) == 1
+    runs = frozen_api.get(f"/schedules/{schedule['id']}").json()["runs"]
+    assert [(r["slot"], r["outcome"]) for r in runs] == [(stamp, "submitted")]
+    runner.gate.set()
+    wait_for_status(frozen_api, runs[0]["jobID"], "successful")
 
 
 def test_a_schedule_needs_a_name_a_cron_and_a_spec(frozen_api, spec):
@@ -225,3 +267,48 @@ def test_the_api_description_lists_the_schedule_operations(frozen_api):
     paths = frozen_api.get("/openapi.json").json()["paths"]
     assert set(paths["/schedules"]) == {"get", "post"}
     assert set(paths["/schedules/{scheduleID}"]) == {"get", "delete"}
+
+
+# --- the command line -----------------------------------------------------------------------------
+
+
+@pytest.fixture
+def cli_on_api(frozen_api, settings, monkeypatch) -> TestClient:
+    """``demaudit`` talking to the frozen app (no server process, no network)."""
+    monkeypatch.setattr(cli, "get_settings", lambda: settings)
+    monkeypatch.setattr(cli, "_http", lambda args, settings: contextlib.nullcontext(frozen_api))
+    return frozen_api
+
+
+def test_schedule_add_sends_the_time_zone_and_list_shows_it(cli_on_api, spec, tmp_path, capsys):
+    spec_file = tmp_path / "nightly.json"
+    spec_file.write_text(json.dumps(spec))
+    server = ["--server", "http://testserver"]
+    add = ["schedule", "add", str(spec_file), "--cron", "0 2 * * *", *server]
+    assert cli.main([*add, "--timezone", "Europe/Oslo"]) == 0
+    out = capsys.readouterr().out
+    assert out.endswith("next run 2026-11-02 01:00 UTC (2026-11-02 02:00 Europe/Oslo)\n")
+    schedule_id = out.split()[1]
+    assert cli_on_api.get(f"/schedules/{schedule_id}").json()["timezone"] == "Europe/Oslo"
+
+    assert cli.main([*add, "--name", "in utc"]) == 0  # no --timezone: UTC
+    out = capsys.readouterr().out
+    assert out.endswith("next run 2026-11-02 02:00\n")
+    utc_id = out.split()[1]
+
+    assert cli.main(["schedule", "list", *server]) == 0
+    header, *lines = capsys.readouterr().out.splitlines()
+    rows = {line.split()[0]: line for line in lines}
+    assert "time zone" in header and header.index("time zone") < header.index("next run (UTC)")
+    assert "Europe/Oslo" in rows[schedule_id] and "2026-11-02 01:00" in rows[schedule_id]
+    assert " UTC " in rows[utc_id] and "2026-11-02 02:00" in rows[utc_id]
+
+    assert cli.main([*add, "--timezone", "Mars/Olympus"]) == 2
+    assert "unknown time zone" in capsys.readouterr().err
+
+
+def test_schedule_add_parses_the_time_zone_with_utc_by_default():
+    argv = ["schedule", "add", "spec.yaml", "--cron", "0 2 * * *", "--server", "http://h"]
+    assert cli._parser().parse_args(argv).timezone == "UTC"
+    zoned = cli._parser().parse_args([*argv, "--timezone", "America/New_York"])
+    assert zoned.timezone == "America/New_York" and zoned.spec == Path("spec.yaml")

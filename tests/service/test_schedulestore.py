@@ -1,5 +1,5 @@
 """The schedules part of the job store contract, on the SQLite and in-memory stores alike; and
-an older SQLite file gaining the new job columns."""
+older SQLite files gaining the new job and schedule columns."""
 
 from __future__ import annotations
 
@@ -48,6 +48,18 @@ def test_schedules_round_trip_list_and_remove(store):
     assert store.count_schedules() == 2
     assert store.remove_schedule("s1") and not store.remove_schedule("s1")
     assert store.count_schedules() == 1
+
+
+def test_a_schedules_time_zone_round_trips(store):
+    store.add_schedule(schedule(1, timezone="Europe/Oslo"))
+    store.add_schedule(schedule(2))
+    assert store.get_schedule("s1") == schedule(1, timezone="Europe/Oslo")
+    assert store.get_schedule("s2").timezone == "UTC"
+    assert [s.timezone for s in store.find_schedules()] == ["Europe/Oslo", "UTC"]
+    store.acquire_lease("L", "A", now=T0, ttl_s=60)
+    store.claim_slot("s1", T0, previous=None, owner="A", lease="L", now=T0)
+    store.record_run("s1", T0, outcome="submitted", job_id="job0")
+    assert store.get_schedule("s1").timezone == "Europe/Oslo"  # claims keep the zone
 
 
 def test_a_slot_is_claimed_once_and_only_by_the_lease_holder(store):
@@ -130,3 +142,36 @@ def test_an_older_sqlite_file_gains_the_new_columns(tmp_path):
         assert store.count_schedules() == 1
     finally:
         store.close()
+
+
+def test_an_older_sqlite_file_gains_the_schedule_time_zone(tmp_path):
+    """A file whose schedules table predates time zones: opening it adds the column (NOT NULL,
+    default 'UTC'), its schedules read as UTC ones, and opening it again changes nothing."""
+    path = tmp_path / "old.sqlite"
+    with sqlite3.connect(path) as db:  # the schedules table as it was before time zones
+        db.execute(
+            "CREATE TABLE schedules (schedule_id TEXT PRIMARY KEY, name TEXT NOT NULL, cron TEXT "
+            "NOT NULL, inputs TEXT NOT NULL, created TEXT NOT NULL, webhook TEXT, notify TEXT NOT "
+            "NULL, baseline TEXT, base_url TEXT, last_slot TEXT, last_job_id TEXT)"
+        )
+        db.execute(
+            "INSERT INTO schedules VALUES ('s0', 'nightly 0', '0 2 * * *', '{}', ?, NULL, "
+            "'regressions', NULL, NULL, NULL, NULL)",
+            (T0.isoformat(timespec="milliseconds"),),
+        )
+    store = SqliteJobStore(path)
+    try:
+        old = store.get_schedule("s0")
+        assert old is not None and (old.timezone, old.cron, old.created) == ("UTC", "0 2 * * *", T0)
+        store.add_schedule(schedule(1, timezone="Europe/Oslo"))
+    finally:
+        store.close()
+    reopened = SqliteJobStore(path)  # already upgraded: nothing to add
+    try:
+        zones = {s.schedule_id: s.timezone for s in reopened.find_schedules()}
+        assert zones == {"s0": "UTC", "s1": "Europe/Oslo"}
+    finally:
+        reopened.close()
+    with sqlite3.connect(path) as db:
+        columns = {row[1]: row for row in db.execute("PRAGMA table_info(schedules)")}
+    assert columns["timezone"][2:5] == ("TEXT", 1, "'UTC'")  # type, NOT NULL, default
