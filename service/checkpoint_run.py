@@ -11,6 +11,7 @@ from typing import Any
 import numpy as np
 import shapely
 from distributed import Client
+from numpy.typing import NDArray
 from pyproj import CRS, Transformer
 from pyproj.exceptions import CRSError
 from shapely import STRtree, box, points
@@ -26,6 +27,7 @@ from workers.strata import ClassInfo
 from workers.tile_task import TileOptions
 
 RESIDUALS_NAME = "checkpoint_residuals.csv"
+Bounds = Sequence[float]  # left, bottom, right, top
 
 
 def audit_checkpoints(
@@ -37,12 +39,14 @@ def audit_checkpoints(
     options: TileOptions,
     out_dir: Path,
     earlier: Mapping[str, float] | None = None,
-    clean_tiles: frozenset[str] = frozenset(),
+    changed_areas: Sequence[Bounds] = (),
 ) -> dict[str, Any]:
     """The checkpoint section of summary.json; also writes checkpoint_residuals.csv.
 
-    earlier: test heights (metres) sampled by a baseline run, by point id; points whose tile and
-    neighbours are all in clean_tiles take them instead of being sampled again.
+    earlier: test heights (metres) sampled by a baseline run, by point id. A point takes its
+    earlier height instead of being sampled again unless it lies in one of changed_areas (the
+    footprints, in the test CRS, of the test tiles recomputed or gone since), or within two test
+    pixels of one: its bilinear neighbourhood may reach into the tile next door.
     """
     spec = job.spec.checkpoints
     assert spec is not None and job.checkpoint_file is not None
@@ -97,7 +101,7 @@ def audit_checkpoints(
         options,
         records,
         earlier=earlier or {},
-        clean_tiles=clean_tiles,
+        changed_areas=changed_areas,
     )
     _to_test_datum(data, point_crs, options, job, records)
     return _section(
@@ -121,7 +125,7 @@ def _sample(
     records: dict[str, dict[str, Any]],
     *,
     earlier: Mapping[str, float],
-    clean_tiles: frozenset[str],
+    changed_areas: Sequence[Bounds],
 ) -> None:
     to_test = Transformer.from_crs(point_crs, test_crs, always_xy=True)
     xs, ys = to_test.transform([p.x for p in data.points], [p.y for p in data.points])
@@ -130,6 +134,9 @@ def _sample(
     by_tile: dict[int, list[tuple[str, float, float]]] = {}
     hits = tree.query(points(np.column_stack([xs, ys])), predicate="intersects")
     first_tile = dict(zip(hits[0][::-1], hits[1][::-1], strict=True))  # lowest tile index wins
+    again = points_near(
+        np.asarray(xs), np.asarray(ys), changed_areas, 2 * max(tests[0].grid.resolution)
+    )
     for i, p in enumerate(data.points):
         records[p.point_id] = {
             "id": p.point_id,
@@ -142,32 +149,41 @@ def _sample(
         }
         if i not in first_tile:
             records[p.point_id] |= {"status": "rejected", "reason": "outside every test tile"}
-            continue
-        by_tile.setdefault(int(first_tile[i]), []).append((p.point_id, float(xs[i]), float(ys[i])))
-    futures = []
-    for k, pts in by_tile.items():
-        neighbours = index.overlapping(tests[k].grid.expanded(2))
-        if {t.tile_id for t in neighbours} <= clean_tiles and all(p[0] in earlier for p in pts):
-            for point_id, _, _ in pts:  # nothing under these points changed since the baseline
-                records[point_id] |= {"status": "used", "test_height_m": earlier[point_id]}
-            continue
-        futures.append(
-            client.submit(
-                sample_test_tile,
-                tests[k].tile_id,
-                neighbours,
-                pts,
-                nodata=options.test_nodata,
-                units=options.test_units,
-                pure=False,
+        elif not again[i] and p.point_id in earlier:  # nothing under it changed since
+            records[p.point_id] |= {"status": "used", "test_height_m": earlier[p.point_id]}
+        else:
+            by_tile.setdefault(int(first_tile[i]), []).append(
+                (p.point_id, float(xs[i]), float(ys[i]))
             )
+    futures = [
+        client.submit(
+            sample_test_tile,
+            tests[k].tile_id,
+            index.overlapping(tests[k].grid.expanded(2)),
+            pts,
+            nodata=options.test_nodata,
+            units=options.test_units,
+            pure=False,
         )
+        for k, pts in by_tile.items()
+    ]
     for part in client.gather(futures):
         for point_id, value, reason in part:
             if reason:
                 records[point_id] |= {"status": "rejected", "reason": reason}
             else:
                 records[point_id] |= {"status": "used", "test_height_m": value}
+
+
+def points_near(
+    xs: NDArray[np.float64], ys: NDArray[np.float64], areas: Sequence[Bounds], margin: float
+) -> NDArray[np.bool_]:
+    """Which points lie in any of the areas grown by margin on every side (edges included)."""
+    inside = np.zeros(xs.shape, dtype=bool)
+    for left, bottom, right, top in areas:
+        in_x = (xs >= left - margin) & (xs <= right + margin)
+        inside |= in_x & (ys >= bottom - margin) & (ys <= top + margin)
+    return inside
 
 
 def _to_test_datum(

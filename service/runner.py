@@ -267,10 +267,14 @@ def run_job(
         document["cautions"].append(baseline_note)
     write_summary(out_dir, catalog.document(), name=CATALOG_NAME)
     if job.spec.checkpoints is not None:
-        earlier, clean = {}, frozenset[str]()
+        earlier: dict[str, float] = {}
+        changed_areas: list[list[float]] = []
         if prior is not None and change is not None:
             earlier = earlier_heights(prior.folder, prior.document, job)
-            clean = frozenset(change.reuse)
+            changed_areas = [list(by_id[t].bounds) for t in change.recompute if t in by_id]
+            changed_areas += [
+                prior.tiles[t]["bounds"] for t in change.removed if prior.tiles[t].get("bounds")
+            ]
         document["checkpoints"] = audit_checkpoints(
             client,
             job,
@@ -279,7 +283,7 @@ def run_job(
             options=options,
             out_dir=out_dir,
             earlier=earlier,
-            clean_tiles=clean,
+            changed_areas=changed_areas,
         )
     clock.mark("checkpoints")
     if raster:
