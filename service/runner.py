@@ -99,9 +99,9 @@ def run_job(
     retries when a worker is lost.
 
     With ``baseline`` (the folder of an earlier run of the same spec), only new and changed tiles
-    (or tiles whose reference or land cover changed) are recomputed; the others are merged from
-    the baseline's stored summaries, and summary.json gets a ``recheck`` change report (also
-    written as change_report.json).
+    (or tiles whose reference or land cover changed) are recomputed; the run continues the
+    baseline's stored job totals (see _reuse_of), and summary.json gets a ``recheck`` change
+    report (also written as change_report.json).
     """
     started = _now()
     clock = Phases()
@@ -111,44 +111,12 @@ def run_job(
     prior = load_baseline(baseline) if baseline is not None else None
     catalog = _catalog(client, job, options, prior.catalog if prior else {})
     sources = catalog.source_fingerprints()
-    change: ChangePlan | None = None
-    baseline_note = ""
-    coreg = options.coregistration
-    if prior is not None:
-        if coreg is not None and coreg.estimate_from == "job" and coreg.apply:
-            prior = None  # the job-wide correction touches every tile: recompute all
-            baseline_note = (
-                "the baseline was not used: an applied job-wide co-registration changes every "
-                "tile's corrected statistics, so every tile was recomputed"
-            )
-        elif not prior.has_job_totals:
-            prior = None
-            baseline_note = (
-                "the baseline was not used: it holds no stored job totals (written by an "
-                "earlier version), so every tile was recomputed"
-            )
-        else:
-            change = make_plan(
-                prior,
-                job.spec.model_dump(mode="json"),
-                catalog.tests,
-                sources,
-                {t.tile_id: catalog.sources_of(t) for t in catalog.tests},
-            )
     region_ids = [r.region_id for r in catalog.regions]
-    resumed: tuple[JobAccumulator, JobAccumulator] | None = None
-    if prior is not None and change is not None and change.reuse:
-        try:
-            resumed = resumed_totals(prior, change, region_ids)
-        except (KeyError, ValueError, OSError) as exc:  # a damaged baseline costs time only
-            prior, change = None, None
-            baseline_note = (
-                f"the baseline was not used: its stored summaries could not be read ({exc}), "
-                "so every tile was recomputed"
-            )
+    reuse = _reuse_of(prior, job, catalog, sources, options, region_ids)
+    prior, change, baseline_note = reuse.baseline, reuse.change, reuse.note
     coregistration: dict[str, Any] | None = None
     tile_shifts: dict[str, dict[str, Any]] = {}
-    if coreg is not None:
+    if options.coregistration is not None:
         correction, coregistration, tile_shifts = estimate_job_correction(
             client,
             catalog.tests,
@@ -164,7 +132,7 @@ def run_job(
     layout = overview_layout(catalog.tests, factor=job.spec.options.overview_factor)
     store = ResultsStore(out_dir, layout)
     summaries = TileSummaryStore(store.path, mode="a")
-    acc, after = resumed or (
+    acc, after = reuse.totals or (
         JobAccumulator(region_ids=region_ids),
         JobAccumulator(region_ids=region_ids),
     )
@@ -267,23 +235,8 @@ def run_job(
         document["cautions"].append(baseline_note)
     write_summary(out_dir, catalog.document(), name=CATALOG_NAME)
     if job.spec.checkpoints is not None:
-        earlier: dict[str, float] = {}
-        changed_areas: list[list[float]] = []
-        if prior is not None and change is not None:
-            earlier = earlier_heights(prior.folder, prior.document, job)
-            changed_areas = [list(by_id[t].bounds) for t in change.recompute if t in by_id]
-            changed_areas += [
-                prior.tiles[t]["bounds"] for t in change.removed if prior.tiles[t].get("bounds")
-            ]
-        document["checkpoints"] = audit_checkpoints(
-            client,
-            job,
-            catalog.tests,
-            regions=catalog.regions_by_crs,
-            options=options,
-            out_dir=out_dir,
-            earlier=earlier,
-            changed_areas=changed_areas,
+        document["checkpoints"] = _checkpoint_section(
+            client, job, catalog, options, out_dir, prior, change
         )
     clock.mark("checkpoints")
     if raster:
@@ -335,6 +288,51 @@ def _fold(
         summaries.write(result.tile_id, entries_of(result), excluded=result.excluded)
 
 
+@dataclass(frozen=True)
+class _Reuse:
+    """What a run takes from its baseline: the change plan and the totals it continues, or a
+    note saying why the baseline was not used (then every tile is recomputed)."""
+
+    baseline: Baseline | None = None
+    change: ChangePlan | None = None
+    totals: tuple[JobAccumulator, JobAccumulator] | None = None  # all results, after co-reg.
+    note: str = ""
+
+
+def _reuse_of(
+    prior: Baseline | None,
+    job: ResolvedJob,
+    catalog: _Catalog,
+    sources: dict[str, str],
+    options: TileOptions,
+    region_ids: list[str],
+) -> _Reuse:
+    """Decide how much of the baseline a run can use."""
+    unused = "the baseline was not used: {}, so every tile was recomputed"
+    if prior is None:
+        return _Reuse()
+    coreg = options.coregistration
+    if coreg is not None and coreg.estimate_from == "job" and coreg.apply:
+        why = "an applied job-wide co-registration changes every tile's corrected statistics"
+        return _Reuse(note=unused.format(why))
+    if not prior.has_job_totals:
+        return _Reuse(note=unused.format("it holds no stored job totals (an earlier version)"))
+    change = make_plan(
+        prior,
+        job.spec.model_dump(mode="json"),
+        catalog.tests,
+        sources,
+        {t.tile_id: catalog.sources_of(t) for t in catalog.tests},
+    )
+    if not change.reuse:
+        return _Reuse(prior, change)
+    try:
+        totals = resumed_totals(prior, change, region_ids)
+    except (KeyError, ValueError, OSError) as exc:  # a damaged baseline costs time only
+        return _Reuse(note=unused.format(f"its stored summaries could not be read ({exc})"))
+    return _Reuse(prior, change, totals)
+
+
 def _carry_over(
     prior: Baseline, change: ChangePlan, store: ResultsStore, summaries: TileSummaryStore
 ) -> None:
@@ -345,6 +343,38 @@ def _carry_over(
     gone = [*change.recompute, *change.removed]
     blank = [prior.tiles[t]["bounds"] for t in gone if prior.tiles.get(t, {}).get("bounds")]
     store.carry_overview(prior.zarr, keep, blank)
+
+
+def _checkpoint_section(
+    client: Client,
+    job: ResolvedJob,
+    catalog: _Catalog,
+    options: TileOptions,
+    out_dir: Path,
+    prior: Baseline | None,
+    change: ChangePlan | None,
+) -> dict[str, Any]:
+    """The checkpoint audit; in a re-check, points away from the changed tiles keep the test
+    heights the baseline sampled."""
+    earlier: dict[str, float] = {}
+    changed_areas: list[list[float]] = []
+    if prior is not None and change is not None:
+        by_id = {t.tile_id: t for t in catalog.tests}
+        earlier = earlier_heights(prior.folder, prior.document, job)
+        changed_areas = [list(by_id[t].bounds) for t in change.recompute if t in by_id]
+        changed_areas += [
+            prior.tiles[t]["bounds"] for t in change.removed if prior.tiles[t].get("bounds")
+        ]
+    return audit_checkpoints(
+        client,
+        job,
+        catalog.tests,
+        regions=catalog.regions_by_crs,
+        options=options,
+        out_dir=out_dir,
+        earlier=earlier,
+        changed_areas=changed_areas,
+    )
 
 
 def _indicative_grading(acc: JobAccumulator, job: ResolvedJob) -> list[dict[str, Any]]:

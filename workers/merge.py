@@ -101,7 +101,10 @@ class TileExtremes:
 
 @dataclass
 class JobAccumulator:
-    """Running merge of tile results: the whole job, each region, each region x stratum."""
+    """Running merge of tile results: the whole job, each region, each region x stratum.
+
+    ``tiles_done`` and ``tiles_failed`` count the results added here, not those of a run
+    resumed from (see :meth:`resume`)."""
 
     region_ids: Sequence[str] = ()
     excluded: int = 0

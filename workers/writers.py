@@ -175,7 +175,7 @@ class ResultsStore:
             old.shape == new.shape
             and old.chunks == new.chunks
             and np.array_equal(old_x, x)
-            and (np.array_equal(old_y, y))
+            and np.array_equal(old_y, y)
         ):
             chunks = baseline / "dh_overview" / "dh" / "c"
             if chunks.is_dir():
@@ -259,6 +259,7 @@ def _window(
 def link_or_copy(source: str, target: str) -> None:
     """Hard-link a file where the file system allows, else copy it. Safe for zarr stores: zarr
     writes a new file and renames it over the old, never rewriting a file in place."""
+    Path(target).unlink(missing_ok=True)  # never write through a link into the other store
     try:
         os.link(source, target)
     except OSError:  # another file system, or links not allowed
