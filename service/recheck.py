@@ -87,13 +87,18 @@ def make_plan(
     tests: list[TileInfo],
     sources: Mapping[str, str],
     overlaps: Mapping[str, list[str]],
+    *,
+    region_fingerprint: str | None = None,
 ) -> ChangePlan:
-    """The change plan; every tile is recomputed when the processing part of the spec changed."""
+    """The change plan; every tile is recomputed when the processing part of the spec, or the
+    content of the region file, changed."""
     current = {t.tile_id: t.fingerprint for t in tests}
     before = baseline.document.get("job", {}).get("spec", {})
     changed = [
         k for k in _PROCESSING_KEYS if _canonical(before.get(k)) != _canonical(spec_dump.get(k))
     ]
+    if baseline.document.get("job", {}).get("region_fingerprint") != region_fingerprint:
+        changed.append("region file content")
     if changed:
         return ChangePlan(
             recompute={t: f"job spec changed ({', '.join(changed)})" for t in current},

@@ -36,6 +36,7 @@ from workers.catalog import (
     TileIndex,
     TileInfo,
     catalog_document,
+    file_fingerprint,
     scan_tile,
     unchanged,
 )
@@ -59,7 +60,9 @@ from workers.summary_store import (
 )
 from workers.tile_task import ALL, FAILED, OK, TileOptions, TileResult, audit_tile
 from workers.writers import (
+    OverviewLayout,
     ResultsStore,
+    overview_carries,
     overview_layout,
     statistics_table,
     strata_table,
@@ -112,7 +115,9 @@ def run_job(
     catalog = _catalog(client, job, options, prior.catalog if prior else {})
     sources = catalog.source_fingerprints()
     region_ids = [r.region_id for r in catalog.regions]
-    reuse = _reuse_of(prior, job, catalog, sources, options, region_ids)
+    layout = overview_layout(catalog.tests, factor=job.spec.options.overview_factor)
+    region_fingerprint = _region_fingerprint(job)
+    reuse = _reuse_of(prior, job, catalog, sources, options, region_ids, layout, region_fingerprint)
     prior, change, baseline_note = reuse.baseline, reuse.change, reuse.note
     coregistration: dict[str, Any] | None = None
     tile_shifts: dict[str, dict[str, Any]] = {}
@@ -129,7 +134,6 @@ def run_job(
         options = replace(options, correction=correction)
     clock.mark("catalog_and_coregistration")
 
-    layout = overview_layout(catalog.tests, factor=job.spec.options.overview_factor)
     store = ResultsStore(out_dir, layout)
     summaries = TileSummaryStore(store.path, mode="a")
     acc, after = reuse.totals or (
@@ -190,7 +194,7 @@ def run_job(
             progress(done, total)
     clock.mark("tiles")
     write_job_totals(store.path, ALL_PART, acc)
-    if after.extremes().keys:
+    if not after.is_empty:
         write_job_totals(store.path, AFTER_PART, after)
     clock.mark("job_totals")
 
@@ -199,7 +203,7 @@ def run_job(
     outliers = job.spec.outliers
     rule: dict[str, Any] = {"outlier_rule": outliers.rule, "outlier_factor": outliers.factor}
     region_docs = region_entries({r: acc.regions[r] for r in region_ids}, names, acc.strata, **rule)
-    if coregistration is not None and after.extremes().keys:
+    if coregistration is not None and not after.is_empty:
         coregistration["after"] = {
             "overall": area_entry(after.overall, after.strata_of(ALL), **rule),
             "regions": region_entries(
@@ -217,6 +221,7 @@ def run_job(
             "started": started,
             "finished": _now(),
             "software": SOFTWARE,
+            "region_fingerprint": region_fingerprint,
             "tiles": {
                 "test": len(job.test_tiles),
                 "reference": len(job.reference_tiles),
@@ -306,6 +311,8 @@ def _reuse_of(
     sources: dict[str, str],
     options: TileOptions,
     region_ids: list[str],
+    layout: OverviewLayout | None,
+    region_fingerprint: str | None,
 ) -> _Reuse:
     """Decide how much of the baseline a run can use."""
     unused = "the baseline was not used: {}, so every tile was recomputed"
@@ -317,20 +324,29 @@ def _reuse_of(
         return _Reuse(note=unused.format(why))
     if not prior.has_job_totals:
         return _Reuse(note=unused.format("it holds no stored job totals (an earlier version)"))
+    if not overview_carries(layout, prior.zarr):
+        return _Reuse(note=unused.format("the dh overview's grid changed with the tiling"))
     change = make_plan(
         prior,
         job.spec.model_dump(mode="json"),
         catalog.tests,
         sources,
         {t.tile_id: catalog.sources_of(t) for t in catalog.tests},
+        region_fingerprint=region_fingerprint,
     )
     if not change.reuse:
         return _Reuse(prior, change)
     try:
         totals = resumed_totals(prior, change, region_ids)
-    except (KeyError, ValueError, OSError) as exc:  # a damaged baseline costs time only
-        return _Reuse(note=unused.format(f"its stored summaries could not be read ({exc})"))
+    except Exception as exc:  # noqa: BLE001 - a damaged baseline costs time, never the job
+        reason = f"its stored summaries could not be read ({type(exc).__name__}: {exc})"
+        return _Reuse(note=unused.format(reason))
     return _Reuse(prior, change, totals)
+
+
+def _region_fingerprint(job: ResolvedJob) -> str | None:
+    """SHA-256 of the region file (None without regions): editing it changes every region."""
+    return file_fingerprint(job.region_file) if job.region_file is not None else None
 
 
 def _carry_over(

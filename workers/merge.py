@@ -38,24 +38,24 @@ def keyed_summaries(result: TileResult) -> dict[Key, DhSummary]:
 
 
 class TileExtremes:
-    """The minimum and maximum of every key, per tile: what a merge cannot take back."""
+    """The minimum and maximum of every key a tile contributed, per tile: what a merge cannot
+    take back. Sparse: a tile holds rows only for its own keys (the tile, the regions it touches,
+    their strata), so the table grows with the entries, not with tiles x keys."""
 
     def __init__(self) -> None:
         self.keys: list[Key] = []
         self._column: dict[Key, int] = {}
-        self._rows: dict[str, NDArray[np.float64]] = {}  # tile -> (keys known then, 2)
-        self._reduced: dict[Key, tuple[float, float]] | None = None
+        self._rows: dict[str, tuple[NDArray[np.int64], NDArray[np.float64]]] = {}
+        self._reduced: tuple[NDArray[np.float64], NDArray[np.int64]] | None = None
 
     def put(self, tile_id: str, entries: Mapping[Key, DhSummary]) -> None:
         for key in entries:
             if key not in self._column:
                 self._column[key] = len(self.keys)
                 self.keys.append(key)
-        row = np.empty((len(self.keys), 2))
-        row[:, 0], row[:, 1] = math.inf, -math.inf
-        for key, s in entries.items():
-            row[self._column[key]] = (s.minimum, s.maximum)
-        self._rows[tile_id] = row
+        columns = np.array([self._column[k] for k in entries], dtype=np.int64)
+        values = np.array([(s.minimum, s.maximum) for s in entries.values()], dtype=np.float64)
+        self._rows[tile_id] = (columns, values.reshape(-1, 2))
         self._reduced = None
 
     def drop(self, tile_id: str) -> None:
@@ -64,38 +64,65 @@ class TileExtremes:
 
     def of(self, key: Key) -> tuple[float, float]:
         """(minimum, maximum) of one key over the tiles present."""
+        extremes, _ = self._reduce()
+        column = self._column.get(key)
+        if column is None:
+            return math.inf, -math.inf
+        return float(extremes[column, 0]), float(extremes[column, 1])
+
+    def tiles_with(self, key: Key) -> int:
+        """How many of the tiles present contributed the key (an empty summary counts)."""
+        _, counts = self._reduce()
+        column = self._column.get(key)
+        return 0 if column is None else int(counts[column])
+
+    def _reduce(self) -> tuple[NDArray[np.float64], NDArray[np.int64]]:
         if self._reduced is None:
-            self._reduced = self.reduce()
-        return self._reduced.get(key, (math.inf, -math.inf))
+            extremes = np.empty((len(self.keys), 2))
+            extremes[:, 0], extremes[:, 1] = math.inf, -math.inf
+            columns, values = self._concatenated()
+            np.minimum.at(extremes[:, 0], columns, values[:, 0])
+            np.maximum.at(extremes[:, 1], columns, values[:, 1])
+            self._reduced = extremes, np.bincount(columns, minlength=len(self.keys))
+        return self._reduced
 
-    def reduce(self) -> dict[Key, tuple[float, float]]:
-        """(minimum, maximum) of each key over the tiles present."""
-        lo = np.full(len(self.keys), math.inf)
-        hi = np.full(len(self.keys), -math.inf)
-        for row in self._rows.values():
-            n = row.shape[0]
-            np.minimum(lo[:n], row[:, 0], out=lo[:n])
-            np.maximum(hi[:n], row[:, 1], out=hi[:n])
-        return {key: (float(lo[i]), float(hi[i])) for i, key in enumerate(self.keys)}
+    def _concatenated(self) -> tuple[NDArray[np.int64], NDArray[np.float64]]:
+        if not self._rows:
+            return np.zeros(0, np.int64), np.zeros((0, 2))
+        columns, values = zip(*self._rows.values(), strict=True)
+        return np.concatenate(columns), np.concatenate(values)
 
-    def to_array(self) -> tuple[list[str], list[Key], NDArray[np.float64]]:
-        """Tile ids, keys and the (tiles, keys, 2) array of extremes, for storage."""
+    def to_arrays(self) -> dict[str, object]:
+        """For storage: tile ids, keys, and per row (tile index, key index, minimum, maximum)."""
         tiles = sorted(self._rows)
-        out = np.empty((len(tiles), len(self.keys), 2))
-        out[:, :, 0], out[:, :, 1] = math.inf, -math.inf
-        for i, tile_id in enumerate(tiles):
-            row = self._rows[tile_id]
-            out[i, : row.shape[0]] = row
-        return tiles, list(self.keys), out
+        sizes = [self._rows[t][0].size for t in tiles]
+        columns = [self._rows[t][0] for t in tiles]
+        values = [self._rows[t][1] for t in tiles]
+        return {
+            "tiles": tiles,
+            "keys": list(self.keys),
+            "tile": np.repeat(np.arange(len(tiles), dtype=np.int64), sizes),
+            "key": np.concatenate(columns) if columns else np.zeros(0, np.int64),
+            "values": np.concatenate(values) if values else np.zeros((0, 2)),
+        }
 
     @classmethod
-    def from_array(
-        cls, tiles: Sequence[str], keys: Sequence[Key], values: NDArray[np.float64]
+    def from_arrays(
+        cls,
+        tiles: Sequence[str],
+        keys: Sequence[Key],
+        tile: NDArray[np.int64],
+        key: NDArray[np.int64],
+        values: NDArray[np.float64],
     ) -> TileExtremes:
         extremes = cls()
-        extremes.keys = [tuple(k) for k in keys]  # type: ignore[misc]
+        extremes.keys = [(str(a), str(s)) for a, s in keys]
         extremes._column = {k: i for i, k in enumerate(extremes.keys)}
-        extremes._rows = {t: np.array(values[i], dtype=np.float64) for i, t in enumerate(tiles)}
+        order = np.argsort(tile, kind="stable")
+        starts = np.searchsorted(tile[order], np.arange(len(tiles) + 1))
+        for i, tile_id in enumerate(tiles):
+            rows = order[starts[i] : starts[i + 1]]
+            extremes._rows[tile_id] = (key[rows].astype(np.int64), values[rows].reshape(-1, 2))
         return extremes
 
 
@@ -149,6 +176,8 @@ class JobAccumulator:
             # extremes are left open here and taken from the per-tile table when read
             rest = dh_summary.subtract(total, part, minimum=math.inf, maximum=-math.inf)
             self._parts[key] = [rest]
+            if not self._extremes.tiles_with(key):  # no tile left under this key: as if never
+                del self._parts[key]
         self.excluded -= excluded
 
     def _push(self, key: Key, part: DhSummary) -> None:
@@ -175,6 +204,11 @@ class JobAccumulator:
 
     def extremes(self) -> TileExtremes:
         return self._extremes
+
+    @property
+    def is_empty(self) -> bool:
+        """Whether no tile result is in the merge."""
+        return not self._parts
 
     @property
     def overall(self) -> DhSummary:

@@ -6,9 +6,10 @@ histograms of all the tile's entries, concatenated), and an attribute ``entries`
 a region id or ``*`` (the whole tile); stratum is a stratum key or ``""`` (no stratum).
 
 ``results.zarr/job_summaries/<part>/`` (part ``all``, or ``after`` for the statistics after
-co-registration) holds the job's merged totals in the same layout, plus ``extremes`` (tiles x
-entries x 2: each tile's minimum and maximum per entry, attributes ``tiles`` and ``keys``) and the
-total of excluded pixels: what a re-check needs to continue the merge (workers/merge.py).
+co-registration) holds the job's merged totals in the same layout, plus each tile's minimum and
+maximum per entry it contributed (arrays ``extremes_tile``, ``extremes_key``, ``extremes_values``
+indexing the attributes ``extremes_tiles`` and ``extremes_keys``) and the total of excluded
+pixels: what a re-check needs to continue the merge (workers/merge.py).
 """
 
 from __future__ import annotations
@@ -97,27 +98,36 @@ def write_job_totals(zarr_path: Path, part: str, acc: JobAccumulator) -> None:
     """Store a job's merged totals and per-tile extremes under job_summaries/<part>."""
     root: Any = zarr.open_group(str(zarr_path), mode="a", zarr_format=3, use_consolidated=False)
     group = root.require_group(JOB_GROUP).create_group(part, overwrite=True)
-    tiles, keys, extremes = acc.extremes().to_array()
+    table = acc.extremes().to_arrays()
     _write_entries(group, acc.totals(), {"excluded": int(acc.excluded)})
-    array = group.create_array(
-        "extremes", data=extremes, chunks=tuple(max(n, 1) for n in extremes.shape)
+    for name in ("tile", "key", "values"):
+        data = np.asarray(table[name])
+        group.create_array(
+            f"extremes_{name}", data=data, chunks=tuple(max(n, 1) for n in data.shape)
+        )
+    group.attrs.update(
+        {"extremes_tiles": table["tiles"], "extremes_keys": [list(k) for k in table["keys"]]}  # type: ignore[attr-defined]
     )
-    array.attrs.update({"tiles": tiles, "keys": [list(k) for k in keys]})
 
 
 def read_job_totals(zarr_path: Path, part: str, region_ids: list[str]) -> JobAccumulator | None:
-    """A job accumulator resumed from job_summaries/<part> (None when the store has none)."""
+    """A job accumulator resumed from job_summaries/<part> (None when the store has none);
+    ValueError when a stored histogram does not add up to its count."""
     try:
         root: Any = zarr.open_group(str(zarr_path), mode="r", use_consolidated=False)
         group = root[JOB_GROUP][part]
     except (KeyError, FileNotFoundError):
         return None
     totals, attrs = _read_entries(group)
-    array = group["extremes"]
-    extremes = TileExtremes.from_array(
-        array.attrs["tiles"],
-        [(a, st) for a, st in array.attrs["keys"]],
-        np.asarray(array[...], dtype=np.float64),
+    for key, s in totals.items():
+        if int(s.counts.sum()) != s.count:
+            raise ValueError(f"stored job totals of {key} do not add up")
+    extremes = TileExtremes.from_arrays(
+        attrs["extremes_tiles"],
+        [(a, st) for a, st in attrs["extremes_keys"]],
+        np.asarray(group["extremes_tile"][...], dtype=np.int64),
+        np.asarray(group["extremes_key"][...], dtype=np.int64),
+        np.asarray(group["extremes_values"][...], dtype=np.float64),
     )
     return JobAccumulator.resume(
         totals, extremes, excluded=int(attrs.get("excluded", 0)), region_ids=region_ids

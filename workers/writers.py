@@ -244,6 +244,23 @@ class ResultsStore:
                 table.to_zarr(self.path, group=group, mode=mode, zarr_format=3, consolidated=False)
 
 
+def overview_carries(layout: OverviewLayout | None, baseline: Path) -> bool:
+    """Whether an earlier results.zarr's dh overview can be carried into one on layout: same
+    cell size, cell edges on the same lines (True when there is no overview to fill)."""
+    if layout is None:
+        return True
+    try:
+        group: Any = zarr.open_group(str(Path(baseline) / "dh_overview"), mode="r")
+        x, y = np.asarray(group["x"][:]), np.asarray(group["y"][:])
+    except (KeyError, FileNotFoundError, OSError):
+        return False
+    a, _, c, _, e, f = layout.transform
+    if x.size < 2 or y.size < 2 or not (np.isclose(x[1] - x[0], a) and np.isclose(y[1] - y[0], e)):
+        return False
+    cols, rows = (x[0] - (c + a / 2)) / a, (y[0] - (f + e / 2)) / e
+    return bool(np.isclose(cols, round(cols)) and np.isclose(rows, round(rows)))
+
+
 def _window(
     x: NDArray[np.float64], y: NDArray[np.float64], bounds: Sequence[float]
 ) -> tuple[slice, slice]:

@@ -198,3 +198,12 @@ def test_a_damaged_baseline_recomputes_everything_and_says_so(archive, dask_clie
     doc, recomputed = audited(dask_client, archive, tmp_path / "night", tmp_path / "base")
     assert len(recomputed) == 36 and "recheck" not in doc
     assert any("stored summaries could not be read" in c for c in doc["cautions"])
+
+
+def test_editing_the_region_file_recomputes_every_tile(archive, dask_client, tmp_path):
+    audited(dask_client, archive, tmp_path / "base")
+    regions = archive / "provinces.geojson"
+    regions.write_text(regions.read_text(encoding="utf-8") + "\n", encoding="utf-8")
+    doc, recomputed = audited(dask_client, archive, tmp_path / "night", tmp_path / "base")
+    assert len(recomputed) == 36
+    assert all("region file content" in t["why"] for t in doc["recheck"]["tiles"])

@@ -13,8 +13,8 @@ from workers.catalog import TileInfo
 from workers.grid import Grid
 from workers.merge import JobAccumulator, TileExtremes, accumulate, keyed_summaries
 from workers.regions import Region
-from workers.summary import empty, nmad_bound_m, quantile_bound_m, statistics
-from workers.tile_task import TileOptions, TileSurfaces, summarise_tile
+from workers.summary import empty, nmad_bound_m, quantile_bound_m, statistics, summarise
+from workers.tile_task import ALL, OK, TileOptions, TileResult, TileSurfaces, summarise_tile
 
 UTM = CRS.from_epsg(32632).to_wkt()
 PIXELS, SIZE, ORIGIN_E, ORIGIN_N = 30, 2.0, 500_000.0, 6_000_000.0
@@ -130,7 +130,7 @@ def test_resumed_merge_with_removals_equals_a_fresh_merge():
     # the tile holding the job's extreme values is among those replaced
     lowest = min(range(len(first)), key=lambda i: first[i].summary.minimum)
     replaced = sorted({lowest, 3, 9})
-    stored = TileExtremes.from_array(*earlier.extremes().to_array())
+    stored = TileExtremes.from_arrays(**earlier.extremes().to_arrays())  # as stored and read
     resumed = JobAccumulator.resume(
         earlier.totals(), stored, excluded=earlier.excluded, region_ids=earlier.region_ids
     )
@@ -159,3 +159,29 @@ def test_removing_every_tile_leaves_empty_totals():
     acc = accumulate([only])
     acc.remove(t.tile_id, keyed_summaries(only), excluded=0)
     assert statistics(acc.overall) == statistics(empty())
+
+
+def test_a_key_whose_last_tile_goes_leaves_the_merge_as_in_a_fresh_run():
+    """A stratum only one tile had (land cover there, none elsewhere) disappears with that tile,
+    and the co-registration part empties, exactly as when merging the rest from scratch."""
+    rng = np.random.default_rng(8)
+    dh = rng.normal(0.1, 0.3, 1000)
+    plain = TileResult(
+        "a", OK, None, summary=summarise(dh), strata={ALL: {"slope:0-5": summarise(dh)}}
+    )
+    covered = TileResult(
+        "b",
+        OK,
+        None,
+        summary=summarise(dh),
+        regions={"R1": summarise(dh[:500])},
+        strata={ALL: {"slope:0-5": summarise(dh), "cover_group:vegetated": summarise(dh[:99])}},
+    )
+    acc = accumulate([plain, covered], ["R1"])
+    acc.remove("b", keyed_summaries(covered), excluded=0)
+    fresh = accumulate([plain], ["R1"])
+    assert acc.totals().keys() == fresh.totals().keys()
+    assert list(acc.strata_of(ALL)) == ["slope:0-5"] and acc.regions["R1"].count == 0
+    empty_after = accumulate([plain])
+    empty_after.remove("a", keyed_summaries(plain), excluded=0)
+    assert empty_after.is_empty and not fresh.is_empty

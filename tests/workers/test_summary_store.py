@@ -5,6 +5,7 @@ from __future__ import annotations
 import math
 
 import numpy as np
+import pytest
 import zarr
 
 from workers.merge import JobAccumulator, keyed_summaries
@@ -48,9 +49,14 @@ def test_job_totals_round_trip(tmp_path):
     assert back.totals().keys() == acc.totals().keys()
     for key, want in acc.totals().items():
         assert statistics(back.summary(key)) == statistics(want)
-    tiles, keys, values = back.extremes().to_array()
-    assert tiles == [f"t{i}" for i in range(5)] and values.shape == (5, len(keys), 2)
-    assert math.isinf(values[0, keys.index(("R1", "")), 0])  # tile 0 had no region R1
+    table = back.extremes().to_arrays()
+    assert table["tiles"] == [f"t{i}" for i in range(5)]
+    # sparse: tile 0 had no region R1, so it has one row fewer than the others
+    rows_per_tile = np.bincount(table["tile"])  # type: ignore[call-overload]
+    assert rows_per_tile[0] == rows_per_tile[1] - 1
+    assert back.extremes().tiles_with(("R1", "")) == 4
+    assert back.extremes().of(("*", "")) == acc.extremes().of(("*", ""))
+    assert not math.isinf(back.extremes().of(("*", ""))[0])
     assert read_job_totals(path, "after", []) is None
 
 
@@ -78,3 +84,16 @@ def test_split_after_separates_corrected_entries():
     s = summarise(np.arange(5.0))
     own, after = split_after({("*", ""): s, ("after:*", ""): s, ("after:R1", "x"): s})
     assert list(own) == [("*", "")] and list(after) == [("*", ""), ("R1", "x")]
+
+
+def test_job_totals_that_do_not_add_up_are_refused(tmp_path):
+    rng = np.random.default_rng(5)
+    acc = JobAccumulator()
+    acc.add(result("t0", rng))
+    path = tmp_path / "results.zarr"
+    zarr.open_group(str(path), mode="w", zarr_format=3)
+    write_job_totals(path, ALL_PART, acc)
+    counts = zarr.open_array(str(path / "job_summaries" / ALL_PART / "counts"), mode="r+")
+    counts[0] = counts[0] + 1  # a damaged store
+    with pytest.raises(ValueError, match="do not add up"):
+        read_job_totals(path, ALL_PART, [])

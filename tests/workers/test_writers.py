@@ -14,7 +14,7 @@ from workers.catalog import TileInfo
 from workers.grid import Grid
 from workers.summary import summarise
 from workers.summary_store import GROUP, TileSummaryStore
-from workers.writers import ResultsStore, overview_layout, statistics_table
+from workers.writers import ResultsStore, overview_carries, overview_layout, statistics_table
 
 UTM = CRS.from_epsg(32632).to_wkt()
 PIXELS, SIZE = 40, 2.0
@@ -86,3 +86,14 @@ def test_tables_open_consolidated_and_summaries_stay_out_of_it(tmp_path):
     listed = root.metadata.consolidated_metadata.metadata
     assert "tiles" in listed and "dh_overview" in listed and GROUP not in listed
     assert TileSummaryStore(tmp_path / "results.zarr").read("t00")[0][("*", "")].count == 9
+
+
+def test_overview_carries_only_onto_the_same_cells(tmp_path):
+    grid = tiles(3, 2)
+    build(tmp_path / "base", grid, {}).finish()
+    base = tmp_path / "base" / "results.zarr"
+    assert overview_carries(overview_layout(grid, factor=4), base)
+    assert overview_carries(overview_layout(tiles(4, 3), factor=4), base)  # more tiles, same cells
+    assert not overview_carries(overview_layout(grid, factor=2), base)  # other cell size
+    assert overview_carries(None, base)  # nothing to fill
+    assert not overview_carries(overview_layout(grid, factor=4), tmp_path / "nowhere.zarr")
