@@ -16,8 +16,8 @@ matplotlib.use("Agg")
 import matplotlib.pyplot as plt  # noqa: E402
 import numpy as np  # noqa: E402
 import zarr  # noqa: E402
-from numpy.typing import NDArray  # noqa: E402
 
+from workers.difference import block_mean  # noqa: E402
 from workers.writers import ZARR_NAME  # noqa: E402
 
 MAP_NAME = "dh_map.png"
@@ -47,7 +47,7 @@ def _dh_map(out_dir: Path, document: Mapping[str, Any]) -> bool:
     except (KeyError, FileNotFoundError, OSError):
         return False
     factor = -(-max(dh.shape) // MAP_PIXELS)  # no more map pixels than the figure shows
-    values = block_mean(np.asarray(dh, dtype=np.float32), factor)
+    values = block_mean(np.asarray(dh, dtype=np.float64), max(factor, 1))
     overall = document.get("overall") or {}
     if not overall.get("count"):
         return False
@@ -83,21 +83,6 @@ def _dh_map(out_dir: Path, document: Mapping[str, Any]) -> bool:
     fig.savefig(Path(out_dir) / MAP_NAME, dpi=110)
     plt.close(fig)
     return True
-
-
-def block_mean(values: NDArray[np.float32], factor: int) -> NDArray[np.float32]:
-    """Mean of each factor x factor block, ignoring NaN (the last blocks may be partial)."""
-    if factor <= 1:
-        return values
-    rows, cols = -(-values.shape[0] // factor), -(-values.shape[1] // factor)
-    padded = np.full((rows * factor, cols * factor), np.nan, dtype=np.float32)
-    padded[: values.shape[0], : values.shape[1]] = values
-    blocks = padded.reshape(rows, factor, cols, factor)
-    finite = np.isfinite(blocks)
-    counts = finite.sum(axis=(1, 3))
-    sums = np.where(finite, blocks, 0.0).sum(axis=(1, 3), dtype=np.float64)
-    with np.errstate(invalid="ignore", divide="ignore"):
-        return np.where(counts > 0, sums / counts, np.nan).astype(np.float32)
 
 
 def _by_stratum(out_dir: Path, document: Mapping[str, Any]) -> bool:

@@ -180,31 +180,5 @@ def _read_entries(group: Any) -> tuple[dict[Key, DhSummary], dict[str, Any]]:
     return out, attrs
 
 
-def write_tile_summaries(
-    zarr_path: Path, tile_id: str, entries: dict[Key, DhSummary], *, excluded: int = 0
-) -> None:
-    """Write (replace) one tile's summaries (opens the store; see TileSummaryStore)."""
-    TileSummaryStore(zarr_path, mode="a").write(tile_id, entries, excluded=excluded)
-
-
-def read_excluded(zarr_path: Path, tile_id: str) -> int:
-    """The tile's count of valid pixels dropped as excluded land cover."""
-    return TileSummaryStore(zarr_path).read(tile_id)[1]
-
-
-def read_tile_summaries(zarr_path: Path, tile_id: str) -> dict[Key, DhSummary]:
-    """Read back what write_tile_summaries wrote (KeyError when the tile is not stored)."""
-    return TileSummaryStore(zarr_path).read(tile_id)[0]
-
-
-def stored_tiles(zarr_path: Path) -> list[str]:
-    """Ids of the tiles whose summaries are stored."""
-    try:
-        root = zarr.open_group(str(zarr_path), mode="r", use_consolidated=False)
-        return sorted(root[GROUP].group_keys())  # type: ignore[union-attr]
-    except (KeyError, FileNotFoundError):
-        return []
-
-
 def _finite_or_none(value: float) -> float | None:
     return value if math.isfinite(value) else None

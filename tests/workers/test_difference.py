@@ -1,4 +1,4 @@
-"""The dh map's block means agree with xarray's coarsen (reference library)."""
+"""The dh overview's block means agree with xarray's coarsen (reference library)."""
 
 from __future__ import annotations
 
@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
-from workers.figures import block_mean
+from workers.difference import block_mean
 
 
 @pytest.mark.parametrize(("shape", "factor"), [((1601, 1597), 3), ((40, 40), 4), ((7, 5), 1)])
