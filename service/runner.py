@@ -243,6 +243,7 @@ def run_job(
         document["checkpoints"] = _checkpoint_section(
             client, job, catalog, options, out_dir, prior, change
         )
+        document["cautions"] += document["checkpoints"].get("cautions", [])
     clock.mark("checkpoints")
     if raster:
         document["grading_indicative"] = _indicative_grading(acc, job)
@@ -407,6 +408,7 @@ def _indicative_grading(acc: JobAccumulator, job: ResolvedJob) -> list[dict[str,
         int(nv_stats["count"] or 0),  # type: ignore[arg-type]
         int(veg_stats["count"] or 0),
         indicative=True,
+        rmse_z_vegetated=veg_stats.get("rmse"),
     )
     return grade(measured, job)
 

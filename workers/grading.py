@@ -54,6 +54,8 @@ class Measured:
     survey_rmse_m: float | None = None
     area_km2: float | None = None
     indicative: bool = False  # True for raster-vs-raster figures
+    rmse_z_vegetated: float | None = None  # ASPRS Edition 2 reports the VVA as an RMSE
+    rmse_z_all: float | None = None  # every graded checkpoint, whatever its cover group
 
 
 def asprs2014_required_checkpoints(area_km2: float) -> int:

@@ -104,6 +104,12 @@ class CheckpointSource(_Heights):
     y_column: str = "northing"
     height_column: str = "height"
     landcover_column: str | None = "landcover"
+    unclassified_group: Literal["non_vegetated", "vegetated", "excluded"] = Field(
+        default="non_vegetated",
+        description="Cover group of points without a land-cover class (no class column, an "
+        "empty cell, or no land-cover class table): graded as this group (as unclassified "
+        "pixels are), or left out of grading ('excluded').",
+    )
 
 
 Standard = Literal["nssda", "asprs2014", "asprs2023", "quality_level", "user"]
