@@ -210,7 +210,9 @@ def sample_test_tile(
     # read only the window around the points (plus two pixels), not the whole tile
     window = (float(xs.min()), float(ys.min()), float(xs.max()), float(ys.max()))
     try:
-        mosaic, grid = read_mosaic(tiles, window, nodata=nodata, margin_px=2)
+        mosaic, grid = read_mosaic(
+            tiles, window, nodata=nodata, margin_px=2, units=units, role="test"
+        )
     except (AuditError, RasterioError, OSError) as exc:
         return [(pid, None, f"test tile {tile_id} unreadable: {exc}") for pid, _, _ in points]
     heights = to_metres(mosaic, units)

@@ -5,6 +5,8 @@ Hierarchy::
     AuditError                      root of everything demaudit raises on purpose
     ├── SpecError (ValueError)      the job spec is malformed or inconsistent
     ├── TileReadError (OSError)     a tile cannot be opened or decoded
+    │   ├── ImplausibleHeightsError a tile holds values no terrain has (an untagged void code)
+    │   └── NotElevationError       a raster that cannot hold heights (RGB, palette, bands)
     ├── MissingCRSError (ValueError)a tile or region file declares no CRS
     ├── GeoidGridError (RuntimeError) the geoid grid needed for a datum change is missing
     ├── EmptyOverlapError (ValueError) test, reference or regions share no area
@@ -27,6 +29,15 @@ class SpecError(AuditError, ValueError):
 
 class TileReadError(AuditError, OSError):
     """A tile cannot be opened or decoded (corrupt, truncated, not a raster)."""
+
+
+class ImplausibleHeightsError(TileReadError):
+    """A tile holds values that cannot be terrain heights, e.g. voids coded -9999 without a
+    nodata tag; the message names the value, its share and the spec's ``nodata`` field."""
+
+
+class NotElevationError(TileReadError):
+    """A raster cannot be an elevation model (several bands, RGB or palette colours)."""
 
 
 class MissingCRSError(AuditError, ValueError):

@@ -1,12 +1,17 @@
 """Reading tiles: the I/O edge of the tile pipeline.
 
-Every read returns float64 heights in the tile's own unit with nodata as NaN.
+Every read returns float64 heights in the tile's own unit with nodata as NaN. Nodata is the
+tile's own tag and the spec's ``nodata`` (both, when both are given). Heights are then checked
+for values no terrain has (``implausible_heights``): voids coded -9999, -32767 or -3.4e38
+without a nodata tag would otherwise be averaged in as heights; such a tile is refused with
+``ImplausibleHeightsError`` naming the value, its share and the spec field that fixes it.
 """
 
 from __future__ import annotations
 
 import math
 from collections.abc import Sequence
+from dataclasses import dataclass
 
 import numpy as np
 import rasterio
@@ -15,18 +20,121 @@ from rasterio.errors import RasterioError
 from rasterio.windows import Window
 
 from workers.catalog import TileInfo
-from workers.errors import TileReadError
+from workers.errors import ImplausibleHeightsError, TileReadError
 from workers.grid import Grid
+from workers.spec import METRES_PER_UNIT
+
+#: Heights (metres) terrain on Earth can have, with a margin: the deepest ocean trench is
+#: about -10,935 m and the highest summit 8,849 m; ellipsoidal and geoid-based heights differ by
+#: at most about 110 m (from memory; common practice for plausibility checks).
+PLAUSIBLE_HEIGHT_M = (-11_000.0, 9_000.0)
+#: Values commonly written into voids (file units): refused when they are a tile's extreme.
+VOID_CODES = (-9999.0, -99999.0, -32767.0, -32768.0, float(np.finfo(np.float32).min))
+#: An extreme value held by two pixels or more and this far (metres) from every other value of
+#: the tile is a void code, not terrain (no slope, cliff or pit leaves such a gap empty).
+VOID_GAP_M = 1_000.0
 
 
-def read_tile(tile: TileInfo, *, nodata: float | None = None) -> NDArray[np.float64]:
-    """The tile's first band as float64, nodata (the tile's own, else ``nodata``) as NaN."""
+@dataclass(frozen=True)
+class Implausible:
+    """A value of a tile that cannot be a height: how many pixels hold it, and why."""
+
+    value: float  # file units
+    count: int  # pixels holding it
+    valid: int  # pixels that are not nodata
+    why: str
+
+
+def read_tile(
+    tile: TileInfo, *, nodata: float | None = None, units: str | None = None
+) -> NDArray[np.float64]:
+    """The tile's first band as float64 (file units), nodata as NaN.
+
+    With ``units`` (the unit of the heights; the tile task always gives it) the values are
+    checked: ImplausibleHeightsError when they hold a void code or heights no terrain has (see
+    implausible_heights).
+    """
     try:
         with rasterio.open(tile.path) as src:
-            data = src.read(1).astype(np.float64)
+            raw = src.read(1)
     except (RasterioError, OSError) as exc:
         raise TileReadError(f"tile {tile.tile_id} cannot be read: {exc}") from None
-    return _nodata_to_nan(data, tile.nodata if tile.nodata is not None else nodata)
+    data = _voids_to_nan(raw, (tile.nodata, nodata))
+    if units is not None:
+        check_heights(data, tile_id=tile.tile_id, units=units, role="test")
+    return data
+
+
+def check_heights(data: NDArray[np.float64], *, tile_id: str, units: str, role: str) -> None:
+    """Raise ImplausibleHeightsError when data (file units, NaN = nodata) cannot be heights.
+
+    ``role`` is 'test' or 'reference': the message names the tile and the spec field
+    (``<role>.nodata``) that declares the value a void.
+    """
+    found = implausible_heights(data, metres_per_unit=METRES_PER_UNIT[units])
+    if found is None:
+        return
+    value = format_value(found.value)
+    share = found.count / found.valid if found.valid else 1.0
+    raise ImplausibleHeightsError(
+        f"{role} tile {tile_id}: {found.count:,} of {found.valid:,} pixels ({share:.1%}) hold "
+        f"{value}, {found.why}; the tile was not used. If {value} marks voids, set "
+        f"'{role}: {{nodata: {value}}}' in the job spec"
+    )
+
+
+def implausible_heights(
+    data: NDArray[np.float64], *, metres_per_unit: float = 1.0
+) -> Implausible | None:
+    """The value of data (file units, NaN = nodata) that shows it is not all terrain, or None.
+
+    Rules, in order: a value outside PLAUSIBLE_HEIGHT_M once converted to metres (or infinite;
+    the most frequent such value is named); the tile's lowest or highest value when it is a
+    common void code (VOID_CODES); the lowest or highest value when two pixels or more hold it
+    and every other value lies more than VOID_GAP_M away. A tile of one value only (a flat lake)
+    passes unless that value is a void code.
+    """
+    valid = int(data.size - np.count_nonzero(np.isnan(data)))
+    if valid == 0:
+        return None
+    low, high = float(np.nanmin(data)), float(np.nanmax(data))
+    lowest, highest = (v / metres_per_unit for v in PLAUSIBLE_HEIGHT_M)
+    if low < lowest or high > highest:
+        with np.errstate(invalid="ignore"):
+            outside = data[(data < lowest) | (data > highest)]
+        values, counts = np.unique(outside, return_counts=True)
+        value = float(values[np.argmax(counts)])
+        why = (
+            "which is not a finite number"
+            if not math.isfinite(value)
+            else "far outside the heights terrain can have "
+            f"({PLAUSIBLE_HEIGHT_M[0]:,.0f} to {PLAUSIBLE_HEIGHT_M[1]:,.0f} m)"
+        )
+        return Implausible(value, int(np.count_nonzero(data == value)), valid, why)
+    for value, beyond in ((low, np.greater), (high, np.less)):
+        count = int(np.count_nonzero(data == value))
+        if value in VOID_CODES:
+            return Implausible(value, count, valid, "a common code for voids")
+        if count < 2 or low == high:
+            continue
+        with np.errstate(invalid="ignore"):
+            nearest = float(np.nanmin(np.abs(data[beyond(data, value)] - value)))
+        if nearest * metres_per_unit > VOID_GAP_M:
+            return Implausible(
+                value,
+                count,
+                valid,
+                f"{nearest * metres_per_unit:,.0f} m away from every other height of the tile "
+                "(a void code, not terrain)",
+            )
+    return None
+
+
+def format_value(value: float) -> str:
+    """A value as the user would write it in the spec (integers without '.0', floats exact)."""
+    if math.isfinite(value) and value.is_integer() and abs(value) < 1e15:
+        return str(int(value))
+    return repr(value)
 
 
 def read_mosaic(
@@ -34,13 +142,16 @@ def read_mosaic(
     bounds: tuple[float, float, float, float],
     *,
     nodata: float | None = None,
+    units: str | None = None,
     margin_px: int = 3,
+    role: str = "reference",
 ) -> tuple[NDArray[np.float64], Grid]:
     """Mosaic the parts of tiles (all on one grid) that cover bounds (in their CRS), plus a margin.
 
-    Returns the heights (NaN where no tile or nodata) and the mosaic's grid, snapped to the tiles'
+    Returns the values (NaN where no tile or nodata) and the mosaic's grid, snapped to the tiles'
     own pixel grid so no resampling happens here. Raises TileReadError when a tile cannot be read
-    or the tiles are not on one grid.
+    or the tiles are not on one grid. With ``units`` (heights; None for land cover) the part read
+    of each tile is checked as in read_tile: ImplausibleHeightsError names the ``role`` tile.
     """
     first = tiles[0].grid
     a, _, c, _, e, f = first.transform
@@ -53,7 +164,9 @@ def read_mosaic(
     row1 = math.ceil((bottom - f) / e) + margin_px
     out = np.full((row1 - row0, col1 - col0), np.nan)
     for tile in tiles:
-        _paste(tile, out, row0=row0, col0=col0, reference=first, nodata=nodata)
+        block = _paste(tile, out, row0=row0, col0=col0, reference=first, nodata=nodata)
+        if block is not None and units is not None:
+            check_heights(block, tile_id=tile.tile_id, units=units, role=role)
     grid = Grid(first.crs, (a, 0.0, c + col0 * a, 0.0, e, f + row0 * e), col1 - col0, row1 - row0)
     return out, grid
 
@@ -66,9 +179,9 @@ def _paste(
     col0: int,
     reference: Grid,
     nodata: float | None,
-) -> None:
+) -> NDArray[np.float64] | None:
     """Copy the part of tile that falls inside out (whose pixel (0, 0) is (row0, col0) of the
-    reference grid)."""
+    reference grid); return that part (None when the tile does not reach into out)."""
     a, _, c, _, e, f = reference.transform
     ta, tb, tc, td, te, tf = tile.grid.transform
     col_off = (tc - c) / a
@@ -83,23 +196,32 @@ def _paste(
     r1 = min(tile_r0 + tile.grid.height, out.shape[0])
     c1 = min(tile_c0 + tile.grid.width, out.shape[1])
     if r0 >= r1 or c0 >= c1:
-        return
+        return None
     window = Window(c0 - tile_c0, r0 - tile_r0, c1 - c0, r1 - r0)  # type: ignore[call-arg]
     try:
         with rasterio.open(tile.path) as src:
-            block = src.read(1, window=window).astype(np.float64)
+            raw = src.read(1, window=window)
     except (RasterioError, OSError) as exc:
         raise TileReadError(f"reference tile {tile.tile_id} cannot be read: {exc}") from None
-    block = _nodata_to_nan(block, tile.nodata if tile.nodata is not None else nodata)
+    block = _voids_to_nan(raw, (tile.nodata, nodata))
     target = out[r0:r1, c0:c1]
     np.copyto(target, block, where=np.isnan(target))
+    return block
 
 
 def _is_whole(value: float, tol: float = 1e-6) -> bool:
     return abs(value - round(value)) < tol
 
 
-def _nodata_to_nan(data: NDArray[np.float64], nodata: float | None) -> NDArray[np.float64]:
-    if nodata is not None:
-        data[data == nodata] = np.nan
+def _voids_to_nan(raw: NDArray[np.generic], nodata: Sequence[float | None]) -> NDArray[np.float64]:
+    """raw as float64 with every nodata value NaN. Each value is compared in raw's own type
+    (a spec's 0.1 matches a float32 file's 0.1; a fractional value never matches integers)."""
+    data = raw.astype(np.float64)
+    for value in dict.fromkeys(v for v in nodata if v is not None):
+        if np.issubdtype(raw.dtype, np.integer):
+            info = np.iinfo(raw.dtype)
+            if not (float(value).is_integer() and info.min <= value <= info.max):
+                continue
+        with np.errstate(over="ignore"):
+            data[raw == raw.dtype.type(value)] = np.nan
     return data
