@@ -16,10 +16,11 @@ from typing import Any
 import numpy as np
 import rasterio
 from pyproj import CRS, Transformer
+from rasterio.enums import ColorInterp
 from rasterio.errors import RasterioIOError
 from shapely import STRtree, box
 
-from workers.errors import MissingCRSError, TileReadError
+from workers.errors import MissingCRSError, NotElevationError, TileReadError
 from workers.grid import Grid
 
 _FINGERPRINT_BLOCK = 1 << 20
@@ -60,26 +61,80 @@ def tile_id_of(path: str | Path) -> str:
 Known = tuple[int, int, str]  # size in bytes, modification time (ns), fingerprint
 
 
-def scan_tile(path: str | Path, known: Known | None = None) -> TileInfo | ScanFailure:
+ELEVATION = "elevation"
+LANDCOVER = "landcover"
+#: Colour interpretations that show a band holds colours, not heights or classes.
+_COLOURS = {ColorInterp.red, ColorInterp.green, ColorInterp.blue, ColorInterp.alpha}
+
+
+def scan_tile(
+    path: str | Path, known: Known | None = None, *, kind: str = ELEVATION
+) -> TileInfo | ScanFailure:
     """Read a tile's header and fingerprint; a failure is returned, not raised.
 
     ``known`` is what an earlier scan found for this path: when size and modification time are
     unchanged its fingerprint is reused, otherwise the content is hashed again (so a touched but
     unchanged file keeps its fingerprint, only costing the hash).
+
+    ``kind`` is ELEVATION (test and reference tiles) or LANDCOVER; a raster that cannot be of
+    that kind fails with the reason (see not_of_kind).
     """
     try:
-        return _scan(Path(path), known)
+        return _scan(Path(path), known, kind)
     except (TileReadError, MissingCRSError) as exc:
         return ScanFailure(tile_id_of(path), str(path), str(exc))
 
 
-def _scan(path: Path, known: Known | None) -> TileInfo:
+def scan_landcover_tile(path: str | Path, known: Known | None = None) -> TileInfo | ScanFailure:
+    """scan_tile for a land-cover raster (a palette is allowed)."""
+    return scan_tile(path, known, kind=LANDCOVER)
+
+
+def not_of_kind(
+    *, count: int, dtype: str, colorinterp: Sequence[ColorInterp], has_colormap: bool, kind: str
+) -> str | None:
+    """Why a raster with this header cannot be an elevation model (or land cover), or None.
+
+    Only clear evidence counts: more than one band, a band whose colour interpretation is red,
+    green, blue or alpha (an image), and, for elevation, a palette (colour table). A single band
+    of 8-bit or 16-bit integers alone is no evidence: integer DEMs exist. Land cover may carry
+    a palette (its classes drawn in colour).
+    """
+    names = ", ".join(c.name for c in colorinterp)
+    what = "an elevation model" if kind == ELEVATION else "a land-cover raster"
+    if count > 1:
+        return f"{count} bands ({names}) of {dtype}: not {what}, which has one band"
+    if set(colorinterp) & _COLOURS:
+        return f"a {names} band of {dtype} (an image): not {what}"
+    if kind == ELEVATION and (has_colormap or ColorInterp.palette in colorinterp):
+        return f"a palette band of {dtype} (colour indices): not {what}"
+    return None
+
+
+def _has_colormap(src: Any) -> bool:
+    try:
+        src.colormap(1)
+    except ValueError:  # rasterio: no colour table for this band
+        return False
+    return True
+
+
+def _scan(path: Path, known: Known | None, kind: str = ELEVATION) -> TileInfo:
     try:
         with rasterio.open(path) as src:
             if src.crs is None:
                 raise MissingCRSError(f"tile {path.name} has no CRS")
             if src.count < 1:
                 raise TileReadError(f"tile {path.name} has no bands")
+            why = not_of_kind(
+                count=src.count,
+                dtype=src.dtypes[0],
+                colorinterp=src.colorinterp,
+                has_colormap=_has_colormap(src),
+                kind=kind,
+            )
+            if why is not None:
+                raise NotElevationError(f"tile {path.name} holds {why}; it was not used")
             grid = Grid(
                 crs=src.crs.to_wkt(),
                 transform=tuple(src.transform)[:6],  # type: ignore[arg-type]
