@@ -6,10 +6,12 @@ test - reference and aspect the downslope direction clockwise from north. Writte
 dh / tan(slope) = north cos(aspect) + east sin(aspect) + c, so each tile contributes additive
 normal equations (:class:`LinearFit`) and the fit merges across tiles exactly like the summaries
 do. The vertical bias is removed (median dh of the stable pixels) before each fit, since a bias
-divided by tan(slope) is not a constant and would pull the shift. Iteration resamples the test
-model by the shift found so far and fits again until the update is below a tolerance. The shift
-is *where the test model's features sit relative to the reference's* (metres, east and north);
-correcting means sampling the test at x + shift.
+divided by tan(slope) is not a constant and would pull the shift. Iteration moves the reference
+by the shift found so far and fits again until the update is below a tolerance. The shift is
+*where the test model's features sit relative to the reference's* (metres, east and north), so
+test(x) ~ reference(x - shift); correcting means comparing each test pixel, as delivered, with the
+reference sampled at x - shift. The test model is never resampled: interpolating it would
+average neighbouring pixels and hide the random error the audit is there to measure.
 
 A planar tilt (ramp) and an elevation-dependent bias are fitted the same way, as linear least
 squares on stable pixels: dh = t0 + t_east x + t_north y and dh = e0 + e1 (z - z0).
@@ -168,8 +170,10 @@ def sample_shifted(
 ) -> NDArray[np.float64]:
     """The grid sampled at (x + east_m, y + north_m), bilinear; NaN outside or next to NaN.
 
-    Applied to a test model whose features sit (east_m, north_m) from the reference's, this
-    puts them back in place.
+    With the negated shift, applied to the reference (already on the test grid), it gives the
+    reference at x - shift, where the test model's pixels belong (used while estimating; the
+    corrected statistics take the reference from its own grid in one resampling instead, see
+    coregister_tile.reference_grid).
     """
     rows, cols = np.indices(heights.shape, dtype=np.float64)
     coords = np.array([rows - north_m / pixel_size_y_m, cols + east_m / pixel_size_x_m])
@@ -211,7 +215,9 @@ def nuth_kaab(
     tolerance_px: float = 0.01,
 ) -> ShiftEstimate:
     """Iterate Nuth & Kääb on one in-memory grid (test and reference on the same grid and datum,
-    metres). Raises CannotEstimateError with the reason when the terrain does not allow it."""
+    metres; slope and aspect of the reference). Each iteration compares the test with the
+    reference moved by the shift so far (bilinear). Raises CannotEstimateError with the reason
+    when the terrain does not allow it."""
     east = north = 0.0
     nmad_before = _stable_nmad(test - reference, slope_deg, cover_ok)
     fit: FitResult | None = None
@@ -220,13 +226,13 @@ def nuth_kaab(
 
     def dh_at(east: float, north: float) -> tuple[NDArray[np.float64], NDArray[np.bool_]]:
         moved = sample_shifted(
-            test,
-            east_m=east,
-            north_m=north,
+            reference,
+            east_m=-east,
+            north_m=-north,
             pixel_size_x_m=pixel_size_x_m,
             pixel_size_y_m=pixel_size_y_m,
         )
-        dh = moved - reference
+        dh = test - moved
         return dh, stable_pixels(dh, slope_deg, cover_ok=cover_ok)
 
     for iterations in range(1, max_iterations + 1):  # noqa: B007 - reported below

@@ -1,5 +1,11 @@
 """Co-registration on one tile: estimate, build mergeable equations for the job estimate, and
-apply a correction (pure: arrays on the tile's grid in, arrays or small values out)."""
+apply a correction (pure: arrays on the tile's grid in, arrays or small values out).
+
+A correction never resamples the test model: its pixels are audited as delivered. The horizontal
+shift moves the reference instead, folded into the one resampling the reference gets onto the
+test grid (:func:`reference_grid` is the grid to resample it onto); bias, tilt and elevation
+terms are then subtracted from dh.
+"""
 
 from __future__ import annotations
 
@@ -30,9 +36,11 @@ from workers.terrain import aspect_degrees, slope_degrees
 
 @dataclass(frozen=True)
 class Correction:
-    """A systematic error model to remove from dh (metres): the test model sampled at
-    (x + east, y + north), minus a vertical bias, a planar tilt about (origin_east, origin_north)
-    (dh per metre east / north) and a bias per metre of elevation about elevation_origin."""
+    """A systematic error model to remove from dh (metres): the test model's features sit
+    (east, north) from the reference's, so each test pixel at x is compared with the reference
+    at x - (east, north); then a vertical bias, a planar tilt about (origin_east, origin_north)
+    (dh per metre east / north) and a bias per metre of elevation about elevation_origin are
+    subtracted."""
 
     east_m: float = 0.0
     north_m: float = 0.0
@@ -45,15 +53,42 @@ class Correction:
     elevation_origin: float = 0.0
 
 
+def reference_grid(grid: Grid, *, east_m: float, north_m: float) -> Grid:
+    """The test grid moved by -(east_m, north_m): its pixel (row, col) centre is the test
+    pixel's centre minus the shift, i.e. where the reference must be sampled for that pixel.
+
+    The shift is in metres; on a geographic grid it becomes degrees through the pixel size in
+    metres at the grid's centre latitude (as ``Grid.pixel_size_m``)."""
+    if not (east_m or north_m):
+        return grid
+    px, py = grid.pixel_size_m()
+    res_x, res_y = grid.resolution
+    a, b, c, d, e, f = grid.transform
+    return replace(grid, transform=(a, b, c - east_m * res_x / px, d, e, f - north_m * res_y / py))
+
+
+def moved_reference(
+    reference: NDArray[np.float64], grid: Grid, *, east_m: float, north_m: float
+) -> NDArray[np.float64]:
+    """The reference (already on grid) sampled at x - (east_m, north_m), bilinear, in memory:
+    for estimates only (a second interpolation of the reference); corrected statistics resample
+    the reference once onto :func:`reference_grid` instead."""
+    px, py = grid.pixel_size_m()
+    return sample_shifted(
+        reference, east_m=-east_m, north_m=-north_m, pixel_size_x_m=px, pixel_size_y_m=py
+    )
+
+
 def corrected_dh(
     test: NDArray[np.float64], reference: NDArray[np.float64], grid: Grid, c: Correction
 ) -> NDArray[np.float64]:
-    """dh after removing the correction c (test and reference in metres on grid, one datum)."""
-    px, py = grid.pixel_size_m()
-    moved = sample_shifted(
-        test, east_m=c.east_m, north_m=c.north_m, pixel_size_x_m=px, pixel_size_y_m=py
-    )
-    dh = moved - reference - c.vertical_m
+    """dh after removing the correction c (metres on grid, one datum).
+
+    ``test`` is the test model as delivered; ``reference`` must already be the reference at
+    x - (c.east_m, c.north_m), i.e. resampled onto ``reference_grid(grid, ...)`` of c's shift.
+    The elevation term uses those reference heights.
+    """
+    dh = test - reference - c.vertical_m
     if c.tilt_east or c.tilt_north:
         x, y = grid.centre_coordinates()
         dh -= c.tilt_east * (x - c.origin_east) + c.tilt_north * (y - c.origin_north)
@@ -105,13 +140,16 @@ def tile_equations(
 ) -> TileEquations:
     """Normal equations of the shift, tilt and elevation fits for dh at the shift of ``at``.
 
-    Each tile's own median dh is removed before the shift fit (a bias, even a local one, must not
-    pull the shift); plane and elevation fits use coordinates relative to ``at``'s origins.
+    ``reference`` must be the reference at x - ``at``'s shift (resampled onto
+    ``reference_grid(grid, ...)``); slope and aspect are taken from it, where the residual shift
+    is linearised. Each tile's own median dh is removed before the shift fit (a bias, even a
+    local one, must not pull the shift); plane and elevation fits use coordinates relative to
+    ``at``'s origins.
     """
     px, py = grid.pixel_size_m()
     slope = slope_degrees(reference, pixel_size_x_m=px, pixel_size_y_m=py)
     aspect = aspect_degrees(reference, pixel_size_x_m=px, pixel_size_y_m=py)
-    dh = corrected_dh(test, reference, grid, Correction(east_m=at.east_m, north_m=at.north_m))
+    dh = test - reference
     stable = stable_pixels(dh, slope, cover_ok=cover)
     if not stable.any():
         return TileEquations()
@@ -138,7 +176,9 @@ def tile_estimate(
     tolerance_px: float,
 ) -> dict[str, Any]:
     """The tile's own Nuth & Kääb shift and its planar tilt after that shift (a record for the
-    outputs; status 'cannot_estimate' with the reason when the terrain does not allow it)."""
+    outputs; status 'cannot_estimate' with the reason when the terrain does not allow it).
+
+    Test and reference on the tile's grid; the reference is moved in memory while estimating."""
     px, py = grid.pixel_size_m()
     slope = slope_degrees(reference, pixel_size_x_m=px, pixel_size_y_m=py)
     aspect = aspect_degrees(reference, pixel_size_x_m=px, pixel_size_y_m=py)
@@ -156,7 +196,8 @@ def tile_estimate(
         )
         x, y = grid.centre_coordinates()
         cx, cy = float(x.mean()), float(y.mean())
-        dh = corrected_dh(test, reference, grid, Correction(east_m=est.east_m, north_m=est.north_m))
+        moved = moved_reference(reference, grid, east_m=est.east_m, north_m=est.north_m)
+        dh = test - moved
         stable = stable_pixels(dh, slope, cover_ok=cover)
         tilt = solve(plane_fit(dh, x - cx, y - cy, stable), what="tilt")
     except CannotEstimateError as exc:

@@ -27,6 +27,7 @@ from workers.coregister_tile import (
     corrected_dh,
     correction_from_record,
     cover_ok,
+    reference_grid,
     tile_equations,
     tile_estimate,
 )
@@ -44,6 +45,7 @@ from workers.terrain import slope_degrees
 OK = "ok"
 FAILED = "failed"
 NO_REFERENCE = "no_reference"
+NO_VALID_PIXELS = "no_valid_pixels"  # set by the runner: a tile with no dh pixel at all
 ALL = "*"  # key of the whole tile among region keys
 
 
@@ -107,14 +109,28 @@ class TileResult:
     corrected: TileResult | None = None
 
 
+#: With co-registration the reference is read this many test pixels beyond the tile, so that
+#: a correction can resample it onto the shifted grid without reading it again.
+COREGISTRATION_MARGIN_PX = 8
+
+#: A reference mosaic as read (own unit and datum) on its own grid.
+Mosaic = tuple[NDArray[np.float64], Grid]
+
+
 @dataclass(frozen=True, eq=False)
 class TileSurfaces:
-    """The per-pixel layers of one tile on its own grid (metres, test vertical datum)."""
+    """The per-pixel layers of one tile on its own grid (metres, test vertical datum).
+
+    ``reference`` is sampled at the test pixels' centres, or at those minus a shift when
+    tile_surfaces was given one; ``mosaics`` are the reference as read (for a later shift), and
+    ``margin_px`` how many test pixels beyond the tile they cover."""
 
     dh: NDArray[np.float64]
     reference: NDArray[np.float64]
     landcover: NDArray[np.float64] | None
     test: NDArray[np.float64] | None = None
+    mosaics: tuple[Mosaic, ...] = ()
+    margin_px: int = 0
 
 
 def audit_tile(
@@ -143,12 +159,15 @@ def audit_tile(
         return TileResult(test.tile_id, FAILED, reason, reference_tiles=ref_ids)
     result = summarise_tile(test, layers, regions, options, reference_tiles=ref_ids)
     if options.coregistration is not None:
-        result = with_coregistration(test, layers, regions, options, result, estimate=estimate)
+        result = with_coregistration(
+            test, references, layers, regions, options, result, estimate=estimate
+        )
     return result
 
 
 def with_coregistration(
     test: TileInfo,
+    references: Sequence[TileInfo],
     layers: TileSurfaces,
     regions: Sequence[Region],
     options: TileOptions,
@@ -157,7 +176,8 @@ def with_coregistration(
     estimate: dict[str, Any] | None = None,
 ) -> TileResult:
     """Add the tile's own shift estimate and, when asked, the statistics after the correction
-    (the job-wide one, or the tile's own as the spec says)."""
+    (the job-wide one, or the tile's own as the spec says). The test pixels stay as delivered:
+    the reference is resampled onto the shifted grid (see coregister_tile.reference_grid)."""
     coreg = options.coregistration
     assert coreg is not None and layers.test is not None
     record = estimate or own_estimate(test, layers, options)
@@ -175,13 +195,40 @@ def with_coregistration(
     if correction is None:
         record = record | {"applied": False}
         return replace(result, coregistration=record)
-    dh = corrected_dh(layers.test, layers.reference, test.grid, correction)
-    corrected = summarise_tile(test, replace(layers, dh=dh), regions, options)
+    try:
+        moved = shifted_reference(test, references, layers, options, correction)
+    except (AuditError, RasterioError, OSError) as exc:
+        reason = f"the reference could not be read again for the correction: {exc}"
+        return replace(result, coregistration=record | {"applied": False, "reason": reason})
+    dh = corrected_dh(layers.test, moved, test.grid, correction)
+    corrected = summarise_tile(test, replace(layers, dh=dh, reference=moved), regions, options)
     return replace(
         result,
         coregistration=record | {"applied": True},
         corrected=replace(corrected, overview=None),
     )
+
+
+def shifted_reference(
+    test: TileInfo,
+    references: Sequence[TileInfo],
+    layers: TileSurfaces,
+    options: TileOptions,
+    c: Correction,
+) -> NDArray[np.float64]:
+    """The reference (metres, test datum) at the test pixels' centres minus c's shift, in one
+    resampling from the mosaics already read, or from a new read when the shift reaches beyond
+    their margin."""
+    grid = reference_grid(test.grid, east_m=c.east_m, north_m=c.north_m)
+    px, py = test.grid.pixel_size_m()
+    reach = max(abs(c.east_m) / px, abs(c.north_m) / py)
+    if layers.mosaics and reach <= layers.margin_px - 1:
+        mosaics = layers.mosaics
+    else:
+        mosaics = read_mosaics(
+            references, grid, nodata=options.reference_nodata, units=options.reference_units
+        )
+    return reference_heights(mosaics, grid, options)
 
 
 def own_estimate(test: TileInfo, layers: TileSurfaces, options: TileOptions) -> dict[str, Any]:
@@ -227,7 +274,7 @@ def estimate_tile(
     if not references:
         return None
     try:
-        layers = tile_surfaces(test, references, options, landcover=landcover)
+        layers = tile_surfaces(test, references, options, landcover=landcover, shift=at)
     except (AuditError, RasterioError, OSError):
         return None
     assert layers.test is not None
@@ -288,28 +335,59 @@ def tile_surfaces(
     options: TileOptions,
     *,
     landcover: Sequence[TileInfo] = (),
+    shift: Correction | None = None,
 ) -> TileSurfaces:
     """dh = test - reference and the reference itself, in metres on the test tile's grid and
-    in the test's vertical datum; land cover (class values, NaN = none) when given."""
-    test_heights = to_metres(read_tile(test, nodata=options.test_nodata), options.test_units)
+    in the test's vertical datum; land cover (class values, NaN = none) when given.
+
+    With ``shift`` (only its east_m / north_m are used) the reference is taken at each test
+    pixel's centre minus the shift, in the same single resampling (the test is never resampled).
+    """
+    test_heights = to_metres(
+        read_tile(test, nodata=options.test_nodata, units=options.test_units), options.test_units
+    )
+    grid, margin = test.grid, 0
+    if shift is not None:
+        grid = reference_grid(test.grid, east_m=shift.east_m, north_m=shift.north_m)
+    elif options.coregistration is not None:
+        margin = COREGISTRATION_MARGIN_PX
+    mosaics = read_mosaics(
+        references,
+        grid.expanded(margin),
+        nodata=options.reference_nodata,
+        units=options.reference_units,
+    )
+    reference = reference_heights(mosaics, grid, options)
+    classes = None
+    if landcover:
+        classes = resampled_onto(landcover, test.grid, resampling="nearest", nodata=None)
+    return TileSurfaces(
+        difference(test_heights, reference),
+        reference,
+        classes,
+        test_heights,
+        mosaics=mosaics if margin else (),
+        margin_px=margin,
+    )
+
+
+def reference_heights(
+    mosaics: Sequence[Mosaic], grid: Grid, options: TileOptions
+) -> NDArray[np.float64]:
+    """The reference mosaics resampled onto grid (the spec's resampling), in metres and in the
+    test's vertical datum (the datum offset evaluated at grid's pixel centres)."""
     reference = to_metres(
-        resampled_onto(
-            references, test.grid, resampling=options.resampling, nodata=options.reference_nodata
-        ),
-        options.reference_units,
+        mosaics_onto(mosaics, grid, resampling=options.resampling), options.reference_units
     )
     offset = vertical_offset_on_grid(
-        test.grid,
+        grid,
         from_crs=options.reference_vertical_crs,
         to_crs=options.test_vertical_crs,
         grid_dirs=options.grid_dirs,
     )
     if offset is not None:
         reference += offset
-    classes = None
-    if landcover:
-        classes = resampled_onto(landcover, test.grid, resampling="nearest", nodata=None)
-    return TileSurfaces(difference(test_heights, reference), reference, classes, test_heights)
+    return reference
 
 
 def tile_dh(
@@ -323,14 +401,31 @@ def resampled_onto(
     tiles: Sequence[TileInfo], grid: Grid, *, resampling: str, nodata: float | None
 ) -> NDArray[np.float64]:
     """Values of tiles (own unit and datum) resampled onto grid; NaN where none."""
-    out = np.full(grid.shape, np.nan)
+    return mosaics_onto(read_mosaics(tiles, grid, nodata=nodata), grid, resampling=resampling)
+
+
+def read_mosaics(
+    tiles: Sequence[TileInfo], grid: Grid, *, nodata: float | None, units: str | None = None
+) -> tuple[Mosaic, ...]:
+    """The parts of tiles that cover grid, one mosaic per CRS (own unit and datum). With units
+    (heights, not land cover) each tile's values are checked (rasters.check_heights)."""
     target_crs = CRS.from_wkt(grid.crs)
     by_crs: dict[str, list[TileInfo]] = {}
     for tile in tiles:
         by_crs.setdefault(tile.grid.crs, []).append(tile)
+    mosaics = []
     for crs, members in by_crs.items():
         bounds = transform_bounds(target_crs, CRS.from_wkt(crs), *grid.bounds, densify_pts=21)
-        mosaic, mosaic_grid = read_mosaic(members, bounds, nodata=nodata)
+        mosaics.append(read_mosaic(members, bounds, nodata=nodata, units=units))
+    return tuple(mosaics)
+
+
+def mosaics_onto(
+    mosaics: Sequence[Mosaic], grid: Grid, *, resampling: str
+) -> NDArray[np.float64]:
+    """Mosaics resampled onto grid, the first covering a pixel winning; NaN where none."""
+    out = np.full(grid.shape, np.nan)
+    for mosaic, mosaic_grid in mosaics:
         resampled = onto_grid(mosaic, mosaic_grid, grid, resampling=resampling)
         np.copyto(out, resampled, where=np.isnan(out))
     return out
