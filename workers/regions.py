@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import json
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -28,43 +28,127 @@ DEFAULT_REGION_CRS = "EPSG:4326"
 
 @dataclass(frozen=True)
 class Region:
-    """One region: its id, display name and polygon in ``crs`` (WKT or user input)."""
+    """One region: its id, display name and polygon in ``crs`` (WKT or user input).
+
+    ``note`` says how the polygon was repaired when the file's was invalid (else empty)."""
 
     region_id: str
     name: str
     geometry: BaseGeometry
     crs: str
+    note: str = ""
+
+
+#: The first bytes of an ESRI shapefile (its file code, 9994 big-endian).
+_SHAPEFILE_MAGIC = b"\x00\x00\x27\x0a"
 
 
 def read_regions(path: Path, *, id_property: str) -> list[Region]:
-    """Read a GeoJSON FeatureCollection; its CRS is the one it declares, else EPSG:4326."""
-    try:
-        doc = json.loads(Path(path).read_text(encoding="utf-8"))
-    except (OSError, json.JSONDecodeError) as exc:
-        raise SpecError(f"region.file: cannot read {path}: {exc}") from None
-    if not isinstance(doc, dict) or doc.get("type") != "FeatureCollection":
-        raise SpecError(f"region.file: {path} is not a GeoJSON FeatureCollection")
+    """Read a GeoJSON FeatureCollection of polygons; its CRS is the one it declares, else
+    EPSG:4326.
+
+    Anything else is refused with a SpecError naming the file and what was expected (a
+    shapefile, binary data, JSON that is not a FeatureCollection, features that are not
+    objects, features without a polygon). An invalid polygon (a self-intersecting ring, e.g. a
+    bow-tie) is repaired with shapely.make_valid, keeping all of its area; the region's ``note``
+    says so (see region_cautions). A feature with no area left is refused with its id.
+    """
+    path = Path(path)
+    doc = _feature_collection(path)
     crs = _declared_crs(doc, path)
-    regions: list[Region] = []
-    for number, feature in enumerate(doc.get("features", [])):
-        props = feature.get("properties") or {}
-        if id_property not in props:
-            raise SpecError(
-                f"region.id_property: feature {number} of {path.name} "
-                f"has no property {id_property!r}"
-            )
-        try:
-            geometry = shape(feature["geometry"])
-        except (KeyError, TypeError, ValueError, AttributeError) as exc:
-            raise SpecError(f"region.file: feature {number} has no valid geometry: {exc}") from None
-        region_id = str(props[id_property])
-        regions.append(Region(region_id, str(props.get("name", region_id)), geometry, crs))
+    features = doc.get("features")
+    if not isinstance(features, list):
+        raise SpecError(
+            f"region.file: {path.name}: 'features' must be a list of GeoJSON Feature objects, "
+            f"found {_kind(features)}"
+        )
+    regions = [
+        _region(feature, number, path, id_property, crs) for number, feature in enumerate(features)
+    ]
     if not regions:
         raise SpecError(f"region.file: {path} holds no features")
     ids = [r.region_id for r in regions]
     if len(set(ids)) != len(ids):
         raise SpecError(f"region.id_property: ids in {path.name} are not unique: {sorted(ids)}")
     return regions
+
+
+def region_cautions(regions: Sequence[Region]) -> list[str]:
+    """One line per repaired region, for summary.json's cautions."""
+    return [r.note for r in regions if r.note]
+
+
+def _feature_collection(path: Path) -> dict:  # type: ignore[type-arg]
+    expected = "expected a GeoJSON FeatureCollection (UTF-8 JSON text)"
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise SpecError(f"region.file: cannot read {path}: {exc.strerror or exc}") from None
+    if raw.startswith(_SHAPEFILE_MAGIC) or path.suffix.lower() in {".shp", ".shx", ".dbf"}:
+        raise SpecError(
+            f"region.file: {path.name} is a shapefile; {expected}. Convert it first, e.g. "
+            f"'ogr2ogr -f GeoJSON regions.geojson {path.name}' (GDAL)"
+        )
+    try:
+        doc = json.loads(raw.decode("utf-8-sig"))
+    except UnicodeDecodeError:
+        raise SpecError(
+            f"region.file: {path.name} is not UTF-8 text (binary data, or text in another "
+            f"encoding); {expected}"
+        ) from None
+    except json.JSONDecodeError as exc:
+        raise SpecError(f"region.file: {path.name} is not valid JSON ({exc}); {expected}") from None
+    if not isinstance(doc, dict) or doc.get("type") != "FeatureCollection":
+        raise SpecError(f"region.file: {path.name} holds {_kind(doc)}; {expected}")
+    return doc
+
+
+def _kind(value: object) -> str:
+    """What a JSON value is, in words, for messages."""
+    if isinstance(value, dict):
+        kind = value.get("type")
+        return f"a GeoJSON {kind!r} object" if isinstance(kind, str) else "an object without 'type'"
+    names = {list: "a list", str: "a string", bool: "a boolean", type(None): "null"}
+    return names.get(type(value), "a number")
+
+
+def _region(feature: object, number: int, path: Path, id_property: str, crs: str) -> Region:
+    where = f"feature {number} of {path.name}"
+    if not isinstance(feature, dict):
+        raise SpecError(f"region.file: {where} is {_kind(feature)}, not a GeoJSON Feature object")
+    props = feature.get("properties") or {}
+    if not isinstance(props, dict):
+        raise SpecError(f"region.file: {where} has properties that are {_kind(props)}")
+    if id_property not in props:
+        raise SpecError(f"region.id_property: {where} has no property {id_property!r}")
+    region_id = str(props[id_property])
+    where = f"{where} ({id_property} {region_id!r})"
+    try:
+        geometry = shape(feature["geometry"])
+    except (KeyError, TypeError, ValueError, AttributeError, IndexError) as exc:
+        raise SpecError(f"region.file: {where} has no valid geometry: {exc}") from None
+    geometry, note = _polygonal(geometry, where)
+    return Region(region_id, str(props.get("name", region_id)), geometry, crs, note)
+
+
+def _polygonal(geometry: BaseGeometry, where: str) -> tuple[BaseGeometry, str]:
+    """The geometry as a valid (multi)polygon, and a note when it had to be repaired."""
+    if geometry.geom_type not in {"Polygon", "MultiPolygon"}:
+        raise SpecError(f"region.file: {where} is a {geometry.geom_type}; regions must be polygons")
+    if geometry.is_valid:
+        return geometry, ""
+    why = shapely.is_valid_reason(geometry)
+    made = shapely.make_valid(geometry)
+    parts = [g for g in shapely.get_parts(made) if g.geom_type in {"Polygon", "MultiPolygon"}]
+    repaired = shapely.union_all(parts) if parts else None
+    if repaired is None or repaired.is_empty or repaired.area <= 0:
+        raise SpecError(f"region.file: {where} is an invalid polygon ({why}) with no area")
+    count = len(shapely.get_parts(repaired))
+    note = (
+        f"region.file: {where} was an invalid polygon ({why}); repaired with "
+        f"shapely.make_valid into {count} polygon{'s' if count > 1 else ''}, all of its area kept"
+    )
+    return repaired, note
 
 
 def _declared_crs(doc: dict, path: Path) -> str:  # type: ignore[type-arg]
@@ -97,7 +181,7 @@ def to_crs(regions: Sequence[Region], crs: str, *, densify_m: float = 50.0) -> l
                 return np.column_stack(t.transform(xy[:, 0], xy[:, 1]))
 
             geometry = shapely.transform(segmentize(geometry, step), to_target)
-        out.append(Region(region.region_id, region.name, geometry, target.to_wkt()))
+        out.append(replace(region, geometry=geometry, crs=target.to_wkt()))
     return out
 
 
@@ -109,7 +193,7 @@ def clip_to(regions: Sequence[Region], bounds: tuple[float, float, float, float]
         if region.geometry.intersects(frame):
             part = region.geometry.intersection(frame)
             if not part.is_empty:
-                clipped.append(Region(region.region_id, region.name, part, region.crs))
+                clipped.append(replace(region, geometry=part))
     return clipped
 
 
