@@ -30,6 +30,21 @@ RESIDUALS_NAME = "checkpoint_residuals.csv"
 Bounds = Sequence[float]  # left, bottom, right, top
 
 
+def read_job_checkpoints(job: ResolvedJob) -> CheckpointFile:
+    """Read the job's checkpoint file as its spec says (SpecError when it cannot be used): the
+    runner calls this before the first tile, so a bad file costs no results."""
+    spec = job.spec.checkpoints
+    assert spec is not None and job.checkpoint_file is not None
+    return read_checkpoints(
+        job.checkpoint_file,
+        id_column=spec.id_column,
+        x_column=spec.x_column,
+        y_column=spec.y_column,
+        height_column=spec.height_column,
+        landcover_column=spec.landcover_column,
+    )
+
+
 def audit_checkpoints(
     client: Client,
     job: ResolvedJob,
@@ -40,8 +55,11 @@ def audit_checkpoints(
     out_dir: Path,
     earlier: Mapping[str, float] | None = None,
     changed_areas: Sequence[Bounds] = (),
+    data: CheckpointFile | None = None,
 ) -> dict[str, Any]:
     """The checkpoint section of summary.json; also writes checkpoint_residuals.csv.
+
+    data: the file as read_job_checkpoints read it before the run (read here when None).
 
     earlier: test heights (metres) sampled by a baseline run, by point id. A point takes its
     earlier height instead of being sampled again unless it lies in one of changed_areas (the
@@ -50,14 +68,7 @@ def audit_checkpoints(
     """
     spec = job.spec.checkpoints
     assert spec is not None and job.checkpoint_file is not None
-    data = read_checkpoints(
-        job.checkpoint_file,
-        id_column=spec.id_column,
-        x_column=spec.x_column,
-        y_column=spec.y_column,
-        height_column=spec.height_column,
-        landcover_column=spec.landcover_column,
-    )
+    data = data if data is not None else read_job_checkpoints(job)
     # rejected rows get keys of their own: a duplicated id must not hide the point it repeats
     records = {
         f"#rejected-{i}": {"id": r.point_id, "status": "rejected", "reason": r.reason}

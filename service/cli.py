@@ -1,12 +1,16 @@
-"""The ``demaudit`` command line: run a job spec, run the shipped demo, make a demo archive;
-serve the REST API, submit a spec to it and follow a job; manage a server's schedules."""
+"""The ``demaudit`` command line: run or validate a job spec, run the shipped demo, make a demo
+archive; serve the REST API, submit a spec to it and follow a job; manage a server's schedules."""
 
 from __future__ import annotations
 
 import argparse
+import re
+import socket
 import sys
 import time
 from collections.abc import Sequence
+from importlib.metadata import PackageNotFoundError
+from importlib.metadata import version as package_version
 from pathlib import Path
 from typing import Any
 
@@ -14,31 +18,88 @@ from tqdm import tqdm
 
 from service.settings import Settings, get_settings
 from workers import spec as job_spec
-from workers.errors import AuditError
+from workers.errors import AuditError, SpecError
+from workers.report import CAUTIONS_ALWAYS
 
 DEMO_SPEC = Path(__file__).resolve().parent.parent / "demo_tiles" / "demo.yaml"
 
+#: Exit statuses, each with one meaning (also in the README and ``demaudit --help``).
+EXIT_CLEAN = 0
+EXIT_INCOMPLETE = 1
+EXIT_BAD_INPUT = 2
+EXIT_INTERNAL = 3
+
+EXIT_CODES = """exit status:
+  0  done: every test tile was audited (a checkpoint-only job: the points were)
+  1  done, results written, but some tiles failed or were not audited (no reference, no
+     valid pixels; see the cautions), or a followed server job was dismissed
+  2  nothing was run or written: bad spec, input file, option, output folder, unreachable
+     scheduler or server (the message names the file, field or option)
+  3  internal error: a bug in demaudit; nothing was written (--traceback shows details)"""
+
+#: How long `--scheduler` may take to answer before the run gives up (seconds).
+SCHEDULER_CONNECT_TIMEOUT_S = 5.0
+
+
+def software_version() -> str:
+    """The installed demaudit version."""
+    try:
+        return package_version("demaudit")
+    except PackageNotFoundError:  # running from a tree that was never installed
+        return "unknown"
+
 
 def main(argv: Sequence[str] | None = None) -> int:
-    """Entry point of the console script; returns the exit status."""
+    """Entry point of the console script; returns the exit status (see EXIT_CODES)."""
     parser = _parser()
     args = parser.parse_args(argv)
-    settings = get_settings()
     try:
+        settings = get_settings()
         return int(args.handler(args, settings))
     except AuditError as exc:
         print(f"demaudit: error: {exc}", file=sys.stderr)
-        return 2
+        return EXIT_BAD_INPUT
+    except KeyboardInterrupt:
+        print("demaudit: interrupted; nothing was changed in the output folder", file=sys.stderr)
+        return 130
+    except Exception as exc:
+        if args.traceback:
+            raise
+        print(
+            f"demaudit: internal error: {type(exc).__name__}: {exc} (nothing was written; "
+            "run again with --traceback and report it)",
+            file=sys.stderr,
+        )
+        return EXIT_INTERNAL
 
 
 def _parser() -> argparse.ArgumentParser:
-    parser = argparse.ArgumentParser(prog="demaudit", description=__doc__)
+    parser = argparse.ArgumentParser(
+        prog="demaudit",
+        description=__doc__,
+        epilog=EXIT_CODES,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    parser.add_argument("--version", action="version", version=f"demaudit {software_version()}")
+    parser.add_argument(
+        "--traceback", action="store_true", help="show the traceback of an internal error"
+    )
     sub = parser.add_subparsers(required=True, metavar="COMMAND")
 
     run = sub.add_parser("run", help="audit a test DEM against a reference, as a job spec says")
     run.add_argument("spec", type=Path, help="job spec (YAML or JSON)")
     _add_run_options(run)
     run.set_defaults(handler=_cmd_run)
+
+    validate = sub.add_parser(
+        "validate",
+        help="check a job spec and its files (tile headers, regions, checkpoints) without "
+        "running tiles",
+    )
+    validate.add_argument("spec", type=Path, help="job spec (YAML or JSON)")
+    validate.add_argument("--out", type=Path, help="also check this output folder can be used")
+    validate.add_argument("--baseline", type=Path, help="also check this baseline folder")
+    validate.set_defaults(handler=_cmd_validate)
 
     demo = sub.add_parser("demo", help="run the shipped demo job on demo_tiles/")
     _add_run_options(demo)
@@ -133,9 +194,17 @@ def _add_server_options(p: argparse.ArgumentParser) -> None:
 
 
 def _add_run_options(p: argparse.ArgumentParser) -> None:
-    p.add_argument("--out", type=Path, required=True, help="output folder")
-    p.add_argument("--scheduler", help="external Dask scheduler, e.g. tcp://host:8786")
-    p.add_argument("--workers", type=int, help="local cluster worker processes")
+    p.add_argument(
+        "--out",
+        type=Path,
+        required=True,
+        help="output folder (built beside it and swapped in when complete; an earlier result "
+        "there is replaced as a whole)",
+    )
+    p.add_argument(
+        "--scheduler", type=_scheduler_address, help="external Dask scheduler, e.g. tcp://host:8786"
+    )
+    p.add_argument("--workers", type=_positive_int, help="local cluster worker processes (>= 1)")
     p.add_argument("--quiet", action="store_true", help="no progress bar")
     p.add_argument(
         "--baseline",
@@ -145,19 +214,80 @@ def _add_run_options(p: argparse.ArgumentParser) -> None:
     )
 
 
+def _positive_int(text: str) -> int:
+    """argparse type: an integer of at least 1."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a whole number, got {text!r}") from None
+    if value < 1:
+        raise argparse.ArgumentTypeError(f"must be at least 1, got {value}")
+    return value
+
+
+_ADDRESS = re.compile(
+    r"^(?:(?P<scheme>[a-z]+)://)?(?P<host>\[[0-9a-fA-F:]+\]|[^:/\s]+):(?P<port>\d+)/?$"
+)
+
+
+def _scheduler_address(text: str) -> str:
+    """argparse type: a Dask scheduler address, [tcp://]host:port."""
+    match = _ADDRESS.match(text.strip())
+    if match is None or not 0 < int(match["port"]) < 65536:
+        raise argparse.ArgumentTypeError(f"expected an address like tcp://host:8786, got {text!r}")
+    return text.strip()
+
+
+def _reachable(address: str, *, option: str) -> None:
+    """SpecError naming option when nothing answers at the scheduler's address (TCP only; other
+    schemes are left to Dask)."""
+    match = _ADDRESS.match(address)
+    if match is None or (match["scheme"] or "tcp") not in {"tcp", "tls"}:
+        return
+    host, port = match["host"].strip("[]"), int(match["port"])
+    try:
+        with socket.create_connection((host, port), timeout=SCHEDULER_CONNECT_TIMEOUT_S):
+            pass
+    except OSError as exc:
+        reason = "no answer" if isinstance(exc, TimeoutError) else (exc.strerror or str(exc))
+        raise SpecError(
+            f"{option}: cannot reach the Dask scheduler at {address} "
+            f"({reason} within {SCHEDULER_CONNECT_TIMEOUT_S:g} s)"
+        ) from None
+
+
+def _load_job(spec_path: Path, settings: Settings) -> job_spec.ResolvedJob:
+    data = job_spec.load_spec_file(spec_path)
+    spec = job_spec.parse_spec(data)
+    return job_spec.resolve(
+        spec, base_dir=spec_path.resolve().parent, data_roots=settings.data_roots
+    )
+
+
+def _cluster_options(args: argparse.Namespace, settings: Settings) -> tuple[str | None, int]:
+    """The scheduler (checked to answer) or the local worker count (checked to be >= 1)."""
+    if args.scheduler:
+        _reachable(args.scheduler, option="--scheduler")
+        return args.scheduler, 0
+    if settings.scheduler:
+        _reachable(settings.scheduler, option="DEMAUDIT_SCHEDULER")
+        return settings.scheduler, 0
+    workers = args.workers if args.workers is not None else settings.local_workers
+    if workers < 1:
+        raise SpecError(f"DEMAUDIT_LOCAL_WORKERS: must be at least 1, got {workers}")
+    return None, workers
+
+
 def _cmd_run(args: argparse.Namespace, settings: Settings) -> int:
     # imported here: the client commands (submit, status, schedule) start without Dask
     from service.cluster import dask_client
-    from service.runner import run_job
+    from service.runner import check_output, read_inputs, run_job
 
-    spec_path = Path(args.spec)
-    data = job_spec.load_spec_file(spec_path)
-    spec = job_spec.parse_spec(data)
-    job = job_spec.resolve(
-        spec, base_dir=spec_path.resolve().parent, data_roots=settings.data_roots
-    )
-    scheduler = args.scheduler or settings.scheduler
-    workers = args.workers or settings.local_workers
+    job = _load_job(Path(args.spec), settings)
+    inputs = read_inputs(job)  # a bad region or checkpoint file stops here, before the cluster
+    check_output(args.out)
+    scheduler, workers = _cluster_options(args, settings)
+    spec = job.spec
     with dask_client(
         scheduler, workers=workers, memory_limit=settings.worker_memory_limit
     ) as client:
@@ -175,12 +305,37 @@ def _cmd_run(args: argparse.Namespace, settings: Settings) -> int:
                 grid_dirs=settings.grid_dirs,
                 progress=progress,
                 baseline=args.baseline,
+                inputs=inputs,
             )
         finally:
             bar.close()
     _print_report(document, args.out)
-    failed = document["job"]["tiles"]["failed"]
-    return 1 if failed else 0
+    return run_status(document)
+
+
+def run_status(document: dict[str, Any]) -> int:
+    """1 when some test tile failed or was left out of the statistics (no reference, no valid
+    pixels), else 0; a checkpoint-only job's tiles are 'not_audited' by design."""
+    complete = {"ok", "not_audited"}
+    return EXIT_INCOMPLETE if any(t["status"] not in complete for t in document["tiles"]) else 0
+
+
+def _cmd_validate(args: argparse.Namespace, settings: Settings) -> int:
+    from service.runner import validate_job
+
+    job = _load_job(Path(args.spec), settings)
+    notes, problems = validate_job(
+        job, grid_dirs=settings.grid_dirs, out_dir=args.out, baseline=args.baseline
+    )
+    for note in notes:
+        print(f"  {note}")
+    for problem in problems:
+        print(f"  ! {problem}")
+    if problems:
+        print(f"{args.spec}: valid, but {len(problems)} tile problem(s) above; nothing was run")
+        return EXIT_INCOMPLETE
+    print(f"{args.spec}: valid; nothing was run")
+    return EXIT_CLEAN
 
 
 def _cmd_demo(args: argparse.Namespace, settings: Settings) -> int:
@@ -285,7 +440,7 @@ def _cmd_status(args: argparse.Namespace, settings: Settings) -> int:
                 return 2
             job = response.json()
             print(f"job {job['jobID']} {job['status']} ({job['progress']} %): {job['message']}")
-            return _exit_status(job["status"])
+            return _exit_status(job["status"], job.get("message") or "")
     except httpx.HTTPError as exc:
         print(f"demaudit: error: cannot reach {args.server}: {exc}", file=sys.stderr)
         return 2
@@ -401,11 +556,21 @@ def _watch(http: Any, job_id: str, *, interval: float) -> int:
     finally:
         bar.close()
     print(f"job {job_id} {job['status']}: {job['message']}")
-    return _exit_status(job["status"])
+    return _exit_status(job["status"], job.get("message") or "")
 
 
-def _exit_status(status: str) -> int:
-    return {"successful": 0, "accepted": 0, "running": 0}.get(status, 1)
+def _exit_status(status: str, message: str = "") -> int:
+    """The exit status for a server job (see EXIT_CODES): a successful job whose message counts
+    failed or unaudited tiles is incomplete (1); a failed job had bad input (2) or hit an
+    internal error (3); a dismissed one is incomplete (1)."""
+    if status in {"accepted", "running"}:
+        return EXIT_CLEAN
+    if status == "successful":
+        counts = [int(n) for n in re.findall(r"(\d+) (?:failed|not audited)", message)]
+        return EXIT_INCOMPLETE if any(counts) else EXIT_CLEAN
+    if status == "failed":
+        return EXIT_INTERNAL if message.startswith("internal error") else EXIT_BAD_INPUT
+    return EXIT_INCOMPLETE
 
 
 def _print_report(document: dict[str, Any], out_dir: Path) -> None:
@@ -455,6 +620,11 @@ def _print_report(document: dict[str, Any], out_dir: Path) -> None:
         )
         for t in recheck["tiles"]:
             print(f"  {t['tile']:<20} {t['verdict']:<10} {t['why']}")
+    notable = [c for c in document["cautions"] if c not in CAUTIONS_ALWAYS]
+    if notable:
+        print("\ncautions:")
+        for caution in notable:
+            print(f"  ! {caution}")
     print("\n" + document["cautions"][0])
 
 

@@ -38,7 +38,7 @@ from service.jobstore import (
     JobStore,
     utc_now,
 )
-from service.runner import JobDismissedError, run_job
+from service.runner import UNAUDITED, JobDismissedError, run_job
 from workers.errors import AuditError
 from workers.spec import ResolvedJob
 
@@ -287,6 +287,9 @@ class JobDispatcher:
             tiles = document["job"]["tiles"]
             failed = int(tiles["failed"])
             message = f"finished: {tiles['test']} test tiles, {failed} failed"
+            left_out = [t for t in document.get("tiles", []) if t.get("status") in UNAUDITED]
+            if left_out:
+                message += f", {len(left_out)} not audited (see the cautions)"
             with self._lock:
                 done = self.store.update(
                     job_id,

@@ -7,10 +7,13 @@ result at a time; pixels stay on the workers.
 from __future__ import annotations
 
 import datetime as dt
+import os
 import time
 import uuid
 from collections.abc import Callable, Mapping, Sequence
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, replace
+from functools import partial
 from pathlib import Path
 from typing import Any
 
@@ -18,7 +21,12 @@ import numpy as np
 from distributed import Client, Future, as_completed
 from pyproj import CRS, Transformer
 
-from service.checkpoint_run import audit_checkpoints, earlier_heights, grade
+from service.checkpoint_run import (
+    audit_checkpoints,
+    earlier_heights,
+    grade,
+    read_job_checkpoints,
+)
 from service.coregistration import estimate_job_correction
 from service.recheck import (
     Baseline,
@@ -37,9 +45,11 @@ from workers.catalog import (
     TileInfo,
     catalog_document,
     file_fingerprint,
+    scan_landcover_tile,
     scan_tile,
     unchanged,
 )
+from workers.checkpoints import CheckpointFile
 from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation
 from workers.errors import AuditError, EmptyOverlapError, TileReadError
 from workers.figures import write_figures
@@ -58,12 +68,24 @@ from workers.summary_store import (
     entries_of,
     write_job_totals,
 )
-from workers.tile_task import ALL, FAILED, OK, TileOptions, TileResult, audit_tile
+from workers.tile_task import (
+    ALL,
+    FAILED,
+    NO_REFERENCE,
+    NO_VALID_PIXELS,
+    OK,
+    TileOptions,
+    TileResult,
+    audit_tile,
+)
 from workers.writers import (
+    OutputError,
     OverviewLayout,
     ResultsStore,
+    check_output_folder,
     overview_carries,
     overview_layout,
+    staged_folder,
     statistics_table,
     strata_table,
     write_summary,
@@ -92,6 +114,7 @@ def run_job(
     run_id: str | None = None,
     retries: int = 1,
     baseline: Path | None = None,
+    inputs: Inputs | None = None,
 ) -> dict[str, Any]:
     """Audit job.spec on the cluster behind client; write results.zarr and summary.json into
     out_dir and return the summary document.
@@ -105,14 +128,145 @@ def run_job(
     (or tiles whose reference or land cover changed) are recomputed; the run continues the
     baseline's stored job totals (see _reuse_of), and summary.json gets a ``recheck`` change
     report (also written as change_report.json).
+
+    Every input file that can be checked (regions, checkpoints, baseline, the output folder) is
+    checked before the first tile runs. The new result is built in ``<out_dir>.partial-<run_id>``
+    beside out_dir and swapped in only when complete (writers.staged_folder): a run that fails
+    leaves out_dir as it was, and out_dir never mixes files of two runs. A baseline may be
+    out_dir itself: it stays readable until the swap. ``inputs``: read_inputs(job) when the
+    caller has already read them.
     """
     started = _now()
-    clock = Phases()
     run_id = run_id or uuid.uuid4().hex[:12]
-    out_dir.mkdir(parents=True, exist_ok=True)
-    options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
+    inputs = inputs if inputs is not None else read_inputs(job)
     prior = load_baseline(baseline) if baseline is not None else None
-    catalog = _catalog(client, job, options, prior.catalog if prior else {})
+    with staged_folder(out_dir, run_id) as stage:
+        return _run_into(
+            stage,
+            job,
+            inputs,
+            prior,
+            client=client,
+            grid_dirs=grid_dirs,
+            progress=progress,
+            should_stop=should_stop,
+            run_id=run_id,
+            retries=retries,
+            started=started,
+        )
+
+
+@dataclass(frozen=True)
+class Inputs:
+    """The job's small input files, read (and so checked) before any tile is dispatched."""
+
+    regions: list[Region]
+    checkpoints: CheckpointFile | None = None
+
+
+def read_inputs(job: ResolvedJob) -> Inputs:
+    """Read the region and checkpoint files; SpecError (or MissingCRSError) naming the file and
+    field when one cannot be used."""
+    checkpoints = read_job_checkpoints(job) if job.spec.checkpoints is not None else None
+    return Inputs(_load_regions(job), checkpoints)
+
+
+def check_output(out_dir: Path) -> Path:
+    """The absolute output folder; OutputError when it is a file, a folder of other files, or
+    cannot be created or written (the run builds its result beside it)."""
+    target = check_output_folder(out_dir)
+    existing = next(p for p in [target, *target.parents] if p.exists())
+    if not existing.is_dir():
+        raise OutputError(f"--out: {existing} is a file, not a folder")
+    writable = target.parent if existing == target else existing
+    if writable.exists() and not os.access(writable, os.W_OK | os.X_OK):
+        raise OutputError(f"--out: cannot write in {writable} (permission denied)")
+    return target
+
+
+def validate_job(
+    job: ResolvedJob,
+    *,
+    grid_dirs: Sequence[str] = DEFAULT_GRID_DIRS,
+    out_dir: Path | None = None,
+    baseline: Path | None = None,
+) -> tuple[list[str], list[str]]:
+    """Check everything a run checks before its first tile, without running one: the region
+    and checkpoint files, the output folder and baseline when given, every tile's header
+    (files are not hashed), the overlap of test and reference, the geoid grids, the regions'
+    extent. Raises what run_job would raise; returns notes and per-tile problems (tiles a run
+    would report as failed or leave out)."""
+    inputs = read_inputs(job)
+    notes = []
+    if out_dir is not None:
+        notes.append(f"output folder {check_output(out_dir)} can be used")
+    if baseline is not None:
+        load_baseline(baseline)
+        notes.append(f"baseline {baseline} is a finished run")
+    options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
+    catalog = _catalog(_local_map, job, options, {}, inputs.regions)
+    notes.append(
+        f"tiles read (headers): {len(catalog.tests)} test, {len(catalog.references)} "
+        f"reference, {len(catalog.landcover)} land-cover"
+    )
+    if inputs.regions:
+        notes.append(f"regions: {len(inputs.regions)} read from {job.region_file}")
+    if inputs.checkpoints is not None:
+        data = inputs.checkpoints
+        notes.append(
+            f"checkpoints: {len(data.points)} points, {len(data.rejected)} rows rejected, "
+            f"from {job.checkpoint_file}"
+        )
+    problems = [f"test tile {f.tile_id}: {f.reason}" for f in catalog.test_failures]
+    problems += [f"{r['tile']}: {r['reason']}" for r in catalog.reference_failures]
+    if job.spec.reference is not None:
+        problems += [
+            f"test tile {t.tile_id}: no reference tile overlaps it"
+            for t in catalog.tests
+            if not catalog.candidates[t.tile_id]
+        ]
+    return notes, problems
+
+
+def _local_map(function: Callable[..., Any], *arguments: Sequence[Any]) -> list[Any]:
+    """A Mapper on local threads for the header scan of validate_job (hashing skipped)."""
+    if function in (scan_tile, scan_landcover_tile):
+        function = partial(_header_only, function)
+    with ThreadPoolExecutor(max_workers=4) as pool:
+        return list(pool.map(function, *arguments))
+
+
+def _header_only(
+    scan: Callable[..., TileInfo | ScanFailure], path: str, known: Known | None = None
+) -> TileInfo | ScanFailure:
+    """A tile scan without hashing the content (the fingerprint is left empty)."""
+    try:
+        stat = Path(path).stat()
+    except OSError:
+        return scan(path)  # reports the unreadable file
+    return scan(path, (stat.st_size, stat.st_mtime_ns, ""))
+
+
+def _run_into(
+    out_dir: Path,
+    job: ResolvedJob,
+    inputs: Inputs,
+    prior: Baseline | None,
+    *,
+    client: Client,
+    grid_dirs: Sequence[str],
+    progress: Progress | None,
+    should_stop: Callable[[], bool] | None,
+    run_id: str,
+    retries: int,
+    started: str,
+) -> dict[str, Any]:
+    """run_job's work, writing into the (staged) folder out_dir."""
+    clock = Phases()
+    options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
+    catalog = _catalog(
+        _dask_map(client), job, options, prior.catalog if prior else {}, inputs.regions
+    )
     sources = catalog.source_fingerprints()
     region_ids = [r.region_id for r in catalog.regions]
     layout = overview_layout(catalog.tests, factor=job.spec.options.overview_factor)
@@ -178,7 +332,7 @@ def run_job(
         if should_stop is not None and should_stop():
             client.cancel(futures)
             raise JobDismissedError(f"job {job.spec.name} was dismissed after {done} tiles")
-        result = _result_of(future)
+        result = _with_status(_result_of(future))
         future.release()
         _fold(result, acc, after, store, summaries)
         records[result.tile_id] = _tile_record(
@@ -232,7 +386,9 @@ def run_job(
         regions=region_docs,
         tiles=tile_rows,
         reference_failures=catalog.reference_failures,
-        extra_cautions=[] if layout else ["no dh overview: the test tiles are not on one grid"],
+        extra_cautions=_coverage_cautions(tile_rows)
+        + region_ops.region_cautions(catalog.regions)
+        + ([] if layout else ["no dh overview: the test tiles are not on one grid"]),
         coregistration=coregistration,
     )
     document["sources"] = sources
@@ -241,7 +397,7 @@ def run_job(
     write_summary(out_dir, catalog.document(), name=CATALOG_NAME)
     if job.spec.checkpoints is not None:
         document["checkpoints"] = _checkpoint_section(
-            client, job, catalog, options, out_dir, prior, change
+            client, job, catalog, options, out_dir, prior, change, inputs.checkpoints
         )
         document["cautions"] += document["checkpoints"].get("cautions", [])
     clock.mark("checkpoints")
@@ -370,6 +526,7 @@ def _checkpoint_section(
     out_dir: Path,
     prior: Baseline | None,
     change: ChangePlan | None,
+    data: CheckpointFile | None = None,
 ) -> dict[str, Any]:
     """The checkpoint audit; in a re-check, points away from the changed tiles keep the test
     heights the baseline sampled."""
@@ -391,6 +548,7 @@ def _checkpoint_section(
         out_dir=out_dir,
         earlier=earlier,
         changed_areas=changed_areas,
+        data=data,
     )
 
 
@@ -448,13 +606,30 @@ class _Catalog:
         }
 
 
+#: map(function, *argument lists) -> results in order: on the cluster, or in local threads.
+Mapper = Callable[..., list[Any]]
+
+
+def _dask_map(client: Client) -> Mapper:
+    def mapped(function: Callable[..., Any], *arguments: Sequence[Any]) -> list[Any]:
+        return list(client.gather(client.map(function, *arguments, pure=False)))
+
+    return mapped
+
+
 def _catalog(
-    client: Client, job: ResolvedJob, options: TileOptions, known: Mapping[str, TileInfo]
+    mapper: Mapper,
+    job: ResolvedJob,
+    options: TileOptions,
+    known: Mapping[str, TileInfo],
+    region_list: list[Region],
 ) -> _Catalog:
-    """Scan every tile on the cluster, index the reference, check overlap, geoid and regions."""
-    test_tiles, test_failures = _scan(client, job.test_tiles, known)
-    ref_tiles, ref_failures = _scan(client, job.reference_tiles, known)
-    cover_tiles, cover_failures = _scan(client, job.landcover_tiles, known)
+    """Scan every tile (with mapper), index the reference, check overlap, geoid and regions."""
+    test_tiles, test_failures = _scan(mapper, job.test_tiles, known)
+    ref_tiles, ref_failures = _scan(mapper, job.reference_tiles, known)
+    cover_tiles, cover_failures = _scan(
+        mapper, job.landcover_tiles, known, scan=scan_landcover_tile
+    )
     if not test_tiles:
         raise TileReadError("no test tile could be read: " + _reasons(test_failures))
     if job.reference_tiles and not ref_tiles:
@@ -464,7 +639,6 @@ def _catalog(
     candidates = {t.tile_id: index.overlapping(t.grid) for t in test_tiles}
     if job.reference_tiles and not any(candidates.values()):
         raise EmptyOverlapError("the test and reference tiles do not overlap anywhere")
-    region_list = _load_regions(job)
     return _Catalog(
         tests=test_tiles,
         test_failures=test_failures,
@@ -480,6 +654,36 @@ def _catalog(
     )
 
 
+def _with_status(result: TileResult) -> TileResult:
+    """A tile that was read but holds no pixel with both heights gets a status of its own (its
+    empty summaries are not merged)."""
+    if result.status == OK and result.summary.count == 0 and result.excluded == 0:
+        reason = "no pixel holds both a test and a reference height (voids or nodata throughout)"
+        return replace(result, status=NO_VALID_PIXELS, reason=reason)
+    return result
+
+
+#: Tile statuses of a raster job that leave tiles out of the statistics without failing.
+UNAUDITED = {
+    NO_REFERENCE: "no reference tile overlaps them",
+    NO_VALID_PIXELS: "no pixel holds both a test and a reference height (voids or nodata)",
+}
+
+
+def _coverage_cautions(tiles: Sequence[Mapping[str, Any]]) -> list[str]:
+    """A caution per kind of test tile left out of the statistics without failing."""
+    cautions = []
+    for status, why in UNAUDITED.items():
+        ids = [t["tile"] for t in tiles if t["status"] == status]
+        if ids:
+            shown = ", ".join(ids[:5]) + (", ..." if len(ids) > 5 else "")
+            cautions.append(
+                f"{len(ids)} of {len(tiles)} test tiles are not in the statistics: {why} "
+                f"(status {status}: {shown})"
+            )
+    return cautions
+
+
 def _result_of(future: Future) -> TileResult:
     """The tile's result; a lost worker or a crash outside audit_tile marks the tile failed."""
     try:
@@ -493,7 +697,10 @@ def _result_of(future: Future) -> TileResult:
 
 
 def _scan(
-    client: Client, paths: Sequence[Path], known: Mapping[str, TileInfo]
+    mapper: Mapper,
+    paths: Sequence[Path],
+    known: Mapping[str, TileInfo],
+    scan: Callable[..., TileInfo | ScanFailure] = scan_tile,
 ) -> tuple[list[TileInfo], list[ScanFailure]]:
     """Scan tiles on the cluster; a tile an earlier scan knows, with the same size and
     modification time, is taken from that scan without opening the file."""
@@ -505,7 +712,7 @@ def _scan(
         (known[n].size_bytes, known[n].mtime_ns, known[n].fingerprint) if n in known else None
         for n in names
     ]
-    scanned = client.gather(client.map(scan_tile, names, hints, pure=False)) if names else []
+    scanned = mapper(scan, names, hints) if names else []
     by_path = reused | {s.path: s for s in scanned}
     ordered = [by_path[str(p)] for p in paths]
     ok = [s for s in ordered if isinstance(s, TileInfo)]

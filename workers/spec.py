@@ -13,7 +13,7 @@ import json
 from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any, Literal
+from typing import Annotated, Any, Literal
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
@@ -122,7 +122,10 @@ class Grading(_Strict):
     asprs_class_cm: float = Field(default=10.0, gt=0)
     quality_level: Literal["QL0", "QL1", "QL2", "QL3"] = "QL2"
     nssda_required_accuracy_m: float | None = Field(default=None, gt=0)
-    user: dict[Literal["required_rmse_m", "required_nva_m", "required_vva_m"], float] = {}
+    user: dict[
+        Literal["required_rmse_m", "required_nva_m", "required_vva_m"],
+        Annotated[float, Field(gt=0, allow_inf_nan=False)],
+    ] = {}
 
 
 class RegionSource(_Strict):

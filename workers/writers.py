@@ -12,6 +12,9 @@ Zarr layout (Zarr format 3, consolidated metadata at the root except for the sum
       dh_overview/  dims y, x:  block mean of dh (1:factor), CF grid_mapping ``spatial_ref``
       tile_summaries/, job_summaries/: mergeable summaries (workers/summary_store.py), not in the
                     consolidated metadata: open them with use_consolidated=False
+
+A run's output folder is built whole beside its target (:func:`staged_folder`) and swapped in
+only when complete, so a failed run leaves an earlier result as it was.
 """
 
 from __future__ import annotations
@@ -35,12 +38,96 @@ import zarr
 from numpy.typing import NDArray
 
 from workers.catalog import TileInfo
+from workers.errors import AuditError
 from workers.summary import STAT_KEYS
 
 ZARR_NAME = "results.zarr"
 #: Groups read with the zarr API, left out of the root's consolidated metadata.
 UNCONSOLIDATED_GROUPS = frozenset({"tile_summaries", "job_summaries"})
 SUMMARY_NAME = "summary.json"
+#: A folder holding one of these is taken for an earlier result, replaced as a whole by a new run.
+RESULT_MARKERS = (SUMMARY_NAME, ZARR_NAME)
+
+
+class OutputError(AuditError, OSError):
+    """The output folder cannot be used or written (not a folder, read-only, disk full, a folder
+    of other files); nothing was changed in it."""
+
+
+def check_output_folder(target: Path) -> Path:
+    """The absolute output folder; OutputError when it is a file, or a non-empty folder that
+    holds no earlier result (its files would be replaced)."""
+    target = Path(target).expanduser().resolve()
+    if target.exists() and not target.is_dir():
+        raise OutputError(f"--out: {target} is a file, not a folder")
+    if target.is_dir():
+        try:
+            entries = sorted(p.name for p in target.iterdir())
+        except OSError as exc:
+            raise OutputError(f"--out: cannot read the folder {target}: {exc.strerror}") from None
+        if entries and not any(name in entries for name in RESULT_MARKERS):
+            shown = ", ".join(entries[:3]) + (", ..." if len(entries) > 3 else "")
+            raise OutputError(
+                f"--out: {target} holds files that are not demaudit results ({shown}); a run "
+                "replaces its output folder as a whole, so name a new or empty folder"
+            )
+    return target
+
+
+@contextmanager
+def staged_folder(target: Path, run_id: str) -> Iterator[Path]:
+    """Yield a new folder ``<target>.partial-<run_id>`` beside target to build a result in; when
+    the block ends without error, swap it in place of target (an earlier result there is
+    replaced as a whole), else remove it. The target appears complete or not at all.
+
+    Errors of the file system (read-only, disk full, a file in the way) become OutputError with
+    one line naming the file; target is then left as it was.
+    """
+    target = check_output_folder(target)
+    partial = target.with_name(f"{target.name}.partial-{run_id}")
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        partial.mkdir()
+    except OSError as exc:
+        raise OutputError(
+            f"--out: cannot create {_failed_path(exc, partial)} (results are built beside the "
+            f"output folder, then swapped in): {exc.strerror or exc}"
+        ) from None
+    try:
+        yield partial
+        _swap_in(partial, target, run_id)
+    except OSError as exc:
+        shutil.rmtree(partial, ignore_errors=True)
+        if isinstance(exc, AuditError):
+            raise
+        raise OutputError(
+            f"the run stopped on a file error and left {target} as it was: "
+            f"{exc.strerror or exc}: {_failed_path(exc, partial)}"
+        ) from None
+    except BaseException:
+        shutil.rmtree(partial, ignore_errors=True)
+        raise
+
+
+def _swap_in(partial: Path, target: Path, run_id: str) -> None:
+    """Put partial in place of target: the old folder aside, the new one in, the old removed
+    (moved back when the new one cannot go in)."""
+    aside = target.with_name(f"{target.name}.replaced-{run_id}")
+    had = target.exists()
+    if had:
+        target.rename(aside)
+    try:
+        partial.rename(target)
+    except OSError:
+        if had:
+            aside.rename(target)
+        raise
+    if had:
+        shutil.rmtree(aside, ignore_errors=True)
+
+
+def _failed_path(exc: OSError, fallback: Path) -> str:
+    return str(exc.filename) if exc.filename else str(fallback)
 
 
 @dataclass(frozen=True)
