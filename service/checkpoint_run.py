@@ -236,28 +236,35 @@ def _section(
 ) -> dict[str, Any]:
     used = [r for r in records.values() if r.get("status") == "used"]
     group_of = {c.value: c.group for c in classes}
+    unclassified_group = job.spec.checkpoints.unclassified_group if job.spec.checkpoints else None
     xs = np.array([r["x_test_crs"] for r in used])
     ys = np.array([r["y_test_crs"] for r in used])
     inside = {
         g.region_id: shapely.intersects_xy(g.geometry, xs, ys)
         for g in regions.get(tests[0].grid.crs, [])
     }
+    unclassified = 0
     for r in used:
-        cover = r.get("landcover")
-        r["cover_group"] = group_of.get(cover, "unknown") if cover is not None else "unknown"
+        r["cover_group"], no_class = grading.cover_group(
+            r.get("landcover"), group_of, unclassified_group=unclassified_group or "non_vegetated"
+        )
+        unclassified += no_class
     dh = np.array([r["dh_m"] for r in used])
     nv = np.array([r["dh_m"] for r in used if r["cover_group"] == "non_vegetated"])
     veg = np.array([r["dh_m"] for r in used if r["cover_group"] == "vegetated"])
     va = vertical_accuracy(nv, veg)
     area_km2 = sum((t.bounds[2] - t.bounds[0]) * (t.bounds[3] - t.bounds[1]) for t in tests) / 1e6
     measured = grading.Measured(
-        va["rmse_z_non_vegetated"],
-        va["vva_95"],
+        _float(va["rmse_z_non_vegetated"]),
+        _float(va["vva_95"]),
         len(nv),
-        len(veg),  # type: ignore[arg-type]
+        len(veg),
         survey_rmse_m=survey,
         area_km2=area_km2,
+        rmse_z_vegetated=_float(va["rmse_z_vegetated"]),
+        rmse_z_all=_float(va["rmse_z_all"]),
     )
+    cautions = _cover_cautions(used, unclassified, unclassified_group, bool(group_of))
     _write_residuals(out_dir / RESIDUALS_NAME, records)
     return {
         "file": str(job.checkpoint_file),
@@ -273,7 +280,8 @@ def _section(
             for region_id, mask in inside.items()
             if mask.any()
         },
-        "grading": grade(measured, job),
+        "grading": grade(measured, job, assumptions=cautions),
+        "cautions": cautions,
         "rejected": [
             {"id": r["id"], "reason": r["reason"]}
             for r in records.values()
@@ -283,8 +291,43 @@ def _section(
     }
 
 
-def grade(measured: grading.Measured, job: ResolvedJob) -> list[dict[str, Any]]:
-    """Grade the measures against each standard the spec names."""
+def _float(value: float | int | None) -> float | None:
+    return None if value is None else float(value)
+
+
+def _cover_cautions(
+    used: Sequence[Mapping[str, Any]],
+    unclassified: int,
+    unclassified_group: str | None,
+    have_classes: bool,
+) -> list[str]:
+    """What the cover groups of the used checkpoints rest on, for cautions and grades."""
+    out = []
+    if unclassified:
+        why = "no land-cover class" if have_classes else "no land-cover class table to read by"
+        graded = (
+            "left out of grading"
+            if unclassified_group == "excluded"
+            else f"graded as {(unclassified_group or 'non_vegetated').replace('_', '-')}"
+        )
+        out.append(
+            f"{unclassified} of {len(used)} checkpoints have {why}: {graded} "
+            "(checkpoints.unclassified_group; unclassified pixels count as non-vegetated too)"
+        )
+    unknown = sum(r["cover_group"] == "unknown" for r in used)
+    if unknown:
+        out.append(
+            f"{unknown} checkpoints have a land-cover class not listed in landcover.classes: "
+            "left out of grading"
+        )
+    return out
+
+
+def grade(
+    measured: grading.Measured, job: ResolvedJob, *, assumptions: Sequence[str] = ()
+) -> list[dict[str, Any]]:
+    """Grade the measures against each standard the spec names; each grade repeats the
+    assumptions its cover groups rest on."""
     g = job.spec.grading
     out = []
     for standard in g.standards:
@@ -300,6 +343,9 @@ def grade(measured: grading.Measured, job: ResolvedJob) -> list[dict[str, Any]]:
             out.append(grading.grade_quality_level(measured, level=g.quality_level))
         elif standard == "user" and g.user:
             out.append(grading.grade_user(measured, {str(k): v for k, v in g.user.items()}))
+    if assumptions:
+        for entry in out:
+            entry["assumptions"] = list(assumptions)
     if measured.indicative:
         for entry in out:
             entry["indicative"] = True

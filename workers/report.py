@@ -22,14 +22,15 @@ CAUTIONS_ALWAYS = (
 )
 
 
-def quantile_resolution() -> dict[str, Any]:
-    """The stated accuracy of the robust statistics read from the mergeable summaries."""
+def quantile_resolution(overall: Mapping[str, Any] | None = None) -> dict[str, Any]:
+    """The accuracy of the robust statistics read from the mergeable summaries: how it is
+    bounded, and the bounds of the job's overall figures (metres); each area's own are in its
+    ``resolution_m``."""
     return {
-        "median_q683_q95_m": f"max({dh_summary.LINEAR_WIDTH_M}, "
-        f"{dh_summary.RELATIVE_WIDTH} * |value|)",
-        "nmad_m": f"{dh_summary.NMAD_FACTOR} * ({dh_summary.LINEAR_WIDTH_M} + max("
-        f"{dh_summary.LINEAR_WIDTH_M}, {dh_summary.RELATIVE_WIDTH} * (|median| + nmad / "
-        f"{dh_summary.NMAD_FACTOR})))",
+        "method": "per statistic, from the histogram bins holding the two order statistics it "
+        "interpolates: (1 - g) x width_j + g x width_(j+1); nmad adds the median's bound "
+        "(see workers/summary.py)",
+        "overall": dict(overall) if overall is not None else None,
         "bin_width_m": dh_summary.LINEAR_WIDTH_M,
         "relative_bin_width_beyond_2m": dh_summary.RELATIVE_WIDTH,
         "count_mean_std_rmse_min_max": "exact",
@@ -43,6 +44,7 @@ def area_entry(
     rule, 95 % confidence intervals, and each stratum."""
     entry: dict[str, Any] = {
         "stats": dh_summary.statistics(s),
+        "resolution_m": dh_summary.statistic_bounds(s),
         "confidence_95": confidence_intervals(s),
         "without_outliers": without_outliers(s, rule=outlier_rule, factor=outlier_factor),
         "strata": [
@@ -116,7 +118,7 @@ def build_summary(
         "job": dict(job),
         "sign": SIGN,
         "units": "metre",
-        "quantile_resolution_m": quantile_resolution(),
+        "quantile_resolution_m": quantile_resolution(overall.get("resolution_m")),
         "overall": overall["stats"],
         "overall_detail": {k: v for k, v in overall.items() if k != "stats"},
         "regions": regions,

@@ -104,22 +104,38 @@ def _met(value: object) -> str:
     return "not decided"
 
 
+def _verdict(grade: Mapping[str, Any]) -> str:
+    """met / not met; a standard that states a figure instead (NSSDA without a required
+    accuracy) shows its sentence; the Edition 2 VVA as found."""
+    if grade.get("met") is None and grade.get("statement"):
+        return _e(grade["statement"])
+    parts = [_met(grade.get("met"))]
+    if grade.get("statement"):
+        parts.append(_e(grade["statement"]))
+    if "vva_rmse_v_as_found_m" in grade:
+        parts.append(f"VVA (RMSE_V, as found): {_number(grade['vva_rmse_v_as_found_m'])} m")
+    return "<br>".join(parts)
+
+
 def _checkpoints(cp: Mapping[str, Any]) -> list[str]:
     counts = cp["counts"]
     rows = []
     for grade in cp.get("grading", []):
         checks = "; ".join(
-            f"{c['measure']} {_number(c['value'])} ≤ {_number(c['threshold'])}: {_met(c['met'])}"
+            f"{c['measure']} {_number(c['value'])} ≤ {_number(c['threshold'])}: "
+            + (_e(c["note"]) if c.get("note") else _met(c["met"]))
             for c in grade.get("checks", [])
         )
         warnings = "<br>".join(_e(w) for w in grade.get("warnings", []))
         rows.append(
             f"<tr><td>{_e(grade['standard'])} {_e(grade.get('class', ''))}</td>"
-            f"<td>{_met(grade.get('met'))}</td><td>{checks}</td>"
+            f"<td>{_verdict(grade)}</td><td>{checks}</td>"
             f"<td>{_e(grade.get('best_class_met') or '')}</td><td>{warnings}</td></tr>"
         )
+    assumptions = "".join(f"<li>{_e(a)}</li>" for a in cp.get("cautions", []))
     return [
         "<h2>Checkpoints</h2>",
+        f"<p>Cover groups of the checkpoints:</p><ul>{assumptions}</ul>" if assumptions else "",
         f"<p>{counts['used']} of {counts['read']} checkpoints used, {counts['rejected']} "
         f"rejected (reasons in {_e(cp.get('residuals_file'))}).</p>",
         _stats_table(

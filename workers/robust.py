@@ -74,23 +74,52 @@ def _rule_text(rule: str, factor: float) -> str:
     return f"|dh| > {factor:g} x RMSE"
 
 
-def order_statistic_ranks(n: int, p: float, *, z: float = Z95) -> tuple[int, int]:
+#: Said next to every interval of pixel statistics.
+INDEPENDENCE_NOTE = (
+    "distribution-free intervals from order statistics (Höhle & Höhle 2009); they assume "
+    "independent pixels: spatially correlated errors make the true intervals wider"
+)
+
+
+def order_statistic_ranks(n: int, p: float, *, z: float = Z95) -> tuple[int | None, int | None]:
     """0-based ranks of the order statistics bounding a distribution-free confidence interval
-    of quantile p: n p -/+ z sqrt(n p (1 - p)) (1-based, rounded outward), clipped to the data."""
+    of quantile p: n p -/+ z sqrt(n p (1 - p)) (1-based, rounded outward). An end whose rank
+    falls outside 1..n has no order statistic to bound it: it is open (None)."""
+    low, high = _ranks_1based(n, p, z)
+    return (low - 1 if low >= 1 else None), (high - 1 if high <= n else None)
+
+
+def _ranks_1based(n: int, p: float, z: float) -> tuple[int, int]:
     half = z * np.sqrt(n * p * (1 - p))
-    low = max(int(np.floor(n * p - half)), 1)
-    high = min(int(np.ceil(n * p + half)), n)
-    return low - 1, high - 1
+    return int(np.floor(n * p - half)), int(np.ceil(n * p + half))
 
 
-def confidence_intervals(s: DhSummary) -> dict[str, list[float] | None]:
-    """95 % intervals for the median of dh and for q683_abs and q95_abs of |dh|."""
+def confidence_intervals(s: DhSummary) -> dict[str, Any]:
+    """95 % intervals for the median of dh and for q683_abs and q95_abs of |dh|: [low, high]
+    in metres, an open end as None, with notes saying which ends are open and why, and the
+    assumption of independent pixels."""
+    out: dict[str, Any] = {"median": None, "q683_abs": None, "q95_abs": None}
+    notes: list[str] = []
     if s.count < 2:
-        return {"median": None, "q683_abs": None, "q95_abs": None}
-    ranks = np.array(order_statistic_ranks(s.count, 0.5))
-    median = dhs.order_statistics(s, ranks)
-    out: dict[str, list[float] | None] = {"median": [float(v) for v in median]}
-    for key, p in (("q683_abs", 0.683), ("q95_abs", 0.95)):
-        ranks = np.array(order_statistic_ranks(s.count, p))
-        out[key] = [float(v) for v in dhs.abs_order_statistics(s, ranks, 0.0)]
+        return out | {"notes": ["fewer than 2 values: no interval"], "assumes": INDEPENDENCE_NOTE}
+    for key, p in (("median", 0.5), ("q683_abs", 0.683), ("q95_abs", 0.95)):
+        low, high = order_statistic_ranks(s.count, p)
+        ranks = np.array([r for r in (low, high) if r is not None], dtype=np.int64)
+        if key == "median":
+            values = dhs.order_statistics(s, ranks)
+        else:
+            values = dhs.abs_order_statistics(s, ranks, 0.0)
+        it = iter(float(v) for v in values)
+        out[key] = [None if low is None else next(it), None if high is None else next(it)]
+        notes += _open_notes(key, s.count, p, low is None, high is None)
+    return out | {"notes": notes, "assumes": INDEPENDENCE_NOTE}
+
+
+def _open_notes(key: str, n: int, p: float, low_open: bool, high_open: bool) -> list[str]:
+    low, high = _ranks_1based(n, p, Z95)
+    out = []
+    if low_open:
+        out.append(f"{key}: lower end open (rank {low} < 1 with n = {n})")
+    if high_open:
+        out.append(f"{key}: upper end open (rank {high} > n = {n})")
     return out

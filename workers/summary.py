@@ -12,10 +12,19 @@ blunder of 50 m lands in a 5 mm bin. Only non-empty bins are stored (bin index, 
 
 Quantiles are read back as in ``numpy.quantile`` (linear interpolation between order statistics,
 method 7); each order statistic is placed inside its bin as if the bin's pixels were spread evenly.
-The true order statistic lies in the same bin, so the error is at most one bin width:
+The true order statistic lies in the same bin (clipped to the exact minimum and maximum), so each
+order statistic is off by at most that bin's width. A quantile interpolates between the two order
+statistics j and j + 1 that bracket it, with weights 1 - g and g, so its bound is
+(1 - g) w_j + g w_(j+1), read from the two bins that actually hold them
+(:func:`quantile_bounds`). That is 0.2 mm (or 0.01 % of the value beyond 2 m) when both lie in
+one bin, but can be far more when the quantile falls between two distant occupied bins (e.g. the
+median of a bimodal +-3,000 m set: 0.3 m wide bins either side of a median near 0).
 
-* median, q683_abs, q95_abs: within max(0.2 mm, 0.01 % of |value|);
-* nmad: within 1.4826 x (0.2 mm + max(0.2 mm, 0.01 % x (|median| + MAD))).
+For |value - c| the rank-th smallest lies between the rank-th smallest of the bins' nearest and
+farthest distances from c, and so does its estimate (:func:`abs_quantile_bounds`). The NMAD's
+bound adds the median's (the MAD moves by at most as much as its centre):
+1.4826 x (bound of the MAD about the estimated median + bound of the median).
+:func:`statistic_bounds` gives all four; a few ulps of rounding are added to each.
 
 Units are those of the values summarised (metres throughout demaudit). NaN and infinite values are
 ignored by :func:`summarise`.
@@ -195,28 +204,150 @@ def abs_quantile(s: DhSummary, p: ArrayLike, *, center: float = 0.0) -> NDArray[
 
 
 def quantile_bound_m(value: float) -> float:
-    """The stated accuracy of a median or |dh| quantile read from a summary (metres)."""
+    """The width of the bin holding ``value`` (metres): the accuracy of a quantile only when
+    both order statistics it interpolates lie in that bin (e.g. dense, unimodal data). For a
+    bound that always holds use :func:`quantile_bounds` / :func:`statistic_bounds`."""
     return max(LINEAR_WIDTH_M, RELATIVE_WIDTH * abs(value))
 
 
 def nmad_bound_m(median: float, nmad: float) -> float:
-    """The stated accuracy of an NMAD read from a summary (metres)."""
+    """The NMAD's accuracy from the bin widths at the median and median + MAD (metres), under
+    the same proviso as :func:`quantile_bound_m`; see :func:`statistic_bounds`."""
     mad = nmad / NMAD_FACTOR
     return NMAD_FACTOR * (LINEAR_WIDTH_M + quantile_bound_m(abs(median) + mad))
+
+
+#: Floating-point slack added to every bound, relative to the magnitudes involved.
+_ROUNDING = 1.0e-12
+
+
+def quantile_bounds(s: DhSummary, p: ArrayLike) -> NDArray[np.float64]:
+    """Bound (metres) on |quantile(s, p) - the exact quantile of the values|, from the bins
+    that hold the two order statistics the quantile interpolates."""
+    return _interpolated_bounds(s, p, lambda ranks: order_statistic_brackets(s, ranks))
+
+
+def abs_quantile_bounds(
+    s: DhSummary, p: ArrayLike, *, center: float = 0.0
+) -> NDArray[np.float64]:
+    """Bound (metres) on |abs_quantile(s, p, center=center) - the exact quantile of
+    |value - center||."""
+    # abs_order_statistics bisects 64 times from [0, 1.000001 x the farthest distance]
+    farthest = max(abs(s.maximum - center), abs(s.minimum - center)) * 1.000001
+    return _interpolated_bounds(
+        s,
+        p,
+        lambda ranks: abs_order_statistic_brackets(s, ranks, center),
+        scale=abs(center),
+        extra=farthest * 2.0**-63 if s.count else 0.0,
+    )
+
+
+def statistic_bounds(s: DhSummary) -> dict[str, float | None]:
+    """Bounds (metres) on the error of median, nmad, q683_abs and q95_abs as
+    :func:`statistics` reads them; None for an empty summary."""
+    if s.count == 0:
+        return {"median": None, "nmad": None, "q683_abs": None, "q95_abs": None}
+    median = float(quantile(s, 0.5))
+    median_bound = float(quantile_bounds(s, 0.5))
+    mad_bound = float(abs_quantile_bounds(s, 0.5, center=median))
+    abs_bounds = abs_quantile_bounds(s, np.array([0.683, 0.95]), center=0.0)
+    return {
+        "median": median_bound,
+        "nmad": NMAD_FACTOR * (mad_bound + median_bound),
+        "q683_abs": float(abs_bounds[0]),
+        "q95_abs": float(abs_bounds[1]),
+    }
+
+
+def order_statistic_brackets(
+    s: DhSummary, ranks: NDArray[np.int64]
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """For each 0-based rank, the interval holding both the rank-th smallest value and its
+    estimate: the edges of its bin, clipped to the exact minimum and maximum."""
+    lo, hi = _clipped_edges(s)
+    at = np.searchsorted(np.cumsum(s.counts), np.asarray(ranks), side="right")
+    return lo[at], hi[at]
+
+
+def abs_order_statistic_brackets(
+    s: DhSummary, ranks: NDArray[np.int64], center: float
+) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """For each 0-based rank, an interval holding the rank-th smallest |value - center| and its
+    estimate: the rank-th smallest of the bins' nearest and of their farthest distances from
+    center, each bin counted as often as it holds values (order statistics are monotone in every
+    value, and the estimate's spread-out counts obey the same two limits)."""
+    lo, hi = _clipped_edges(s)
+    near = np.maximum(np.maximum(lo - center, center - hi), 0.0)
+    far = np.maximum(np.abs(lo - center), np.abs(hi - center))
+    ranks = np.asarray(ranks)
+    return _weighted_order_statistic(near, s.counts, ranks), _weighted_order_statistic(
+        far, s.counts, ranks
+    )
+
+
+def _weighted_order_statistic(
+    values: NDArray[np.float64], counts: NDArray[np.integer], ranks: NDArray[np.int64]
+) -> NDArray[np.float64]:
+    order = np.argsort(values, kind="stable")
+    cum = np.cumsum(counts[order])
+    return values[order][np.searchsorted(cum, ranks, side="right")]
+
+
+def _clipped_edges(s: DhSummary) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    lo, hi = bin_edges(s.bins)
+    return np.clip(lo, s.minimum, s.maximum), np.clip(hi, s.minimum, s.maximum)
+
+
+def _interpolated_bounds(s, p, brackets, *, scale=0.0, extra=0.0):  # type: ignore[no-untyped-def]
+    """(1 - g) w_j + g w_(j+1) for the ranks j, j + 1 and weight g a quantile interpolates,
+    where w is the width of each order statistic's bracket; plus rounding (relative to the
+    magnitudes and scale) and extra (a search's resolution)."""
+    p_arr = np.atleast_1d(np.asarray(p, dtype=np.float64))
+    if s.count == 0:
+        return np.full(p_arr.shape, np.nan)
+    j, j_next, frac = _ranks_and_weights(s.count, p_arr)
+    lo, hi = brackets(np.concatenate([j, j_next]))
+    width = hi - lo
+    bound = (1 - frac) * width[: j.size] + frac * width[j.size :]
+    magnitude = np.maximum(np.abs(lo), np.abs(hi))
+    magnitude = np.maximum(magnitude[: j.size], magnitude[j.size :]) + scale
+    return (bound + _ROUNDING * magnitude + extra).reshape(np.shape(p))
+
+
+def _ranks_and_weights(
+    n: int, p: NDArray[np.float64]
+) -> tuple[NDArray[np.int64], NDArray[np.int64], NDArray[np.float64]]:
+    """The order statistics (0-based) numpy.quantile's linear method interpolates, and the
+    weight of the upper one."""
+    h = (n - 1) * p
+    j = np.floor(h).astype(np.int64)
+    return j, np.minimum(j + 1, n - 1), h - j
 
 
 # -- bins ---------------------------------------------------------------------------------------
 
 
 def bin_index(x: NDArray[np.float64]) -> NDArray[np.int64]:
-    """Index of the bin holding each value (finite values only)."""
-    k = np.empty(x.shape, dtype=np.int64)
-    linear = np.abs(x) < LINEAR_LIMIT_M
-    k[linear] = np.floor(x[linear] / LINEAR_WIDTH_M)
-    pos = x >= LINEAR_LIMIT_M
-    k[pos] = _K_LIMIT + np.floor(np.log(x[pos] / LINEAR_LIMIT_M) / _LOG_RATIO)
-    neg = x <= -LINEAR_LIMIT_M
-    k[neg] = -_K_LIMIT - 1 - np.floor(np.log(-x[neg] / LINEAR_LIMIT_M) / _LOG_RATIO)
+    """Index of the bin holding each value (finite values only).
+
+    Linear bins: floor(x / LINEAR_WIDTH_M) for |x| < LINEAR_LIMIT_M; the few values beyond
+    (the tails) are binned on their own, geometrically.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    (tail,) = np.nonzero((np.abs(x) >= LINEAR_LIMIT_M).ravel())
+    q = x / LINEAR_WIDTH_M
+    flat_q = q.reshape(-1)
+    flat_q[tail] = 0.0  # decided below; keeps huge values out of the integer cast
+    k = np.floor(q, out=q).astype(np.int64)
+    if tail.size:
+        t = x.reshape(-1)[tail]
+        pos = t >= LINEAR_LIMIT_M
+        t_k = np.empty(t.shape, dtype=np.int64)
+        t_k[pos] = _K_LIMIT + np.floor(np.log(t[pos] / LINEAR_LIMIT_M) / _LOG_RATIO)
+        neg = ~pos
+        t_k[neg] = -_K_LIMIT - 1 - np.floor(np.log(-t[neg] / LINEAR_LIMIT_M) / _LOG_RATIO)
+        k.reshape(-1)[tail] = t_k
     return k
 
 
@@ -258,10 +389,7 @@ def _interpolate_order_statistics(s, p, estimate):  # type: ignore[no-untyped-de
     p_arr = np.atleast_1d(np.asarray(p, dtype=np.float64))
     if s.count == 0:
         return np.full(p_arr.shape, np.nan)
-    h = (s.count - 1) * p_arr
-    j = np.floor(h).astype(np.int64)
-    frac = h - j
-    j_next = np.minimum(j + 1, s.count - 1)
+    j, j_next, frac = _ranks_and_weights(s.count, p_arr)
     ranks = np.concatenate([j, j_next])
     values = estimate(ranks)
     lower, upper = values[: j.size], values[j.size :]

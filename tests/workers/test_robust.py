@@ -56,7 +56,30 @@ def test_ranks_follow_the_order_statistic_formula():
     # ranks n p -/+ z sqrt(n p (1 - p)) (Höhle & Höhle 2009, from memory); n = 10000, p = 0.5:
     # 5000 -/+ 1.96 * 50 = 4902 .. 5098 (1-based), i.e. 4901 .. 5097 0-based
     assert order_statistic_ranks(10_000, 0.5) == (4901, 5097)
-    assert order_statistic_ranks(3, 0.95) == (1, 2)
+    # n = 3, p = 0.95: 2.85 +- 0.74 -> ranks 2 and 4 (1-based); 4 > n: the upper end is open
+    assert order_statistic_ranks(3, 0.95) == (1, None)
+
+
+def test_q95_interval_of_20_values_has_no_upper_end():
+    # Höhle & Höhle (2009), from memory (../shared/CHECK_VALUES.md): with n = 20, q95's upper
+    # rank 19 + 1.96 sqrt(0.95) = 20.9 -> 21 > 20, so that end is open, not the maximum
+    x = np.random.default_rng(3).normal(0.0, 0.2, 20)
+    ci = confidence_intervals(dhs.summarise(x))
+    low, high = ci["q95_abs"]
+    assert high is None
+    assert low == pytest.approx(np.sort(np.abs(x))[order_statistic_ranks(20, 0.95)[0]], abs=2e-4)
+    assert any("q95_abs: upper end open" in n and "21 > n = 20" in n for n in ci["notes"])
+    assert None not in ci["median"]  # median ranks 6 .. 15 lie inside 1 .. 20
+    assert "independent pixels" in ci["assumes"]
+
+
+def test_open_ends_follow_the_rank_formula_for_every_n():
+    # ranks n p -/+ z sqrt(n p (1 - p)) (Höhle & Höhle 2009, from memory): q95's upper end
+    # closes once n p + 1.96 sqrt(n p (1 - p)) <= n, i.e. n >= 73 (computed: 72 x 0.95 +
+    # 1.96 sqrt(3.42) = 72.0246 -> 73 > 72; 73 x 0.95 + 1.96 sqrt(3.4675) = 72.9997 -> 73)
+    assert order_statistic_ranks(72, 0.95)[1] is None
+    assert order_statistic_ranks(73, 0.95)[1] == 72
+    assert order_statistic_ranks(5, 0.5) == (None, 4)  # 2.5 -/+ 2.19 -> 0 .. 5
 
 
 def test_intervals_match_numpy_order_statistics():
