@@ -14,15 +14,20 @@ from __future__ import annotations
 import csv
 import json
 import math
+import re
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
+from pyproj import CRS
+from pyproj.exceptions import CRSError
 
 from workers.errors import SpecError
 from workers.grid import Grid
+from workers.spec import CheckpointSource
 
 
 @dataclass(frozen=True)
@@ -63,16 +68,24 @@ def read_checkpoints(
     height_column: str = "height",
     landcover_column: str | None = "landcover",
 ) -> CheckpointFile:
-    """Read CSV (with '#' header lines of 'key: value') or GeoJSON points."""
+    """Read CSV (with '#' header lines of 'key: value') or GeoJSON points.
+
+    The file is checked as a whole before any row: text in UTF-8 (with or without a byte-order
+    mark) or else Latin-1 (binary data is refused); a CSV needs the x, y and height columns
+    (SpecError naming the missing ones and the columns found); a GeoJSON must be a
+    FeatureCollection of objects with the height property. CSV delimiter: ',', ';' or tab,
+    whichever the column line holds most; with ';' or tab, numbers written with a decimal comma
+    (``12,5``, also ``512.345,67``) are read as such, the European spreadsheet convention.
+    """
     path = Path(path)
-    try:
-        text = path.read_text(encoding="utf-8")
-    except OSError as exc:
-        raise SpecError(f"checkpoints.file: cannot read {path}: {exc.strerror or exc}") from None
+    text = _decoded(path)
+    required = (x_column, y_column, height_column)
     if path.suffix.lower() in {".geojson", ".json"}:
         rows, header, crs = _geojson_rows(text, path, x_column, y_column)
+        _require_properties(rows, path, height_column, coordinates=(x_column, y_column))
     else:
-        rows, header, crs = _csv_rows(text)
+        numeric = [c for c in (*required, landcover_column) if c]
+        rows, header, crs = _csv_rows(text, path=path, required=required, numeric=numeric)
     columns = (id_column, x_column, y_column, height_column, landcover_column)
     points, rejected = _parse_rows(rows, columns)
     return CheckpointFile(
@@ -80,7 +93,30 @@ def read_checkpoints(
     )
 
 
-def _csv_rows(text: str) -> tuple[list[dict[str, Any]], dict[str, str], str | None]:
+def _decoded(path: Path) -> str:
+    """The file's text: UTF-8 (a byte-order mark is dropped), else Latin-1; binary refused."""
+    try:
+        raw = path.read_bytes()
+    except OSError as exc:
+        raise SpecError(f"checkpoints.file: cannot read {path}: {exc.strerror or exc}") from None
+    if b"\x00" in raw:
+        raise SpecError(
+            f"checkpoints.file: {path.name} is not text (it holds binary data); expected CSV "
+            "or GeoJSON"
+        )
+    try:
+        return raw.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        return raw.decode("latin-1")
+
+
+_DELIMITERS = (",", ";", "\t")
+_DECIMAL_COMMA = re.compile(r"^\s*[+-]?(\d{1,3}(\.\d{3})+|\d+),\d+\s*$")
+
+
+def _csv_rows(
+    text: str, *, path: Path, required: Sequence[str], numeric: Sequence[str]
+) -> tuple[list[dict[str, Any]], dict[str, str], str | None]:
     header: dict[str, str] = {}
     body = []
     for line in text.splitlines():
@@ -90,30 +126,111 @@ def _csv_rows(text: str) -> tuple[list[dict[str, Any]], dict[str, str], str | No
                 header[key.strip()] = value.strip().split()[0] if value.strip() else ""
         elif line.strip():
             body.append(line)
-    return list(csv.DictReader(body)), header, None
+    if not body:
+        raise SpecError(f"checkpoints.file: {path.name} holds no column line and no rows")
+    delimiter = max(_DELIMITERS, key=body[0].count)
+    reader = csv.DictReader(body, delimiter=delimiter)
+    found = [name.strip() for name in reader.fieldnames or []]
+    missing = [c for c in required if c not in found]
+    if missing:
+        shown = "tab" if delimiter == "\t" else repr(delimiter)
+        raise SpecError(
+            f"checkpoints.file: {path.name}: no {' / '.join(repr(c) for c in missing)} "
+            f"column; found: {delimiter.join(found)} (delimiter {shown}). Name the columns in "
+            "checkpoints.x_column, y_column and height_column"
+        )
+    reader.fieldnames = found
+    rows = list(reader)
+    if delimiter != ",":
+        for row in rows:
+            for column in numeric:
+                value = row.get(column)
+                if isinstance(value, str) and _DECIMAL_COMMA.match(value):
+                    row[column] = value.replace(".", "").replace(",", ".")
+    return rows, header, None
 
 
 def _geojson_rows(
     text: str, path: Path, x_column: str, y_column: str
 ) -> tuple[list[dict[str, Any]], dict[str, str], str | None]:
+    expected = "expected a GeoJSON FeatureCollection of Point features"
     try:
         doc = json.loads(text)
-        features = doc["features"]
-    except (json.JSONDecodeError, KeyError, TypeError) as exc:
+    except json.JSONDecodeError as exc:
         raise SpecError(
-            f"checkpoints.file: {path.name} is not a GeoJSON FeatureCollection: {exc}"
+            f"checkpoints.file: {path.name} is not valid JSON ({exc}); {expected}"
         ) from None
+    features = doc.get("features") if isinstance(doc, dict) else None
+    if not isinstance(features, list) or not all(isinstance(f, dict) for f in features):
+        raise SpecError(
+            f"checkpoints.file: {path.name} is not a list of feature objects; {expected}"
+        )
     crs = None
     if isinstance(doc.get("crs"), dict):
         crs = (doc["crs"].get("properties") or {}).get("name")
     rows = []
     for feature in features:
-        row = dict(feature.get("properties") or {})
-        geometry = feature.get("geometry") or {}
+        props = feature.get("properties")
+        row = dict(props) if isinstance(props, dict) else {}
+        geometry = feature.get("geometry")
+        geometry = geometry if isinstance(geometry, dict) else {}
         coords = geometry.get("coordinates") if geometry.get("type") == "Point" else None
-        row[x_column], row[y_column] = (coords[0], coords[1]) if coords else (None, None)
+        usable = isinstance(coords, list) and len(coords) >= 2
+        row[x_column], row[y_column] = (coords[0], coords[1]) if usable else (None, None)  # type: ignore[index]
         rows.append(row)
     return rows, {}, crs
+
+
+def _require_properties(
+    rows: list[dict[str, Any]], path: Path, height_column: str, *, coordinates: Sequence[str]
+) -> None:
+    """SpecError when no feature has the height property (the properties found are named)."""
+    if rows and not any(height_column in row for row in rows):
+        found = sorted({k for row in rows for k in row} - {"", *coordinates})
+        raise SpecError(
+            f"checkpoints.file: {path.name}: no feature has a {height_column!r} property; found: "
+            f"{', '.join(found)}. Name it in checkpoints.height_column"
+        )
+
+
+def open_checkpoints(path: Path, source: CheckpointSource) -> CheckpointFile:
+    """Read the checkpoint file a spec names and check it can be used at all, before any tile
+    runs: the columns (read_checkpoints), a horizontal CRS (checkpoint_crs), and at least one
+    usable point. Every problem is a SpecError naming the file and the spec field."""
+    data = read_checkpoints(
+        path,
+        id_column=source.id_column,
+        x_column=source.x_column,
+        y_column=source.y_column,
+        height_column=source.height_column,
+        landcover_column=source.landcover_column,
+    )
+    checkpoint_crs(data, path=Path(path), spec_crs=source.crs)
+    if not data.points:
+        reasons = "; ".join(f"{r.point_id}: {r.reason}" for r in data.rejected[:3])
+        raise SpecError(
+            f"checkpoints.file: none of the {len(data.rejected)} points of {Path(path).name} "
+            f"can be used ({reasons or 'the file holds no rows'})"
+        )
+    return data
+
+
+def checkpoint_crs(data: CheckpointFile, *, path: Path, spec_crs: str | None) -> str:
+    """The points' horizontal CRS: the spec's, else the file's declared one, else EPSG:4326 for
+    GeoJSON (its default). SpecError when there is none or it cannot be read."""
+    geojson = path.suffix.lower() in {".geojson", ".json"}
+    name = spec_crs or data.declared_crs or ("EPSG:4326" if geojson else None)
+    if name is None:
+        raise SpecError(
+            f"checkpoints.crs: {path.name} declares no horizontal CRS and the spec names none; "
+            "add a line '# horizontal_crs: EPSG:<code>' to the file or set checkpoints.crs"
+        )
+    source = "checkpoints.crs" if spec_crs else f"checkpoints.file: {path.name} declares"
+    try:
+        CRS.from_user_input(name)
+    except CRSError as exc:
+        raise SpecError(f"{source} a CRS that cannot be read ({name!r}): {exc}") from None
+    return name
 
 
 def _parse_rows(
