@@ -4,8 +4,9 @@ Two ways, as the spec says:
 
 * ``tile_median`` (default): one pass in which every tile (or every n-th) finds its own
   Nuth & Kääb shift, bias and tilt; the job's values are the medians over the tiles that could
-  estimate, their uncertainty the tiles' spread (1.4826 MAD / sqrt(n)), and tiles far from the
-  job's values are listed as outliers (a bad delivery block stands out).
+  estimate, their standard errors from the tiles' spread (sqrt(pi / 2) x NMAD / sqrt(n), the
+  median's standard error for normal data), and tiles far from the job's values are listed as
+  outliers (a bad delivery block stands out).
 * ``pooled``: repeated passes, each returning mergeable normal equations of all stable pixels,
   until the shift update is below the tolerance.
 """
@@ -18,6 +19,7 @@ from typing import Any
 
 import numpy as np
 from distributed import Client, as_completed
+from numpy.typing import NDArray
 from shapely.geometry import Point
 
 from workers import regions as region_ops
@@ -94,6 +96,23 @@ OUTLIER_FLOORS = {
     "tilt_north_m_per_km": 0.2,
 }
 MIN_TILES = 3
+#: Standard error of the median of n normal values, in sigma / sqrt(n): sqrt(pi / 2) ~ 1.2533,
+#: the median's asymptotic efficiency being 2 / pi relative to the mean (textbook result, common
+#: practice); NMAD stands in for sigma.
+MEDIAN_SE_FACTOR = float(np.sqrt(np.pi / 2.0))
+
+
+def nmad(values: NDArray[np.float64]) -> float:
+    """1.4826 x the median absolute deviation from the median (sigma for normal data)."""
+    return float(1.4826 * np.median(np.abs(values - np.median(values))))
+
+
+def median_standard_error(values: NDArray[np.float64]) -> float:
+    """Standard error of the median of values: MEDIAN_SE_FACTOR x NMAD / sqrt(n) (asymptotic,
+    for roughly normal values; NaN when empty)."""
+    if values.size == 0:
+        return float("nan")
+    return MEDIAN_SE_FACTOR * nmad(values) / float(np.sqrt(values.size))
 
 
 def _tile_median(
@@ -113,7 +132,7 @@ def _tile_median(
         }
     values = {key: np.array([r[key] for r in ok.values()]) for key in _TILE_KEYS}
     centre = {key: float(np.median(v)) for key, v in values.items()}
-    spread = {key: float(1.4826 * np.median(np.abs(v - centre[key]))) for key, v in values.items()}
+    spread = {key: nmad(v) for key, v in values.items()}
     outliers = {}
     for tile_id, r in ok.items():
         off = [
@@ -123,15 +142,17 @@ def _tile_median(
         ]
         if off:
             outliers[tile_id] = {key: r[key] for key in off}
-    n = len(ok)
     report |= {
         "status": "ok",
         **centre,
         **{
-            key.replace("_m", "_se_m", 1) if key.endswith("_m") else key + "_se": spread[key]
-            / np.sqrt(n)
-            for key in _TILE_KEYS
+            key.replace("_m", "_se_m", 1) if key.endswith("_m") else key + "_se": (
+                median_standard_error(v)
+            )
+            for key, v in values.items()
         },
+        "standard_error_note": "of the median over the tiles: sqrt(pi/2) x tile NMAD / "
+        "sqrt(tiles), assuming roughly normal tile estimates",
         "tile_spread_nmad": spread,
         "outlier_tiles": outliers,
     }
