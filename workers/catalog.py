@@ -7,7 +7,7 @@ reference tiles overlap a test tile.
 from __future__ import annotations
 
 import hashlib
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from functools import lru_cache
 from pathlib import Path
@@ -15,10 +15,14 @@ from typing import Any
 
 import numpy as np
 import rasterio
+import shapely
+from numpy.typing import NDArray
 from pyproj import CRS, Transformer
 from rasterio.enums import ColorInterp
 from rasterio.errors import RasterioIOError
-from shapely import STRtree, box
+from rasterio.features import rasterize
+from shapely import STRtree, box, segmentize
+from shapely.geometry.base import BaseGeometry
 
 from workers.errors import MissingCRSError, NotElevationError, TileReadError
 from workers.grid import Grid
@@ -210,6 +214,134 @@ class TileIndex:
                 m for m in (members[i] for i in np.sort(hits)) if _overlap(m.bounds, bounds)
             )
         return found
+
+
+#: Status of a test tile whose every pixel lies in earlier-listed test tiles (not audited).
+SUPERSEDED = "superseded"
+
+
+@dataclass(frozen=True)
+class Footprint:
+    """The area of an earlier-listed test tile, in the CRS of a later test tile it overlaps."""
+
+    tile_id: str
+    geometry: BaseGeometry
+
+
+@dataclass(frozen=True)
+class Overlap:
+    """A test tile that earlier-listed test tiles overlap: their footprints in its CRS, and how
+    many of its pixel centres they hold."""
+
+    tile_id: str
+    covered: tuple[Footprint, ...]
+    covered_px: int
+    pixels: int
+
+    @property
+    def superseded(self) -> bool:
+        return self.covered_px == self.pixels
+
+
+def tile_overlaps(tests: Sequence[TileInfo]) -> dict[str, Overlap]:
+    """Test tiles whose footprints overlap earlier-listed ones (re-delivered copies, or
+    deliveries cut differently), by tile id.
+
+    The rule: every ground pixel is counted once, in the first-listed test tile whose footprint
+    holds the pixel's centre. The listing order is the spec's: its entries in order, and the
+    files of a folder or glob sorted by path (checkpoints follow the same rule: the lowest tile
+    index wins). A later tile's pixels whose centres lie in an earlier tile's footprint are left
+    out of every statistic (audit_tile's ``covered``); a tile left with none is SUPERSEDED and
+    not audited. The footprint is the tile's whole extent, voids included: a void of the
+    earlier tile is not filled from the later one. Footprints in another CRS are reprojected
+    with densified edges, so tiles in different CRSs follow the same rule. Touching is not
+    overlapping; an overlap holding no pixel centre is ignored.
+    """
+    index = TileIndex(tests)
+    order = {t.path: i for i, t in enumerate(tests)}
+    found: dict[str, Overlap] = {}
+    for i, tile in enumerate(tests):
+        earlier = [o for o in index.overlapping(tile.grid) if order[o.path] < i]
+        if not earlier:
+            continue
+        feet = tuple(Footprint(o.tile_id, _footprint(o, tile.grid.crs)) for o in earlier)
+        mask = covered_mask(tile.grid, feet)
+        covered = int(np.count_nonzero(mask))
+        if covered:
+            found[tile.tile_id] = Overlap(tile.tile_id, feet, covered, mask.size)
+    return found
+
+
+def covered_mask(grid: Grid, covered: Sequence[Footprint]) -> NDArray[np.bool_]:
+    """True for pixels of grid whose centre lies in one of the footprints (grid's CRS)."""
+    if not covered:
+        return np.zeros(grid.shape, dtype=bool)
+    burned = rasterize(
+        [(f.geometry, 1) for f in covered],
+        out_shape=grid.shape,
+        transform=grid.affine,
+        fill=0,
+        all_touched=False,
+        dtype="uint8",
+    )
+    return burned.astype(bool)
+
+
+def superseded_reason(covered: Sequence[Footprint]) -> str:
+    """Why a tile wholly covered by earlier-listed tiles is not audited."""
+    ids = ", ".join(dict.fromkeys(f.tile_id for f in covered))
+    return (
+        f"every pixel lies in earlier-listed test tile(s) {ids}, which count them (the first "
+        "listed tile counts a ground pixel once)"
+    )
+
+
+def overlap_cautions(overlaps: Mapping[str, Overlap], *, shown: int = 10) -> list[str]:
+    """One caution listing the overlapping test tiles (none without overlaps)."""
+    if not overlaps:
+        return []
+    items = []
+    for o in list(overlaps.values())[:shown]:
+        ids = ", ".join(dict.fromkeys(f.tile_id for f in o.covered))
+        state = f" (status {SUPERSEDED})" if o.superseded else ""
+        items.append(f"{o.tile_id}: {o.covered_px:,} of {o.pixels:,} pixels in {ids}{state}")
+    more = f"; and {len(overlaps) - shown} more" if len(overlaps) > shown else ""
+    return [
+        f"{len(overlaps)} test tile(s) overlap earlier-listed test tiles; each ground pixel was "
+        "counted once, in the first-listed tile covering it (spec order, paths sorted within a "
+        f"folder or glob): {'; '.join(items)}{more}"
+    ]
+
+
+def overlap_sources(overlaps: Mapping[str, Overlap]) -> dict[str, str]:
+    """For re-checks, as extra 'sources': ``covered:<tile>:<earlier tile>`` -> a digest of that
+    footprint. A tile whose covering tiles, or their footprints, changed is then recomputed."""
+    return {
+        f"covered:{tile_id}:{f.tile_id}": hashlib.sha256(f.geometry.wkb).hexdigest()[:16]
+        for tile_id, o in overlaps.items()
+        for f in o.covered
+    }
+
+
+def overlap_sources_of(overlaps: Mapping[str, Overlap], tile_id: str) -> list[str]:
+    """The keys of overlap_sources that concern one test tile."""
+    found = overlaps.get(tile_id)
+    return [f"covered:{tile_id}:{f.tile_id}" for f in found.covered] if found else []
+
+
+def _footprint(tile: TileInfo, crs: str) -> BaseGeometry:
+    """The tile's extent as a polygon in crs (edges densified when reprojected)."""
+    frame = box(*tile.bounds)
+    if tile.grid.crs == crs or _same_crs(tile.grid.crs, crs):
+        return frame
+    left, bottom, right, top = tile.bounds
+    dense = segmentize(frame, max(right - left, top - bottom) / 64)
+    transformer = _transformer(tile.grid.crs, crs)
+
+    def to_target(xy: NDArray[np.float64]) -> NDArray[np.float64]:
+        return np.column_stack(transformer.transform(xy[:, 0], xy[:, 1]))
+
+    return shapely.transform(dense, to_target)
 
 
 def _overlap(a: Sequence[float], b: Sequence[float]) -> bool:

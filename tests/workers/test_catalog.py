@@ -81,3 +81,81 @@ def test_a_multiband_land_cover_is_refused(tmp_path: Path):
     rgb = [ColorInterp.red, ColorInterp.green, ColorInterp.blue]
     found = scan_landcover_tile(_raster(tmp_path / "map.tif", bands=3, colorinterp=rgb))
     assert isinstance(found, ScanFailure) and "not a land-cover raster" in found.reason
+
+
+# --- overlapping test tiles: each ground pixel once, in the first-listed tile ---------------
+
+
+def _tile(path: Path, *, left: float, top: float, size: int = 20, crs: str = UTM32) -> TileInfo:
+    with rasterio.open(
+        path,
+        "w",
+        driver="GTiff",
+        height=size,
+        width=size,
+        count=1,
+        dtype="float32",
+        crs=crs,
+        transform=from_origin(left, top, 5.0, 5.0),
+    ) as dst:
+        dst.write(np.full((1, size, size), 100.0, dtype="float32"))
+    found = scan_tile(path)
+    assert isinstance(found, TileInfo)
+    return found
+
+
+def test_a_copy_is_superseded_and_a_half_overlap_is_masked(tmp_path: Path):
+    from workers.catalog import covered_mask, overlap_cautions, tile_overlaps
+
+    first = _tile(tmp_path / "a.tif", left=500_000, top=6_000_000)
+    copy = _tile(tmp_path / "a_copy.tif", left=500_000, top=6_000_000)
+    half = _tile(tmp_path / "b.tif", left=500_050, top=6_000_000)  # 10 of 20 columns over 'a'
+    beside = _tile(tmp_path / "c.tif", left=500_100, top=6_000_000)  # touches 'a' only
+    overlaps = tile_overlaps([first, copy, half, beside])
+    assert set(overlaps) == {"a_copy", "b", "c"}
+    assert overlaps["a_copy"].superseded and overlaps["a_copy"].covered_px == 400
+    b = overlaps["b"]
+    assert not b.superseded and b.covered_px == 200
+    assert [f.tile_id for f in b.covered] == ["a", "a_copy"]
+    mask = covered_mask(half.grid, b.covered)
+    assert mask[:, :10].all() and not mask[:, 10:].any()
+    # 'c' touches 'a' and 'a_copy' but overlaps only the later-listed 'b' (its left half)
+    assert [f.tile_id for f in overlaps["c"].covered] == ["b"]
+    assert overlaps["c"].covered_px == 200
+    (caution,) = overlap_cautions(overlaps)
+    assert "3 test tile(s) overlap earlier-listed test tiles" in caution
+    assert "a_copy: 400 of 400 pixels in a (status superseded)" in caution
+    assert "b: 200 of 400 pixels in a, a_copy" in caution
+
+
+def test_listing_order_decides_who_counts(tmp_path: Path):
+    from workers.catalog import tile_overlaps
+
+    one = _tile(tmp_path / "one.tif", left=500_000, top=6_000_000)
+    two = _tile(tmp_path / "two.tif", left=500_000, top=6_000_000)
+    assert set(tile_overlaps([one, two])) == {"two"}
+    assert set(tile_overlaps([two, one])) == {"one"}
+
+
+def test_overlaps_across_crs_follow_the_reprojected_footprint(tmp_path: Path):
+    from pyproj import Transformer
+
+    from workers.catalog import covered_mask, tile_overlaps
+
+    utm = _tile(tmp_path / "utm.tif", left=500_000, top=6_000_000, size=40)
+    to_laea = Transformer.from_crs(UTM32, "EPSG:3035", always_xy=True)
+    x, y = to_laea.transform(500_100.0, 6_000_000.0)  # top-left at the UTM tile's column 20
+    laea = _tile(tmp_path / "laea.tif", left=x, top=y, size=40, crs="EPSG:3035")
+    overlap = tile_overlaps([utm, laea])["laea"]
+    mask = covered_mask(laea.grid, overlap.covered)
+    # independent check: each LAEA pixel centre taken to UTM (pyproj) and tested against the
+    # UTM tile's bounds
+    cols, rows = np.meshgrid(np.arange(40) + 0.5, np.arange(40) + 0.5)
+    a, _, c, _, e, f = laea.grid.transform
+    east, north = Transformer.from_crs("EPSG:3035", UTM32, always_xy=True).transform(
+        c + cols * a, f + rows * e
+    )
+    left, bottom, right, top = utm.bounds
+    inside = (east > left) & (east < right) & (north > bottom) & (north < top)
+    assert 300 < inside.sum() < 1300 and not overlap.superseded
+    assert np.count_nonzero(mask != inside) <= 2  # pixels whose centre is on the edge itself
