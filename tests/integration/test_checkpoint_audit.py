@@ -157,3 +157,53 @@ def test_checkpoints_without_reference_tiles(make_archive, dask_client, tmp_path
     doc = run_job(job_spec.resolve(spec, base_dir=root), tmp_path / "out", client=dask_client)
     assert {t["status"] for t in doc["tiles"]} == {"not_audited"}
     assert doc["checkpoints"]["counts"]["used"] == 1
+
+
+def test_plain_id_x_y_height_checkpoints_are_graded_as_non_vegetated(
+    make_archive, dask_client, tmp_path
+):
+    # a checkpoint file with no class column and no land-cover raster: the points are graded as
+    # non-vegetated (as unclassified pixels are), and the document says so
+    from tests.conftest import terrain
+
+    root = make_archive(tiles=2, pixels=40, bias=0.25)
+    rng = np.random.default_rng(8)
+    e = rng.uniform(480_020, 480_380, 30)
+    n = rng.uniform(6_229_620, 6_229_980, 30)
+    heights = terrain(e, n)
+    rows = [f"p{i},{e[i]:.3f},{n[i]:.3f},{heights[i]:.4f}" for i in range(e.size)]
+    (root / "cp.csv").write_text("id,easting,northing,height\n" + "\n".join(rows) + "\n")
+    checkpoints = {"file": "cp.csv", "crs": "EPSG:32632", "vertical_crs": "EPSG:5773"}
+    grading = {"standards": ["nssda", "asprs2014", "asprs2023", "user"]}
+    grading |= {"asprs_class_cm": 10.0, "user": {"required_rmse_m": 0.30}}
+    doc = run(
+        root / "job.yaml", tmp_path / "out", dask_client, checkpoints=checkpoints, grading=grading
+    )
+    cp = doc["checkpoints"]
+    assert cp["counts"]["used"] == 30
+    # dh is the archive's 0.25 m bias (bilinear sampling of smooth terrain adds millimetres)
+    rmse = cp["vertical_accuracy"]["rmse_z_non_vegetated"]
+    assert cp["vertical_accuracy"]["count_non_vegetated"] == 30
+    assert rmse == pytest.approx(0.25, abs=0.01)
+    assumption = next(c for c in doc["cautions"] if "no land-cover class" in c)
+    assert "30 of 30" in assumption and "graded as non-vegetated" in assumption
+    by_standard = {g["standard"]: g for g in cp["grading"]}
+    nssda = by_standard["NSSDA (FGDC-STD-007.3-1998)"]
+    # NSSDA (FGDC-STD-007.3-1998, published): Accuracy_z = 1.9600 RMSE_z
+    assert nssda["accuracy_z_95_m"] == pytest.approx(1.96 * rmse)
+    assert nssda["statement"].startswith("Tested 0.4")
+    # ASPRS 2014 Table 7.5 (from memory): 10-cm class fails at RMSE 0.25 m; the 33.3-cm class
+    # (RMSE <= 0.333, NVA <= 0.653) is the best met; decided without a VVA (none vegetated)
+    e1 = by_standard["ASPRS Positional Accuracy Standards, Edition 1 (2014)"]
+    assert e1["met"] is False and e1["best_class_met"] == "33.3-cm"
+    assert "no vegetated checkpoints" in e1["scope"]
+    e2 = by_standard["ASPRS Positional Accuracy Standards, Edition 2 (2023)"]
+    assert e2["met"] is False and e2["best_class_met"] == "33.3-cm"
+    user = by_standard["user-defined class"]
+    assert user["met"] is True
+    for grade in cp["grading"]:
+        assert any("graded as non-vegetated" in a for a in grade["assumptions"])
+    residuals = list(csv.DictReader((tmp_path / "out" / "checkpoint_residuals.csv").open()))
+    assert {r["cover_group"] for r in residuals} == {"non_vegetated"}
+    report = (tmp_path / "out" / "report.html").read_text()
+    assert nssda["statement"] in report

@@ -22,3 +22,20 @@ def test_no_changed_area_samples_nothing_again_and_areas_add_up():
     assert not points_near(xs, ys, [], margin=10.0).any()
     both = [(-1.0, -1.0, 1.0, 1.0), (4999.0, 4999.0, 5001.0, 5001.0)]
     assert points_near(xs, ys, both, margin=0.0).tolist() == [True, True]
+
+
+def test_cover_cautions_state_how_unclassified_points_were_graded():
+    # our rule (issue: grade unclassified points as unclassified pixels are, and say so)
+    from service.checkpoint_run import _cover_cautions
+
+    used = [{"cover_group": "non_vegetated"}] * 3 + [{"cover_group": "unknown"}]
+    out = _cover_cautions(used, 3, "non_vegetated", have_classes=False)
+    assert "3 of 4 checkpoints have no land-cover class table" in out[0]
+    assert "graded as non-vegetated" in out[0]
+    assert "1 checkpoints have a land-cover class not listed" in out[1]
+    excluded = _cover_cautions(used[:3], 3, "excluded", have_classes=True)
+    assert excluded == [
+        "3 of 3 checkpoints have no land-cover class: left out of grading "
+        "(checkpoints.unclassified_group; unclassified pixels count as non-vegetated too)"
+    ]
+    assert _cover_cautions([{"cover_group": "vegetated"}], 0, "vegetated", True) == []
