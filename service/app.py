@@ -33,11 +33,12 @@ from fastapi import FastAPI
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service import problems
+from service.auth import Principals, load_principals
 from service.cluster import dask_client
 from service.deps import Authorized
 from service.jobs import JobDispatcher, Runner, current_job_id, recover_after_restart
 from service.jobstore import JobStore, SqliteJobStore
-from service.notify import Notifier
+from service.notify import Notifier, Resolver, system_resolver
 from service.routes import health, jobs, landing, processes, schedules
 from service.runner import run_job
 from service.scheduler import Clock, Scheduler, resolve_inputs, scaled_clock
@@ -60,19 +61,28 @@ def _default_client(settings: Settings) -> AbstractContextManager[Any]:
     )
 
 
-def check_serving(settings: Settings, *, host: str | None = None) -> None:
-    """Refuse unsafe settings: no tokens without insecure_local, insecure_local off loopback,
-    no data roots without insecure_local. Raises ValueError saying what to change."""
-    if not settings.api_tokens and not settings.insecure_local:
+def check_serving(settings: Settings, *, host: str | None = None) -> Principals:
+    """Refuse unsafe settings: no principals without insecure_local, insecure_local off
+    loopback, no data roots without insecure_local, a token or principal line that breaks the
+    policy (``service.auth``). Raises ValueError with a one-line message saying what to change;
+    returns the principals."""
+    principals = load_principals(
+        entries=settings.principals,
+        file=settings.principals_file,
+        plain_tokens=settings.api_tokens,
+    )
+    if not principals and not settings.insecure_local:
         raise ValueError(
-            "no API tokens: set DEMAUDIT_API_TOKENS (comma-separated), or pass --insecure-local "
-            "to serve without authentication on a loopback address"
+            "no principals: set DEMAUDIT_PRINCIPALS (name:role:sha256hex entries, see "
+            "`demaudit token new`) or DEMAUDIT_PRINCIPALS_FILE, or pass --insecure-local to "
+            "serve without authentication on a loopback address"
         )
-    local_only = settings.insecure_local and not settings.api_tokens
+    local_only = settings.insecure_local and not principals
     if local_only and host is not None and not _is_loopback(host):
         raise ValueError(f"--insecure-local serves only on a loopback address, not {host!r}")
     if settings.data_roots is None and not settings.insecure_local:
         raise ValueError("no data roots: set DEMAUDIT_DATA_ROOTS to the folders job specs may read")
+    return principals
 
 
 def _is_loopback(host: str) -> bool:
@@ -92,11 +102,12 @@ def create_app(
     client_factory: ClientFactory = _default_client,
     clock: Clock | None = None,
     webhook_transport: httpx.BaseTransport | None = None,
+    webhook_resolver: Resolver = system_resolver,
 ) -> FastAPI:
-    """The app. store, runner, client_factory, clock and webhook_transport (an httpx
-    transport) replace the SQLite store, the real runner, the Dask client, the scheduler's
-    clock and the network of webhook calls (tests)."""
-    check_serving(settings)
+    """The app. store, runner, client_factory, clock, webhook_transport (an httpx transport)
+    and webhook_resolver replace the SQLite store, the real runner, the Dask client, the
+    scheduler's clock, the network of webhook calls and its name resolution (tests)."""
+    principals = check_serving(settings)
     schedule_clock = clock or scaled_clock(
         speed=settings.schedule_clock_speed, anchor=settings.schedule_clock_anchor
     )
@@ -116,6 +127,8 @@ def create_app(
             backoff_s=settings.webhook_backoff_s,
             timeout_s=settings.webhook_timeout_s,
             public_url=settings.public_url,
+            allow=schedules.allowed_networks(settings.webhook_allow_networks),
+            resolve=webhook_resolver,
             transport=webhook_transport,
         )
         dispatcher = JobDispatcher(
@@ -159,6 +172,8 @@ def create_app(
         lifespan=lifespan,
     )
     app.state.settings = settings
+    app.state.principals = principals
+    app.state.webhook_resolver = webhook_resolver
     app.state.clock = schedule_clock
     problems.install(app)
     app.include_router(landing.router, dependencies=[Authorized])

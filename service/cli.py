@@ -110,6 +110,8 @@ def _parser() -> argparse.ArgumentParser:
     make.add_argument("--tiles", default="6x6", help="test tiles, COLSxROWS (default 6x6)")
     make.add_argument("--pixels", type=int, default=160, help="test tile side in pixels")
     make.add_argument("--seed", type=int, default=1)
+    make.add_argument("--force", action="store_true", help="write into a folder that is not empty")
+    make.add_argument("--quiet", action="store_true", help="no progress bar")
     make.set_defaults(handler=_cmd_make_demo)
 
     serve = sub.add_parser("serve", help="serve the REST API (OGC API - Processes)")
@@ -180,7 +182,40 @@ def _parser() -> argparse.ArgumentParser:
     remove.add_argument("id", help="schedule id")
     _add_connection_options(remove)
     remove.set_defaults(handler=_cmd_schedule_remove)
+    _add_token_parser(sub)
     return parser
+
+
+def _add_token_parser(sub: Any) -> None:
+    token = sub.add_parser("token", help="make bearer tokens for the REST service")
+    actions = token.add_subparsers(required=True, metavar="ACTION")
+    new = actions.add_parser(
+        "new", help="print a new token and the DEMAUDIT_PRINCIPALS entry (its hash) to configure"
+    )
+    new.add_argument("--name", default="user", help="principal name (default 'user')")
+    new.add_argument("--admin", action="store_true", help="the admin role (sees all jobs)")
+    new.set_defaults(handler=_cmd_token_new)
+
+
+def _cmd_token_new(args: argparse.Namespace, settings: Settings) -> int:
+    from service.auth import ADMIN, USER, TokenPolicyError, hash_token, new_token
+    from service.auth import parse_principal_line as check_line
+
+    token = new_token()
+    line = f"{args.name}:{ADMIN if args.admin else USER}:{hash_token(token)}"
+    try:
+        check_line(line, where="--name")
+    except TokenPolicyError as exc:
+        print(f"demaudit: error: {exc}", file=sys.stderr)
+        return 2
+    print(f"token: {token}")
+    print(f"DEMAUDIT_PRINCIPALS entry: {line}")
+    print(
+        "give the token to its holder (shown only now; e.g. DEMAUDIT_TOKEN for the CLI); the "
+        "server needs only the entry",
+        file=sys.stderr,
+    )
+    return 0
 
 
 def _add_connection_options(p: argparse.ArgumentParser) -> None:
@@ -349,15 +384,46 @@ def _cmd_demo(args: argparse.Namespace, settings: Settings) -> int:
 
 
 def _cmd_make_demo(args: argparse.Namespace, settings: Settings) -> int:
-    from workers.demo_archive import DemoArchiveOptions, make_demo_archive
+    from workers.demo_archive import DemoArchiveOptions, make_demo_archive, size_problem
+
+    def error(message: str) -> int:
+        print(f"demaudit: error: {message}", file=sys.stderr)
+        return 2
 
     try:
         cols, rows = (int(v) for v in args.tiles.lower().split("x"))
     except ValueError:
-        print(f"demaudit: error: --tiles must look like 8x8, got {args.tiles!r}", file=sys.stderr)
-        return 2
-    options = DemoArchiveOptions(tiles_x=cols, tiles_y=rows, pixels=args.pixels, seed=args.seed)
-    spec_path = make_demo_archive(args.out, options)
+        return error(f"--tiles must look like 8x8, got {args.tiles!r}")
+    try:
+        options = DemoArchiveOptions(tiles_x=cols, tiles_y=rows, pixels=args.pixels, seed=args.seed)
+    except ValueError as exc:
+        return error(f"{exc} (--tiles {args.tiles}, --pixels {args.pixels}, --seed {args.seed})")
+    out = Path(args.out)
+    if out.exists() and not out.is_dir():
+        return error(f"--out {out} exists and is not a folder")
+    if out.is_dir() and any(out.iterdir()) and not args.force:
+        return error(
+            f"--out {out} is not empty; choose a new or empty folder, or add --force to write "
+            "the demo archive into it (files of an earlier demo archive there are replaced)"
+        )
+    problem = size_problem(options, out)
+    if problem:
+        return error(
+            f"--tiles {args.tiles} --pixels {args.pixels} is too big here: {problem}; "
+            "use fewer --tiles or smaller --pixels"
+        )
+    bar = tqdm(total=None, unit="tile", desc="demo archive", disable=args.quiet, file=sys.stderr)
+
+    def progress(done: int, total: int) -> None:
+        bar.total = total
+        bar.update(done - bar.n)
+
+    try:
+        spec_path = make_demo_archive(out, options, progress=progress)
+    except OSError as exc:
+        return error(f"cannot write the demo archive into {out}: {exc}")
+    finally:
+        bar.close()
     print(f"demo archive written; job spec: {spec_path}")
     return 0
 

@@ -7,12 +7,12 @@ store and runner to ``create_app``.
 
 from __future__ import annotations
 
-import hmac
 from typing import Annotated, Any
 
 from fastapi import Depends, Request
 from fastapi.security import HTTPAuthorizationCredentials, HTTPBearer
 
+from service.auth import LOCAL, Principal, Principals
 from service.jobs import JobDispatcher
 from service.jobstore import JobStore
 from service.problems import UnauthorizedError
@@ -22,6 +22,7 @@ __all__ = [
     "Authorized",
     "ClientDep",
     "DispatcherDep",
+    "PrincipalDep",
     "SettingsDep",
     "StoreDep",
     "get_settings",
@@ -58,24 +59,34 @@ ClientDep = Annotated[Any, Depends(get_client)]
 
 _bearer = HTTPBearer(
     auto_error=False,
-    description="One of the tokens in DEMAUDIT_API_TOKENS.",
+    description="A principal's token (DEMAUDIT_PRINCIPALS holds its SHA-256).",
 )
+
+
+def get_principals(request: Request) -> Principals:
+    """The principals the app was created with."""
+    principals: Principals = request.app.state.principals
+    return principals
 
 
 def require_token(
     settings: SettingsDep,
+    principals: Annotated[Principals, Depends(get_principals)],
     credentials: Annotated[HTTPAuthorizationCredentials | None, Depends(_bearer)],
-) -> None:
-    """Accept the request when it carries a configured bearer token (or no tokens are set and
-    the server runs with --insecure-local)."""
-    if not settings.api_tokens and settings.insecure_local:
-        return
+) -> Principal:
+    """The principal whose bearer token the request carries (the local admin when the server
+    runs with --insecure-local and no principals); 401 otherwise."""
+    if not len(principals) and settings.insecure_local:
+        return LOCAL
     if credentials is None:
         raise UnauthorizedError("send 'Authorization: Bearer <token>'")
-    given = credentials.credentials.encode()
-    if not any(hmac.compare_digest(given, t.encode()) for t in settings.api_tokens):
+    principal = principals.identify(credentials.credentials)
+    if principal is None:
         raise UnauthorizedError("the bearer token is not valid")
+    return principal
 
 
 Authorized = Depends(require_token)
 """Route or router dependency: the request must carry a valid bearer token."""
+PrincipalDep = Annotated[Principal, Depends(require_token)]
+"""The calling principal (FastAPI resolves it once per request)."""

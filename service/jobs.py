@@ -149,9 +149,11 @@ class JobDispatcher:
         *,
         schedule_id: str | None = None,
         baseline: Path | None = None,
+        owner: str | None = None,
     ) -> JobRecord:
         """Record a new job as accepted and queue it; return its record. A scheduled run gives
-        its schedule_id, and baseline when it re-checks against an earlier run's folder."""
+        its schedule_id, and baseline when it re-checks against an earlier run's folder; owner
+        is the principal the job belongs to."""
         now = utc_now()
         record = JobRecord(
             job_id=new_job_id(),
@@ -162,6 +164,7 @@ class JobDispatcher:
             updated=now,
             inputs=inputs,
             schedule_id=schedule_id,
+            owner=owner,
         )
         with self._lock:
             if self._closing:

@@ -93,10 +93,20 @@ class JobRecord:
     """The schedule that started this job (None for a job submitted by hand)."""
     notification: dict[str, Any] | None = None
     """How the schedule's webhook call after this job went (see ``service.notify``)."""
+    owner: str | None = None
+    """The principal that submitted the job (a scheduled run: the schedule's owner); None for
+    a job recorded before owners were (visible to admins only)."""
 
 
 _COLUMNS = tuple(f.name for f in dataclasses.fields(JobRecord))
-_CHANGEABLE = frozenset(_COLUMNS) - {"job_id", "process_id", "created", "inputs", "schedule_id"}
+_CHANGEABLE = frozenset(_COLUMNS) - {
+    "job_id",
+    "process_id",
+    "created",
+    "inputs",
+    "schedule_id",
+    "owner",
+}
 
 
 class JobStore(ScheduleStore, Protocol):
@@ -124,13 +134,20 @@ class JobStore(ScheduleStore, Protocol):
         ...
 
     def find(
-        self, *, statuses: Collection[JobStatus] | None = None, limit: int = 10, offset: int = 0
+        self,
+        *,
+        statuses: Collection[JobStatus] | None = None,
+        limit: int = 10,
+        offset: int = 0,
+        owner: str | None = None,
     ) -> list[JobRecord]:
-        """Records newest first, optionally only those in statuses."""
+        """Records newest first, optionally only those in statuses and of owner."""
         ...
 
-    def count(self, *, statuses: Collection[JobStatus] | None = None) -> int:
-        """How many records (in statuses) there are."""
+    def count(
+        self, *, statuses: Collection[JobStatus] | None = None, owner: str | None = None
+    ) -> int:
+        """How many records (in statuses, of owner) there are."""
         ...
 
     def count_by_status(self) -> dict[JobStatus, int]:
@@ -157,6 +174,12 @@ def _check_changes(changes: Mapping[str, Any]) -> None:
     status = changes.get("status")
     if status is not None and status not in STATUSES:
         raise ValueError(f"unknown job status {status!r}")
+
+
+def _matches(record: JobRecord, statuses: Collection[JobStatus] | None, owner: str | None) -> bool:
+    return (statuses is None or record.status in statuses) and (
+        owner is None or record.owner == owner
+    )
 
 
 class MemoryJobStore(MemorySchedules):
@@ -194,18 +217,23 @@ class MemoryJobStore(MemorySchedules):
             return new
 
     def find(
-        self, *, statuses: Collection[JobStatus] | None = None, limit: int = 10, offset: int = 0
+        self,
+        *,
+        statuses: Collection[JobStatus] | None = None,
+        limit: int = 10,
+        offset: int = 0,
+        owner: str | None = None,
     ) -> list[JobRecord]:
         with self._lock:
-            chosen = [r for r in self._records.values() if statuses is None or r.status in statuses]
+            chosen = [r for r in self._records.values() if _matches(r, statuses, owner)]
         chosen.sort(key=lambda r: (r.created, r.job_id), reverse=True)
         return chosen[offset : offset + limit]
 
-    def count(self, *, statuses: Collection[JobStatus] | None = None) -> int:
+    def count(
+        self, *, statuses: Collection[JobStatus] | None = None, owner: str | None = None
+    ) -> int:
         with self._lock:
-            return sum(
-                1 for r in self._records.values() if statuses is None or r.status in statuses
-            )
+            return sum(1 for r in self._records.values() if _matches(r, statuses, owner))
 
     def count_by_status(self) -> dict[JobStatus, int]:
         counts = dict.fromkeys(STATUSES, 0)
@@ -244,13 +272,17 @@ CREATE TABLE IF NOT EXISTS jobs (
     tiles_total INTEGER NOT NULL DEFAULT 0,
     inputs      TEXT NOT NULL,
     schedule_id TEXT,
-    notification TEXT
+    notification TEXT,
+    owner       TEXT
 );
 CREATE INDEX IF NOT EXISTS jobs_status_created ON jobs (status, created);
 CREATE INDEX IF NOT EXISTS jobs_created ON jobs (created);
 """
-_ADDED_COLUMNS = {"schedule_id": "TEXT", "notification": "TEXT"}
-"""Columns newer than the first jobs table: added when an older file is opened."""
+_ADDED_COLUMNS = {"schedule_id": "TEXT", "notification": "TEXT", "owner": "TEXT"}
+"""Columns newer than the first jobs table: added when an older file is opened (older jobs have
+no owner: only admins see them)."""
+_LATER_INDEXES = "CREATE INDEX IF NOT EXISTS jobs_owner_created ON jobs (owner, created);"
+"""Indexes on added columns (made once the columns exist)."""
 _TIMES = ("created", "updated", "started", "finished")
 _JSON = ("inputs", "notification")
 
@@ -272,6 +304,7 @@ class SqliteJobStore(SqliteSchedules):
             for name, kind in _ADDED_COLUMNS.items():
                 if name not in present:
                     self._db.execute(f"ALTER TABLE jobs ADD COLUMN {name} {kind}")
+            self._db.executescript(_LATER_INDEXES)
             self._upgrade_schedules()
 
     def add(self, record: JobRecord) -> None:
@@ -308,16 +341,23 @@ class SqliteJobStore(SqliteSchedules):
         return _from_row(row)
 
     def find(
-        self, *, statuses: Collection[JobStatus] | None = None, limit: int = 10, offset: int = 0
+        self,
+        *,
+        statuses: Collection[JobStatus] | None = None,
+        limit: int = 10,
+        offset: int = 0,
+        owner: str | None = None,
     ) -> list[JobRecord]:
-        where, params = _status_filter(statuses)
+        where, params = _status_filter(statuses, owner)
         sql = f"SELECT * FROM jobs{where} ORDER BY created DESC, job_id DESC LIMIT ? OFFSET ?"
         with self._lock:
             rows = self._db.execute(sql, [*params, limit, offset]).fetchall()
         return [_from_row(r) for r in rows]
 
-    def count(self, *, statuses: Collection[JobStatus] | None = None) -> int:
-        where, params = _status_filter(statuses)
+    def count(
+        self, *, statuses: Collection[JobStatus] | None = None, owner: str | None = None
+    ) -> int:
+        where, params = _status_filter(statuses, owner)
         with self._lock:
             (n,) = self._db.execute(f"SELECT COUNT(*) FROM jobs{where}", params).fetchone()
         return int(n)
@@ -357,13 +397,19 @@ class SqliteJobStore(SqliteSchedules):
             self._db.close()
 
 
-def _status_filter(statuses: Collection[JobStatus] | None) -> tuple[str, list[Any]]:
-    if statuses is None:
-        return "", []
-    chosen = list(statuses)
-    if not chosen:
-        return " WHERE 0", []
-    return f" WHERE status IN ({', '.join('?' for _ in chosen)})", chosen
+def _status_filter(
+    statuses: Collection[JobStatus] | None, owner: str | None = None
+) -> tuple[str, list[Any]]:
+    clauses: list[str] = []
+    params: list[Any] = []
+    if statuses is not None:
+        chosen = list(statuses)
+        clauses.append(f"status IN ({', '.join('?' for _ in chosen)})" if chosen else "0")
+        params += chosen
+    if owner is not None:
+        clauses.append("owner = ?")
+        params.append(owner)
+    return (" WHERE " + " AND ".join(clauses) if clauses else ""), params
 
 
 def _encode(name: str, value: Any) -> Any:

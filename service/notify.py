@@ -13,15 +13,38 @@ default) or after every run (``notify: always``). The payload is the run's chang
 (``summary.json`` → ``recheck``) with the job's id, status and links. Connection errors, time-outs
 and HTTP 408, 425, 429 and 5xx are retried; other answers are final. A notification never fails a
 job or the server: the outcome is written into the job's record (``notification``).
+
+Where a webhook may go (``check_webhook_url``): http or https only; every address the host
+resolves to must be public. Loopback, link-local (cloud metadata services), private, shared,
+multicast, unspecified and reserved addresses are refused unless a network of
+``DEMAUDIT_WEBHOOK_ALLOW_NETWORKS`` holds them. The check runs when a schedule is created and
+again before every try (DNS may have changed since); redirects are never followed (a 3xx answer
+is final).
+
+Each delivery is signed (``signature_headers``) when the schedule has a secret (made at its
+creation and shown once)::
+
+    X-Demaudit-Timestamp: <POSIX seconds of this try>
+    X-Demaudit-Signature: sha256=<hex HMAC-SHA256, key = the secret's UTF-8 bytes,
+                                  message = timestamp + "." + the exact request body bytes>
+
+A receiver recomputes the HMAC over the raw body it received, compares in constant time and
+refuses timestamps older than a few minutes (replays).
 """
 
 from __future__ import annotations
 
 import contextlib
 import datetime as dt
+import hashlib
+import hmac
+import ipaddress
+import json
 import logging
+import socket
 import threading
-from collections.abc import Callable, Mapping
+import time
+from collections.abc import Callable, Iterable, Mapping, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
@@ -30,13 +53,152 @@ import httpx
 
 from service.jobstore import SUCCESSFUL, JobRecord, JobStore, ScheduleRecord
 
-__all__ = ["Delivery", "Notifier", "change_report", "deliver", "should_notify"]
+__all__ = [
+    "Delivery",
+    "IPNetwork",
+    "Notifier",
+    "Resolver",
+    "WebhookAddressError",
+    "WebhookRefusedError",
+    "WebhookUnresolvedError",
+    "change_report",
+    "check_address",
+    "check_webhook_url",
+    "deliver",
+    "redact_url",
+    "should_notify",
+    "sign",
+]
 
 RETRIED_STATUSES = frozenset({408, 425, 429})
 USER_AGENT = "demaudit/0.1.0 (webhook)"
 EVENT = "demaudit.scheduled-run"
 
+SIGNATURE_HEADER = "X-Demaudit-Signature"
+TIMESTAMP_HEADER = "X-Demaudit-Timestamp"
+
 log = logging.getLogger("demaudit.notify")
+
+IPAddress = ipaddress.IPv4Address | ipaddress.IPv6Address
+IPNetwork = ipaddress.IPv4Network | ipaddress.IPv6Network
+Resolver = Callable[[str, int], Iterable[str]]
+"""host, port -> the addresses (text) it resolves to; raises OSError when it does not."""
+
+
+class WebhookAddressError(ValueError):
+    """A webhook URL that may not be called (the message never repeats the URL)."""
+
+
+class WebhookRefusedError(WebhookAddressError):
+    """The URL's scheme or one of its host's addresses is not allowed (final)."""
+
+
+class WebhookUnresolvedError(WebhookAddressError):
+    """The URL's host does not resolve (now; it may later)."""
+
+
+def system_resolver(host: str, port: int) -> list[str]:
+    """The addresses host resolves to (``socket.getaddrinfo``)."""
+    infos = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM)
+    return [str(info[4][0]) for info in infos]
+
+
+def check_address(address: IPAddress, allow: Sequence[IPNetwork] = ()) -> None:
+    """WebhookRefusedError unless address is public or inside a network of allow. An IPv4
+    address mapped into IPv6 (::ffff:a.b.c.d) is judged as the IPv4 address."""
+    if isinstance(address, ipaddress.IPv6Address) and address.ipv4_mapped is not None:
+        address = address.ipv4_mapped
+    if any(address in network for network in allow):
+        return
+    kinds = [
+        ("loopback", address.is_loopback),
+        ("link-local", address.is_link_local),
+        ("multicast", address.is_multicast),
+        ("unspecified", address.is_unspecified),
+        ("reserved", address.is_reserved),
+        ("private", address.is_private),
+        ("not public", not address.is_global),
+    ]
+    for kind, hit in kinds:
+        if hit:
+            raise WebhookRefusedError(
+                f"the webhook's host resolves to a {kind} address ({address}); only public "
+                "addresses are called unless DEMAUDIT_WEBHOOK_ALLOW_NETWORKS names the network"
+            )
+
+
+def check_webhook_url(
+    url: str, *, allow: Sequence[IPNetwork] = (), resolve: Resolver = system_resolver
+) -> list[IPAddress]:
+    """The addresses url's host resolves to, all allowed (``check_address``); else
+    WebhookRefusedError (scheme, address) or WebhookUnresolvedError (no answer)."""
+    try:
+        parsed = httpx.URL(url)
+    except (httpx.InvalidURL, TypeError, ValueError):
+        raise WebhookRefusedError("the webhook is not a valid URL") from None
+    if parsed.scheme not in ("http", "https"):
+        raise WebhookRefusedError("the webhook must be an http or https URL")
+    host = parsed.host
+    if not host:
+        raise WebhookRefusedError("the webhook URL has no host")
+    port = parsed.port or (443 if parsed.scheme == "https" else 80)
+    addresses = _addresses(host, port, resolve)
+    for address in addresses:
+        check_address(address, allow)
+    return addresses
+
+
+def _addresses(host: str, port: int, resolve: Resolver) -> list[IPAddress]:
+    try:
+        return [ipaddress.ip_address(host)]
+    except ValueError:
+        pass
+    try:
+        found = list(resolve(host, port))
+    except (OSError, UnicodeError):
+        found = []
+    if not found:
+        raise WebhookUnresolvedError("the webhook's host does not resolve")
+    addresses: list[IPAddress] = []
+    for text in found:
+        try:
+            addresses.append(ipaddress.ip_address(text.split("%", 1)[0]))
+        except ValueError:
+            raise WebhookRefusedError("the webhook's host resolves to a non-IP") from None
+    return addresses
+
+
+def redact_url(url: str | None) -> str | None:
+    """What the API shows of a webhook URL: scheme, host and port; a path, query or user
+    part (which may carry credentials) becomes '***'."""
+    if url is None:
+        return None
+    try:
+        parsed = httpx.URL(url)
+    except (httpx.InvalidURL, TypeError, ValueError):
+        return "***"
+    port = f":{parsed.port}" if parsed.port is not None else ""
+    host = f"[{parsed.host}]" if ":" in parsed.host else parsed.host
+    hidden = parsed.userinfo or parsed.query or parsed.path not in ("", "/")
+    return f"{parsed.scheme}://{host}{port}/{'***' if hidden else ''}"
+
+
+def sign(secret: str, timestamp: str, body: bytes) -> str:
+    """The signature header's value: ``sha256=`` and the hex HMAC-SHA256 of
+    ``timestamp + "." + body`` keyed with the secret."""
+    message = timestamp.encode("ascii") + b"." + body
+    digest = hmac.new(secret.encode("utf-8"), message, hashlib.sha256).hexdigest()
+    return f"sha256={digest}"
+
+
+def signature_headers(
+    secret: str | None, body: bytes, *, now: float | None = None
+) -> dict[str, str]:
+    """The timestamp and signature headers of one try (none without a secret)."""
+    if secret is None:
+        return {}
+    timestamp = str(int(time.time() if now is None else now))
+    return {TIMESTAMP_HEADER: timestamp, SIGNATURE_HEADER: sign(secret, timestamp, body)}
 
 
 @dataclass(frozen=True)
@@ -72,16 +234,23 @@ def deliver(
     backoff_s: float = 0.5,
     timeout_s: float = 10.0,
     headers: Mapping[str, str] | None = None,
+    secret: str | None = None,
+    allow: Sequence[IPNetwork] = (),
+    resolve: Resolver = system_resolver,
     transport: httpx.BaseTransport | None = None,
     wait: Callable[[float], bool] | None = None,
 ) -> Delivery:
     """POST payload as JSON to url, up to attempts tries, waiting backoff_s before the second
     and doubling the wait before each further one.
 
+    Before each try the URL's addresses are checked (``check_webhook_url`` with allow and
+    resolve): a refused address ends the delivery, a host that does not resolve is retried.
+    With a secret each try is signed (``signature_headers``). Redirects are not followed.
     wait(seconds) does the waiting and returns True to give up early (a stop event's ``wait``);
     transport replaces the network (tests).
     """
     pause = wait if wait is not None else threading.Event().wait
+    body = json.dumps(dict(payload), separators=(",", ":"), sort_keys=True).encode("utf-8")
     delay = backoff_s
     status: int | None = None
     error: str | None = None
@@ -90,6 +259,7 @@ def deliver(
         transport=transport,
         headers={"User-Agent": USER_AGENT, **dict(headers or {})},
         follow_redirects=False,
+        trust_env=False,
     ) as http:
         for attempt in range(1, attempts + 1):
             if attempt > 1:
@@ -97,7 +267,16 @@ def deliver(
                     return Delivery(False, attempt - 1, status, f"{error}; then shut down")
                 delay *= 2
             try:
-                response = http.post(url, json=dict(payload))
+                check_webhook_url(url, allow=allow, resolve=resolve)
+            except WebhookRefusedError as exc:
+                return Delivery(False, attempt, None, f"refused: {exc}")
+            except WebhookUnresolvedError as exc:
+                status, error = None, str(exc)
+                continue
+            sent_headers = {"Content-Type": "application/json"}
+            sent_headers |= signature_headers(secret, body)
+            try:
+                response = http.post(url, content=body, headers=sent_headers)
             except httpx.HTTPError as exc:
                 status, error = None, _describe(exc)
                 continue
@@ -181,6 +360,8 @@ class Notifier:
         backoff_s: float = 0.5,
         timeout_s: float = 10.0,
         public_url: str | None = None,
+        allow: Sequence[IPNetwork] = (),
+        resolve: Resolver = system_resolver,
         transport: httpx.BaseTransport | None = None,
         max_workers: int = 2,
     ) -> None:
@@ -189,6 +370,8 @@ class Notifier:
         self._backoff_s = backoff_s
         self._timeout_s = timeout_s
         self._public_url = public_url
+        self._allow = tuple(allow)
+        self._resolve = resolve
         self._transport = transport
         self._pool = ThreadPoolExecutor(max_workers, thread_name_prefix="demaudit-webhook")
         self._stop = threading.Event()
@@ -212,7 +395,9 @@ class Notifier:
             if self._stop.is_set():
                 self._record(record.job_id, Delivery(False, 0, None, "server shut down first"))
                 return
-            future = self._pool.submit(self._send, record.job_id, schedule.webhook, payload)
+            future = self._pool.submit(
+                self._send, record.job_id, schedule.webhook, payload, schedule.webhook_secret
+            )
             self._pending[record.job_id] = future
         future.add_done_callback(lambda _: self._forget(record.job_id))
 
@@ -230,7 +415,7 @@ class Notifier:
                 with contextlib.suppress(Exception):  # _send logs its own failures
                     future.result(timeout)
 
-    def _send(self, job_id: str, url: str, payload: dict[str, Any]) -> None:
+    def _send(self, job_id: str, url: str, payload: dict[str, Any], secret: str | None) -> None:
         try:
             delivery = deliver(
                 url,
@@ -239,12 +424,15 @@ class Notifier:
                 backoff_s=self._backoff_s,
                 timeout_s=self._timeout_s,
                 headers={"X-Demaudit-Event": EVENT, "Idempotency-Key": job_id},
+                secret=secret,
+                allow=self._allow,
+                resolve=self._resolve,
                 transport=self._transport,
                 wait=self._stop.wait,
             )
         except Exception as exc:  # a malformed URL and the like: record, never raise
             log.exception("webhook call failed", extra={"job_id": job_id})
-            delivery = Delivery(False, 0, None, f"{type(exc).__name__}: {exc}")
+            delivery = Delivery(False, 0, None, f"{type(exc).__name__} (see the server log)")
         self._record(job_id, delivery)
         how = "delivered" if delivery.delivered else f"failed ({delivery.error})"
         log.info("webhook %s after %d tries", how, delivery.attempts, extra={"job_id": job_id})

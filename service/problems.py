@@ -12,7 +12,8 @@ Hierarchy of the errors the routes raise::
     ├── JobGoneError        410  results asked of a dismissed job
     ├── BadRequestError     400  malformed request (not JSON, wrong shape)
     ├── UnauthorizedError   401  missing or wrong bearer token
-    └── BodyTooLargeError   413  request body over the configured limit
+    ├── BodyTooLargeError   413  request body over the configured limit
+    └── WebhookNotAllowedError 422  a schedule's webhook may not be called (scheme, address)
 
 ``install(app)`` also maps the pipeline's own errors (``workers.errors``): a path outside the data
 roots (DataRootError) is 403, any other invalid spec (SpecError and its kin) is 422, request
@@ -49,6 +50,7 @@ __all__ = [
     "ProblemError",
     "ResultNotReadyError",
     "UnauthorizedError",
+    "WebhookNotAllowedError",
     "install",
     "problem_response",
     "responses",
@@ -128,6 +130,10 @@ class BodyTooLargeError(ProblemError):
     status, type, title = 413, _OWN + "body-too-large", "Request body too large"
 
 
+class WebhookNotAllowedError(ProblemError):
+    status, type, title = 422, _OWN + "webhook-refused", "Webhook refused"
+
+
 _FORBIDDEN = (403, _OWN + "outside-data-roots", "Path outside the data roots")
 _INVALID_SPEC = (422, _OWN + "invalid-spec", "Invalid job spec")
 _INVALID_REQUEST = (400, _OWN + "invalid-parameter", "Invalid request parameter")
@@ -174,7 +180,8 @@ _DESCRIPTIONS = {
     409: "The job failed (problem document with its reason).",
     410: "The job was dismissed (problem document).",
     413: "Request body too large (problem document).",
-    422: "Invalid job spec; the detail names each field at fault (problem document).",
+    422: "Invalid job spec or a refused webhook; the detail names each field at fault "
+    "(problem document).",
 }
 
 

@@ -271,6 +271,7 @@ class Submitter(Protocol):
         *,
         schedule_id: str | None = None,
         baseline: Path | None = None,
+        owner: str | None = None,
     ) -> JobRecord: ...
 
     def results_path(self, job_id: str) -> Path: ...
@@ -374,7 +375,11 @@ class Scheduler:
             job = self._resolve(schedule.inputs)
             baseline = self._baseline(schedule) if schedule.baseline == "latest" else None
             record = self._submitter.submit(
-                job, schedule.inputs, schedule_id=schedule.schedule_id, baseline=baseline
+                job,
+                schedule.inputs,
+                schedule_id=schedule.schedule_id,
+                baseline=baseline,
+                owner=schedule.owner,
             )
         except (AuditError, RuntimeError) as exc:  # the spec no longer resolves; shutting down
             reason = _clip(f"no job started: {exc}")

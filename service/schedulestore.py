@@ -75,6 +75,12 @@ class ScheduleRecord:
     """The last slot claimed (run, skipped or failed)."""
     last_job_id: str | None = None
     """The job of the last slot that started one."""
+    owner: str | None = None
+    """The principal that created the schedule (its runs are that principal's jobs); None for
+    a schedule made before owners were recorded (visible to admins only)."""
+    webhook_secret: str | None = None
+    """Key of the HMAC-SHA256 signature of each webhook delivery (None: deliveries unsigned,
+    a schedule made before signatures). Never shown by the API after creation."""
 
 
 @dataclass(frozen=True)
@@ -102,12 +108,14 @@ class ScheduleStore(Protocol):
         """The schedule, or None."""
         ...
 
-    def find_schedules(self, *, limit: int = 100, offset: int = 0) -> list[ScheduleRecord]:
-        """Schedules, oldest first."""
+    def find_schedules(
+        self, *, limit: int = 100, offset: int = 0, owner: str | None = None
+    ) -> list[ScheduleRecord]:
+        """Schedules, oldest first (only owner's when owner is given)."""
         ...
 
-    def count_schedules(self) -> int:
-        """How many schedules there are."""
+    def count_schedules(self, *, owner: str | None = None) -> int:
+        """How many schedules there are (of owner when given)."""
         ...
 
     def remove_schedule(self, schedule_id: str) -> bool:
@@ -179,14 +187,19 @@ class MemorySchedules:
         with self._lock:
             return self._schedules.get(schedule_id)
 
-    def find_schedules(self, *, limit: int = 100, offset: int = 0) -> list[ScheduleRecord]:
+    def find_schedules(
+        self, *, limit: int = 100, offset: int = 0, owner: str | None = None
+    ) -> list[ScheduleRecord]:
         with self._lock:
-            chosen = sorted(self._schedules.values(), key=lambda s: (s.created, s.schedule_id))
+            chosen = sorted(
+                (s for s in self._schedules.values() if owner is None or s.owner == owner),
+                key=lambda s: (s.created, s.schedule_id),
+            )
         return chosen[offset : offset + limit]
 
-    def count_schedules(self) -> int:
+    def count_schedules(self, *, owner: str | None = None) -> int:
         with self._lock:
-            return len(self._schedules)
+            return sum(1 for s in self._schedules.values() if owner is None or s.owner == owner)
 
     def remove_schedule(self, schedule_id: str) -> bool:
         with self._lock:
@@ -270,7 +283,9 @@ CREATE TABLE IF NOT EXISTS schedules (
     baseline    TEXT,
     base_url    TEXT,
     last_slot   TEXT,
-    last_job_id TEXT
+    last_job_id TEXT,
+    owner       TEXT,
+    webhook_secret TEXT
 );
 CREATE TABLE IF NOT EXISTS schedule_runs (
     schedule_id TEXT NOT NULL,
@@ -289,9 +304,14 @@ CREATE TABLE IF NOT EXISTS leases (
 );
 """
 """Tables of the schedules (run by ``SqliteJobStore`` beside its own)."""
-SCHEDULE_ADDED_COLUMNS = {"timezone": f"TEXT NOT NULL DEFAULT '{DEFAULT_TIMEZONE}'"}
+SCHEDULE_ADDED_COLUMNS = {
+    "timezone": f"TEXT NOT NULL DEFAULT '{DEFAULT_TIMEZONE}'",
+    "owner": "TEXT",
+    "webhook_secret": "TEXT",
+}
 """Columns newer than the first schedules table: added when an older file is opened (its
-schedules were all made in UTC, the default)."""
+schedules were all made in UTC, the default; they have no owner, so only admins see them, and
+no webhook secret, so their deliveries go unsigned)."""
 
 _SCHEDULE_COLUMNS = tuple(f.name for f in dataclasses.fields(ScheduleRecord))
 _RUN_COLUMNS = tuple(f.name for f in dataclasses.fields(ScheduleRun))
@@ -330,15 +350,19 @@ class SqliteSchedules:
             row = self._db.execute(sql, (schedule_id,)).fetchone()
         return None if row is None else ScheduleRecord(**_decode(row, _SCHEDULE_COLUMNS))
 
-    def find_schedules(self, *, limit: int = 100, offset: int = 0) -> list[ScheduleRecord]:
-        sql = "SELECT * FROM schedules ORDER BY created, schedule_id LIMIT ? OFFSET ?"
+    def find_schedules(
+        self, *, limit: int = 100, offset: int = 0, owner: str | None = None
+    ) -> list[ScheduleRecord]:
+        where, params = _owner_filter(owner)
+        sql = f"SELECT * FROM schedules{where} ORDER BY created, schedule_id LIMIT ? OFFSET ?"
         with self._lock:
-            rows = self._db.execute(sql, (limit, offset)).fetchall()
+            rows = self._db.execute(sql, (*params, limit, offset)).fetchall()
         return [ScheduleRecord(**_decode(r, _SCHEDULE_COLUMNS)) for r in rows]
 
-    def count_schedules(self) -> int:
+    def count_schedules(self, *, owner: str | None = None) -> int:
+        where, params = _owner_filter(owner)
         with self._lock:
-            (n,) = self._db.execute("SELECT COUNT(*) FROM schedules").fetchone()
+            (n,) = self._db.execute(f"SELECT COUNT(*) FROM schedules{where}", params).fetchone()
         return int(n)
 
     def remove_schedule(self, schedule_id: str) -> bool:
@@ -429,6 +453,10 @@ class SqliteSchedules:
             self._db.execute("ROLLBACK")
             raise
         self._db.execute("COMMIT")
+
+
+def _owner_filter(owner: str | None) -> tuple[str, tuple[str, ...]]:
+    return ("", ()) if owner is None else (" WHERE owner = ?", (owner,))
 
 
 def _encode(name: str, value: Any) -> Any:

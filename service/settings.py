@@ -1,12 +1,15 @@
 """Settings, read once from the environment (prefix ``DEMAUDIT_``) and passed down explicitly.
 
-List-valued settings (``DEMAUDIT_API_TOKENS``, ``DEMAUDIT_DATA_ROOTS``, ``DEMAUDIT_GRID_DIRS``)
-take either a JSON list or a comma-separated string.
+List-valued settings (``DEMAUDIT_PRINCIPALS``, ``DEMAUDIT_API_TOKENS``, ``DEMAUDIT_DATA_ROOTS``,
+``DEMAUDIT_GRID_DIRS``, ``DEMAUDIT_WEBHOOK_ALLOW_NETWORKS``) take either a JSON list or a
+comma-separated string. Tokens and principals are checked when the server starts
+(``service.app.check_serving``), so a bad one is a one-line error there, not here.
 """
 
 from __future__ import annotations
 
 import datetime as dt
+import ipaddress
 import json
 from functools import lru_cache
 from pathlib import Path
@@ -37,9 +40,17 @@ class Settings(BaseSettings):
     """SQLite file of the REST service's job records."""
 
     # --- REST service -----------------------------------------------------------------------
+    principals: Annotated[tuple[str, ...], NoDecode] = ()
+    """Who may call the REST service: ``name:role:sha256hex`` entries (role ``user`` or
+    ``admin``; the SHA-256 of the principal's bearer token, as ``demaudit token new`` prints).
+    A user sees only its own jobs and schedules; an admin sees all. Without any principal (here,
+    in principals_file or api_tokens) the service refuses to start unless ``insecure_local`` is
+    set (and then it must bind to a loopback address)."""
+    principals_file: Path | None = None
+    """A file of ``name:role:sha256hex`` lines (``#`` comments), e.g. a mounted secret."""
     api_tokens: Annotated[tuple[str, ...], NoDecode] = ()
-    """Bearer tokens accepted by the REST service; without any the service refuses to start
-    unless ``insecure_local`` is set (and then it must bind to a loopback address)."""
+    """Deprecated: plain bearer tokens, each its own principal ``token-<8 hex of its hash>``
+    with the user role. Prefer principals."""
     insecure_local: bool = False
     """Serve without authentication (loopback only; ``demaudit serve --insecure-local``)."""
     results_dir: Path = Path("demaudit-results")
@@ -73,8 +84,18 @@ class Settings(BaseSettings):
     """Wait before the second try; it doubles before each further one."""
     webhook_timeout_s: float = Field(default=10.0, gt=0)
     """Time limit of one webhook request."""
+    webhook_allow_networks: Annotated[tuple[str, ...], NoDecode] = ()
+    """Networks (CIDR, e.g. 10.20.0.0/16 or 127.0.0.1/32) webhooks may reach although they are
+    not public: loopback, private, link-local and the like are refused otherwise."""
 
-    @field_validator("api_tokens", "grid_dirs", "data_roots", mode="before")
+    @field_validator(
+        "principals",
+        "api_tokens",
+        "grid_dirs",
+        "data_roots",
+        "webhook_allow_networks",
+        mode="before",
+    )
     @classmethod
     def _split_list(cls, value: Any) -> Any:
         """Accept a JSON list or a comma-separated string from the environment."""
@@ -96,12 +117,20 @@ class Settings(BaseSettings):
             raise ValueError("schedule_lease_s must outlast schedule_tick_s (real seconds)")
         return self
 
-    @field_validator("api_tokens")
+    @field_validator("webhook_allow_networks")
     @classmethod
-    def _long_enough(cls, value: tuple[str, ...]) -> tuple[str, ...]:
-        if any(len(token) < 16 for token in value):
-            raise ValueError("every API token needs at least 16 characters")
+    def _networks(cls, value: tuple[str, ...]) -> tuple[str, ...]:
+        for text in value:
+            try:
+                ipaddress.ip_network(text, strict=False)
+            except ValueError:
+                raise ValueError(f"not a network (CIDR such as 10.0.0.0/8): {text!r}") from None
         return value
+
+    @property
+    def has_principals(self) -> bool:
+        """Whether any principal or token is configured (not whether they are valid)."""
+        return bool(self.principals or self.principals_file or self.api_tokens)
 
 
 @lru_cache

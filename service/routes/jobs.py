@@ -11,7 +11,8 @@ from typing import Annotated, Any
 from fastapi import APIRouter, Path, Query, Request
 from fastapi.responses import FileResponse
 
-from service.deps import DispatcherDep, StoreDep
+from service.auth import Principal
+from service.deps import DispatcherDep, PrincipalDep, StoreDep
 from service.jobs import PROCESS_ID, JobDispatcher
 from service.jobstore import ACCEPTED, DISMISSED, FAILED, RUNNING, JobRecord, JobStatus, JobStore
 from service.problems import (
@@ -31,9 +32,11 @@ MAX_OFFSET = 10**9
 JobId = Annotated[str, Path(alias="jobID", description="The job's id.")]
 
 
-def _record(store: JobStore, job_id: str) -> JobRecord:
+def _record(store: JobStore, job_id: str, principal: Principal) -> JobRecord:
+    """The job's record when principal may see it; otherwise the same 404 as for a job that
+    does not exist (ids of others' jobs do not leak)."""
     record = store.get(job_id) if len(job_id) <= 64 else None
-    if record is None:
+    if record is None or not principal.may_access(record.owner):
         raise NoSuchJobError(f"there is no job {job_id!r}")
     return record
 
@@ -73,17 +76,20 @@ def _load_summary(path: str, stamp: int) -> dict[str, Any]:
 def list_jobs(
     request: Request,
     store: StoreDep,
+    principal: PrincipalDep,
     status: Annotated[list[JobStatus] | None, Query(description="Only jobs in these.")] = None,
     process_id: Annotated[list[str] | None, Query(alias="processID")] = None,
     limit: Annotated[int, Query(ge=1, le=1000)] = 10,
     offset: Annotated[int, Query(ge=0, le=MAX_OFFSET)] = 0,
 ) -> JobList:
-    """The jobs, newest first; filter by status and page with limit and offset."""
+    """The caller's jobs (an admin's: all jobs), newest first; filter by status and page with
+    limit and offset."""
     statuses = set(status) if status else None
     if process_id is not None and PROCESS_ID not in process_id:
         statuses = set()
-    matched = store.count(statuses=statuses)
-    records = store.find(statuses=statuses, limit=limit, offset=offset)
+    owner = principal.owner_filter
+    matched = store.count(statuses=statuses, owner=owner)
+    records = store.find(statuses=statuses, limit=limit, offset=offset, owner=owner)
     links = [Link(href=str(request.url), rel="self", type=JSON)]
     if offset + len(records) < matched:
         links.append(
@@ -112,9 +118,11 @@ def list_jobs(
 
 
 @router.get("/{jobID}", name="get_job", response_model=StatusInfo, responses=responses(404))
-def get_job(job_id: JobId, request: Request, store: StoreDep) -> StatusInfo:
+def get_job(
+    job_id: JobId, request: Request, store: StoreDep, principal: PrincipalDep
+) -> StatusInfo:
     """The status of a job."""
-    return status_document(request, _record(store, job_id))
+    return status_document(request, _record(store, job_id, principal))
 
 
 @router.delete("/{jobID}", name="dismiss_job", response_model=StatusInfo, responses=responses(404))
@@ -123,9 +131,10 @@ def dismiss_job(
     request: Request,
     store: StoreDep,
     dispatcher: DispatcherDep,
+    principal: PrincipalDep,
 ) -> StatusInfo:
     """Dismiss a job: stop it (its tile tasks are cancelled on the cluster), drop its results."""
-    _record(store, job_id)
+    _record(store, job_id, principal)
     record = dispatcher.dismiss(job_id)
     if record is None:
         raise NoSuchJobError(f"there is no job {job_id!r}")
@@ -138,9 +147,10 @@ def job_results(
     request: Request,
     store: StoreDep,
     dispatcher: DispatcherDep,
+    principal: PrincipalDep,
 ) -> dict[str, Any]:
     """The results of a successful job: the summary document and a link to results.zarr."""
-    record = _record(store, job_id)
+    record = _record(store, job_id, principal)
     summary = _summary_of(dispatcher, record)
     return {
         "summary": summary,
@@ -159,9 +169,10 @@ def job_tile(
     request: Request,
     store: StoreDep,
     dispatcher: DispatcherDep,
+    principal: PrincipalDep,
 ) -> dict[str, Any]:
     """One test tile of a successful job: status, reason, bounds and statistics."""
-    summary = _summary_of(dispatcher, _record(store, job_id))
+    summary = _summary_of(dispatcher, _record(store, job_id, principal))
     for entry in summary["tiles"]:
         if entry["tile"] == tile:
             return entry | {"links": _item_links(request, job_id)}
@@ -175,9 +186,10 @@ def job_region(
     request: Request,
     store: StoreDep,
     dispatcher: DispatcherDep,
+    principal: PrincipalDep,
 ) -> dict[str, Any]:
     """One region of a successful job: statistics, outlier-free statistics and strata."""
-    summary = _summary_of(dispatcher, _record(store, job_id))
+    summary = _summary_of(dispatcher, _record(store, job_id, principal))
     for entry in summary["regions"]:
         if entry["region"] == region:
             return entry | {"links": _item_links(request, job_id)}
@@ -192,9 +204,10 @@ def job_results_file(
     path: str,
     store: StoreDep,
     dispatcher: DispatcherDep,
+    principal: PrincipalDep,
 ) -> FileResponse:
     """A file of the job's results.zarr (read-only), so Zarr readers can open it over HTTP."""
-    zarr_dir = _finished_output(dispatcher, _record(store, job_id)) / "results.zarr"
+    zarr_dir = _finished_output(dispatcher, _record(store, job_id, principal)) / "results.zarr"
     try:
         root = zarr_dir.resolve(strict=True)
         target = (root / path).resolve(strict=True)

@@ -8,7 +8,7 @@ from fastapi import APIRouter, Header, Request, Response
 from fastapi import Path as PathParam
 from pydantic import BaseModel, ConfigDict, Field
 
-from service.deps import DispatcherDep, SettingsDep
+from service.deps import DispatcherDep, PrincipalDep, SettingsDep
 from service.jobs import PROCESS_ID
 from service.problems import NoSuchProcessError, responses
 from service.routes.documents import (
@@ -145,6 +145,7 @@ def execute(
     response: Response,
     settings: SettingsDep,
     dispatcher: DispatcherDep,
+    principal: PrincipalDep,
     prefer: Annotated[str | None, Header()] = None,
 ) -> StatusInfo:
     """Start a job (always asynchronous); the Location header names its status document."""
@@ -152,7 +153,7 @@ def execute(
     # relative paths resolve against the first data root (the server's folder without roots,
     # which only --insecure-local allows)
     job = job_spec.resolve_in_roots(body.inputs, data_roots=settings.data_roots)
-    record = dispatcher.submit(job, body.inputs.model_dump(mode="json"))
+    record = dispatcher.submit(job, body.inputs.model_dump(mode="json"), owner=principal.name)
     document = status_document(request, record)
     response.headers["Location"] = str(request.url_for("get_job", jobID=record.job_id))
     if prefer and "respond-async" in prefer:

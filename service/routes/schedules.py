@@ -1,19 +1,24 @@
 """Schedules: a job spec run on a cron schedule (nightly re-checks), with its runs and webhook.
 
 The runs are ordinary jobs (``/jobs``) whose status documents name the schedule; the scheduler
-that starts them is ``service.scheduler``.
+that starts them is ``service.scheduler``. A schedule belongs to the principal that created it,
+and so do its runs; other principals (unless admins) get 404 for it. The webhook URL is shown
+redacted to everyone; its signing secret only once, in the creation response.
 """
 
 from __future__ import annotations
 
 import datetime as dt
+import ipaddress
+import secrets
 import uuid
 from typing import Annotated, Any, Literal
 
 from fastapi import APIRouter, Path, Query, Request, Response
 from pydantic import BaseModel, ConfigDict, Field, HttpUrl, field_validator
 
-from service.deps import SettingsDep, StoreDep
+from service.auth import Principal
+from service.deps import PrincipalDep, SettingsDep, StoreDep
 from service.jobstore import (
     JobStatus,
     JobStore,
@@ -22,7 +27,8 @@ from service.jobstore import (
     ScheduleRecord,
     ScheduleRun,
 )
-from service.problems import NoSuchScheduleError, responses
+from service.notify import IPNetwork, Resolver, WebhookAddressError, check_webhook_url, redact_url
+from service.problems import NoSuchScheduleError, WebhookNotAllowedError, responses
 from service.routes.documents import JSON, Link
 from service.scheduler import (
     Clock,
@@ -61,7 +67,11 @@ class ScheduleRequest(BaseModel):
     )
     inputs: JobSpec = Field(description="The job spec, as in an execute request.")
     webhook: HttpUrl | None = Field(
-        default=None, description="URL to POST the change report to (see notify)."
+        default=None,
+        description="http(s) URL to POST the change report to (see notify); its host must "
+        "resolve to public addresses (or networks the server allows). Each delivery is signed: "
+        "X-Demaudit-Signature: sha256=<hex HMAC-SHA256 of timestamp + '.' + body, keyed with "
+        "webhookSecret>, X-Demaudit-Timestamp: <POSIX seconds>.",
     )
     notify: NotifyWhen = Field(
         default="regressions",
@@ -111,7 +121,11 @@ class ScheduleInfo(BaseModel):
     timezone: str = Field(description="IANA time zone whose wall clock the cron follows.")
     notify: NotifyWhen
     baseline: Literal["latest"] | None
-    webhook: str | None
+    webhook: str | None = Field(
+        description="The webhook's scheme, host and port; the rest (path, query, user) is "
+        "shown as '***'."
+    )
+    owner: str | None = Field(description="The principal the schedule and its runs belong to.")
     created: dt.datetime
     nextRun: dt.datetime | None = Field(  # noqa: N815
         description="The next slot, as a UTC time (the cron read in timezone)."
@@ -125,6 +139,15 @@ class ScheduleDetail(ScheduleInfo):
 
     inputs: dict[str, Any]
     runs: list[ScheduleRunInfo]
+
+
+class ScheduleCreated(ScheduleDetail):
+    """A new schedule, with the webhook's signing secret (shown this once)."""
+
+    webhookSecret: str | None = Field(  # noqa: N815
+        description="Key of the HMAC-SHA256 signature of each webhook delivery; keep it, it is "
+        "never shown again (None without a webhook)."
+    )
 
 
 class ScheduleList(BaseModel):
@@ -141,9 +164,10 @@ def _clock(request: Request) -> Clock:
     return clock
 
 
-def _schedule(store: JobStore, schedule_id: str) -> ScheduleRecord:
+def _schedule(store: JobStore, schedule_id: str, principal: Principal) -> ScheduleRecord:
+    """The schedule when principal may see it; the same 404 as for none otherwise."""
     schedule = store.get_schedule(schedule_id) if len(schedule_id) <= 64 else None
-    if schedule is None:
+    if schedule is None or not principal.may_access(schedule.owner):
         raise NoSuchScheduleError(f"there is no schedule {schedule_id!r}")
     return schedule
 
@@ -183,7 +207,8 @@ def _info(request: Request, store: JobStore, schedule: ScheduleRecord) -> dict[s
         "timezone": schedule.timezone,
         "notify": schedule.notify,
         "baseline": schedule.baseline,
-        "webhook": schedule.webhook,
+        "webhook": redact_url(schedule.webhook),
+        "owner": schedule.owner,
         "created": schedule.created,
         "nextRun": _next_run(schedule, _clock(request)()),
         "lastRun": _run_info(request, store, last[0]) if last else None,
@@ -212,7 +237,7 @@ def _detail(request: Request, store: JobStore, schedule: ScheduleRecord) -> Sche
     "",
     name="create_schedule",
     status_code=201,
-    response_model=ScheduleDetail,
+    response_model=ScheduleCreated,
     responses=responses(400, 403, 413, 422),
 )
 def create_schedule(
@@ -221,10 +246,15 @@ def create_schedule(
     response: Response,
     settings: SettingsDep,
     store: StoreDep,
-) -> ScheduleDetail:
-    """Run a job spec on a cron schedule; the Location header names the new schedule."""
+    principal: PrincipalDep,
+) -> ScheduleCreated:
+    """Run a job spec on a cron schedule; the Location header names the new schedule. The
+    answer carries the webhook's signing secret, this once."""
     inputs = body.inputs.model_dump(mode="json")
     resolve_inputs(inputs, data_roots=settings.data_roots)  # refuse what could never run
+    webhook = str(body.webhook) if body.webhook is not None else None
+    if webhook is not None:
+        _check_webhook(request, webhook, settings.webhook_allow_networks)
     now = _clock(request)()
     schedule = ScheduleRecord(
         schedule_id=uuid.uuid4().hex,
@@ -233,28 +263,54 @@ def create_schedule(
         timezone=body.timezone,
         inputs=inputs,
         created=now.replace(microsecond=now.microsecond // 1000 * 1000),
-        webhook=str(body.webhook) if body.webhook is not None else None,
+        webhook=webhook,
         notify=body.notify,
         baseline=body.baseline,
         base_url=str(request.base_url).rstrip("/"),
+        owner=principal.name,
+        webhook_secret=secrets.token_urlsafe(32) if webhook is not None else None,
     )
     store.add_schedule(schedule)
     response.headers["Location"] = str(
         request.url_for("get_schedule", scheduleID=schedule.schedule_id)
     )
-    return _detail(request, store, schedule)
+    detail = _detail(request, store, schedule)
+    return ScheduleCreated(**detail.model_dump(), webhookSecret=schedule.webhook_secret)
+
+
+def webhook_resolver(request: Request) -> Resolver:
+    """The name resolver webhook checks use (``create_app``'s, replaced in tests)."""
+    resolver: Resolver = request.app.state.webhook_resolver
+    return resolver
+
+
+def allowed_networks(texts: tuple[str, ...]) -> list[IPNetwork]:
+    """The allow-list setting as networks (validated by the settings)."""
+    return [ipaddress.ip_network(text, strict=False) for text in texts]
+
+
+def _check_webhook(request: Request, url: str, allow: tuple[str, ...]) -> None:
+    try:
+        check_webhook_url(url, allow=allowed_networks(allow), resolve=webhook_resolver(request))
+    except WebhookAddressError as exc:
+        field = "body.webhook"
+        raise WebhookNotAllowedError(
+            f"{field}: {exc}", errors=[{"field": field, "message": str(exc), "type": "webhook"}]
+        ) from None
 
 
 @router.get("", name="list_schedules", response_model=ScheduleList, responses=responses(400))
 def list_schedules(
     request: Request,
     store: StoreDep,
+    principal: PrincipalDep,
     limit: Annotated[int, Query(ge=1, le=1000)] = 100,
     offset: Annotated[int, Query(ge=0, le=10**9)] = 0,
 ) -> ScheduleList:
-    """The schedules, oldest first; page with limit and offset."""
-    matched = store.count_schedules()
-    chosen = store.find_schedules(limit=limit, offset=offset)
+    """The caller's schedules (an admin's: all), oldest first; page with limit and offset."""
+    owner = principal.owner_filter
+    matched = store.count_schedules(owner=owner)
+    chosen = store.find_schedules(limit=limit, offset=offset, owner=owner)
     links = [Link(href=str(request.url), rel="self", type=JSON)]
     if offset + len(chosen) < matched:
         href = str(request.url.include_query_params(offset=offset + limit, limit=limit))
@@ -270,15 +326,17 @@ def list_schedules(
 @router.get(
     "/{scheduleID}", name="get_schedule", response_model=ScheduleDetail, responses=responses(404)
 )
-def get_schedule(schedule_id: ScheduleId, request: Request, store: StoreDep) -> ScheduleDetail:
+def get_schedule(
+    schedule_id: ScheduleId, request: Request, store: StoreDep, principal: PrincipalDep
+) -> ScheduleDetail:
     """A schedule: its spec, next run and recent runs with their jobs."""
-    return _detail(request, store, _schedule(store, schedule_id))
+    return _detail(request, store, _schedule(store, schedule_id, principal))
 
 
 @router.delete("/{scheduleID}", name="delete_schedule", status_code=204, responses=responses(404))
-def delete_schedule(schedule_id: ScheduleId, store: StoreDep) -> Response:
+def delete_schedule(schedule_id: ScheduleId, store: StoreDep, principal: PrincipalDep) -> Response:
     """Delete a schedule: no further runs; its jobs (and a run still going) stay."""
-    _schedule(store, schedule_id)
+    _schedule(store, schedule_id, principal)
     if not store.remove_schedule(schedule_id):
         raise NoSuchScheduleError(f"there is no schedule {schedule_id!r}")
     return Response(status_code=204)

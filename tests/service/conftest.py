@@ -19,10 +19,9 @@ from service.app import create_app
 from service.jobstore import JobStore, MemoryJobStore
 from service.runner import JobDismissedError
 from service.settings import Settings
+from tests.service.tokens import AUTH, PRINCIPALS
 from workers.spec import ResolvedJob
 
-TOKEN = "test-token-0123456789"
-AUTH = {"Authorization": f"Bearer {TOKEN}"}
 SPEC = {
     "name": "unit-job",
     "test": {"tiles": "test/*.tif", "vertical_crs": "ellipsoidal", "units": "metre"},
@@ -105,7 +104,7 @@ def data_root(tmp_path: Path) -> Path:
 @pytest.fixture
 def settings(tmp_path: Path, data_root: Path) -> Settings:
     return Settings(
-        api_tokens=(TOKEN,),
+        principals=PRINCIPALS,
         data_roots=(data_root,),
         results_dir=tmp_path / "results",
         job_store=tmp_path / "jobs.sqlite",
@@ -128,9 +127,26 @@ def store() -> JobStore:
 
 @pytest.fixture
 def api(settings: Settings, store: JobStore, runner: ScriptedRunner) -> Iterator[TestClient]:
-    app = create_app(settings, store=store, runner=runner, client_factory=fake_cluster)
+    app = create_app(
+        settings,
+        store=store,
+        runner=runner,
+        client_factory=fake_cluster,
+        webhook_resolver=public_resolver,
+    )
     with TestClient(app, headers=AUTH) as client:
         yield client
+
+
+def public_resolver(host: str, port: int) -> list[str]:
+    """Stands in for DNS in the API tests (no test looks a name up): *.example.org gets a
+    public address (93.184.216.34, never called: no test delivers there), 'localhost' the
+    loopback ones; anything else does not resolve."""
+    if host == "localhost":
+        return ["127.0.0.1", "::1"]
+    if host == "example.org" or host.endswith(".example.org"):
+        return ["93.184.216.34"]
+    raise OSError(f"stub resolver: no address for {host}")
 
 
 def _wait_for(
@@ -176,6 +192,12 @@ def submit() -> Callable[..., str]:
 def spec() -> dict[str, Any]:
     """A valid spec for the data_root fixture (a fresh copy)."""
     return json.loads(json.dumps(SPEC))
+
+
+@pytest.fixture
+def resolver() -> Callable[[str, int], list[str]]:
+    """The stub name resolver for create_app(webhook_resolver=...)."""
+    return public_resolver
 
 
 @pytest.fixture

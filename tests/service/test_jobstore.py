@@ -138,3 +138,16 @@ def test_paging_visits_every_matching_job_once_newest_first(statuses, limit, cho
     )
     assert seen == want
     assert store.count(statuses=chosen) == len(want)
+
+
+def test_jobs_keep_their_owner_and_filter_by_it(make_store):
+    store = make_store()
+    for n, owner in enumerate(["alice", "bob", "alice", None]):
+        store.add(record(n, SUCCESSFUL if n % 2 else ACCEPTED, owner=owner))
+    assert store.get(record(0).job_id).owner == "alice"
+    assert [r.job_id for r in store.find(owner="alice")] == [record(2).job_id, record(0).job_id]
+    assert store.count(owner="alice") == 2 and store.count() == 4
+    assert store.count(owner="alice", statuses={ACCEPTED}) == 2
+    assert store.find(owner="bob", statuses={ACCEPTED}) == []
+    with pytest.raises(ValueError, match="owner"):
+        store.update(record(0).job_id, {"owner": "bob"})  # a job never changes hands

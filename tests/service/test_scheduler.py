@@ -346,11 +346,11 @@ class FakeSubmitter:
     finish_at_once: bool = False
     submitted: list[tuple[str, str | None, Path | None]] = field(default_factory=list)
 
-    def submit(self, job, inputs, *, schedule_id=None, baseline=None) -> JobRecord:
+    def submit(self, job, inputs, *, schedule_id=None, baseline=None, owner=None) -> JobRecord:
         job_id = f"{random.getrandbits(128):032x}"
         now = dt.datetime.now(UTC)
         record = JobRecord(job_id, "dem-audit", ACCEPTED, "m", now, now, inputs=inputs,
-                           schedule_id=schedule_id)  # fmt: skip
+                           schedule_id=schedule_id, owner=owner)  # fmt: skip
         self.store.add(record)
         if self.finish_at_once:
             self.store.update(job_id, {"status": SUCCESSFUL})

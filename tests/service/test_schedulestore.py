@@ -138,8 +138,12 @@ def test_an_older_sqlite_file_gains_the_new_columns(tmp_path):
     try:
         old = store.get("j0")
         assert old is not None and old.schedule_id is None and old.notification is None
+        assert old.owner is None  # made before owners: admins only
         store.add_schedule(schedule(1))
         assert store.count_schedules() == 1
+        store.add(JobRecord("j1", "dem-audit", "accepted", "m", T0, T0, owner="alice"))
+        assert [r.job_id for r in store.find(owner="alice")] == ["j1"]
+        assert store.count(owner="alice") == 1 and store.count() == 2
     finally:
         store.close()
 
@@ -163,6 +167,7 @@ def test_an_older_sqlite_file_gains_the_schedule_time_zone(tmp_path):
     try:
         old = store.get_schedule("s0")
         assert old is not None and (old.timezone, old.cron, old.created) == ("UTC", "0 2 * * *", T0)
+        assert old.owner is None and old.webhook_secret is None
         store.add_schedule(schedule(1, timezone="Europe/Oslo"))
     finally:
         store.close()
@@ -175,3 +180,17 @@ def test_an_older_sqlite_file_gains_the_schedule_time_zone(tmp_path):
     with sqlite3.connect(path) as db:
         columns = {row[1]: row for row in db.execute("PRAGMA table_info(schedules)")}
     assert columns["timezone"][2:5] == ("TEXT", 1, "'UTC'")  # type, NOT NULL, default
+
+
+def test_schedules_keep_their_owner_and_secret_and_list_by_owner(store):
+    store.add_schedule(
+        schedule(1, owner="alice", webhook="https://h.example/x", webhook_secret="k")
+    )
+    store.add_schedule(schedule(2, owner="bob"))
+    store.add_schedule(schedule(3, owner="alice"))
+    first = store.get_schedule("s1")
+    assert first is not None and (first.owner, first.webhook_secret) == ("alice", "k")
+    assert [s.schedule_id for s in store.find_schedules(owner="alice")] == ["s1", "s3"]
+    assert [s.schedule_id for s in store.find_schedules(owner="alice", offset=1)] == ["s3"]
+    assert store.count_schedules(owner="bob") == 1 and store.count_schedules() == 3
+    assert store.find_schedules(owner="carol") == [] and store.count_schedules(owner="carol") == 0
