@@ -227,9 +227,7 @@ def quantile_bounds(s: DhSummary, p: ArrayLike) -> NDArray[np.float64]:
     return _interpolated_bounds(s, p, lambda ranks: order_statistic_brackets(s, ranks))
 
 
-def abs_quantile_bounds(
-    s: DhSummary, p: ArrayLike, *, center: float = 0.0
-) -> NDArray[np.float64]:
+def abs_quantile_bounds(s: DhSummary, p: ArrayLike, *, center: float = 0.0) -> NDArray[np.float64]:
     """Bound (metres) on |abs_quantile(s, p, center=center) - the exact quantile of
     |value - center||."""
     # abs_order_statistics bisects 64 times from [0, 1.000001 x the farthest distance]

@@ -235,3 +235,16 @@ def test_user_rmse_class_is_graded_without_land_cover():
 def test_cover_group_of_a_checkpoint(landcover, groups, default, expected):
     # unclassified points follow unclassified pixels (non-vegetated by default): our rule
     assert grading.cover_group(landcover, groups, unclassified_group=default) == expected
+
+
+def test_spec_names_the_group_of_unclassified_checkpoints():
+    from pydantic import ValidationError
+
+    from workers.spec import CheckpointSource
+
+    base = {"file": "cp.csv", "vertical_crs": "EPSG:5773"}
+    assert CheckpointSource(**base).unclassified_group == "non_vegetated"
+    chosen = CheckpointSource(**base, unclassified_group="excluded")
+    assert chosen.unclassified_group == "excluded"
+    with pytest.raises(ValidationError, match="unclassified_group"):
+        CheckpointSource(**base, unclassified_group="forest")
