@@ -6,7 +6,9 @@ from collections.abc import Mapping, Sequence
 from typing import Any
 
 from workers import summary as dh_summary
+from workers.grading import QUALITY_LEVELS_CM
 from workers.robust import confidence_intervals, without_outliers
+from workers.spec import Grading
 from workers.summary import DhSummary
 
 SIGN = "test minus reference"
@@ -89,6 +91,46 @@ def datum_cautions(stats: Mapping[str, Any]) -> list[str]:
         "heights) and the units (metre, foot, US survey foot) of both sides before reading "
         "these figures as accuracy"
     ]
+
+
+def vertical_accuracy_cautions(
+    transformations: Sequence[Mapping[str, Any]], grading: Grading
+) -> list[str]:
+    """A caution for each vertical datum conversion (records of
+    :func:`workers.datum.vertical_transformations`) whose accuracy as PROJ states it is worse
+    than the finest RMSE class graded, or unknown."""
+    finest = finest_graded_rmse(grading)
+    cautions = []
+    for t in transformations:
+        what = (
+            f"the {t['role']} heights' conversion {t['from']} -> {t['to']} "
+            f"({'; '.join(t['operations'])})"
+        )
+        accuracy = t.get("accuracy_m")
+        if accuracy is None:
+            cautions.append(f"PROJ states no accuracy for {what}; its error is not bounded here")
+        elif finest is not None and accuracy > finest[0]:
+            cautions.append(
+                f"PROJ states an accuracy of {accuracy:g} m for {what}, coarser than the finest "
+                f"class graded ({finest[1]}: RMSE {finest[0]:g} m); the conversion alone may "
+                "exceed that class unless both sides' heights were derived with the same model"
+            )
+    return cautions
+
+
+def finest_graded_rmse(grading: Grading) -> tuple[float, str] | None:
+    """The smallest RMSE (metres) a graded class requires, and its name: the ASPRS class, the
+    quality level's RMSE_z and the user-defined RMSE, among the standards graded."""
+    graded = set(grading.standards)
+    classes = []
+    if graded & {"asprs2014", "asprs2023"}:
+        classes.append((grading.asprs_class_cm / 100, f"ASPRS {grading.asprs_class_cm:g} cm"))
+    if "quality_level" in graded:
+        rmse_cm = QUALITY_LEVELS_CM[grading.quality_level][0]
+        classes.append((rmse_cm / 100, f"quality level {grading.quality_level}"))
+    if "user" in graded and "required_rmse_m" in grading.user:
+        classes.append((grading.user["required_rmse_m"], "user-defined RMSE"))
+    return min(classes) if classes else None
 
 
 def build_summary(
