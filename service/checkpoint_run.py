@@ -243,12 +243,11 @@ def _section(
         g.region_id: shapely.intersects_xy(g.geometry, xs, ys)
         for g in regions.get(tests[0].grid.crs, [])
     }
-    unclassified = 0
+    group = unclassified_group or "non_vegetated"
     for r in used:
-        r["cover_group"], no_class = grading.cover_group(
-            r.get("landcover"), group_of, unclassified_group=unclassified_group or "non_vegetated"
+        r["cover_group"], r["unclassified"] = grading.cover_group(
+            r.get("landcover"), group_of, unclassified_group=group
         )
-        unclassified += no_class
     dh = np.array([r["dh_m"] for r in used])
     nv = np.array([r["dh_m"] for r in used if r["cover_group"] == "non_vegetated"])
     veg = np.array([r["dh_m"] for r in used if r["cover_group"] == "vegetated"])
@@ -264,7 +263,7 @@ def _section(
         rmse_z_vegetated=_float(va["rmse_z_vegetated"]),
         rmse_z_all=_float(va["rmse_z_all"]),
     )
-    cautions = _cover_cautions(used, unclassified, unclassified_group, bool(group_of))
+    cautions = _cover_cautions(used, group)
     _write_residuals(out_dir / RESIDUALS_NAME, records)
     return {
         "file": str(job.checkpoint_file),
@@ -295,30 +294,31 @@ def _float(value: float | int | None) -> float | None:
     return None if value is None else float(value)
 
 
-def _cover_cautions(
-    used: Sequence[Mapping[str, Any]],
-    unclassified: int,
-    unclassified_group: str | None,
-    have_classes: bool,
-) -> list[str]:
+def _cover_cautions(used: Sequence[Mapping[str, Any]], unclassified_group: str) -> list[str]:
     """What the cover groups of the used checkpoints rest on, for cautions and grades."""
     out = []
-    if unclassified:
-        why = "no land-cover class" if have_classes else "no land-cover class table to read by"
-        graded = (
-            "left out of grading"
-            if unclassified_group == "excluded"
-            else f"graded as {(unclassified_group or 'non_vegetated').replace('_', '-')}"
-        )
+    no_class = sum(bool(r["unclassified"]) and r.get("landcover") is None for r in used)
+    unread = sum(bool(r["unclassified"]) and r.get("landcover") is not None for r in used)
+    graded = (
+        "left out of grading"
+        if unclassified_group == "excluded"
+        else f"graded as {unclassified_group.replace('_', '-')}"
+    )
+    rule = "(checkpoints.unclassified_group; unclassified pixels count as non-vegetated too)"
+    if no_class:
         out.append(
-            f"{unclassified} of {len(used)} checkpoints have {why}: {graded} "
-            "(checkpoints.unclassified_group; unclassified pixels count as non-vegetated too)"
+            f"{no_class} of {len(used)} checkpoints have no land-cover class: {graded} {rule}"
+        )
+    if unread:
+        out.append(
+            f"{unread} of {len(used)} checkpoints have a land-cover class but the job lists no "
+            f"land-cover classes to read it by (landcover.classes): {graded} {rule}"
         )
     unknown = sum(r["cover_group"] == "unknown" for r in used)
     if unknown:
         out.append(
-            f"{unknown} checkpoints have a land-cover class not listed in landcover.classes: "
-            "left out of grading"
+            f"{unknown} of {len(used)} checkpoints have a land-cover class not listed in "
+            "landcover.classes: left out of grading"
         )
     return out
 

@@ -28,14 +28,16 @@ def test_cover_cautions_state_how_unclassified_points_were_graded():
     # our rule (issue: grade unclassified points as unclassified pixels are, and say so)
     from service.checkpoint_run import _cover_cautions
 
-    used = [{"cover_group": "non_vegetated"}] * 3 + [{"cover_group": "unknown"}]
-    out = _cover_cautions(used, 3, "non_vegetated", have_classes=False)
-    assert "3 of 4 checkpoints have no land-cover class table" in out[0]
-    assert "graded as non-vegetated" in out[0]
-    assert "1 checkpoints have a land-cover class not listed" in out[1]
-    excluded = _cover_cautions(used[:3], 3, "excluded", have_classes=True)
-    assert excluded == [
-        "3 of 3 checkpoints have no land-cover class: left out of grading "
+    plain = {"cover_group": "non_vegetated", "unclassified": True, "landcover": None}
+    unread = {"cover_group": "non_vegetated", "unclassified": True, "landcover": 3}
+    unknown = {"cover_group": "unknown", "unclassified": False, "landcover": 9}
+    out = _cover_cautions([plain, plain, unread, unknown], "non_vegetated")
+    assert out[0].startswith("2 of 4 checkpoints have no land-cover class: graded as non-veg")
+    assert out[1].startswith("1 of 4 checkpoints have a land-cover class but the job lists no")
+    assert out[2].startswith("1 of 4 checkpoints have a land-cover class not listed")
+    assert _cover_cautions([plain], "excluded") == [
+        "1 of 1 checkpoints have no land-cover class: left out of grading "
         "(checkpoints.unclassified_group; unclassified pixels count as non-vegetated too)"
     ]
-    assert _cover_cautions([{"cover_group": "vegetated"}], 0, "vegetated", True) == []
+    classified = {"cover_group": "vegetated", "unclassified": False, "landcover": 2}
+    assert _cover_cautions([classified], "non_vegetated") == []
