@@ -533,6 +533,8 @@ def _cmd_schedule_add(args: argparse.Namespace, settings: Settings) -> int:
         if zone != "UTC" and schedule["nextRun"]:
             next_run += f" UTC ({_when(schedule['nextRun'], zone)} {zone})"
         print(f"schedule {schedule['id']} added: next run {next_run}")
+        if schedule.get("webhookSecret"):
+            print(f"webhook signing secret (shown only now): {schedule['webhookSecret']}")
         return 0
 
     return _call(args, settings, lambda http: added(http.post("/schedules", json=body)))

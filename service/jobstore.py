@@ -162,6 +162,10 @@ class JobStore(ScheduleStore, Protocol):
         """Mark every job in status as failed with message (start-up recovery); their ids."""
         ...
 
+    def check_writable(self) -> None:
+        """Write a probe row (readiness); raises when the store cannot be written."""
+        ...
+
     def close(self) -> None:
         """Release the store's resources."""
         ...
@@ -253,6 +257,9 @@ class MemoryJobStore(MemorySchedules):
         changes = {"status": FAILED, "message": message, "finished": now}
         return [k for k in ids if self.update(k, changes, only_from={status}) is not None]
 
+    def check_writable(self) -> None:
+        pass
+
     def close(self) -> None:
         pass
 
@@ -277,6 +284,7 @@ CREATE TABLE IF NOT EXISTS jobs (
 );
 CREATE INDEX IF NOT EXISTS jobs_status_created ON jobs (status, created);
 CREATE INDEX IF NOT EXISTS jobs_created ON jobs (created);
+CREATE TABLE IF NOT EXISTS probes (name TEXT PRIMARY KEY, at TEXT NOT NULL);
 """
 _ADDED_COLUMNS = {"schedule_id": "TEXT", "notification": "TEXT", "owner": "TEXT"}
 """Columns newer than the first jobs table: added when an older file is opened (older jobs have
@@ -391,6 +399,15 @@ class SqliteJobStore(SqliteSchedules):
                 (FAILED, message, now, now, status),
             )
         return ids
+
+    def check_writable(self) -> None:
+        at = utc_now().isoformat(timespec="milliseconds")
+        with self._lock:
+            self._db.execute(
+                "INSERT INTO probes (name, at) VALUES ('ready', ?) "
+                "ON CONFLICT (name) DO UPDATE SET at = excluded.at",
+                (at,),
+            )
 
     def close(self) -> None:
         with self._lock:

@@ -1,4 +1,10 @@
-"""Liveness with cluster readiness, and Prometheus metrics."""
+"""Health probes and Prometheus metrics.
+
+``/health/live``: the process answers (200), nothing else is asked; a liveness probe.
+``/health/ready``: 200 when the Dask scheduler answers, at least one worker is connected and the
+job store takes a write; 503 with the failing checks otherwise; a readiness probe.
+``/health``: the older summary (always 200, ``warn`` without workers), kept for compatibility.
+"""
 
 from __future__ import annotations
 
@@ -6,6 +12,7 @@ from collections.abc import Iterator
 from typing import Any
 
 from fastapi import APIRouter, Request, Response
+from fastapi.responses import JSONResponse
 from prometheus_client import CollectorRegistry, generate_latest
 from prometheus_client.core import CounterMetricFamily, GaugeMetricFamily, Metric
 from prometheus_client.exposition import CONTENT_TYPE_LATEST
@@ -43,6 +50,45 @@ def health(client: ClientDep, store: StoreDep, dispatcher: DispatcherDep) -> dic
             "active_here": dispatcher.active(),
         },
     }
+
+
+@router.get("/health/live", name="health_live")
+def health_live() -> dict[str, str]:
+    """Liveness: the process answers requests (a restart would not help otherwise)."""
+    return {"status": "pass"}
+
+
+@router.get(
+    "/health/ready",
+    name="health_ready",
+    responses={503: {"description": "Not ready: the checks say which part failed."}},
+)
+def health_ready(client: ClientDep, store: StoreDep) -> JSONResponse:
+    """Readiness: the Dask scheduler answers, workers are connected, the job store is
+    writable. 200 when all hold, else 503; each check says pass or fail (and why)."""
+    workers = cluster_workers(client)
+    checks: dict[str, dict[str, Any]] = {
+        "scheduler": {"status": "pass" if workers is not None else "fail"},
+        "workers": {"status": "pass" if workers else "fail", "connected": workers or 0},
+        "store": {"status": "pass"},
+    }
+    if workers is None:
+        checks["scheduler"]["reason"] = "the Dask scheduler does not answer"
+    elif not workers:
+        checks["workers"]["reason"] = "no Dask worker is connected"
+    try:
+        store.check_writable()
+    except Exception as exc:  # noqa: BLE001 - a probe reports, never fails
+        checks["store"] = {
+            "status": "fail",
+            "reason": f"the job store cannot be written ({type(exc).__name__})",
+        }
+    ready = all(c["status"] == "pass" for c in checks.values())
+    return JSONResponse(
+        {"status": "pass" if ready else "fail", "checks": checks},
+        status_code=200 if ready else 503,
+        headers={"Cache-Control": "no-store"},
+    )
 
 
 class JobCollector(Collector):

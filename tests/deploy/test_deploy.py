@@ -96,7 +96,11 @@ def test_the_api_finds_the_dask_scheduler_and_its_services_select_their_pods():
     port = scheduler_service["spec"]["ports"][0]["port"]
     assert env["DEMAUDIT_SCHEDULER"] == f"tcp://dask-scheduler:{port}"
     assert "tcp://dask-scheduler:8786" in container(only("Deployment", "dask-worker"))["command"]
-    assert env["DEMAUDIT_API_TOKENS"]["secretKeyRef"]["name"] == "demaudit-api-token"
+    assert env["DEMAUDIT_PRINCIPALS_FILE"] == "/etc/demaudit/principals"
+    mounts = {m["name"]: m for m in container(api)["volumeMounts"]}
+    volumes = {v["name"]: v for v in api["spec"]["template"]["spec"]["volumes"]}
+    assert mounts["principals"]["mountPath"] == "/etc/demaudit"
+    assert volumes["principals"]["secret"]["secretName"] == "demaudit-principals"
     assert {"DEMAUDIT_DATA_ROOTS", "DEMAUDIT_JOB_STORE", "DEMAUDIT_RESULTS_DIR"} <= env.keys()
     assert api["spec"]["replicas"] == 1 and api["spec"]["strategy"]["type"] == "Recreate"
     for name in ("demaudit-api", "dask-scheduler"):
@@ -107,7 +111,8 @@ def test_the_api_finds_the_dask_scheduler_and_its_services_select_their_pods():
         names = {p["name"] for p in container(deployment)["ports"]}
         assert {p["targetPort"] for p in service["spec"]["ports"]} <= names
     probe = container(api)["readinessProbe"]["httpGet"]
-    assert probe == {"path": "/health", "port": "http"}
+    assert probe == {"path": "/health/ready", "port": "http"}
+    assert container(api)["livenessProbe"]["httpGet"] == {"path": "/health/live", "port": "http"}
 
 
 def test_api_and_workers_run_one_image_and_see_the_tiles_at_one_path():

@@ -7,6 +7,7 @@ nothing outlives a failing test.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import shutil
@@ -29,8 +30,14 @@ from workers.demo_archive import DemoArchiveOptions, make_demo_archive
 pytestmark = pytest.mark.slow
 
 REPO = Path(__file__).resolve().parents[2]
-TOKEN = "integration-token-0123456789"
+TOKEN = "s2mCq1fVn0dJ7HkR4wX9yZbT3uA6eL8pQoGiNcEjKhM"  # alice (43 URL-safe characters)
+OTHER_TOKEN = "Yq8Jt3Rw0Lz5Nc7Vb2Mx4Kp6Hd9Fs1Ga3Eu5Wi7Oy0T"  # bob
+LEGACY_TOKEN = "Pn4Bx8Cv2Zl6Kj0Hg3Fd7Sa5Qw9Er1Ty3Ui5Op7As0D"  # a deprecated plain token
 AUTH = {"Authorization": f"Bearer {TOKEN}"}
+PRINCIPALS = ",".join(
+    f"{name}:user:{hashlib.sha256(token.encode()).hexdigest()}"
+    for name, token in [("alice", TOKEN), ("bob", OTHER_TOKEN)]
+)
 OGC = "http://www.opengis.net/def/exceptions/ogcapi-processes-1/1.0/"
 EXECUTE = "/processes/dem-audit/execution"
 FINISHED = {"successful", "failed", "dismissed"}
@@ -115,8 +122,9 @@ class Server:
         assert self.proc is not None
         self.proc.stop(signal.SIGKILL)
 
-    def client(self, **kwargs: Any) -> httpx.Client:
-        return httpx.Client(base_url=self.url, headers=AUTH, timeout=30, **kwargs)
+    def client(self, token: str = TOKEN, **kwargs: Any) -> httpx.Client:
+        headers = {"Authorization": f"Bearer {token}"}
+        return httpx.Client(base_url=self.url, headers=headers, timeout=30, **kwargs)
 
 
 @pytest.fixture(scope="module")
@@ -133,7 +141,8 @@ def start_server(
             {
                 "DEMAUDIT_SCHEDULER": scheduler,
                 "DEMAUDIT_DATA_ROOTS": f"{roots['demo']},{roots['tiny']}",
-                "DEMAUDIT_API_TOKENS": f"another-token-abcdefghij,{TOKEN}",
+                "DEMAUDIT_PRINCIPALS": PRINCIPALS,
+                "DEMAUDIT_API_TOKENS": LEGACY_TOKEN,
                 "DEMAUDIT_JOB_STORE": str(folder / "jobs.sqlite"),
                 "DEMAUDIT_RESULTS_DIR": str(folder / "results"),
                 **{f"DEMAUDIT_{k.upper()}": v for k, v in settings.items()},
@@ -287,6 +296,11 @@ def test_dismissing_a_running_job_cancels_its_tasks(server, dask, roots):
         assert not_ready.status_code == 404
         assert not_ready.json()["type"] == OGC + "result-not-ready"
         wait_until(http, job_id, lambda s: s["tiles"]["done"] >= 1)
+        for token in (OTHER_TOKEN, LEGACY_TOKEN):  # other principals: no such job for them
+            with server.client(token) as other:
+                assert other.get(f"/jobs/{job_id}").status_code == 404
+                assert other.delete(f"/jobs/{job_id}").status_code == 404
+                assert job_id not in [j["jobID"] for j in other.get("/jobs").json()["jobs"]]
 
         dismissed = http.delete(f"/jobs/{job_id}").json()
         assert dismissed["status"] == "dismissed"

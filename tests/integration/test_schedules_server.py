@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import contextlib
 import datetime as dt
+import hashlib
 import os
 import signal
 import sqlite3
@@ -29,8 +30,9 @@ from workers.demo_archive import DemoArchiveOptions, make_demo_archive
 
 pytestmark = pytest.mark.slow
 
-TOKEN = "schedule-token-0123456789"
+TOKEN = "Rk3Wm9Tq1Zx5Cv7Bn0Lp2Hs4Jd6Fg8Ka1Ey3Ui5Oo7Q"  # 43 URL-safe characters
 AUTH = {"Authorization": f"Bearer {TOKEN}"}
+PRINCIPAL = f"nightly:user:{hashlib.sha256(TOKEN.encode()).hexdigest()}"
 SPEED = 60  # scheduler seconds per real second: a minute-by-minute cron fires every second
 
 
@@ -114,7 +116,7 @@ def test_two_servers_on_one_store_run_each_slot_once(processes, cluster, archive
     env |= {
         "DEMAUDIT_SCHEDULER": cluster,
         "DEMAUDIT_DATA_ROOTS": str(root),
-        "DEMAUDIT_API_TOKENS": TOKEN,
+        "DEMAUDIT_PRINCIPALS": PRINCIPAL,
         "DEMAUDIT_JOB_STORE": str(store),
         "DEMAUDIT_RESULTS_DIR": str(tmp_path / "results"),
         "DEMAUDIT_SCHEDULE_TICK_S": "0.1",
@@ -163,9 +165,17 @@ def test_two_servers_on_one_store_run_each_slot_once(processes, cluster, archive
     removed = cli("schedule", "remove", yearly_id, "--server", other_url, "--token", TOKEN)
     assert removed.returncode == 0 and "removed" in removed.stdout, removed.stderr
 
+    # a webhook to the server's own machine is refused (no allow-list set): blind SSRF
+    refused = cli(
+        "schedule", "add", str(root / "spec.yaml"), "--cron", "0 0 1 1 *", "--webhook",
+        f"{other_url}/processes", "--server", other_url, "--token", TOKEN,
+    )  # fmt: skip
+    assert refused.returncode == 2 and "loopback" in refused.stderr, refused.stderr
+
     # later runs re-check against the last successful one: nothing changed, all tiles reused
     with httpx.Client(base_url=other_url, headers=AUTH, timeout=30) as http:
         assert http.get(f"/schedules/{yearly_id}").status_code == 404
+        assert [s["id"] for s in http.get("/schedules").json()["schedules"]] == [schedule_id]
         ok = [j for j in jobs_of(store, schedule_id) if j["status"] == "successful"]
         last_ok = max(ok, key=lambda j: j["created"])["job_id"]
         assert http.get(f"/jobs/{last_ok}").json()["scheduleID"] == schedule_id

@@ -342,3 +342,16 @@ def test_schedule_add_parses_the_time_zone_with_utc_by_default():
     assert cli._parser().parse_args(argv).timezone == "UTC"
     zoned = cli._parser().parse_args([*argv, "--timezone", "America/New_York"])
     assert zoned.timezone == "America/New_York" and zoned.spec == Path("spec.yaml")
+
+
+def test_schedule_add_prints_the_webhook_secret_once(cli_on_api, spec, tmp_path, capsys):
+    spec_file = tmp_path / "nightly.json"
+    spec_file.write_text(json.dumps(spec))
+    server = ["--server", "http://testserver"]
+    add = ["schedule", "add", str(spec_file), "--cron", "0 2 * * *", *server]
+    assert cli.main([*add, "--webhook", "https://hooks.example.org/x"]) == 0
+    lines = capsys.readouterr().out.splitlines()
+    assert lines[1].startswith("webhook signing secret (shown only now): ")
+    assert len(lines[1].split()[-1]) >= 43
+    assert cli.main([*add, "--webhook", "http://127.0.0.1:8000/x"]) == 2
+    assert "loopback" in capsys.readouterr().err
