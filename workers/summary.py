@@ -368,11 +368,13 @@ def bin_edges(k: NDArray[np.integer]) -> tuple[NDArray[np.float64], NDArray[np.f
 def _histogram(x: NDArray[np.float64]) -> tuple[NDArray[np.int32], NDArray[np.integer]]:
     """Sparse histogram: sorted bin indices (int32) and counts (int32 while they fit: a tile's
     summaries travel from the workers, so they are kept compact; merges widen to int64)."""
-    k = bin_index(x)
-    linear = (k >= -_K_LIMIT) & (k < _K_LIMIT)
-    dense = np.bincount(k[linear] + _K_LIMIT, minlength=2 * _K_LIMIT)
+    column = bin_index(x) + _K_LIMIT
+    outside = column.view(np.uint64) >= 2 * _K_LIMIT  # negative columns wrap to huge
+    (tail,) = np.nonzero(outside)
+    tail_bins, tail_counts = np.unique(column[tail] - _K_LIMIT, return_counts=True)
+    column[tail] = 2 * _K_LIMIT  # one extra counter for the tails, dropped below
+    dense = np.bincount(column, minlength=2 * _K_LIMIT + 1)[:-1]
     (nonzero,) = np.nonzero(dense)
-    tail_bins, tail_counts = np.unique(k[~linear], return_counts=True)
     bins = np.concatenate([nonzero - _K_LIMIT, tail_bins]).astype(np.int32)
     counts = np.concatenate([dense[nonzero], tail_counts])
     counts = counts.astype(np.int32 if x.size < 2**31 else np.int64)

@@ -6,6 +6,8 @@ tall (north); rows run southwards. NaN propagates to the neighbouring slopes.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import numpy as np
 from numpy.typing import NDArray
 
@@ -39,3 +41,112 @@ def aspect_degrees(
         heights, pixel_size_x_m=pixel_size_x_m, pixel_size_y_m=pixel_size_y_m
     )
     return np.degrees(np.arctan2(-de, -dn)) % 360.0
+
+
+def slope_bands(
+    heights: NDArray[np.floating],
+    edges: Sequence[float],
+    *,
+    pixel_size_x_m: float,
+    pixel_size_y_m: float,
+) -> NDArray[np.uint8]:
+    """Slope band of each pixel: ``b`` where ``edges[b] <= slope < edges[b + 1]`` (the last band
+    open above), ``len(edges)`` where the slope is NaN or below ``edges[0]``.
+
+    Heights may be float32 or float64. The same bands as
+    ``np.digitize(slope_degrees(heights), edges) - 1`` on finite slopes, pixel for pixel,
+    without the arctangent: the squared gradient is compared with tan(edge)^2, and the
+    few pixels within a relative 1e-6 of a threshold are decided by the exact slope_degrees
+    arithmetic. Edges must increase and lie in [0, 90] degrees.
+    """
+    edge_arr = np.asarray(edges, dtype=np.float64)
+    if edge_arr.size == 0 or edge_arr[0] < 0 or edge_arr[-1] > 90 or np.any(np.diff(edge_arr) <= 0):
+        raise ValueError(f"slope band edges must increase within [0, 90] degrees: {list(edges)}")
+    none = np.uint8(edge_arr.size)
+    if min(heights.shape) < 2:
+        return np.full(heights.shape, none, dtype=np.uint8)
+    g2 = _squared_gradient(heights, pixel_size_x_m, pixel_size_y_m)
+    margin = _MARGIN if heights.dtype != np.float32 else _MARGIN_FLOAT32
+    t2 = np.tan(np.radians(edge_arr)) ** 2
+    surely = np.zeros(g2.shape, dtype=np.uint8)  # edges certainly at or below the slope
+    maybe = np.zeros(g2.shape, dtype=np.uint8)  # edges possibly at or below it
+    for threshold in t2:
+        surely += g2 >= np.float32(threshold * (1 + margin))  # float32 rounding << margin
+        maybe += g2 >= np.float32(threshold * (1 - margin))
+    del g2
+    (close,) = np.nonzero((surely != maybe).ravel())
+    if close.size:
+        exact = _exact_slope_at(heights, close, pixel_size_x_m, pixel_size_y_m)
+        counted = np.zeros(close.size, dtype=np.uint8)
+        for edge in edge_arr:
+            counted += exact >= edge
+        surely.ravel()[close] = counted
+    # count of edges at or below the slope, minus one, is the band; none when no edge is below
+    surely -= 1
+    surely[surely == 255] = none
+    return surely
+
+
+_MARGIN = 1e-6  # relative: far above float32 rounding of the squared gradient (6e-8)
+_MARGIN_FLOAT32 = 1e-4  # the exact path then computes in float32, as np.gradient does
+
+
+def _squared_gradient(heights: NDArray[np.floating], px: float, py: float) -> NDArray[np.float32]:
+    """|grad z|^2 from central differences (one-sided at the edges), as float32 (to within a
+    relative 1e-7)."""
+    rows, cols = heights.shape
+    gx = np.empty((rows, cols), dtype=np.float64)
+    np.subtract(heights[:, 2:], heights[:, :-2], out=gx[:, 1:-1])
+    gx *= 0.5 / px
+    np.subtract(heights[:, 1], heights[:, 0], out=gx[:, 0])
+    np.subtract(heights[:, -1], heights[:, -2], out=gx[:, -1])
+    gx[:, 0] /= px
+    gx[:, -1] /= px
+    gy = np.empty((rows, cols), dtype=np.float64)
+    np.subtract(heights[2:], heights[:-2], out=gy[1:-1])
+    gy *= 0.5 / py
+    np.subtract(heights[1], heights[0], out=gy[0])
+    np.subtract(heights[-1], heights[-2], out=gy[-1])
+    gy[0] /= py
+    gy[-1] /= py
+    np.multiply(gx, gx, out=gx)
+    np.multiply(gy, gy, out=gy)
+    g2 = np.empty((rows, cols), dtype=np.float32)  # compared a few times: half the bytes
+    np.add(gx, gy, out=g2, casting="same_kind")
+    return g2
+
+
+def _exact_slope_at(
+    heights: NDArray[np.floating], flat: NDArray[np.intp], px: float, py: float
+) -> NDArray[np.float64]:
+    """slope_degrees at the flat indices given, with np.gradient's arithmetic."""
+    rows, cols = heights.shape
+    r, c = np.divmod(flat, cols)
+    z = heights if np.issubdtype(heights.dtype, np.floating) else heights.astype(np.float64)
+    de = _one_axis(z, r, c, axis=1, n=cols, step=px)
+    dn = _one_axis(z, r, c, axis=0, n=rows, step=py)
+    return np.degrees(np.arctan(np.hypot(de, dn)))  # type: ignore[no-any-return]
+
+
+def _one_axis(
+    z: NDArray[np.floating],
+    r: NDArray[np.intp],
+    c: NDArray[np.intp],
+    *,
+    axis: int,
+    n: int,
+    step: float,
+) -> NDArray[np.floating]:
+    """np.gradient along one axis at (r, c): (z[+1] - z[-1]) / (2 step) inside, one-sided at
+    the edges."""
+    i = r if axis == 0 else c
+    lo = np.maximum(i - 1, 0)
+    hi = np.minimum(i + 1, n - 1)
+    at_hi = (r, hi) if axis == 1 else (hi, c)
+    at_lo = (r, lo) if axis == 1 else (lo, c)
+    diff = z[at_hi] - z[at_lo]
+    inside = (i > 0) & (i < n - 1)
+    out = np.empty(diff.shape, dtype=z.dtype)  # np.gradient's output type, then its cast
+    out[inside] = diff[inside] / (2.0 * step)
+    out[~inside] = diff[~inside] / step
+    return out

@@ -38,9 +38,9 @@ from workers.grid import Grid
 from workers.rasters import read_mosaic, read_tile
 from workers.regions import Region, region_mask
 from workers.spec import Coregistration, JobSpec, TileSource
-from workers.strata import ClassInfo, classes_from_spec, excluded_mask, stratum_masks
+from workers.strata import ClassInfo, classes_from_spec, excluded_mask
 from workers.summary import DhSummary
-from workers.terrain import slope_degrees
+from workers.tile_pass import summarise_pixels
 
 OK = "ok"
 FAILED = "failed"
@@ -293,29 +293,25 @@ def summarise_tile(
     *,
     reference_tiles: tuple[str, ...] = (),
 ) -> TileResult:
-    """Summaries of dh for the tile, each region, and each region x stratum."""
+    """Summaries of dh for the tile, each region, and each region x stratum (one pass over the
+    valid pixels: workers/tile_pass.py)."""
     dh = layers.dh
-    valid = np.isfinite(dh)
-    excluded = excluded_mask(layers.landcover, options.landcover_classes)
-    dropped = 0
-    if excluded is not None:
-        dropped = int(np.count_nonzero(excluded & valid))
-        valid &= ~excluded
-    dh_valid = np.where(valid, dh, np.nan)
     px, py = test.grid.pixel_size_m()
-    slope = slope_degrees(layers.reference, pixel_size_x_m=px, pixel_size_y_m=py)
-    strata = stratum_masks(
+    found = summarise_pixels(
+        dh,
+        reference=layers.reference,
         landcover=layers.landcover,
+        region_masks={r.region_id: region_mask(r, test.grid) for r in regions},
         classes=options.landcover_classes,
-        slope=slope,
         slope_edges=options.slope_edges_deg,
+        pixel_size_m=(px, py),
     )
-    area_masks = {ALL: valid} | {r.region_id: region_mask(r, test.grid) & valid for r in regions}
-    per_area = {key: dh_summary.summarise(dh[mask]) for key, mask in area_masks.items()}
-    per_stratum = {
-        key: {name: dh_summary.summarise(dh[mask & s_mask]) for name, s_mask in strata.items()}
-        for key, mask in area_masks.items()
-    }
+    dh_valid = dh
+    if found.excluded:
+        excluded = excluded_mask(layers.landcover, options.landcover_classes)
+        dh_valid = np.where(excluded, np.nan, dh)
+    per_area = found.areas
+    per_stratum = found.strata
     return TileResult(
         tile_id=test.tile_id,
         status=OK,
@@ -323,7 +319,7 @@ def summarise_tile(
         summary=per_area.pop(ALL),
         regions=per_area,
         strata=per_stratum,
-        excluded=dropped,
+        excluded=found.excluded,
         overview=block_mean(dh_valid, options.overview_factor),
         reference_tiles=reference_tiles,
     )

@@ -1,0 +1,199 @@
+"""The one-pass tile summaries against the per-mask path they replace: summarise(dh[mask]) for
+the tile, each region and each region x stratum (masks from strata.stratum_masks on the slope of
+terrain.slope_degrees). Bins, counts and extremes must be identical, moments equal to rounding."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from workers import keyed_summary, tile_pass, tile_task
+from workers import summary as dhs
+from workers.strata import ClassInfo, excluded_mask, stratum_masks
+from workers.terrain import slope_degrees
+
+CLASSES = (
+    ClassInfo(1, "bare", "non_vegetated"),
+    ClassInfo(2, "urban", "non_vegetated"),
+    ClassInfo(3, "forest", "vegetated"),
+    ClassInfo(7, "water", "excluded"),
+)
+EDGES = (0.0, 5.0, 15.0, 30.0)
+PIXEL = (2.0, 3.0)
+
+
+def per_mask(dh, *, reference, landcover, region_masks, classes, slope_edges, pixel_size_m):
+    """The former path: one summarise per mask (the reference implementation)."""
+    valid = np.isfinite(dh)
+    excluded = excluded_mask(landcover, classes)
+    if excluded is not None:
+        valid &= ~excluded
+    px, py = pixel_size_m
+    slope = slope_degrees(reference, pixel_size_x_m=px, pixel_size_y_m=py)
+    strata = stratum_masks(
+        landcover=landcover, classes=classes, slope=slope, slope_edges=slope_edges
+    )
+    areas = {tile_pass.ALL: valid} | {k: m & valid for k, m in region_masks.items()}
+    return (
+        {k: dhs.summarise(dh[m]) for k, m in areas.items()},
+        {k: {n: dhs.summarise(dh[m & s]) for n, s in strata.items()} for k, m in areas.items()},
+    )
+
+
+def assert_same(got: dhs.DhSummary, want: dhs.DhSummary, where: str) -> None:
+    assert got.count == want.count, where
+    assert got.bins.dtype == want.bins.dtype and got.counts.dtype == want.counts.dtype, where
+    np.testing.assert_array_equal(got.bins, want.bins, err_msg=where)
+    np.testing.assert_array_equal(got.counts, want.counts, err_msg=where)
+    assert got.minimum == want.minimum and got.maximum == want.maximum, where
+    scale = np.sqrt(want.m2 / want.count) if want.count else 0.0
+    assert got.mean == pytest.approx(want.mean, rel=1e-12, abs=1e-12 * scale + 1e-300), where
+    assert got.m2 == pytest.approx(want.m2, rel=1e-11, abs=1e-300), where
+
+
+def scene(seed: int, *, shape=(90, 110), with_landcover=True):
+    rng = np.random.default_rng(seed)
+    rows, cols = shape
+    y, x = np.mgrid[0:rows, 0:cols].astype(np.float64)
+    reference = 100 + 0.4 * x + 8 * np.sin(x / 7) * np.cos(y / 5) + rng.normal(0, 0.3, shape)
+    reference[rng.random(shape) < 0.01] = np.nan
+    dh = rng.normal(0.2, 0.4, shape)
+    blunder = rng.random(shape) < 0.03
+    dh[blunder] = rng.uniform(-60, 60, blunder.sum())
+    dh.ravel()[:6] = [2.0, -2.0, np.nextafter(2.0, 0), np.nextafter(-2.0, 0), 1e7, -2.5e5]
+    dh[rng.random(shape) < 0.05] = np.nan
+    dh[reference != reference] = np.nan
+    landcover = None
+    if with_landcover:
+        landcover = rng.choice([1.0, 2.0, 3.0, 7.0, 9.0, np.nan], size=shape)
+    masks = {
+        "west": x < cols * 0.6,
+        "north": y < rows * 0.5,  # overlaps west
+        "ring": (np.hypot(x - 50, y - 40) < 30) & (np.hypot(x - 50, y - 40) > 10),
+        "outside": np.zeros(shape, dtype=bool),
+    }
+    return dh, reference, landcover, masks
+
+
+@pytest.mark.parametrize("seed", [0, 1, 2])
+@pytest.mark.parametrize("with_landcover", [True, False])
+def test_one_pass_equals_one_summarise_per_mask(seed: int, with_landcover: bool) -> None:
+    dh, reference, landcover, masks = scene(seed, with_landcover=with_landcover)
+    kwargs = dict(
+        reference=reference,
+        landcover=landcover,
+        region_masks=masks,
+        classes=CLASSES,
+        slope_edges=EDGES,
+        pixel_size_m=PIXEL,
+    )
+    got = tile_pass.summarise_pixels(dh, **kwargs)
+    want_areas, want_strata = per_mask(dh, **kwargs)
+    assert list(got.areas) == list(want_areas)
+    for area, want in want_areas.items():
+        assert_same(got.areas[area], want, area)
+        assert list(got.strata[area]) == list(want_strata[area])
+        for name, want_s in want_strata[area].items():
+            assert_same(got.strata[area][name], want_s, f"{area} {name}")
+    if with_landcover:
+        valid = np.isfinite(dh)
+        assert got.excluded == int(np.count_nonzero(valid & (landcover == 7)))
+        assert got.excluded > 0
+    else:
+        assert got.excluded == 0
+    assert got.areas["outside"].count == 0
+
+
+def test_counters_in_groups_give_the_same_summaries(monkeypatch: pytest.MonkeyPatch) -> None:
+    dh, reference, landcover, masks = scene(5)
+    kwargs = dict(
+        reference=reference,
+        landcover=landcover,
+        region_masks=masks,
+        classes=CLASSES,
+        slope_edges=EDGES,
+        pixel_size_m=PIXEL,
+    )
+    whole = tile_pass.summarise_pixels(dh, **kwargs)
+    monkeypatch.setattr(keyed_summary, "MAX_COUNTERS", 3 * keyed_summary._WIDTH)
+    grouped = tile_pass.summarise_pixels(dh, **kwargs)
+    for area in whole.strata:
+        for name, want in whole.strata[area].items():
+            assert_same(grouped.strata[area][name], want, f"{area} {name}")
+
+
+def test_no_valid_pixel_gives_empty_summaries() -> None:
+    dh, reference, landcover, masks = scene(3)
+    got = tile_pass.summarise_pixels(
+        np.full(dh.shape, np.nan),
+        reference=reference,
+        landcover=landcover,
+        region_masks=masks,
+        classes=CLASSES,
+        slope_edges=EDGES,
+        pixel_size_m=PIXEL,
+    )
+    assert all(s.count == 0 for s in got.areas.values())
+    assert all(s.count == 0 for by in got.strata.values() for s in by.values())
+    assert got.excluded == 0
+
+
+def test_cells_union_equals_summarise_of_the_union() -> None:
+    rng = np.random.default_rng(11)
+    x = np.concatenate([rng.normal(-0.3, 0.2, 5000), rng.uniform(-80, 80, 300), [3.0, -2.0]])
+    cells = rng.integers(0, 6, x.size)
+    per_cell = keyed_summary.summarise_cells(x, cells, 8)  # cells 6 and 7 stay empty
+    for chosen in ([0], [1, 4], [0, 1, 2, 3, 4, 5], [6], [6, 7, 2]):
+        assert_same(per_cell.union(chosen), dhs.summarise(x[np.isin(cells, chosen)]), str(chosen))
+
+
+def test_membership_patterns_number_only_what_occurs() -> None:
+    a = np.array([True, True, False, False, True])
+    b = np.array([False, True, False, False, True])
+    pattern, members = tile_pass.membership_patterns(np.arange(5), {"a": a, "b": b})
+    assert sorted(members, key=sorted) == [frozenset(), {"a"}, {"a", "b"}]
+    assert [members[p] for p in pattern] == [{"a"}, {"a", "b"}, set(), set(), {"a", "b"}]
+
+
+def test_many_overlapping_regions_take_several_rounds() -> None:
+    rng = np.random.default_rng(8)
+    masks = {f"r{i}": rng.random((30, 40)) < 0.3 for i in range(37)}
+    flat = np.flatnonzero(rng.random(30 * 40) < 0.9)
+    pattern, members = tile_pass.membership_patterns(flat, masks)
+    for i, at in enumerate(flat):
+        assert members[pattern[i]] == {k for k, m in masks.items() if m.ravel()[at]}
+    assert len(set(members)) == len(members)
+
+
+def former_bin_index(x: np.ndarray) -> np.ndarray:
+    """The bin index as first written (the reference for the faster one)."""
+    k = np.empty(x.shape, dtype=np.int64)
+    linear = np.abs(x) < dhs.LINEAR_LIMIT_M
+    k[linear] = np.floor(x[linear] / dhs.LINEAR_WIDTH_M)
+    pos = x >= dhs.LINEAR_LIMIT_M
+    k[pos] = dhs._K_LIMIT + np.floor(np.log(x[pos] / dhs.LINEAR_LIMIT_M) / dhs._LOG_RATIO)
+    neg = x <= -dhs.LINEAR_LIMIT_M
+    k[neg] = -dhs._K_LIMIT - 1 - np.floor(np.log(-x[neg] / dhs.LINEAR_LIMIT_M) / dhs._LOG_RATIO)
+    return k
+
+
+def test_bin_index_is_the_former_one() -> None:
+    rng = np.random.default_rng(4)
+    edges = np.arange(-10_005, 10_005) * dhs.LINEAR_WIDTH_M
+    x = np.concatenate(
+        [
+            rng.normal(0, 1, 100_000),
+            rng.uniform(-1e4, 1e4, 10_000),
+            edges,
+            np.nextafter(edges, np.inf),
+            np.nextafter(edges, -np.inf),
+            [2.0, -2.0, np.nextafter(2.0, 0), np.nextafter(-2.0, 0), 1e300, -1e300, 0.0, -0.0],
+        ]
+    )
+    np.testing.assert_array_equal(dhs.bin_index(x), former_bin_index(x))
+    grid = x[:10_000].reshape(100, 100)
+    np.testing.assert_array_equal(dhs.bin_index(grid), former_bin_index(grid))
+
+
+def test_tile_task_and_tile_pass_name_the_whole_tile_alike() -> None:
+    assert tile_task.ALL == tile_pass.ALL

@@ -1,0 +1,156 @@
+"""Many dh summaries from one pass: every value carries a small integer key (its cell), and any
+union of cells is summarised without touching the values again (pure).
+
+A tile's summaries (whole tile, each region, each region x stratum) are unions of cells of
+(region membership x land-cover class x slope band). :func:`summarise_cells` bins each value once
+and counts (cell, bin) pairs with one bincount; moments per cell come from bincounts with weights
+(two passes, so the sum of squared deviations does not cancel); extremes from ``minimum.at``.
+:meth:`CellSummaries.union` then adds the cells' histograms and merges their moments. The result
+is the :class:`~workers.summary.DhSummary` that ``summarise`` gives on the same values: the same
+bins and counts (the same dtypes) and extremes, the moments equal to rounding (about 1e-13
+relative).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from workers import summary as dh_summary
+from workers.summary import DhSummary
+
+_K = dh_summary._K_LIMIT  # linear bins are -_K .. _K - 1
+_WIDTH = 2 * _K + 1  # one column per linear bin, plus one (the last) for values in the tails
+#: Most (cell, bin) counters held at once (int64): larger tiles' cells are counted in groups.
+MAX_COUNTERS = 4_000_000
+
+
+@dataclass(frozen=True, eq=False)
+class CellSummaries:
+    """Per cell: count, mean, m2, extremes and the sparse histogram (linear bins and tails)."""
+
+    count: NDArray[np.int64]
+    mean: NDArray[np.float64]
+    m2: NDArray[np.float64]
+    minimum: NDArray[np.float64]
+    maximum: NDArray[np.float64]
+    linear: tuple[NDArray[np.int64], ...]  # per cell, the counts of the linear bins (dense)
+    tails: tuple[tuple[NDArray[np.int64], NDArray[np.int64]], ...]  # (bin, count) per cell
+
+    def union(self, cells: Iterable[int]) -> DhSummary:
+        """The summary of the values of all the given cells together."""
+        chosen = [c for c in cells if self.count[c]]
+        if not chosen:
+            return dh_summary.empty()
+        idx = np.asarray(chosen, dtype=np.intp)
+        n = self.count[idx]
+        total = int(n.sum())
+        mean = float((self.mean[idx] * n).sum() / total)
+        delta = self.mean[idx] - mean
+        m2 = float(self.m2[idx].sum() + (n * delta * delta).sum())
+        bins, counts = self._histogram(chosen)
+        counts = counts.astype(np.int32 if total < 2**31 else np.int64)
+        return DhSummary(
+            total,
+            mean,
+            m2,
+            float(self.minimum[idx].min()),
+            float(self.maximum[idx].max()),
+            bins,
+            counts,
+        )
+
+    def _histogram(self, cells: list[int]) -> tuple[NDArray[np.int32], NDArray[np.int64]]:
+        dense = self.linear[cells[0]]
+        if len(cells) > 1:
+            dense = dense.copy()
+            for c in cells[1:]:
+                dense += self.linear[c]
+        (columns,) = np.nonzero(dense)
+        linear_counts = dense[columns]
+        tail_bins = np.concatenate([self.tails[c][0] for c in cells])
+        tail_counts = np.concatenate([self.tails[c][1] for c in cells])
+        if len(cells) > 1 and tail_bins.size:
+            tail_bins, where = np.unique(tail_bins, return_inverse=True)
+            tail_counts = np.bincount(where, weights=tail_counts).astype(np.int64)
+        bins = np.concatenate([columns - _K, tail_bins]).astype(np.int32)
+        counts = np.concatenate([linear_counts, tail_counts]).astype(np.int64)
+        order = np.argsort(bins, kind="stable")
+        return bins[order], counts[order]
+
+
+def summarise_cells(
+    values: NDArray[np.floating], cells: NDArray[np.integer], n_cells: int
+) -> CellSummaries:
+    """Summaries of values (1-D, finite, metres) per cell (1-D, same length, 0..n_cells-1).
+
+    NaN or infinite values are not allowed here (the caller selects the valid pixels).
+    """
+    x = np.asarray(values, dtype=np.float64)
+    key = np.asarray(cells, dtype=np.intp)
+    if x.shape != key.shape or x.ndim != 1:
+        raise ValueError(f"values {x.shape} and cells {key.shape} must be 1-D of one length")
+    count = np.bincount(key, minlength=n_cells)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.bincount(key, weights=x, minlength=n_cells) / count
+        deviation = x - mean[key]
+        residual = np.bincount(key, weights=deviation, minlength=n_cells)
+        np.multiply(deviation, deviation, out=deviation)
+        squares = np.bincount(key, weights=deviation, minlength=n_cells)
+        correction = np.where(count > 0, residual / count, 0.0)
+        mean += correction  # the residual of the first estimate, as in a second pass
+        m2 = np.maximum(squares - residual * correction, 0.0)
+    del deviation
+    minimum = np.full(n_cells, np.inf)
+    maximum = np.full(n_cells, -np.inf)
+    np.minimum.at(minimum, key, x)
+    np.maximum.at(maximum, key, x)
+    linear, tails = _cell_histograms(x, key, n_cells)
+    return CellSummaries(count, np.nan_to_num(mean), m2, minimum, maximum, linear, tails)
+
+
+def _cell_histograms(
+    x: NDArray[np.float64], key: NDArray[np.intp], n_cells: int
+) -> tuple[tuple[NDArray[np.int64], ...], tuple[tuple[NDArray[np.int64], NDArray[np.int64]], ...]]:
+    """Per cell, the counts of the linear bins (dense, column = bin + _K) and the tail bins."""
+    k = dh_summary.bin_index(x)
+    column = k + _K
+    in_tail = column.view(np.uint64) >= _WIDTH - 1  # negative columns wrap to huge
+    (tail,) = np.nonzero(in_tail)
+    column[tail] = _WIDTH - 1
+    linear: list[NDArray[np.int64]] = []
+    group = max(1, MAX_COUNTERS // _WIDTH)
+    for first in range(0, n_cells, group):
+        last = min(first + group, n_cells)
+        if first == 0 and last == n_cells:
+            code = key * _WIDTH
+            code += column
+        else:
+            inside = (key >= first) & (key < last)
+            code = (key[inside] - first) * _WIDTH + column[inside]
+        dense = np.bincount(code, minlength=(last - first) * _WIDTH).reshape(-1, _WIDTH)
+        del code
+        linear.extend(dense[:, :-1])
+    tail_key = key[tail]
+    tail_bin = k[tail]
+    order = np.lexsort((tail_bin, tail_key))
+    tail_key, tail_bin = tail_key[order], tail_bin[order]
+    starts = (
+        np.flatnonzero(
+            np.r_[True, (tail_key[1:] != tail_key[:-1]) | (tail_bin[1:] != tail_bin[:-1])]
+        )
+        if tail.size
+        else np.zeros(0, dtype=np.intp)
+    )
+    run_counts = np.diff(np.r_[starts, tail.size]).astype(np.int64)
+    run_keys, run_bins = tail_key[starts], tail_bin[starts]
+    bounds = np.searchsorted(run_keys, np.arange(n_cells + 1))
+    run_bins = run_bins.astype(np.int64)
+    tails = tuple(
+        (run_bins[bounds[c] : bounds[c + 1]], run_counts[bounds[c] : bounds[c + 1]])
+        for c in range(n_cells)
+    )
+    return tuple(linear), tails
