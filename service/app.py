@@ -77,8 +77,7 @@ def check_serving(settings: Settings, *, host: str | None = None) -> Principals:
             "`demaudit token new`) or DEMAUDIT_PRINCIPALS_FILE, or pass --insecure-local to "
             "serve without authentication on a loopback address"
         )
-    local_only = settings.insecure_local and not principals
-    if local_only and host is not None and not _is_loopback(host):
+    if settings.insecure_local and host is not None and not _is_loopback(host):
         raise ValueError(f"--insecure-local serves only on a loopback address, not {host!r}")
     if settings.data_roots is None and not settings.insecure_local:
         raise ValueError("no data roots: set DEMAUDIT_DATA_ROOTS to the folders job specs may read")

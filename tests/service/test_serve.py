@@ -52,6 +52,13 @@ def test_serve_needs_data_roots_when_it_has_tokens(clean_env, capsys):
     assert "DEMAUDIT_DATA_ROOTS" in capsys.readouterr().err
 
 
+def test_insecure_local_with_principals_still_serves_on_loopback_only(clean_env, capsys):
+    """Issue 17: --insecure-local plus a token bound every interface with no data roots."""
+    clean_env.setenv("DEMAUDIT_PRINCIPALS", PRINCIPALS[0])
+    assert cli.main(["serve", "--insecure-local", "--host", "0.0.0.0"]) == 2
+    assert "loopback" in capsys.readouterr().err
+
+
 @pytest.mark.parametrize("host", ["127.0.0.1", "::1", "localhost", "127.0.0.2"])
 def test_insecure_local_is_allowed_on_loopback(host):
     check_serving(Settings(insecure_local=True), host=host)
