@@ -50,14 +50,19 @@ from workers.catalog import (
     unchanged,
 )
 from workers.checkpoints import CheckpointFile
-from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation
+from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation, vertical_transformations
 from workers.errors import AuditError, EmptyOverlapError, TileReadError
 from workers.figures import write_figures
 from workers.grading import Measured
 from workers.merge import JobAccumulator
 from workers.recheck import ChangePlan, Thresholds
 from workers.regions import Region
-from workers.report import area_entry, build_summary, region_entries
+from workers.report import (
+    area_entry,
+    build_summary,
+    region_entries,
+    vertical_accuracy_cautions,
+)
 from workers.report_html import write_report
 from workers.spec import ELLIPSOIDAL, ResolvedJob
 from workers.summary import statistics
@@ -391,7 +396,9 @@ def _run_into(
         + ([] if layout else ["no dh overview: the test tiles are not on one grid"]),
         coregistration=coregistration,
     )
-    document["sources"] = sources
+    vertical = vertical_transformations(job.spec, grid_dirs=options.grid_dirs)
+    document["sources"] = {**sources, "vertical_transformations": vertical}
+    document["cautions"] += vertical_accuracy_cautions(vertical, job.spec.grading)
     if baseline_note:
         document["cautions"].append(baseline_note)
     write_summary(out_dir, catalog.document(), name=CATALOG_NAME)
