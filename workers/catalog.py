@@ -7,8 +7,9 @@ reference tiles overlap a test tile.
 from __future__ import annotations
 
 import hashlib
+from collections import Counter
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from functools import lru_cache
 from pathlib import Path
 from typing import Any
@@ -60,6 +61,27 @@ class ScanFailure:
 def tile_id_of(path: str | Path) -> str:
     """A tile's id: its file name without extension."""
     return Path(path).stem
+
+
+def unique_tile_ids(
+    found: Sequence[TileInfo | ScanFailure],
+) -> list[TileInfo | ScanFailure]:
+    """found with every id unique: files of the same name in different folders (a re-delivery
+    beside the original) become ``<name>@<folder>`` (``@<n>`` appended if still the same)."""
+    names = Counter(tile_id_of(f.path) for f in found)
+    taken: set[str] = set()
+    out = []
+    for item in found:
+        tile_id = tile_id_of(item.path)
+        if names[tile_id] > 1:
+            tile_id = f"{tile_id}@{Path(item.path).parent.name}"
+        base, n = tile_id, 1
+        while tile_id in taken:
+            n += 1
+            tile_id = f"{base}@{n}"
+        taken.add(tile_id)
+        out.append(item if tile_id == item.tile_id else replace(item, tile_id=tile_id))
+    return out
 
 
 Known = tuple[int, int, str]  # size in bytes, modification time (ns), fingerprint

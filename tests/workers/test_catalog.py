@@ -159,3 +159,17 @@ def test_overlaps_across_crs_follow_the_reprojected_footprint(tmp_path: Path):
     inside = (east > left) & (east < right) & (north > bottom) & (north < top)
     assert 300 < inside.sum() < 1300 and not overlap.superseded
     assert np.count_nonzero(mask != inside) <= 2  # pixels whose centre is on the edge itself
+
+
+def test_same_file_names_in_two_folders_get_unique_ids(tmp_path: Path):
+    from workers.catalog import ScanFailure, unique_tile_ids
+
+    (tmp_path / "first").mkdir()
+    (tmp_path / "again").mkdir()
+    a = _tile(tmp_path / "first" / "t_0_0.tif", left=500_000, top=6_000_000)
+    b = _tile(tmp_path / "again" / "t_0_0.tif", left=500_000, top=6_000_000)
+    c = _tile(tmp_path / "first" / "t_1_0.tif", left=500_100, top=6_000_000)
+    gone = ScanFailure("t_1_0", str(tmp_path / "again" / "t_1_0.tif"), "unreadable")
+    ids = [t.tile_id for t in unique_tile_ids([a, b, c, gone])]
+    assert ids == ["t_0_0@first", "t_0_0@again", "t_1_0@first", "t_1_0@again"]
+    assert [t.tile_id for t in unique_tile_ids([a, c])] == ["t_0_0", "t_1_0"]
