@@ -144,9 +144,9 @@ def _csv_rows(
     if delimiter != ",":
         for row in rows:
             for column in numeric:
-                value = row.get(column)
-                if isinstance(value, str) and _DECIMAL_COMMA.match(value):
-                    row[column] = value.replace(".", "").replace(",", ".")
+                cell = row.get(column)
+                if isinstance(cell, str) and _DECIMAL_COMMA.match(cell):
+                    row[column] = cell.replace(".", "").replace(",", ".")
     return rows, header, None
 
 

@@ -219,7 +219,7 @@ def _voids_to_nan(raw: NDArray[np.generic], nodata: Sequence[float | None]) -> N
     data = raw.astype(np.float64)
     for value in dict.fromkeys(v for v in nodata if v is not None):
         if np.issubdtype(raw.dtype, np.integer):
-            info = np.iinfo(raw.dtype)
+            info = np.iinfo(str(raw.dtype))
             if not (float(value).is_integer() and info.min <= value <= info.max):
                 continue
         with np.errstate(over="ignore"):
