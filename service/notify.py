@@ -18,7 +18,9 @@ Where a webhook may go (``check_webhook_url``): http or https only; every addres
 resolves to must be public. Loopback, link-local (cloud metadata services), private, shared,
 multicast, unspecified and reserved addresses are refused unless a network of
 ``DEMAUDIT_WEBHOOK_ALLOW_NETWORKS`` holds them. The check runs when a schedule is created and
-again before every try (DNS may have changed since); redirects are never followed (a 3xx answer
+again before every try (DNS may have changed since), and the try connects to the address just
+checked (the Host header and the TLS server name stay the URL's host), so a name that resolves
+differently a moment later cannot slip past the check; redirects are never followed (a 3xx answer
 is final).
 
 Each delivery is signed (``signature_headers``) when the schedule has a secret (made at its
@@ -65,6 +67,7 @@ __all__ = [
     "check_address",
     "check_webhook_url",
     "deliver",
+    "pinned",
     "redact_url",
     "should_notify",
     "sign",
@@ -168,6 +171,24 @@ def _addresses(host: str, port: int, resolve: Resolver) -> list[IPAddress]:
     return addresses
 
 
+def pinned(url: str, address: IPAddress) -> tuple[httpx.URL, dict[str, str], dict[str, Any]]:
+    """The request to url sent to address: the URL with the address for its host, the Host
+    header and (https) the TLS server name of the original host, which the certificate is
+    verified against. A URL whose host is an address is left as it is."""
+    parsed = httpx.URL(url)
+    try:
+        ipaddress.ip_address(parsed.host)
+    except ValueError:
+        pass
+    else:
+        return parsed, {}, {}
+    target = parsed.copy_with(host=str(address))
+    extensions: dict[str, Any] = {}
+    if parsed.scheme == "https":
+        extensions["sni_hostname"] = parsed.raw_host.decode("ascii")
+    return target, {"Host": parsed.netloc.decode("ascii")}, extensions
+
+
 def redact_url(url: str | None) -> str | None:
     """What the API shows of a webhook URL: scheme, host and port; a path, query or user
     part (which may carry credentials) becomes '***'."""
@@ -267,16 +288,19 @@ def deliver(
                     return Delivery(False, attempt - 1, status, f"{error}; then shut down")
                 delay *= 2
             try:
-                check_webhook_url(url, allow=allow, resolve=resolve)
+                addresses = check_webhook_url(url, allow=allow, resolve=resolve)
             except WebhookRefusedError as exc:
                 return Delivery(False, attempt, None, f"refused: {exc}")
             except WebhookUnresolvedError as exc:
                 status, error = None, str(exc)
                 continue
-            sent_headers = {"Content-Type": "application/json"}
+            target, pinned_headers, extensions = pinned(url, addresses[0])
+            sent_headers = {"Content-Type": "application/json", **pinned_headers}
             sent_headers |= signature_headers(secret, body)
             try:
-                response = http.post(url, content=body, headers=sent_headers)
+                response = http.post(
+                    target, content=body, headers=sent_headers, extensions=extensions
+                )
             except httpx.HTTPError as exc:
                 status, error = None, _describe(exc)
                 continue

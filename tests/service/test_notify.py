@@ -466,3 +466,22 @@ def test_webhook_urls_are_shown_without_credentials_path_or_query():
     assert redact_url("https://h.example.org/") == "https://h.example.org/"
     assert redact_url("http://[2001:db8::1]/x") == "http://[2001:db8::1]/***"
     assert redact_url(None) is None
+
+
+def test_a_try_connects_to_the_address_it_checked(receiver, monkeypatch):
+    """The name is resolved once, by the check; the connection goes to that address with the
+    name in the Host header (so a second, different DNS answer is never used)."""
+    hook = receiver([])
+    port = hook.url.split(":")[2].split("/")[0]
+    real = socket.getaddrinfo
+
+    def only_addresses(host, *args, **kwargs):  # a lookup of the name would fail the test
+        ipaddress.ip_address(host)
+        return real(host, *args, **kwargs)
+
+    monkeypatch.setattr(socket, "getaddrinfo", only_addresses)
+    delivery = deliver(
+        f"http://receiver.invalid:{port}/hook", {"jobID": "j"}, resolve=stub("127.0.0.1")
+    )
+    assert delivery.delivered, delivery
+    assert hook.requests[0][1]["Host"] == f"receiver.invalid:{port}"
