@@ -82,7 +82,9 @@ class TileSource(_Heights):
 
     tiles: str | list[str] = Field(description="A glob, a folder, or a list of GeoTIFF paths.")
     nodata: float | None = Field(
-        default=None, description="Nodata value to use when the tiles declare none."
+        default=None,
+        description="A value marking voids, besides the nodata value the tiles declare (e.g. "
+        "-9999 when the tiles declare none).",
     )
 
 
