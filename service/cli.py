@@ -18,6 +18,7 @@ from tqdm import tqdm
 
 from service.settings import Settings, get_settings
 from workers import spec as job_spec
+from workers.catalog import SUPERSEDED
 from workers.errors import AuditError, SpecError
 from workers.report import CAUTIONS_ALWAYS
 
@@ -348,11 +349,16 @@ def _cmd_run(args: argparse.Namespace, settings: Settings) -> int:
     return run_status(document)
 
 
+#: Tile statuses of a complete run: audited; a checkpoint-only job's tiles ('not_audited' by
+#: design); a re-delivered tile whose every pixel an earlier-listed tile counted ('superseded').
+COMPLETE_STATUSES = frozenset({"ok", "not_audited", SUPERSEDED})
+
+
 def run_status(document: dict[str, Any]) -> int:
     """1 when some test tile failed or was left out of the statistics (no reference, no valid
-    pixels), else 0; a checkpoint-only job's tiles are 'not_audited' by design."""
-    complete = {"ok", "not_audited"}
-    return EXIT_INCOMPLETE if any(t["status"] not in complete for t in document["tiles"]) else 0
+    pixels, or any status not known to be complete), else 0."""
+    statuses = {t["status"] for t in document["tiles"]}
+    return EXIT_INCOMPLETE if statuses - COMPLETE_STATUSES else EXIT_CLEAN
 
 
 def _cmd_validate(args: argparse.Namespace, settings: Settings) -> int:
