@@ -197,3 +197,28 @@ def test_bin_index_is_the_former_one() -> None:
 
 def test_tile_task_and_tile_pass_name_the_whole_tile_alike() -> None:
     assert tile_task.ALL == tile_pass.ALL
+
+
+def former_merged_histogram(parts: list[dhs.DhSummary]) -> tuple[np.ndarray, np.ndarray]:
+    """merge_all's histogram as first written: one sort of all bins."""
+    all_bins = np.concatenate([s.bins for s in parts]).astype(np.int64)
+    all_counts = np.concatenate([s.counts for s in parts]).astype(np.int64)
+    order = np.argsort(all_bins, kind="stable")
+    sorted_bins = all_bins[order]
+    starts = np.flatnonzero(np.r_[True, sorted_bins[1:] != sorted_bins[:-1]])
+    return sorted_bins[starts], np.add.reduceat(all_counts[order], starts)
+
+
+@pytest.mark.parametrize("tiles", [2, 40])
+def test_merge_all_histograms_are_the_former_ones(tiles: int) -> None:
+    rng = np.random.default_rng(tiles)
+    parts = []
+    for _ in range(tiles):
+        x = rng.normal(rng.uniform(-3, 3), rng.uniform(0.01, 2), int(rng.integers(1, 20_000)))
+        x[rng.random(x.size) < 0.02] *= 40
+        parts.append(dhs.summarise(x))
+    merged = dhs.merge_all(parts)
+    bins, counts = former_merged_histogram(parts)
+    assert merged.bins.dtype == np.int64 and merged.counts.dtype == np.int64
+    np.testing.assert_array_equal(merged.bins, bins)
+    np.testing.assert_array_equal(merged.counts, counts)
