@@ -225,11 +225,11 @@ def checkpoint_crs(data: CheckpointFile, *, path: Path, spec_crs: str | None) ->
             f"checkpoints.crs: {path.name} declares no horizontal CRS and the spec names none; "
             "add a line '# horizontal_crs: EPSG:<code>' to the file or set checkpoints.crs"
         )
-    source = "checkpoints.crs" if spec_crs else f"checkpoints.file: {path.name} declares"
+    where = "checkpoints.crs:" if spec_crs else f"checkpoints.file: {path.name} declares"
     try:
         CRS.from_user_input(name)
     except CRSError as exc:
-        raise SpecError(f"{source} a CRS that cannot be read ({name!r}): {exc}") from None
+        raise SpecError(f"{where} the CRS {name!r}, which cannot be read: {exc}") from None
     return name
 
 

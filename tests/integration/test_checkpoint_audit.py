@@ -13,6 +13,7 @@ from service.runner import run_job
 from workers import spec as job_spec
 from workers.demo_archive import DemoArchiveOptions, make_demo_archive
 from workers.demo_terrain import build_world, terrain_slope
+from workers.errors import SpecError
 from workers.grading import ASPRS_CLASSES_CM
 
 
@@ -135,11 +136,9 @@ def test_bad_checkpoints_are_reported_per_point(make_archive, dask_client, tmp_p
     unknown = checkpoints | {"crs": "EPSG:99999"}
     spec = job_spec.load_spec_file(root / "job.yaml") | {"checkpoints": unknown}
     job = job_spec.resolve(job_spec.parse_spec(spec), base_dir=root)
-    doc = run_job(job, tmp_path / "out2", client=dask_client)
-    reasons2 = [r["reason"] for r in doc["checkpoints"]["rejected"]]
-    # the three readable points are refused for the CRS; the two bad rows keep their reasons
-    assert sum("unknown CRS" in r for r in reasons2) == 3 and len(reasons2) == 5
-    assert doc["overall"]["count"] > 0  # the raster audit went on
+    # a CRS that cannot be read is bad input, refused before any tile runs
+    with pytest.raises(SpecError, match="checkpoints.crs: the CRS 'EPSG:99999', which cannot"):
+        run_job(job, tmp_path / "out2", client=dask_client)
 
 
 def test_checkpoints_without_reference_tiles(make_archive, dask_client, tmp_path):

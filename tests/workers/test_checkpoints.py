@@ -175,7 +175,7 @@ def test_an_unreadable_crs_is_a_spec_error(tmp_path: Path):
 
     path = tmp_path / "cp.csv"
     path.write_text("# horizontal_crs: EPSG:999999\nid,easting,northing,height\na,1,2,3\n")
-    with pytest.raises(SpecError, match="cp.csv declares a CRS that cannot be read"):
+    with pytest.raises(SpecError, match="cp.csv declares the CRS 'EPSG:999999', which cannot"):
         open_checkpoints(path, _source())
 
 
