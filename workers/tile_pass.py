@@ -65,14 +65,18 @@ def summarise_pixels(
     px, py = pixel_size_m
     bands = slope_bands(reference, slope_edges, pixel_size_x_m=px, pixel_size_y_m=py)
     if codes is None:
-        cells = bands.ravel()[flat].astype(np.intp)
+        cells = bands
     else:
-        cells = layout.cell(codes.ravel()[flat], bands.ravel()[flat])
+        cells = codes.astype(np.int32)
+        cells *= layout.n_bands + 1
+        cells += bands
     del bands, codes
-    keys, members = membership_patterns(flat, region_masks)
-    keys *= layout.n_cells
-    keys += cells
-    del cells
+    if len(region_masks) <= _DIRECT_REGIONS:
+        keys, members = _keys_on_grid(cells, region_masks, layout.n_cells, flat)
+    else:
+        keys, members = membership_patterns(flat, region_masks)
+        keys *= layout.n_cells
+        keys += cells.ravel()[flat]
     per_key = summarise_cells(dh.ravel()[flat], keys, len(members) * layout.n_cells)
     areas: dict[str, DhSummary] = {}
     strata: dict[str, dict[str, DhSummary]] = {}
@@ -123,6 +127,27 @@ def membership_patterns(
 
 _BITS_PER_ROUND = 16
 _TABLE_BITS = 20
+
+
+def _keys_on_grid(
+    cells: NDArray[np.integer],
+    region_masks: Mapping[str, NDArray[np.bool_]],
+    n_cells: int,
+    flat: NDArray[np.intp],
+) -> tuple[NDArray[np.intp], list[frozenset[str]]]:
+    """Keys pattern * n_cells + cell built on the tile's grid, then gathered once; every
+    membership pattern of the few regions is numbered (the bits of the pattern number)."""
+    ids = list(region_masks)
+    key = cells.astype(np.int32)
+    for bit, region_id in enumerate(ids):
+        np.add(key, (1 << bit) * n_cells, out=key, where=region_masks[region_id])
+    members = [
+        frozenset(r for bit, r in enumerate(ids) if (p >> bit) & 1) for p in range(1 << len(ids))
+    ]
+    return key.ravel()[flat].astype(np.intp), members
+
+
+_DIRECT_REGIONS = 3  # up to 2^3 patterns, each numbered whether it occurs or not
 
 
 def _union(
