@@ -23,11 +23,13 @@ def block_mean(dh: NDArray[np.float64], factor: int) -> NDArray[np.float32]:
     """
     rows = -(-dh.shape[0] // factor)
     cols = -(-dh.shape[1] // factor)
-    padded = np.full((rows * factor, cols * factor), np.nan)
-    padded[: dh.shape[0], : dh.shape[1]] = dh
-    blocks = padded.reshape(rows, factor, cols, factor)
-    valid = np.isfinite(blocks)
-    total = np.where(valid, blocks, 0.0).sum(axis=(1, 3))
-    count = valid.sum(axis=(1, 3))
+    finite = np.isfinite(dh)
+    zeroed = np.zeros((rows * factor, cols * factor))  # padding and NaN add nothing
+    np.copyto(zeroed[: dh.shape[0], : dh.shape[1]], dh, where=finite)
+    valid = np.zeros(zeroed.shape, dtype=np.uint8)
+    valid[: dh.shape[0], : dh.shape[1]] = finite
+    del finite
+    total = zeroed.reshape(rows, factor, cols, factor).sum(axis=(1, 3))
+    count = valid.reshape(rows, factor, cols, factor).sum(axis=(1, 3), dtype=np.int64)
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(count > 0, total / np.maximum(count, 1), np.nan).astype(np.float32)

@@ -21,3 +21,27 @@ def test_block_mean_equals_xarray_coarsen(shape, factor):
     want = want.mean().values
     assert got.shape == want.shape
     assert np.allclose(got, want, rtol=1e-6, atol=1e-6, equal_nan=True)
+
+
+def former_block_mean(dh: np.ndarray, factor: int) -> np.ndarray:
+    """block_mean as first written (NaN-padded copy, then where): the bits to keep."""
+    rows = -(-dh.shape[0] // factor)
+    cols = -(-dh.shape[1] // factor)
+    padded = np.full((rows * factor, cols * factor), np.nan)
+    padded[: dh.shape[0], : dh.shape[1]] = dh
+    blocks = padded.reshape(rows, factor, cols, factor)
+    valid = np.isfinite(blocks)
+    total = np.where(valid, blocks, 0.0).sum(axis=(1, 3))
+    count = valid.sum(axis=(1, 3))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, total / np.maximum(count, 1), np.nan).astype(np.float32)
+
+
+@pytest.mark.parametrize(("shape", "factor"), [((1501, 1499), 8), ((64, 64), 8), ((9, 7), 3)])
+def test_block_mean_keeps_its_former_bits(shape, factor):
+    rng = np.random.default_rng(2)
+    dh = rng.normal(0.2, 3.0, shape) * 10.0 ** rng.integers(-6, 3, shape)
+    dh[rng.random(shape) < 0.1] = np.nan
+    dh[rng.random(shape) < 0.01] = np.inf
+    dh[:factor, :factor] = np.nan
+    np.testing.assert_array_equal(block_mean(dh, factor), former_block_mean(dh, factor))
