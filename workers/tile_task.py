@@ -345,7 +345,7 @@ def tile_surfaces(
     grid, margin = test.grid, 0
     if shift is not None:
         grid = reference_grid(test.grid, east_m=shift.east_m, north_m=shift.north_m)
-    elif options.coregistration is not None:
+    elif options.coregistration is not None and options.coregistration.apply:
         margin = COREGISTRATION_MARGIN_PX
     mosaics = read_mosaics(
         references,
@@ -416,9 +416,7 @@ def read_mosaics(
     return tuple(mosaics)
 
 
-def mosaics_onto(
-    mosaics: Sequence[Mosaic], grid: Grid, *, resampling: str
-) -> NDArray[np.float64]:
+def mosaics_onto(mosaics: Sequence[Mosaic], grid: Grid, *, resampling: str) -> NDArray[np.float64]:
     """Mosaics resampled onto grid, the first covering a pixel winning; NaN where none."""
     out = np.full(grid.shape, np.nan)
     for mosaic, mosaic_grid in mosaics:

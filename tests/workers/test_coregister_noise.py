@@ -10,15 +10,18 @@ from pathlib import Path
 import numpy as np
 import pytest
 from matplotlib import cbook
+from pyproj import CRS, Geod
 from rasterio.transform import from_origin
 from scipy.ndimage import map_coordinates, zoom
 
+from workers import tile_task
 from workers.catalog import TileInfo, scan_tile
 from workers.coregister import solve
-from workers.coregister_tile import Correction
+from workers.coregister_tile import Correction, reference_grid
+from workers.grid import Grid
 from workers.spec import Coregistration
 from workers.summary import statistics
-from workers.tile_task import OK, TileOptions, audit_tile, estimate_tile
+from workers.tile_task import OK, TileOptions, audit_tile, estimate_tile, read_mosaics
 
 UTM32 = "EPSG:32632"
 #: matplotlib's sample DEM (a 3 arc-second grid, ~ 90 m) resampled by UPSAMPLE: its heights are
@@ -133,3 +136,46 @@ def test_pooled_passes_recover_the_shift(tmp_path, tif_writer):
             break
     assert abs(at.east_m / PIXEL - east_px) < 0.05
     assert abs(at.north_m / PIXEL - north_px) < 0.05
+
+
+def test_a_shift_beyond_the_read_margin_reads_the_reference_again(
+    tmp_path, tif_writer, monkeypatch
+):
+    # 10 px is beyond the margin read with the tile (COREGISTRATION_MARGIN_PX): the reference
+    # is read again around the shifted grid, and no pixel is lost (the reference reaches 12 px
+    # beyond the test tile)
+    east_px, north_px = 10.4, -9.6
+    assert max(abs(east_px), abs(north_px)) > tile_task.COREGISTRATION_MARGIN_PX
+    test, reference = write_pair(tmp_path, tif_writer, east_px, north_px, sigma=SIGMA, seed=5)
+    reads = []
+
+    def counted(*args, **kwargs):
+        reads.append(args[1])
+        return read_mosaics(*args, **kwargs)
+
+    monkeypatch.setattr(tile_task, "read_mosaics", counted)
+    truth = Correction(east_m=east_px * PIXEL, north_m=north_px * PIXEL)
+    result = audit_tile(test, [reference], [], options("job", truth))
+    assert len(reads) == 2 and result.corrected is not None
+    after = statistics(result.corrected.summary)
+    assert after["count"] == test.grid.width * test.grid.height
+    assert after["nmad"] == pytest.approx(SIGMA, rel=0.03)  # common practice: NMAD = sigma
+
+
+@pytest.mark.parametrize(("east_m", "north_m"), [(12.5, -7.0), (-3.0, 20.0)])
+def test_reference_grid_moves_pixel_centres_by_minus_the_shift(east_m, north_m):
+    projected = Grid(CRS.from_epsg(32632).to_wkt(), (5.0, 0.0, 480_000.0, 0.0, -5.0, 6.23e6), 4, 3)
+    x, y = projected.centre_coordinates()
+    mx, my = reference_grid(projected, east_m=east_m, north_m=north_m).centre_coordinates()
+    assert np.allclose(mx, x - east_m) and np.allclose(my, y - north_m)
+    # geographic grid at 60 N: metres become degrees; the distance moved, measured on the
+    # ellipsoid with pyproj.Geod, is the shift's length (Grid.pixel_size_m's spherical scale
+    # factors are good to ~ 0.5 %)
+    res = 1.0 / 1200.0
+    geographic = Grid(CRS.from_epsg(4326).to_wkt(), (res, 0.0, 10.0, 0.0, -res, 60.0), 4, 3)
+    lon, lat = geographic.centre_coordinates()
+    mlon, mlat = reference_grid(geographic, east_m=east_m, north_m=north_m).centre_coordinates()
+    azimuth, _, distance = Geod(ellps="WGS84").inv(lon, lat, mlon, mlat)
+    assert np.allclose(distance, np.hypot(east_m, north_m), rtol=0.01)
+    expected = np.degrees(np.arctan2(-east_m, -north_m))  # clockwise from north
+    assert np.allclose(azimuth, expected, atol=0.5)
