@@ -8,15 +8,21 @@ error checking, and a ballpark (grid-less) operation is refused, so a missing gr
 
 On a raster grid (:func:`undulation_on_grid`) N is PROJ's own bilinear interpolation of the geoid
 grid, evaluated at every pixel centre: PROJ gives N at the few grid nodes around the tile (called
-at the nodes' exact coordinates, so no grid format is parsed), numpy interpolates between them as
-PROJ does. Only the pixel centres' longitude and latitude are interpolated, linearly on a lattice
-at most ``LATTICE_SPACING_M`` apart: they are smooth, and the position error (<= 0.12 m for
-UTM tiles up to 6 degrees off the central meridian) times the steepest EGM96 slope (0.35 m/km)
-stays below 0.05 mm. **Error bound: N on a grid agrees with per-pixel PROJ within 1 mm**
-(measured at most a few micrometres over the Puerto Rico trench and the Himalaya at 30 m and 90 m
-pixels; tests/workers/test_datum.py). A self-check against PROJ at the lattice points falls back
-to per-pixel PROJ whenever the grid's node model does not reproduce PROJ (an operation with more
-than one grid or with horizontal steps); pixels outside the geoid grid are NaN.
+at the nodes' exact coordinates, so no grid format is parsed; the grid file's header only says
+where the nodes are), and numpy interpolates between them as PROJ does. Only the pixel centres'
+longitude and latitude are interpolated, linearly on a lattice at most ``LATTICE_SPACING_M``
+apart: they are smooth, the position error stays below 0.3 m (measured: UTM tiles up to 9
+degrees off the central meridian, up to 75 degrees latitude), and EGM96 is nowhere steeper than
+0.35 m/km (from its 15' grid), so this adds at most 0.1 mm.
+
+**Error bound: N on a raster grid agrees with PROJ evaluated at every pixel within 1 mm**
+(measured at most 0.02 mm over the Puerto Rico trench and the Himalaya at 30 m and 90 m pixels;
+tests/workers/test_datum.py). Before, N came from a 64-pixel lattice and missed the grid's kinks
+between nodes: up to 25-36 mm at 30 m and 143-186 mm at 90 m pixels at those sites. A self-check
+against PROJ at the lattice points falls back to PROJ at every pixel (exact, about 1 s per
+million pixels) when the node model does not reproduce PROJ, e.g. an operation with several
+grids or horizontal steps. Pixels outside the geoid grid are NaN. Cost for 1500 x 1500 pixels:
+see benchmarks/bench_geoid.py.
 
 :func:`vertical_transformation` states PROJ's own accuracy of each conversion used (EPSG's
 "accuracy" of the operation; the sum over concatenated steps as PROJ counts it).
@@ -49,8 +55,8 @@ from workers.spec import ELLIPSOIDAL, METRES_PER_UNIT, JobSpec
 DEFAULT_GRID_DIRS: tuple[str, ...] = ("/usr/share/proj",)
 #: Most pixels between the lattice nodes on which pixel-centre longitude/latitude are computed.
 LATTICE_STEP_PX = 64
-#: Most ground distance (metres) between those nodes (error of the interpolated positions: about
-#: 0.9 m at 5.8 km spacing 2,200 km off the equator at a UTM zone edge, so <= 0.12 m at 2 km).
+#: Most ground distance (metres) between those nodes: the interpolated positions' error grows
+#: with its square (below 0.3 m at 2 km, see the module docstring; about 0.9 m at 5.8 km).
 LATTICE_SPACING_M = 2000.0
 #: Largest difference from PROJ at the lattice points for the grid's node model to be used.
 SELF_CHECK_M = 1e-5
@@ -314,14 +320,9 @@ class _CellTable:
         d = v[1:, 1:] - v[1:, :-1] - b
         return cls(i0, j0, a.shape[1], a.ravel(), b.ravel(), c.ravel(), d.ravel())
 
-    def evaluate(
-        self,
-        fi: NDArray[np.float64],
-        fj: NDArray[np.float64],
-        out: NDArray[np.float64] | None = None,
-    ) -> NDArray[np.float64]:
+    def evaluate(self, fi: NDArray[np.float64], fj: NDArray[np.float64]) -> NDArray[np.float64]:
         """Values at fractional column fi and row fj counted from (j0, i0), both >= 0. fi and fj
-        are overwritten (they are scratch space, to keep one tile's passes few)."""
+        are overwritten (scratch space, to keep the passes over the pixels few)."""
         i = fi.astype(np.intp)
         cell = fj.astype(np.intp)
         fi -= i
@@ -335,44 +336,66 @@ class _CellTable:
         value += b
         c *= fj
         value += c
-        if out is None:
-            return value
-        out[...] = value
-        return out
+        return value
+
+    def quadratic(
+        self,
+        x0: NDArray[np.float64],
+        y0: NDArray[np.float64],
+        dx: NDArray[np.float64],
+        dy: NDArray[np.float64],
+        cell: NDArray[np.intp],
+    ) -> tuple[NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]:
+        """Coefficients of value = p0 + p1 t + p2 t^2 along segments that go from (x0, y0) to
+        (x0 + dx, y0 + dy) inside one cell (positions counted from the cell's first node)."""
+        a, b, c, d = self.a[cell], self.b[cell], self.c[cell], self.d[cell]
+        p0 = a + b * x0 + c * y0 + d * x0 * y0
+        p1 = b * dx + c * dy + d * (x0 * dy + y0 * dx)
+        return p0, p1, d * dx * dy
 
 
 def _banded_bilinear(
     lattice: LonLatLattice, fi: NDArray[np.float64], fj: NDArray[np.float64], table: _CellTable
 ) -> NDArray[np.float64]:
     """Bilinear interpolation of the cell table at every pixel, where the fractional column fi
-    and row fj (counted from the table's first node) are given on the lattice: one band of
-    pixel rows between two lattice rows at a time, so the work stays in the processor cache."""
+    and row fj (counted from the table's first node) are given on the lattice.
+
+    Along one pixel row between two lattice columns (a segment), fi and fj are linear in the
+    position t in [0, 1] across it. Where the segment stays in one geoid cell, N is therefore a
+    quadratic in t whose three coefficients are found per segment; only the segments that a
+    node line crosses (a few per row) are evaluated pixel by pixel."""
+    height, width = lattice.shape
     rows, cols = lattice.rows, lattice.cols
+    band = np.clip(np.searchsorted(rows, np.arange(height), side="right") - 1, 0, rows.size - 2)
+    s = ((np.arange(height) - rows[band]) / (rows[band + 1] - rows[band]))[:, None]
+    row_i = fi[band] + s * (fi[band + 1] - fi[band])  # on the lattice columns, every pixel row
+    row_j = fj[band] + s * (fj[band + 1] - fj[band])
     counts = np.diff(cols).astype(np.intp)
-    counts[-1] += 1
-    t = (np.arange(lattice.shape[1]) - np.repeat(cols[:-1], counts)) / np.repeat(
-        np.diff(cols), counts
-    )
-    out = np.empty(lattice.shape)
-    for k in range(rows.size - 1):
-        top, bottom = int(rows[k]), int(rows[k + 1]) + (k == rows.size - 2)
-        s = ((np.arange(top, bottom) - rows[k]) / (rows[k + 1] - rows[k]))[:, None]
-        band_i = _expand_columns(fi[k] + s * (fi[k + 1] - fi[k]), counts, t)
-        band_j = _expand_columns(fj[k] + s * (fj[k + 1] - fj[k]), counts, t)
-        table.evaluate(band_i, band_j, out=out[top:bottom])
+    counts[-1] += 1  # the last segment ends on the last pixel (t = 1)
+    starts = np.concatenate([[0], np.cumsum(counts)[:-1]])
+    t = (np.arange(width) - np.repeat(cols[:-1], counts)) / np.repeat(np.diff(cols), counts)
+    x0, y0 = row_i[:, :-1], row_j[:, :-1]
+    dx, dy = np.diff(row_i, axis=1), np.diff(row_j, axis=1)
+    i = np.floor(np.minimum(x0, x0 + dx))
+    j = np.floor(np.minimum(y0, y0 + dy))
+    crossed = (np.floor(np.maximum(x0, x0 + dx)) != i) | (np.floor(np.maximum(y0, y0 + dy)) != j)
+    i, j = np.maximum(i, 0), np.maximum(j, 0)
+    p0, p1, p2 = table.quadratic(x0 - i, y0 - j, dx, dy, (j * table.width + i).astype(np.intp))
+    out = np.repeat(p2, counts, axis=1)
+    out *= t
+    out += np.repeat(p1, counts, axis=1)
+    out *= t
+    out += np.repeat(p0, counts, axis=1)
+    seg_row, seg = np.nonzero(crossed)
+    if seg.size:
+        size = counts[seg]
+        first = np.cumsum(size) - size
+        col = np.repeat(starts[seg], size) + np.arange(int(size.sum())) - np.repeat(first, size)
+        at = t[col]
+        x = np.repeat(x0[seg_row, seg], size) + np.repeat(dx[seg_row, seg], size) * at
+        y = np.repeat(y0[seg_row, seg], size) + np.repeat(dy[seg_row, seg], size) * at
+        out[np.repeat(seg_row, size), col] = table.evaluate(x, y)
     return out
-
-
-def _expand_columns(
-    band: NDArray[np.float64], counts: NDArray[np.intp], t: NDArray[np.float64]
-) -> NDArray[np.float64]:
-    """Values on the lattice columns of a band of rows, interpolated linearly to every column
-    (counts: pixels per lattice interval, t: each pixel's position within its interval)."""
-    left = np.repeat(band[:, :-1], counts, axis=1)
-    step = np.repeat(np.diff(band, axis=1), counts, axis=1)
-    step *= t
-    left += step
-    return left
 
 
 def _node_span(low: float, high: float, count: int, period: int | None) -> tuple[int, int]:
