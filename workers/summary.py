@@ -261,14 +261,8 @@ def quantile_bounds(s: DhSummary, p: ArrayLike) -> NDArray[np.float64]:
 def abs_quantile_bounds(s: DhSummary, p: ArrayLike, *, center: float = 0.0) -> NDArray[np.float64]:
     """Bound (metres) on |abs_quantile(s, p, center=center) - the exact quantile of
     |value - center||."""
-    # abs_order_statistics bisects 64 times from [0, 1.000001 x the farthest distance]
-    farthest = max(abs(s.maximum - center), abs(s.minimum - center)) * 1.000001
     return _interpolated_bounds(
-        s,
-        p,
-        lambda ranks: abs_order_statistic_brackets(s, ranks, center),
-        scale=abs(center),
-        extra=farthest * 2.0**-63 if s.count else 0.0,
+        s, p, lambda ranks: abs_order_statistic_brackets(s, ranks, center), scale=abs(center)
     )
 
 
@@ -328,10 +322,10 @@ def _clipped_edges(s: DhSummary) -> tuple[NDArray[np.float64], NDArray[np.float6
     return np.clip(lo, s.minimum, s.maximum), np.clip(hi, s.minimum, s.maximum)
 
 
-def _interpolated_bounds(s, p, brackets, *, scale=0.0, extra=0.0):  # type: ignore[no-untyped-def]
+def _interpolated_bounds(s, p, brackets, *, scale=0.0):  # type: ignore[no-untyped-def]
     """(1 - g) w_j + g w_(j+1) for the ranks j, j + 1 and weight g a quantile interpolates,
     where w is the width of each order statistic's bracket; plus rounding (relative to the
-    magnitudes and scale) and extra (a search's resolution)."""
+    magnitudes and scale)."""
     p_arr = np.atleast_1d(np.asarray(p, dtype=np.float64))
     if s.count == 0:
         return np.full(p_arr.shape, np.nan)
@@ -341,7 +335,8 @@ def _interpolated_bounds(s, p, brackets, *, scale=0.0, extra=0.0):  # type: igno
     bound = (1 - frac) * width[: j.size] + frac * width[j.size :]
     magnitude = np.maximum(np.abs(lo), np.abs(hi))
     magnitude = np.maximum(magnitude[: j.size], magnitude[j.size :]) + scale
-    return (bound + _ROUNDING * magnitude + extra).reshape(np.shape(p))
+    rounding = _ROUNDING * magnitude + 4 * np.spacing(magnitude)  # the latter for subnormals
+    return (bound + rounding).reshape(np.shape(p))
 
 
 def _ranks_and_weights(
@@ -441,15 +436,19 @@ def _cdf_knots(s: DhSummary) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
 
 
 def order_statistics(s: DhSummary, ranks: NDArray[np.int64]) -> NDArray[np.float64]:
-    """Estimate of the rank-th smallest value (0-based) for each rank."""
+    """Estimate of the rank-th smallest value (0-based) for each rank (kept, against rounding,
+    inside the bin that holds the true value)."""
     x, f = _cdf_knots(s)
-    return np.interp(ranks + 0.5, f, x)
+    return np.clip(np.interp(ranks + 0.5, f, x), *order_statistic_brackets(s, ranks))
 
 
 def abs_order_statistics(
     s: DhSummary, ranks: NDArray[np.int64], center: float
 ) -> NDArray[np.float64]:
-    """Estimate of the rank-th smallest |value - center|: solves F(c+t) - F(c-t) = rank + 0.5."""
+    """Estimate of the rank-th smallest |value - center|: solves F(c+t) - F(c-t) = rank + 0.5
+    by bisection, kept inside the interval that provably holds the true value (which the
+    solution lies in too, but bisection and interpolation lose precision in subnormal-wide
+    bins)."""
     x, f = _cdf_knots(s)
     target = ranks + 0.5
     lo = np.zeros(target.shape)
@@ -461,4 +460,4 @@ def abs_order_statistics(
         below = inside < target
         lo = np.where(below, mid, lo)
         hi = np.where(below, hi, mid)
-    return hi
+    return np.clip(hi, *abs_order_statistic_brackets(s, ranks, center))

@@ -107,9 +107,12 @@ PROBABILITIES = (0.0, 0.05, 0.25, 0.5, 0.683, 0.9, 0.95, 1.0)
 
 @st.composite
 def adversarial_dh(draw) -> np.ndarray:  # type: ignore[no-untyped-def]
-    """Bimodal clusters far apart, two values, sparse values with wide gaps, repeated values and
-    values on bin edges."""
-    kind = draw(st.sampled_from(["bimodal", "pair", "gaps", "edges"]))
+    """Bimodal clusters far apart, two values, sparse values with wide gaps, repeated values,
+    values on bin edges, and values next to zero (subnormal-wide bins)."""
+    kind = draw(st.sampled_from(["bimodal", "pair", "gaps", "edges", "tiny"]))
+    if kind == "tiny":
+        tiny = [0.0, -0.0, 5e-324, -5e-324, 2.2e-309, -2.2e-309, 1e-300, -3e-305, 1e-3]
+        return np.array(draw(st.lists(st.sampled_from(tiny), min_size=1, max_size=8)))
     if kind == "bimodal":
         centre = draw(st.floats(0.5, 5000.0))
         spread = draw(st.floats(0.0, 1.0))
