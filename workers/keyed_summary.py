@@ -19,6 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from workers import kernels
 from workers import summary as dh_summary
 from workers.summary import DhSummary
 
@@ -93,6 +94,8 @@ def summarise_cells(
     key = np.asarray(cells, dtype=np.intp)
     if x.shape != key.shape or x.ndim != 1:
         raise ValueError(f"values {x.shape} and cells {key.shape} must be 1-D of one length")
+    if kernels.AVAILABLE and n_cells * _WIDTH <= MAX_COUNTERS:
+        return _summarise_compiled(x, key, n_cells)
     count = np.bincount(key, minlength=n_cells)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.bincount(key, weights=x, minlength=n_cells) / count
@@ -134,8 +137,50 @@ def _cell_histograms(
         dense = np.bincount(code, minlength=(last - first) * _WIDTH).reshape(-1, _WIDTH)
         del code
         linear.extend(dense[:, :-1])
+    return tuple(linear), _tail_runs(key[tail], k[tail], n_cells)
+
+
+def _summarise_compiled(
+    x: NDArray[np.float64], key: NDArray[np.intp], n_cells: int
+) -> CellSummaries:
+    """summarise_cells in two compiled sweeps (sums, extremes and linear bins; deviations)."""
+    dense = np.zeros((n_cells, _WIDTH - 1), dtype=np.int64)
+    sums = np.zeros(n_cells)
+    minimum = np.full(n_cells, np.inf)
+    maximum = np.full(n_cells, -np.inf)
+    tail = np.empty(x.size, dtype=np.intp)
+    n_tail = kernels.cell_sweep(
+        x,
+        key,
+        dh_summary.LINEAR_WIDTH_M,
+        dh_summary.LINEAR_LIMIT_M,
+        _K,
+        dense,
+        sums,
+        minimum,
+        maximum,
+        tail,
+    )
+    tail = tail[:n_tail]
     tail_key = key[tail]
-    tail_bin = k[tail]
+    count = dense.sum(axis=1) + np.bincount(tail_key, minlength=n_cells)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(count > 0, sums / count, 0.0)
+    residual = np.zeros(n_cells)
+    squares = np.zeros(n_cells)
+    kernels.deviation_sweep(x, key, mean, residual, squares)
+    correction = np.where(count > 0, residual / np.maximum(count, 1), 0.0)
+    mean += correction  # the residual of the first estimate, as in a second pass
+    m2 = np.maximum(squares - residual * correction, 0.0)
+    tails = _tail_runs(tail_key, dh_summary.bin_index(x[tail]), n_cells)
+    return CellSummaries(count, mean, m2, minimum, maximum, tuple(dense), tails)
+
+
+def _tail_runs(
+    tail_key: NDArray[np.intp], tail_bin: NDArray[np.int64], n_cells: int
+) -> tuple[tuple[NDArray[np.int64], NDArray[np.int64]], ...]:
+    """Per cell, the distinct tail bins of its values and how many fall in each."""
+    tail = tail_key
     order = np.lexsort((tail_bin, tail_key))
     tail_key, tail_bin = tail_key[order], tail_bin[order]
     starts = (
@@ -153,4 +198,4 @@ def _cell_histograms(
         (run_bins[bounds[c] : bounds[c + 1]], run_counts[bounds[c] : bounds[c + 1]])
         for c in range(n_cells)
     )
-    return tuple(linear), tails
+    return tails

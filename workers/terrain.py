@@ -11,6 +11,8 @@ from collections.abc import Sequence
 import numpy as np
 from numpy.typing import NDArray
 
+from workers import kernels
+
 
 def gradient_east_north(
     heights: NDArray[np.float64], *, pixel_size_x_m: float, pixel_size_y_m: float
@@ -65,26 +67,47 @@ def slope_bands(
     none = np.uint8(edge_arr.size)
     if min(heights.shape) < 2:
         return np.full(heights.shape, none, dtype=np.uint8)
-    g2 = _squared_gradient(heights, pixel_size_x_m, pixel_size_y_m)
     margin = _MARGIN if heights.dtype != np.float32 else _MARGIN_FLOAT32
     t2 = np.tan(np.radians(edge_arr)) ** 2
-    surely = np.zeros(g2.shape, dtype=np.uint8)  # edges certainly at or below the slope
-    maybe = np.zeros(g2.shape, dtype=np.uint8)  # edges possibly at or below it
-    for threshold in t2:
-        surely += g2 >= np.float32(threshold * (1 + margin))  # float32 rounding << margin
-        maybe += g2 >= np.float32(threshold * (1 - margin))
-    del g2
-    (close,) = np.nonzero((surely != maybe).ravel())
+    lower, upper = t2 * (1 - margin), t2 * (1 + margin)
+    if kernels.AVAILABLE and heights.dtype in (np.float32, np.float64):
+        bands = np.empty(heights.shape, dtype=np.uint8)
+        px, py = float(pixel_size_x_m), float(pixel_size_y_m)
+        kernels.band_sweep(heights, 0.5 / px, 0.5 / py, 1 / px, 1 / py, lower, upper, none, bands)
+        (close,) = np.nonzero((bands == kernels.AMBIGUOUS).ravel())
+    else:
+        bands, close = _bands_numpy(heights, lower, upper, none, pixel_size_x_m, pixel_size_y_m)
     if close.size:
         exact = _exact_slope_at(heights, close, pixel_size_x_m, pixel_size_y_m)
-        counted = np.zeros(close.size, dtype=np.uint8)
+        counted = np.zeros(close.size, dtype=np.int16)
         for edge in edge_arr:
             counted += exact >= edge
-        surely.ravel()[close] = counted
+        bands.ravel()[close] = np.where(counted > 0, counted - 1, none)
+    return bands
+
+
+def _bands_numpy(
+    heights: NDArray[np.floating],
+    lower: NDArray[np.float64],
+    upper: NDArray[np.float64],
+    none: np.uint8,
+    px: float,
+    py: float,
+) -> tuple[NDArray[np.uint8], NDArray[np.intp]]:
+    """slope_bands without the compiled loop: the bands, and the flat indices of the pixels
+    too close to an edge to tell (their band is left for the exact path)."""
+    g2 = _squared_gradient(heights, px, py)
+    surely = np.zeros(g2.shape, dtype=np.uint8)  # edges certainly at or below the slope
+    maybe = np.zeros(g2.shape, dtype=np.uint8)  # edges possibly at or below it
+    for low, high in zip(lower, upper, strict=True):
+        surely += g2 >= np.float32(high)  # float32 rounding << margin
+        maybe += g2 >= np.float32(low)
+    del g2
+    (close,) = np.nonzero((surely != maybe).ravel())
     # count of edges at or below the slope, minus one, is the band; none when no edge is below
     surely -= 1
     surely[surely == 255] = none
-    return surely
+    return surely, close
 
 
 _MARGIN = 1e-6  # relative: far above float32 rounding of the squared gradient (6e-8)

@@ -5,7 +5,17 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from workers import kernels
 from workers.terrain import slope_bands, slope_degrees
+
+
+@pytest.fixture(autouse=True, params=["compiled", "numpy"])
+def backend(request: pytest.FixtureRequest, monkeypatch: pytest.MonkeyPatch) -> str:
+    """Every test runs on the compiled loops (workers/kernels.py) and on the numpy path."""
+    if request.param == "compiled" and not kernels.AVAILABLE:
+        pytest.skip("numba is not installed")
+    monkeypatch.setattr(kernels, "AVAILABLE", request.param == "compiled")
+    return str(request.param)
 
 
 def digitized(z: np.ndarray, edges, px: float, py: float) -> np.ndarray:

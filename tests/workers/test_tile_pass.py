@@ -7,7 +7,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from workers import keyed_summary, tile_pass, tile_task
+from workers import kernels, keyed_summary, tile_pass, tile_task
 from workers import summary as dhs
 from workers.strata import ClassInfo, excluded_mask, stratum_masks
 from workers.terrain import slope_degrees
@@ -20,6 +20,15 @@ CLASSES = (
 )
 EDGES = (0.0, 5.0, 15.0, 30.0)
 PIXEL = (2.0, 3.0)
+
+
+@pytest.fixture(autouse=True, params=["compiled", "numpy"])
+def backend(request: pytest.FixtureRequest, monkeypatch: pytest.MonkeyPatch) -> str:
+    """Every test runs on the compiled loops (workers/kernels.py) and on the numpy path."""
+    if request.param == "compiled" and not kernels.AVAILABLE:
+        pytest.skip("numba is not installed")
+    monkeypatch.setattr(kernels, "AVAILABLE", request.param == "compiled")
+    return str(request.param)
 
 
 def per_mask(dh, *, reference, landcover, region_masks, classes, slope_edges, pixel_size_m):

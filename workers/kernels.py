@@ -1,0 +1,114 @@
+"""Compiled loops for the per-tile pass (numba): one sweep over the pixels instead of one numpy
+pass per operation. Pure; every kernel has a numpy twin in the module that calls it, and the tests
+hold both to the same results (tests/workers/test_tile_pass.py, tests/workers/test_terrain.py).
+
+``AVAILABLE`` is False when numba is not installed: the callers then take the numpy path.
+Compiled code is cached on disk beside the module (``cache=True``), so a worker process compiles
+once per installation, not once per start.
+"""
+
+from __future__ import annotations
+
+import math
+from importlib.util import find_spec
+from typing import Any
+
+import numpy as np
+
+AVAILABLE = find_spec("numba") is not None  # numba itself is imported at the first sweep
+_COMPILED: dict[str, Any] = {}
+
+AMBIGUOUS = 255  # band code of a pixel whose slope lies within the margin of a band edge
+
+
+def _compiled(name: str) -> Any:
+    """The numba-compiled version of the loop ``_<name>`` (compiled, or loaded from the disk
+    cache, once per process)."""
+    if name not in _COMPILED:
+        from numba import njit
+
+        _COMPILED[name] = njit(cache=True, nogil=True)(globals()[f"_{name}"])
+    return _COMPILED[name]
+
+
+def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, maxs, tail):  # type: ignore[no-untyped-def]
+    """Per value: add it to its cell's sum and extremes; count it in its linear bin
+    (floor(x / linear_width), as summary.bin_index) or list it in ``tail``. Returns how many
+    values went to the tail."""
+    n_tail = 0
+    columns = 2 * k_limit
+    for i in range(x.size):
+        v = x[i]
+        c = key[i]
+        sums[c] += v
+        if v < mins[c]:
+            mins[c] = v
+        if v > maxs[c]:
+            maxs[c] = v
+        column = -1
+        if abs(v) < linear_limit:
+            column = int(math.floor(v / linear_width)) + k_limit
+        if 0 <= column < columns:
+            dense[c, column] += 1
+        else:
+            tail[n_tail] = i
+            n_tail += 1
+    return n_tail
+
+
+def _deviation_sweep(x, key, mean, residual, squares):  # type: ignore[no-untyped-def]
+    """Per cell: the sum of deviations from mean and of their squares."""
+    for i in range(x.size):
+        c = key[i]
+        d = x[i] - mean[c]
+        residual[c] += d
+        squares[c] += d * d
+
+
+def _band_sweep(z, half_x, half_y, full_x, full_y, lower, upper, none, out):  # type: ignore[no-untyped-def]
+    """Slope band per pixel from the squared gradient (central differences, one-sided at the
+    edges) against squared thresholds ``lower`` < ``upper`` per edge; AMBIGUOUS where they
+    disagree, ``none`` where the gradient is NaN or below the first edge."""
+    rows, cols = z.shape
+    for r in range(rows):
+        r0 = r - 1 if r > 0 else 0
+        r1 = r + 1 if r < rows - 1 else rows - 1
+        sy = half_y if 0 < r < rows - 1 else full_y
+        for c in range(cols):
+            c0 = c - 1 if c > 0 else 0
+            c1 = c + 1 if c < cols - 1 else cols - 1
+            sx = half_x if 0 < c < cols - 1 else full_x
+            gx = (np.float64(z[r, c1]) - np.float64(z[r, c0])) * sx
+            gy = (np.float64(z[r1, c]) - np.float64(z[r0, c])) * sy
+            g2 = gx * gx + gy * gy
+            if g2 != g2:
+                out[r, c] = none
+                continue
+            surely = 0
+            maybe = 0
+            for e in range(upper.size):
+                if g2 >= upper[e]:
+                    surely += 1
+                if g2 >= lower[e]:
+                    maybe += 1
+            if surely != maybe:
+                out[r, c] = AMBIGUOUS
+            elif surely == 0:
+                out[r, c] = none
+            else:
+                out[r, c] = surely - 1
+
+
+def cell_sweep(*args: Any) -> int:
+    """Compiled _cell_sweep (same arguments)."""
+    return int(_compiled("cell_sweep")(*args))
+
+
+def deviation_sweep(*args: Any) -> None:
+    """Compiled _deviation_sweep (same arguments)."""
+    _compiled("deviation_sweep")(*args)
+
+
+def band_sweep(*args: Any) -> None:
+    """Compiled _band_sweep (same arguments)."""
+    _compiled("band_sweep")(*args)
