@@ -205,9 +205,10 @@ def statistics(s: DhSummary) -> dict[str, float | int | None]:
     """
     if s.count == 0:
         return {key: (0 if key == "count" else None) for key in STAT_KEYS}
-    median = float(quantile(s, 0.5))
-    mad = float(abs_quantile(s, 0.5, center=median))
-    abs_q = abs_quantile(s, np.array([0.683, 0.95]), center=0.0)
+    layout = _layout(s)
+    median = float(quantile(s, 0.5, layout=layout))
+    mad = float(abs_quantile(s, 0.5, center=median, layout=layout))
+    abs_q = abs_quantile(s, np.array([0.683, 0.95]), center=0.0, layout=layout)
     std = float(np.sqrt(s.m2 / (s.count - 1))) if s.count > 1 else 0.0
     rmse = float(np.sqrt(s.mean**2 + s.m2 / s.count))
     return {
@@ -224,14 +225,20 @@ def statistics(s: DhSummary) -> dict[str, float | int | None]:
     }
 
 
-def quantile(s: DhSummary, p: ArrayLike) -> NDArray[np.float64]:
+def quantile(s: DhSummary, p: ArrayLike, *, layout: _Layout | None = None) -> NDArray[np.float64]:
     """Quantile(s) p of the summarised values, as numpy.quantile's default method."""
-    return _interpolate_order_statistics(s, p, lambda ranks: order_statistics(s, ranks))
+    return _interpolate_order_statistics(
+        s, p, lambda ranks: order_statistics(s, ranks, layout=layout)
+    )
 
 
-def abs_quantile(s: DhSummary, p: ArrayLike, *, center: float = 0.0) -> NDArray[np.float64]:
+def abs_quantile(
+    s: DhSummary, p: ArrayLike, *, center: float = 0.0, layout: _Layout | None = None
+) -> NDArray[np.float64]:
     """Quantile(s) p of |value - center|, as numpy.quantile's default method."""
-    return _interpolate_order_statistics(s, p, lambda ranks: abs_order_statistics(s, ranks, center))
+    return _interpolate_order_statistics(
+        s, p, lambda ranks: abs_order_statistics(s, ranks, center, layout=layout)
+    )
 
 
 def quantile_bound_m(value: float) -> float:
@@ -252,17 +259,26 @@ def nmad_bound_m(median: float, nmad: float) -> float:
 _ROUNDING = 1.0e-12
 
 
-def quantile_bounds(s: DhSummary, p: ArrayLike) -> NDArray[np.float64]:
+def quantile_bounds(
+    s: DhSummary, p: ArrayLike, *, layout: _Layout | None = None
+) -> NDArray[np.float64]:
     """Bound (metres) on |quantile(s, p) - the exact quantile of the values|, from the bins
     that hold the two order statistics the quantile interpolates."""
-    return _interpolated_bounds(s, p, lambda ranks: order_statistic_brackets(s, ranks))
+    return _interpolated_bounds(
+        s, p, lambda ranks: order_statistic_brackets(s, ranks, layout=layout)
+    )
 
 
-def abs_quantile_bounds(s: DhSummary, p: ArrayLike, *, center: float = 0.0) -> NDArray[np.float64]:
+def abs_quantile_bounds(
+    s: DhSummary, p: ArrayLike, *, center: float = 0.0, layout: _Layout | None = None
+) -> NDArray[np.float64]:
     """Bound (metres) on |abs_quantile(s, p, center=center) - the exact quantile of
     |value - center||."""
     return _interpolated_bounds(
-        s, p, lambda ranks: abs_order_statistic_brackets(s, ranks, center), scale=abs(center)
+        s,
+        p,
+        lambda ranks: abs_order_statistic_brackets(s, ranks, center, layout=layout),
+        scale=abs(center),
     )
 
 
@@ -271,10 +287,11 @@ def statistic_bounds(s: DhSummary) -> dict[str, float | None]:
     :func:`statistics` reads them; None for an empty summary."""
     if s.count == 0:
         return {"median": None, "nmad": None, "q683_abs": None, "q95_abs": None}
-    median = float(quantile(s, 0.5))
-    median_bound = float(quantile_bounds(s, 0.5))
-    mad_bound = float(abs_quantile_bounds(s, 0.5, center=median))
-    abs_bounds = abs_quantile_bounds(s, np.array([0.683, 0.95]), center=0.0)
+    layout = _layout(s)
+    median = float(quantile(s, 0.5, layout=layout))
+    median_bound = float(quantile_bounds(s, 0.5, layout=layout))
+    mad_bound = float(abs_quantile_bounds(s, 0.5, center=median, layout=layout))
+    abs_bounds = abs_quantile_bounds(s, np.array([0.683, 0.95]), center=0.0, layout=layout)
     return {
         "median": median_bound,
         "nmad": NMAD_FACTOR * (mad_bound + median_bound),
@@ -284,23 +301,24 @@ def statistic_bounds(s: DhSummary) -> dict[str, float | None]:
 
 
 def order_statistic_brackets(
-    s: DhSummary, ranks: NDArray[np.int64]
+    s: DhSummary, ranks: NDArray[np.int64], *, layout: _Layout | None = None
 ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """For each 0-based rank, the interval holding both the rank-th smallest value and its
     estimate: the edges of its bin, clipped to the exact minimum and maximum."""
-    lo, hi = _clipped_edges(s)
-    at = np.searchsorted(np.cumsum(s.counts), np.asarray(ranks), side="right")
-    return lo[at], hi[at]
+    layout = layout or _layout(s)
+    at = np.searchsorted(layout.cum, np.asarray(ranks), side="right")
+    return layout.lo[at], layout.hi[at]
 
 
 def abs_order_statistic_brackets(
-    s: DhSummary, ranks: NDArray[np.int64], center: float
+    s: DhSummary, ranks: NDArray[np.int64], center: float, *, layout: _Layout | None = None
 ) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """For each 0-based rank, an interval holding the rank-th smallest |value - center| and its
     estimate: the rank-th smallest of the bins' nearest and of their farthest distances from
     center, each bin counted as often as it holds values (order statistics are monotone in every
     value, and the estimate's spread-out counts obey the same two limits)."""
-    lo, hi = _clipped_edges(s)
+    layout = layout or _layout(s)
+    lo, hi = layout.lo, layout.hi
     near = np.maximum(np.maximum(lo - center, center - hi), 0.0)
     far = np.maximum(np.abs(lo - center), np.abs(hi - center))
     ranks = np.asarray(ranks)
@@ -317,9 +335,20 @@ def _weighted_order_statistic(
     return values[order][np.searchsorted(cum, ranks, side="right")]
 
 
-def _clipped_edges(s: DhSummary) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+@dataclass(frozen=True, eq=False)
+class _Layout:
+    """What reading values back needs of a summary, computed once per summary read: the bin
+    edges clipped to the exact minimum and maximum, and the cumulative counts."""
+
+    lo: NDArray[np.float64]
+    hi: NDArray[np.float64]
+    cum: NDArray[np.int64]
+
+
+def _layout(s: DhSummary) -> _Layout:
     lo, hi = bin_edges(s.bins)
-    return np.clip(lo, s.minimum, s.maximum), np.clip(hi, s.minimum, s.maximum)
+    cum = np.cumsum(s.counts, dtype=np.int64)
+    return _Layout(np.clip(lo, s.minimum, s.maximum), np.clip(hi, s.minimum, s.maximum), cum)
 
 
 def _interpolated_bounds(s, p, brackets, *, scale=0.0):  # type: ignore[no-untyped-def]
@@ -423,33 +452,35 @@ def _interpolate_order_statistics(s, p, estimate):  # type: ignore[no-untyped-de
     return result.reshape(np.shape(p))
 
 
-def _cdf_knots(s: DhSummary) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+def _cdf_knots(layout: _Layout) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
     """Knots of the piecewise-linear CDF that spreads each bin's count evenly across it."""
-    lo, hi = bin_edges(s.bins)
-    lo = np.clip(lo, s.minimum, s.maximum)
-    hi = np.clip(hi, s.minimum, s.maximum)
-    cum = np.cumsum(s.counts).astype(np.float64)
-    before = cum - s.counts
-    x = np.column_stack([lo, hi]).ravel()
+    cum = layout.cum.astype(np.float64)
+    before = np.concatenate([[0.0], cum[:-1]])
+    x = np.column_stack([layout.lo, layout.hi]).ravel()
     f = np.column_stack([before, cum]).ravel()
     return x, f
 
 
-def order_statistics(s: DhSummary, ranks: NDArray[np.int64]) -> NDArray[np.float64]:
+def order_statistics(
+    s: DhSummary, ranks: NDArray[np.int64], *, layout: _Layout | None = None
+) -> NDArray[np.float64]:
     """Estimate of the rank-th smallest value (0-based) for each rank (kept, against rounding,
     inside the bin that holds the true value)."""
-    x, f = _cdf_knots(s)
-    return np.clip(np.interp(ranks + 0.5, f, x), *order_statistic_brackets(s, ranks))
+    layout = layout or _layout(s)
+    x, f = _cdf_knots(layout)
+    brackets = order_statistic_brackets(s, ranks, layout=layout)
+    return np.clip(np.interp(ranks + 0.5, f, x), *brackets)
 
 
 def abs_order_statistics(
-    s: DhSummary, ranks: NDArray[np.int64], center: float
+    s: DhSummary, ranks: NDArray[np.int64], center: float, *, layout: _Layout | None = None
 ) -> NDArray[np.float64]:
     """Estimate of the rank-th smallest |value - center|: solves F(c+t) - F(c-t) = rank + 0.5
     by bisection, kept inside the interval that provably holds the true value (which the
     solution lies in too, but bisection and interpolation lose precision in subnormal-wide
     bins)."""
-    x, f = _cdf_knots(s)
+    layout = layout or _layout(s)
+    x, f = _cdf_knots(layout)
     target = ranks + 0.5
     lo = np.zeros(target.shape)
     hi = np.full(target.shape, max(abs(s.maximum - center), abs(s.minimum - center)) * 1.000001)
@@ -460,4 +491,4 @@ def abs_order_statistics(
         below = inside < target
         lo = np.where(below, mid, lo)
         hi = np.where(below, hi, mid)
-    return np.clip(hi, *abs_order_statistic_brackets(s, ranks, center))
+    return np.clip(hi, *abs_order_statistic_brackets(s, ranks, center, layout=layout))
