@@ -9,6 +9,7 @@ import socket
 import sys
 import time
 from collections.abc import Sequence
+from contextlib import ExitStack
 from importlib.metadata import PackageNotFoundError
 from importlib.metadata import version as package_version
 from pathlib import Path
@@ -275,20 +276,26 @@ def _scheduler_address(text: str) -> str:
 
 
 def _reachable(address: str, *, option: str) -> None:
-    """SpecError naming option when nothing answers at the scheduler's address (TCP only; other
-    schemes are left to Dask)."""
+    """SpecError naming option unless a Dask scheduler answers at address within
+    SCHEDULER_CONNECT_TIMEOUT_S: the TCP connection must open and (plain tcp) the server must
+    send its greeting, as a Dask scheduler does at once. Other schemes are left to Dask."""
     match = _ADDRESS.match(address)
-    if match is None or (match["scheme"] or "tcp") not in {"tcp", "tls"}:
+    scheme = (match["scheme"] or "tcp") if match else ""
+    if match is None or scheme not in {"tcp", "tls"}:
         return
     host, port = match["host"].strip("[]"), int(match["port"])
+    timeout = SCHEDULER_CONNECT_TIMEOUT_S
     try:
-        with socket.create_connection((host, port), timeout=SCHEDULER_CONNECT_TIMEOUT_S):
-            pass
+        with socket.create_connection((host, port), timeout=timeout) as probe:
+            if scheme == "tcp" and not probe.recv(1):
+                raise ConnectionResetError(0, "closed the connection without a greeting")
     except OSError as exc:
-        reason = "no answer" if isinstance(exc, TimeoutError) else (exc.strerror or str(exc))
+        if isinstance(exc, TimeoutError):
+            reason = f"no answer within {timeout:g} s"
+        else:
+            reason = exc.strerror or str(exc)
         raise SpecError(
-            f"{option}: cannot reach the Dask scheduler at {address} "
-            f"({reason} within {SCHEDULER_CONNECT_TIMEOUT_S:g} s)"
+            f"{option}: cannot reach a Dask scheduler at {address} ({reason})"
         ) from None
 
 
@@ -324,9 +331,18 @@ def _cmd_run(args: argparse.Namespace, settings: Settings) -> int:
     check_output(args.out)
     scheduler, workers = _cluster_options(args, settings)
     spec = job.spec
-    with dask_client(
-        scheduler, workers=workers, memory_limit=settings.worker_memory_limit
-    ) as client:
+    with ExitStack() as stack:
+        try:
+            client = stack.enter_context(
+                dask_client(scheduler, workers=workers, memory_limit=settings.worker_memory_limit)
+            )
+        except (OSError, TimeoutError) as exc:
+            if scheduler is None:
+                raise
+            raise SpecError(
+                f"--scheduler: {scheduler} did not answer as a Dask scheduler "
+                f"({type(exc).__name__}: {exc})"
+            ) from None
         bar = tqdm(total=None, unit="tile", desc=spec.name, disable=args.quiet, file=sys.stderr)
 
         def progress(done: int, total: int) -> None:
