@@ -10,7 +10,8 @@ Hierarchy::
     ├── MissingCRSError (ValueError)a tile or region file declares no CRS
     ├── GeoidGridError (RuntimeError) the geoid grid needed for a datum change is missing
     ├── EmptyOverlapError (ValueError) test, reference or regions share no area
-    └── DataRootError (PermissionError) a path lies outside the allowed data roots
+    ├── DataRootError (PermissionError) a path lies outside the allowed data roots
+    └── OutputError (OSError)       the output folder cannot be used or written
 
 Each error carries a message that names the file or field at fault. The service turns them into
 HTTP problem responses in one place; the CLI prints them and exits non-zero.
@@ -54,3 +55,8 @@ class EmptyOverlapError(AuditError, ValueError):
 
 class DataRootError(AuditError, PermissionError):
     """A path in a job spec lies outside the allowed data roots."""
+
+
+class OutputError(AuditError, OSError):
+    """The output folder cannot be used or written (not a folder, read-only, disk full, a folder
+    of other files); nothing was changed in it."""

@@ -38,7 +38,7 @@ import zarr
 from numpy.typing import NDArray
 
 from workers.catalog import TileInfo
-from workers.errors import AuditError
+from workers.errors import AuditError, OutputError
 from workers.summary import STAT_KEYS
 
 ZARR_NAME = "results.zarr"
@@ -47,11 +47,6 @@ UNCONSOLIDATED_GROUPS = frozenset({"tile_summaries", "job_summaries"})
 SUMMARY_NAME = "summary.json"
 #: A folder holding one of these is taken for an earlier result, replaced as a whole by a new run.
 RESULT_MARKERS = (SUMMARY_NAME, ZARR_NAME)
-
-
-class OutputError(AuditError, OSError):
-    """The output folder cannot be used or written (not a folder, read-only, disk full, a folder
-    of other files); nothing was changed in it."""
 
 
 def check_output_folder(target: Path) -> Path:
@@ -191,7 +186,8 @@ class ResultsStore:
     """Writes one job's ``results.zarr``; overview blocks are written as tiles finish.
 
     The store is built as ``results.zarr.partial`` and replaces an earlier ``results.zarr`` only
-    in :meth:`finish`, so a job that fails half-way leaves the previous results intact.
+    in :meth:`finish`. The runner writes it inside a staged output folder (:func:`staged_folder`),
+    which keeps the whole earlier result, not only its store, intact when a job fails.
     """
 
     def __init__(self, out_dir: Path, layout: OverviewLayout | None) -> None:
