@@ -101,6 +101,11 @@ def _parser() -> argparse.ArgumentParser:
     validate.add_argument("spec", type=Path, help="job spec (YAML or JSON)")
     validate.add_argument("--out", type=Path, help="also check this output folder can be used")
     validate.add_argument("--baseline", type=Path, help="also check this baseline folder")
+    validate.add_argument(
+        "--pixels",
+        action="store_true",
+        help="also read every test tile and check its heights (void codes without a nodata tag)",
+    )
     validate.set_defaults(handler=_cmd_validate)
 
     demo = sub.add_parser("demo", help="run the shipped demo job on demo_tiles/")
@@ -382,7 +387,11 @@ def _cmd_validate(args: argparse.Namespace, settings: Settings) -> int:
 
     job = _load_job(Path(args.spec), settings)
     notes, problems = validate_job(
-        job, grid_dirs=settings.grid_dirs, out_dir=args.out, baseline=args.baseline
+        job,
+        grid_dirs=settings.grid_dirs,
+        out_dir=args.out,
+        baseline=args.baseline,
+        pixels=args.pixels,
     )
     for note in notes:
         print(f"  {note}")

@@ -55,6 +55,7 @@ from workers.errors import AuditError, EmptyOverlapError, TileReadError
 from workers.figures import write_figures
 from workers.grading import Measured
 from workers.merge import JobAccumulator
+from workers.rasters import read_tile
 from workers.recheck import ChangePlan, Thresholds
 from workers.regions import Region
 from workers.report import (
@@ -195,12 +196,14 @@ def validate_job(
     grid_dirs: Sequence[str] = DEFAULT_GRID_DIRS,
     out_dir: Path | None = None,
     baseline: Path | None = None,
+    pixels: bool = False,
 ) -> tuple[list[str], list[str]]:
     """Check everything a run checks before its first tile, without running one: the region
     and checkpoint files, the output folder and baseline when given, every tile's header
     (files are not hashed), the overlap of test and reference, the geoid grids, the regions'
-    extent. Raises what run_job would raise; returns notes and per-tile problems (tiles a run
-    would report as failed or leave out)."""
+    extent. With ``pixels``, every test tile is also read and its heights checked as a run
+    would (void codes without a nodata tag). Raises what run_job would raise; returns notes and
+    per-tile problems (tiles a run would report as failed or leave out)."""
     inputs = read_inputs(job)
     notes = []
     if out_dir is not None:
@@ -230,7 +233,25 @@ def validate_job(
             for t in catalog.tests
             if not catalog.candidates[t.tile_id]
         ]
+    if pixels:
+        problems += _pixel_problems(job, catalog.tests)
     return notes, problems
+
+
+def _pixel_problems(job: ResolvedJob, tests: Sequence[TileInfo]) -> list[str]:
+    """Why a run would refuse test tiles once their pixels are read (void codes without a
+    nodata tag, heights no terrain has, unreadable data), one line per tile."""
+    source = job.spec.test
+
+    def refused(tile: TileInfo) -> str | None:
+        try:
+            read_tile(tile, nodata=source.nodata, units=source.units)
+        except AuditError as exc:
+            return str(exc)
+        return None
+
+    with ThreadPoolExecutor(max_workers=2) as pool:
+        return [p for p in pool.map(refused, tests) if p is not None]
 
 
 def _local_map(function: Callable[..., Any], *arguments: Sequence[Any]) -> list[Any]:

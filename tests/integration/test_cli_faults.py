@@ -407,6 +407,17 @@ def test_validate_checks_files_and_tiles_without_running(archive, demaudit, tmp_
     assert code == 2 and "checkpoints.file" in err
 
 
+def test_validate_with_pixels_finds_void_codes_without_a_nodata_tag(archive, demaudit):
+    with rasterio.open(archive / "test" / "t_0_1.tif") as src:
+        heights, transform = src.read(1), src.transform
+    heights[:10, :] = -9999.0  # a quarter of the tile: voids coded, but not tagged
+    write_tif(archive / "test" / "t_0_1.tif", heights, crs=UTM32, transform=transform, nodata=None)
+    code, stdout, _ = demaudit("validate", str(archive / "job.yaml"))
+    assert code == 0  # headers alone cannot tell
+    code, stdout, _ = demaudit("validate", str(archive / "job.yaml"), "--pixels")
+    assert code == 1 and "t_0_1" in stdout and "-9999" in stdout and "nodata" in stdout
+
+
 def test_validate_refuses_a_bad_region_file(archive, demaudit):
     (archive / "regions.geojson").write_text('{"type": "Feature"}')
     code, _, err = demaudit("validate", str(archive / "job.yaml"))
