@@ -17,7 +17,7 @@ the domain are also written as unit coordinates ``u`` (0 west .. 1 east) and ``v
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from enum import IntEnum
 
@@ -158,6 +158,13 @@ class TileGrid:
         easting, northing = np.meshgrid(west + offsets, north - offsets)
         return easting, northing
 
+    def pixel_axes(self, col: int, row: int) -> tuple[np.ndarray, np.ndarray]:
+        """The tile's pixel-centre eastings as a (1, pixels) row and northings as a (pixels, 1)
+        column: they broadcast to the arrays of pixel_centres."""
+        west, north = self.tile_origin(col, row)
+        offsets = (np.arange(self.pixels) + 0.5) * self.pixel_size_m
+        return (west + offsets)[None, :], (north - offsets)[:, None]
+
     def tile_of(self, easting: float, northing: float) -> tuple[int, int]:
         """(col, row) of the tile holding a point, clamped to the domain."""
         col = int((easting - self.west) // self.tile_size_m)
@@ -186,12 +193,40 @@ class _Waves:
     amplitude: np.ndarray
 
     def __call__(self, x: np.ndarray, y: np.ndarray | float = 0.0) -> np.ndarray:
+        if _is_grid(x, y):
+            return self._on_grid(np.asarray(x), np.asarray(y))
         out = np.zeros(np.broadcast(x, y).shape)
         for kx, ky, phase, amplitude in zip(
             self.kx, self.ky, self.phase, self.amplitude, strict=True
         ):
             out += amplitude * np.cos(kx * x + ky * y + phase)
         return out
+
+    def _on_grid(self, x: np.ndarray, y: np.ndarray) -> np.ndarray:
+        """The waves on a grid, x of shape (1, n) and y of shape (m, 1), as an (m, n) array.
+
+        cos(a + b) = cos a cos b - sin a sin b: 4 (m + n) cosines and sines per wave and one
+        matrix product instead of m n cosines. Equal to the pointwise sum within a few 1e-15 of
+        the amplitudes (the rounding of the phase differs).
+        """
+        a = self.kx[:, None] * x[0][None, :]  # (waves, n)
+        b = self.ky[:, None] * y[:, 0][None, :] + self.phase[:, None]  # (waves, m)
+        amplitude = self.amplitude[:, None]
+        rows = np.concatenate([amplitude * np.cos(b), -amplitude * np.sin(b)]).T  # (m, 2 waves)
+        cols = np.concatenate([np.cos(a), np.sin(a)])  # (2 waves, n)
+        return np.asarray(rows @ cols)
+
+
+def _is_grid(x: np.ndarray | float, y: np.ndarray | float) -> bool:
+    """True for the axes of a regular grid: x of shape (1, n) and y of shape (m, 1)."""
+    return (
+        isinstance(x, np.ndarray)
+        and isinstance(y, np.ndarray)
+        and x.ndim == 2
+        and y.ndim == 2
+        and x.shape[0] == 1
+        and y.shape[1] == 1
+    )
 
 
 def _random_waves(
@@ -269,12 +304,29 @@ def build_world(options: DemoArchiveOptions) -> DemoWorld:
 
 @dataclass(frozen=True, eq=False)
 class _Place:
-    """Coordinates of a set of points: metres from the domain's north-west corner and unit ones."""
+    """Coordinates of a set of points: metres from the domain's north-west corner and unit ones.
+
+    Either arrays of one shape (any points) or the axes of a regular grid (x and u of shape
+    (1, n), y and v of shape (m, 1)), which broadcast to the (m, n) grid.
+    """
 
     x: np.ndarray
     y: np.ndarray
     u: np.ndarray
     v: np.ndarray
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return np.broadcast_shapes(self.x.shape, self.y.shape)
+
+    @property
+    def is_grid(self) -> bool:
+        return _is_grid(self.x, self.y)
+
+    def subset(self, mask: np.ndarray) -> _Place:
+        """The points where mask (of shape self.shape) is True, as 1-D arrays."""
+        shape = self.shape
+        return _Place(*(np.broadcast_to(a, shape)[mask] for a in (self.x, self.y, self.u, self.v)))
 
 
 def _place(world: DemoWorld, easting: np.ndarray, northing: np.ndarray) -> _Place:
@@ -284,11 +336,38 @@ def _place(world: DemoWorld, easting: np.ndarray, northing: np.ndarray) -> _Plac
     return _Place(x=x, y=y, u=x / grid.width_m, v=-y / grid.height_m)
 
 
+def _only_where(mask: np.ndarray, field: Callable[[_Place], np.ndarray], at: _Place) -> np.ndarray:
+    """field(at) where mask is True and NaN elsewhere (on a grid: everywhere, it is cheap)."""
+    if not mask.any():
+        return np.full(at.shape, np.nan)
+    if at.is_grid or mask.all():
+        return np.broadcast_to(field(at), at.shape)
+    out = np.full(at.shape, np.nan)
+    if mask.any():
+        out[mask] = field(at.subset(mask))
+    return out
+
+
+@dataclass(frozen=True, eq=False)
+class _Layout:
+    """Where points lie in the province layout (see _border_distances and _weights)."""
+
+    to_west: np.ndarray
+    to_north: np.ndarray
+    weights: dict[str, np.ndarray]
+
+
+def _layout(world: DemoWorld, at: _Place) -> _Layout:
+    to_west, to_north = _border_distances(world, at)
+    return _Layout(to_west=to_west, to_north=to_north, weights=_weights(world, to_west, to_north))
+
+
 def _border_distances(world: DemoWorld, at: _Place) -> tuple[np.ndarray, np.ndarray]:
     """Metres west of the west/east border and north of the north/south border."""
+    shape = at.shape
     to_west = (0.5 + world.west_border(at.v) - at.u) * world.grid.width_m
     to_north = (0.5 + world.north_border(at.u) - at.v) * world.grid.height_m
-    return to_west, to_north
+    return np.broadcast_to(to_west, shape), np.broadcast_to(to_north, shape)
 
 
 def _smoothstep(z: np.ndarray) -> np.ndarray:
@@ -297,24 +376,36 @@ def _smoothstep(z: np.ndarray) -> np.ndarray:
     return z * z * (3.0 - 2.0 * z)
 
 
+def _step(distance: np.ndarray, width: float) -> float | np.ndarray:
+    """_smoothstep(distance / width), as a plain 0.0 or 1.0 when it is that everywhere."""
+    if distance.size and distance.min() / width >= 1.0:  # division is monotonic
+        return 1.0
+    if distance.size and distance.max() / width <= 0.0:
+        return 0.0
+    return _smoothstep(distance / width)
+
+
 def province_weights(
     world: DemoWorld, easting: np.ndarray, northing: np.ndarray
 ) -> dict[str, np.ndarray]:
     """Smooth membership (0..1, summing to 1) of each point in SU, EW, HF and TC."""
-    return _weights(world, _place(world, easting, northing))
+    weights = _layout(world, _place(world, easting, northing)).weights
+    return {code: np.array(weight) for code, weight in weights.items()}
 
 
-def _weights(world: DemoWorld, at: _Place) -> dict[str, np.ndarray]:
-    to_west, to_north = _border_distances(world, at)
-    west_upland = _smoothstep(to_west / world.blend_m)
-    west_lowland = _smoothstep(to_west / (world.blend_m / 4))  # HF and TC differ by a few metres
-    north = _smoothstep(to_north / world.blend_m)
-    return {
+def _weights(world: DemoWorld, to_west: np.ndarray, to_north: np.ndarray) -> dict[str, np.ndarray]:
+    """Province weights; where one is the same everywhere it is a read-only broadcast view."""
+    west_upland = _step(to_west, world.blend_m)
+    west_lowland = _step(to_west, world.blend_m / 4)  # HF and TC differ by a few metres
+    north = _step(to_north, world.blend_m)
+    weights = {
         "SU": west_upland * north,
         "EW": (1 - west_upland) * north,
         "HF": west_lowland * (1 - north),
         "TC": (1 - west_lowland) * (1 - north),
     }
+    shape = to_west.shape
+    return {code: np.broadcast_to(np.asarray(w, dtype=float), shape) for code, w in weights.items()}
 
 
 def _disc_distance(world: DemoWorld, at: _Place, disc: tuple[float, float, float]) -> np.ndarray:
@@ -335,30 +426,80 @@ def _island_height(world: DemoWorld, at: _Place) -> np.ndarray:
 
 def _inland(world: DemoWorld, at: _Place) -> np.ndarray:
     """How far inland of the coastline a point lies, in unit coordinates (negative at sea)."""
-    return _COAST_LEVEL + world.coast_wander(at.u - at.v) - (at.u + at.v - 1.0)
+    wander = world.coast_wander
+    if at.is_grid:  # the wander of u - v, as plane waves in (u, v)
+        along = _Waves(wander.kx, -wander.kx, wander.phase, wander.amplitude)(at.u, at.v)
+    else:
+        along = wander(at.u - at.v)
+    return _COAST_LEVEL + along - (at.u + at.v - 1.0)
+
+
+def _maybe_sea(world: DemoWorld, at: _Place) -> np.ndarray:
+    """False where the coastline cannot reach (the wander is bounded by its amplitudes)."""
+    reach = float(np.abs(world.coast_wander.amplitude).sum()) + 1e-9
+    return np.broadcast_to(at.u + at.v - 1.0 > _COAST_LEVEL - reach, at.shape)
 
 
 def _coast_heights(world: DemoWorld, at: _Place) -> np.ndarray:
     """Tarn Coast relief: land sloping to a sea at height 0, with one island."""
     inland = _inland(world, at)
     land = 15.0 * inland / 0.6 + world.shore(at.x, at.y) * np.clip(inland / 0.2, 0.0, 1.0)
+    if at.is_grid and _island_below_sea(world, at):
+        return np.maximum(land, 0.0)  # the same: max(land, island, 0) with island < 0
     return np.maximum(np.maximum(land, _island_height(world, at)), 0.0)
+
+
+def _island_below_sea(world: DemoWorld, at: _Place) -> bool:
+    """True if the island bump is under the sea at every point of a grid (its nearest point)."""
+    grid = world.grid
+    dx = at.x - _ISLAND[0] * grid.width_m
+    dy = -at.y - _ISLAND[1] * grid.height_m
+    nearest = _Place(
+        x=np.array([dx.flat[np.argmin(np.abs(dx))] + _ISLAND[0] * grid.width_m]),
+        y=np.array([-(dy.flat[np.argmin(np.abs(dy))] + _ISLAND[1] * grid.height_m)]),
+        u=np.zeros(1),
+        v=np.zeros(1),
+    )
+    return bool(_island_height(world, nearest)[0] < 0)
+
+
+def _reliefs(world: DemoWorld) -> dict[str, Callable[[_Place], np.ndarray]]:
+    return {
+        "SU": lambda at: 160.0 + world.hills(at.x, at.y),
+        "EW": lambda at: 65.0 + world.farmland(at.x, at.y),
+        "HF": lambda at: 3.5 + world.fen(at.x, at.y),
+        "TC": lambda at: _coast_heights(world, at),
+    }
+
+
+def _terrain(world: DemoWorld, at: _Place, layout: _Layout) -> np.ndarray:
+    """Sum of the provinces' reliefs by weight; a relief is evaluated only where it weighs."""
+    total = np.zeros(at.shape)  # + a term: the term exactly (0.0 + x == x)
+    first = True
+    for code, relief in _reliefs(world).items():
+        weight = layout.weights[code]
+        if not weight.any():
+            continue
+        weighs = weight != 0
+        if at.is_grid or weighs.all():
+            term = weight * relief(at)
+        else:
+            term = np.zeros(at.shape)
+            term[weighs] = weight[weighs] * relief(at.subset(weighs))
+        total = term if first else total + term
+        first = False
+    return np.asarray(np.broadcast_to(total, at.shape))
 
 
 def true_terrain(world: DemoWorld, easting: np.ndarray, northing: np.ndarray) -> np.ndarray:
     """Bare-earth terrain height (EGM96 orthometric, metres) at EPSG:32632 points.
 
     Defined everywhere (also outside the test domain); never NaN. Sea and water surfaces are part
-    of it (the sea is at 0 m).
+    of it (the sea is at 0 m). Easting of shape (1, n) and northing of shape (m, 1) give the
+    (m, n) grid.
     """
     at = _place(world, easting, northing)
-    weights = _weights(world, at)
-    return (
-        weights["SU"] * (160.0 + world.hills(at.x, at.y))
-        + weights["EW"] * (65.0 + world.farmland(at.x, at.y))
-        + weights["HF"] * (3.5 + world.fen(at.x, at.y))
-        + weights["TC"] * _coast_heights(world, at)
-    )
+    return _terrain(world, at, _layout(world, at))
 
 
 def terrain_slope(
@@ -384,25 +525,42 @@ def province_index(world: DemoWorld, easting: np.ndarray, northing: np.ndarray) 
 def land_cover(world: DemoWorld, easting: np.ndarray, northing: np.ndarray) -> np.ndarray:
     """Land-cover class (uint8, see LandCover) of the world at EPSG:32632 points; never 0."""
     at = _place(world, easting, northing)
-    to_west, to_north = _border_distances(world, at)
-    west, north = to_west > 0, to_north > 0
-    forest = world.forest_field(at.x, at.y)
-    classes = np.full(at.x.shape, LandCover.OPEN_GROUND, dtype=np.uint8)
+    return _land_cover(world, at, _layout(world, at))
+
+
+def _land_cover(world: DemoWorld, at: _Place, layout: _Layout) -> np.ndarray:
+    west, north = layout.to_west > 0, layout.to_north > 0
+    forest = _only_where(north, lambda p: world.forest_field(p.x, p.y), at)
+    classes = np.full(at.shape, LandCover.OPEN_GROUND, dtype=np.uint8)
     classes[(west & north & (forest > -0.7)) | (~west & north & (forest > 1.1))] = LandCover.FOREST
-    town = ~west & ~north & (_disc_distance(world, at, _TOWN) < 1.0)
+    south_east = ~west & ~north
+    town = south_east & (
+        _only_where(south_east, lambda p: _disc_distance(world, p, _TOWN), at) < 1.0
+    )
     classes[town] = LandCover.BUILT_UP
-    sea = (_inland(world, at) < 0) & (_island_height(world, at) <= 0)
-    fen = west & ~north & (_weights(world, at)["HF"] > 0.8)
-    lakes = fen & (world.lake_field(at.x, at.y) > 1.0)
-    classes[sea | lakes] = LandCover.WATER
+    classes[_water(world, at, layout)] = LandCover.WATER
     return classes
 
 
+def _water(world: DemoWorld, at: _Place, layout: _Layout) -> np.ndarray:
+    """True on the sea (off the island) and on the lakes of Harrow Fen."""
+    inland = _only_where(_maybe_sea(world, at), lambda p: _inland(world, p), at)
+    offshore = inland < 0
+    island = _only_where(offshore, lambda p: _island_height(world, p), at)
+    sea = offshore & (island <= 0)
+    fen = (layout.to_west > 0) & ~(layout.to_north > 0) & (layout.weights["HF"] > 0.8)
+    lakes = fen & (_only_where(fen, lambda p: world.lake_field(p.x, p.y), at) > 1.0)
+    return np.asarray(sea | lakes)
+
+
 def _hash_unit(i: np.ndarray, j: np.ndarray, salt: int) -> np.ndarray:
-    """Deterministic pseudo-random numbers in [0, 1) for integer pairs (splitmix64 mixing)."""
+    """Deterministic pseudo-random numbers in [0, 1) for integer pairs (splitmix64 mixing).
+
+    i and j broadcast against each other.
+    """
     with np.errstate(over="ignore"):
-        z = i.astype(np.int64).astype(np.uint64) * np.uint64(0x9E3779B97F4A7C15)
-        z ^= j.astype(np.int64).astype(np.uint64) * np.uint64(0xC2B2AE3D27D4EB4F)
+        z = np.asarray(i).astype(np.int64).astype(np.uint64) * np.uint64(0x9E3779B97F4A7C15)
+        z = z ^ np.asarray(j).astype(np.int64).astype(np.uint64) * np.uint64(0xC2B2AE3D27D4EB4F)
         z ^= np.uint64(salt)
         z ^= z >> np.uint64(30)
         z *= np.uint64(0xBF58476D1CE4E5B9)
@@ -421,26 +579,41 @@ def cover_heights(
     carries buildings of 18 x 18 m on a 30 m block grid (about 60 % of the blocks) with flat roofs
     of 6..15 m. Zero elsewhere. ``classes`` is the land cover at the same points.
     """
-    at = _place(world, easting, northing)
+    return _cover_heights(world, _place(world, easting, northing), classes)
+
+
+def _cover_heights(world: DemoWorld, at: _Place, classes: np.ndarray) -> np.ndarray:
     low, high = CANOPY_RANGE_M
-    canopy = (low + high) / 2 + (high - low) / 2 * np.tanh(world.canopy_field(at.x, at.y))
-    block_i = np.floor(at.x / _BUILDING_PERIOD_M)
-    block_j = np.floor(-at.y / _BUILDING_PERIOD_M)
-    inset_x = at.x - block_i * _BUILDING_PERIOD_M
-    inset_y = -at.y - block_j * _BUILDING_PERIOD_M
-    inner = _BUILDING_PERIOD_M - _BUILDING_INSET_M
-    footprint = (
-        (inset_x >= _BUILDING_INSET_M)
-        & (inset_x < inner)
-        & (inset_y >= _BUILDING_INSET_M)
-        & (inset_y < inner)
-    )
-    built = _hash_unit(block_i, block_j, world.roof_salt) < 0.6
-    roof_low, roof_high = ROOF_RANGE_M
-    roof = roof_low + (roof_high - roof_low) * _hash_unit(block_j, block_i, world.roof_salt + 1)
-    heights = np.zeros(at.x.shape)
-    heights = np.where(classes == LandCover.FOREST, canopy, heights)
-    return np.where((classes == LandCover.BUILT_UP) & footprint & built, roof, heights)
+    forest = classes == LandCover.FOREST
+    built_up = classes == LandCover.BUILT_UP
+
+    def canopy(p: _Place) -> np.ndarray:
+        return (low + high) / 2 + (high - low) / 2 * np.tanh(world.canopy_field(p.x, p.y))
+
+    def roofs(p: _Place) -> np.ndarray:
+        block_i = np.floor(p.x / _BUILDING_PERIOD_M)
+        block_j = np.floor(-p.y / _BUILDING_PERIOD_M)
+        inset_x = p.x - block_i * _BUILDING_PERIOD_M
+        inset_y = -p.y - block_j * _BUILDING_PERIOD_M
+        inner = _BUILDING_PERIOD_M - _BUILDING_INSET_M
+        footprint = (
+            (inset_x >= _BUILDING_INSET_M)
+            & (inset_x < inner)
+            & (inset_y >= _BUILDING_INSET_M)
+            & (inset_y < inner)
+        )
+        built = _hash_unit(block_i, block_j, world.roof_salt) < 0.6
+        roof_low, roof_high = ROOF_RANGE_M
+        roof = roof_low + (roof_high - roof_low) * _hash_unit(block_j, block_i, world.roof_salt + 1)
+        return np.where(footprint & built, roof, np.nan)
+
+    heights = np.zeros(at.shape)
+    if forest.any():
+        heights = np.where(forest, _only_where(forest, canopy, at), heights)
+    if built_up.any():
+        roof = _only_where(built_up, roofs, at)
+        heights = np.where(built_up & ~np.isnan(roof), roof, heights)
+    return heights
 
 
 def tilt_ramp(easting: np.ndarray, *, m_per_km: float, west: float) -> np.ndarray:
@@ -523,16 +696,23 @@ class ReleaseTile:
 
 
 def release_tile(world: DemoWorld, col: int, row: int) -> ReleaseTile:
-    """Simulate one test tile: shifted surface, bias, canopy and roofs, noise, blunders, voids."""
+    """Simulate one test tile: shifted surface, bias, canopy and roofs, noise, blunders, voids.
+
+    The smooth fields are evaluated on the tile's grid axes (see _Waves._on_grid); the random
+    errors come from the (seed, stream, col, row) streams, drawn for the whole tile.
+    """
     options = world.options
-    easting, northing = world.grid.pixel_centres(col, row)
+    easting, northing = world.grid.pixel_axes(col, row)
+    shape = (options.pixels, options.pixels)
     seen_e = easting - options.shift_east_m
     seen_n = northing - options.shift_north_m
-    classes = land_cover(world, seen_e, seen_n)
-    heights = true_terrain(world, seen_e, seen_n) + options.vertical_bias_m
+    at = _place(world, seen_e, seen_n)
+    layout = _layout(world, at)
+    classes = _land_cover(world, at, layout)
+    heights = _terrain(world, at, layout) + options.vertical_bias_m
     if options.canopy:
-        heights += cover_heights(world, seen_e, seen_n, classes)
-    slope = np.zeros_like(easting)
+        heights += _cover_heights(world, at, classes)
+    slope = np.zeros(shape)
     if options.noise_sigma_m:
         slope = terrain_slope(world, seen_e, seen_n)
     heights += random_error(
@@ -543,14 +723,14 @@ def release_tile(world: DemoWorld, col: int, row: int) -> ReleaseTile:
     )
     blunders = blunder_error(
         np.random.default_rng([options.seed, RandomStream.BLUNDERS, col, row]),
-        heights.shape,
+        shape,
         fraction=options.blunder_fraction,
     )
     voids = void_discs(options, col, row)
     heights = np.where(void_mask(voids, options.pixels), np.nan, heights + blunders)
-    ramp = np.zeros_like(heights)
+    ramp = np.zeros(shape)
     if (col, row) in tilted_tiles(options):
-        ramp = tilt_ramp(easting, m_per_km=options.tilt_m_per_km, west=world.grid.west)
+        ramp[:] = tilt_ramp(easting, m_per_km=options.tilt_m_per_km, west=world.grid.west)
     return ReleaseTile(
         col=col,
         row=row,
@@ -573,22 +753,37 @@ def reference_heights(
     """Lidar terrain (EGM96 orthometric metres) at EPSG:32632 points, NaN where missing.
 
     True terrain plus lidar noise (sigma 0.03 m, none for clean options) drawn from a stream of
-    (seed, tile_key); NaN on water (no returns) and farther than margin_m outside the test domain.
+    (seed, tile_key) for every point; NaN on water (no returns) and farther than margin_m outside
+    the test domain. The terrain is evaluated only where it is kept.
     """
     options = world.options
     grid = world.grid
-    heights = true_terrain(world, easting, northing)
+    easting = np.asarray(easting, dtype=float)
+    northing = np.asarray(northing, dtype=float)
+    noise = np.zeros(easting.shape)
     if not options.clean:
         rng = np.random.default_rng([options.seed, RandomStream.REFERENCE, *tile_key])
-        heights = heights + LIDAR_NOISE_M * rng.standard_normal(heights.shape)
+        noise = LIDAR_NOISE_M * rng.standard_normal(easting.shape)
     covered = (
         (easting >= grid.west - margin_m)
         & (easting <= grid.west + grid.width_m + margin_m)
         & (northing <= grid.north + margin_m)
         & (northing >= grid.north - grid.height_m - margin_m)
     )
-    water = land_cover(world, easting, northing) == LandCover.WATER
-    return np.where(covered & ~water, heights, np.nan)
+    heights = np.full(easting.shape, np.nan)
+    if not covered.any():
+        return heights
+    at = _place(world, easting[covered], northing[covered])
+    layout = _layout(world, at)
+    land = ~_water(world, at, layout)
+    if land.all():
+        kept = _terrain(world, at, layout)
+    else:
+        on_land = at.subset(land)
+        kept = np.full(at.shape, np.nan)
+        kept[land] = _terrain(world, on_land, _layout(world, on_land))
+    heights[covered] = kept + noise[covered]
+    return heights
 
 
 def province_geometries(world: DemoWorld, *, points: int = 200) -> dict[str, BaseGeometry]:

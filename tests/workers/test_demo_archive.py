@@ -21,14 +21,18 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from shapely.geometry import shape
 
+from workers import demo_archive
 from workers.demo_archive import (
+    TASK_BYTES_PER_PIXEL,
     DemoArchiveOptions,
     Egm96Geoid,
+    archive_size,
     checkpoint_count,
     checkpoints,
     clean_options,
     make_demo_archive,
     reference_layout,
+    size_problem,
     tile_layout,
 )
 from workers.demo_terrain import (
@@ -520,3 +524,91 @@ def test_void_mask() -> None:
     mask = void_mask((VoidDisc(col=20.0, row=10.0, radius=5.0),), 40)
     assert mask[10, 20] and not mask[10, 26] and not mask[0, 0]
     assert mask.sum() == pytest.approx(np.pi * 25, rel=0.15)
+
+
+# --- speed-ups that must not change the archive ---------------------------------------------
+
+SHIPPED_DEMO = Path(__file__).resolve().parents[2] / "demo_tiles"
+FLOAT32_STEP_M = 3.1e-5  # one float32 step between 256 and 512 m (2**-15 m); IEEE 754 binary32
+
+
+def test_grid_evaluation_equals_the_pointwise_one() -> None:
+    world = build_world(DemoArchiveOptions(tiles_x=2, tiles_y=2, pixels=300))
+    for col, row in ((0, 0), (1, 1)):
+        east_axis, north_axis = world.grid.pixel_axes(col, row)
+        easting, northing = world.grid.pixel_centres(col, row)
+        assert np.array_equal(np.broadcast_to(east_axis, easting.shape), easting)
+        on_grid = true_terrain(world, east_axis, north_axis)
+        pointwise = true_terrain(world, easting, northing)
+        assert on_grid.shape == (300, 300)
+        # cos(a + b) as cos a cos b - sin a sin b: rounding only (heights up to 400 m)
+        np.testing.assert_allclose(on_grid, pointwise, rtol=0, atol=1e-10)
+        assert np.array_equal(
+            land_cover(world, east_axis, north_axis), land_cover(world, easting, northing)
+        )
+        slope_grid = terrain_slope(world, east_axis, north_axis)
+        np.testing.assert_allclose(slope_grid, terrain_slope(world, easting, northing), atol=1e-9)
+
+
+def test_worker_processes_write_the_same_archive(archive: Path, tmp_path: Path) -> None:
+    calls: list[tuple[int, int]] = []
+    make_demo_archive(
+        tmp_path,
+        DemoArchiveOptions(**TINY, void_patches=20),
+        workers=2,
+        progress=lambda done, total: calls.append((done, total)),
+    )
+    for folder in FOLDERS:
+        first, second = _arrays(archive / folder), _arrays(tmp_path / folder)
+        assert first.keys() == second.keys() and first
+        for name in first:
+            assert first[name].tobytes() == second[name].tobytes(), f"{folder}/{name}"
+    for name in ("truth.json", "checkpoints.csv", "provinces.geojson"):
+        assert (archive / name).read_text() == (tmp_path / name).read_text()
+    total = calls[-1][1]
+    assert calls[0] == (0, total) and calls[-1] == (total, total)
+    assert [done for done, _ in calls] == list(range(total + 1))
+    assert total == 4 + len(list(reference_layout(DemoArchiveOptions(**TINY)).tiles()))
+
+
+def test_the_generator_still_makes_the_shipped_demo(tmp_path: Path) -> None:
+    # demo_tiles/README.md: made with --tiles 6x6 --pixels 160 --seed 1. Projections and the
+    # geoid are now interpolated from a lattice (within 1e-5 m), so a height may land on the
+    # neighbouring float32 value; everything else is identical.
+    make_demo_archive(tmp_path, DemoArchiveOptions())
+    for name in ("truth.json", "checkpoints.csv", "provinces.geojson", "demo.yaml", "README.md"):
+        assert (tmp_path / name).read_bytes() == (SHIPPED_DEMO / name).read_bytes(), name
+    assert _arrays(tmp_path / "landcover").keys() == _arrays(SHIPPED_DEMO / "landcover").keys()
+    for name, shipped in _arrays(SHIPPED_DEMO / "landcover").items():
+        assert np.array_equal(_arrays(tmp_path / "landcover")[name], shipped), name
+    for folder in ("release_2026_11", "release_2026_11_update", "lidar_2021"):
+        made, shipped = _arrays(tmp_path / folder), _arrays(SHIPPED_DEMO / folder)
+        assert made.keys() == shipped.keys()
+        changed = 0
+        for name in shipped:
+            assert np.array_equal(made[name] == NODATA, shipped[name] == NODATA), name
+            step = np.abs(made[name].astype(float) - shipped[name].astype(float))
+            assert step.max() <= FLOAT32_STEP_M, name
+            changed += np.count_nonzero(step)
+        assert changed < 0.05 * sum(a.size for a in shipped.values())
+
+
+def test_archive_size_bounds_the_files(archive: Path) -> None:
+    size = archive_size(DemoArchiveOptions(**TINY, void_patches=20))
+    written = sum(p.stat().st_size for p in archive.rglob("*.tif"))
+    pixels = sum(
+        a.size * a.itemsize for folder in FOLDERS for a in _arrays(archive / folder).values()
+    )
+    assert pixels <= size.disk_bytes < 3 * pixels  # lidar tiles without coverage are not written
+    assert written < size.disk_bytes
+    assert size.task_memory_bytes == TASK_BYTES_PER_PIXEL * 40**2
+
+
+def test_size_problem_names_disk_and_memory(tmp_path: Path, monkeypatch) -> None:
+    assert size_problem(DemoArchiveOptions(**TINY), tmp_path / "new" / "folder") is None
+    huge = DemoArchiveOptions(tiles_x=1000, tiles_y=1000, pixels=1000)
+    assert "disk" in (size_problem(huge, tmp_path) or "")
+    monkeypatch.setattr(demo_archive, "_available_memory", lambda: 10**6)
+    assert "memory" in (
+        size_problem(DemoArchiveOptions(tiles_x=2, tiles_y=2, pixels=200), tmp_path) or ""
+    )
