@@ -13,7 +13,7 @@ relative).
 
 from __future__ import annotations
 
-from collections.abc import Iterable
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
@@ -64,19 +64,50 @@ class CellSummaries:
             counts,
         )
 
-    def _histogram(self, cells: list[int]) -> tuple[NDArray[np.int32], NDArray[np.int64]]:
+    def grouped(self, groups: Sequence[Iterable[int]]) -> CellSummaries:
+        """Summaries per group of cells: cell j of the result is the union of groups[j]
+        (so that unions over many groups add each group's histograms once)."""
+        parts = [[c for c in group if self.count[c]] for group in groups]
+        count = np.array([int(self.count[p].sum()) for p in parts], dtype=np.int64)
+        mean, m2 = np.zeros(len(parts)), np.zeros(len(parts))
+        minimum, maximum = np.full(len(parts), np.inf), np.full(len(parts), -np.inf)
+        linear, tails = [], []
+        for j, p in enumerate(parts):
+            if p:
+                n = self.count[p]
+                mean[j] = (self.mean[p] * n).sum() / count[j]
+                delta = self.mean[p] - mean[j]
+                m2[j] = self.m2[p].sum() + (n * delta * delta).sum()
+                minimum[j], maximum[j] = self.minimum[p].min(), self.maximum[p].max()
+            linear.append(self._linear(p))
+            tails.append(self._tails(p))
+        return CellSummaries(count, mean, m2, minimum, maximum, tuple(linear), tuple(tails))
+
+    def _linear(self, cells: list[int]) -> NDArray[np.int64]:
+        if not cells:
+            return np.zeros(_WIDTH - 1, dtype=np.int64)
         dense = self.linear[cells[0]]
         if len(cells) > 1:
             dense = dense.copy()
             for c in cells[1:]:
                 dense += self.linear[c]
-        (columns,) = np.nonzero(dense)
-        linear_counts = dense[columns]
+        return dense
+
+    def _tails(self, cells: list[int]) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+        if not cells:
+            return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
         tail_bins = np.concatenate([self.tails[c][0] for c in cells])
         tail_counts = np.concatenate([self.tails[c][1] for c in cells])
         if len(cells) > 1 and tail_bins.size:
             tail_bins, where = np.unique(tail_bins, return_inverse=True)
             tail_counts = np.bincount(where, weights=tail_counts).astype(np.int64)
+        return tail_bins.astype(np.int64), tail_counts.astype(np.int64)
+
+    def _histogram(self, cells: list[int]) -> tuple[NDArray[np.int32], NDArray[np.int64]]:
+        dense = self._linear(cells)
+        (columns,) = np.nonzero(dense)
+        linear_counts = dense[columns]
+        tail_bins, tail_counts = self._tails(cells)
         bins = np.concatenate([columns - _K, tail_bins]).astype(np.int32)
         counts = np.concatenate([linear_counts, tail_counts]).astype(np.int64)
         order = np.argsort(bins, kind="stable")

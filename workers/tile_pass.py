@@ -15,7 +15,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
-from workers.keyed_summary import CellSummaries, summarise_cells
+from workers.keyed_summary import summarise_cells
 from workers.strata import EXCLUDED_CODE, ClassInfo, class_codes, stratum_cells
 from workers.summary import DhSummary
 from workers.terrain import slope_bands
@@ -80,14 +80,12 @@ def summarise_pixels(
     per_key = summarise_cells(dh.ravel()[flat], keys, len(members) * layout.n_cells)
     areas: dict[str, DhSummary] = {}
     strata: dict[str, dict[str, DhSummary]] = {}
-    every_cell = range(layout.n_cells)
+    n_cells = layout.n_cells
     for area in (ALL, *region_masks):
         held = [p for p, inside in enumerate(members) if area == ALL or area in inside]
-        areas[area] = _union(per_key, held, every_cell, layout.n_cells)
-        strata[area] = {
-            name: _union(per_key, held, of_stratum, layout.n_cells)
-            for name, of_stratum in layout.strata.items()
-        }
+        of_area = per_key.grouped([[p * n_cells + c for p in held] for c in range(n_cells)])
+        areas[area] = of_area.union(range(n_cells))
+        strata[area] = {name: of_area.union(cells) for name, cells in layout.strata.items()}
     return TileSummaries(areas, strata, dropped)
 
 
@@ -148,9 +146,3 @@ def _keys_on_grid(
 
 
 _DIRECT_REGIONS = 3  # up to 2^3 patterns, each numbered whether it occurs or not
-
-
-def _union(
-    per_key: CellSummaries, patterns: list[int], cells: Sequence[int], n_cells: int
-) -> DhSummary:
-    return per_key.union(p * n_cells + c for p in patterns for c in cells)
