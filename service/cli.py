@@ -314,6 +314,10 @@ def _load_job(spec_path: Path, settings: Settings) -> job_spec.ResolvedJob:
 
 def _cluster_options(args: argparse.Namespace, settings: Settings) -> tuple[str | None, int]:
     """The scheduler (checked to answer) or the local worker count (checked to be >= 1)."""
+    if args.scheduler and args.workers is not None:
+        raise SpecError(
+            "--workers sizes the local cluster; with --scheduler the workers are the scheduler's"
+        )
     if args.scheduler:
         _reachable(args.scheduler, option="--scheduler")
         return args.scheduler, 0

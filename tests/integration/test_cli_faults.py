@@ -310,6 +310,22 @@ def test_workers_must_be_a_positive_number(archive, demaudit, tmp_path, value):
     assert not (tmp_path / "o").exists()
 
 
+def test_workers_with_a_scheduler_is_refused(archive, demaudit, tmp_path, dask_client):
+    code, _, err = demaudit(
+        "run",
+        str(archive / "job.yaml"),
+        "--out",
+        str(tmp_path / "o"),
+        "--workers",
+        "3",
+        "--scheduler",
+        dask_client.scheduler.address,
+        cluster=False,
+    )
+    assert code == 2 and "--workers" in err and "--scheduler" in err
+    assert not (tmp_path / "o").exists()
+
+
 def free_port() -> int:
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
