@@ -19,7 +19,7 @@ from shapely import STRtree, box, points
 from workers import grading
 from workers.accuracy import residual_statistics, vertical_accuracy
 from workers.catalog import TileIndex, TileInfo, file_fingerprint
-from workers.checkpoints import CheckpointFile, read_checkpoints, sample_test_tile
+from workers.checkpoints import CheckpointFile, open_checkpoints, sample_test_tile
 from workers.datum import geoid_undulation, to_metres
 from workers.regions import Region
 from workers.spec import ResolvedJob
@@ -35,14 +35,7 @@ def read_job_checkpoints(job: ResolvedJob) -> CheckpointFile:
     runner calls this before the first tile, so a bad file costs no results."""
     spec = job.spec.checkpoints
     assert spec is not None and job.checkpoint_file is not None
-    return read_checkpoints(
-        job.checkpoint_file,
-        id_column=spec.id_column,
-        x_column=spec.x_column,
-        y_column=spec.y_column,
-        height_column=spec.height_column,
-        landcover_column=spec.landcover_column,
-    )
+    return open_checkpoints(job.checkpoint_file, spec)
 
 
 def audit_checkpoints(

@@ -12,7 +12,7 @@ import time
 import uuid
 from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import ThreadPoolExecutor
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from functools import partial
 from pathlib import Path
 from typing import Any
@@ -39,15 +39,22 @@ from service.recheck import (
 from workers import regions as region_ops
 from workers import summary as dh_summary
 from workers.catalog import (
+    Footprint,
     Known,
+    Overlap,
     ScanFailure,
     TileIndex,
     TileInfo,
     catalog_document,
     file_fingerprint,
+    overlap_cautions,
+    overlap_sources,
+    overlap_sources_of,
     scan_landcover_tile,
     scan_tile,
+    tile_overlaps,
     unchanged,
+    unique_tile_ids,
 )
 from workers.checkpoints import CheckpointFile
 from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation, vertical_transformations
@@ -346,6 +353,7 @@ def _run_into(
             options,
             catalog.landcover_of(tile),
             tile_shifts.get(tile.tile_id),
+            covered=catalog.covered_of(tile),
             pure=False,
             retries=retries,
             key=f"audit-tile-{tile.tile_id}-{run_id}",
@@ -414,6 +422,7 @@ def _run_into(
         reference_failures=catalog.reference_failures,
         extra_cautions=_coverage_cautions(tile_rows)
         + region_ops.region_cautions(catalog.regions)
+        + overlap_cautions(catalog.overlaps)
         + ([] if layout else ["no dh overview: the test tiles are not on one grid"]),
         coregistration=coregistration,
     )
@@ -613,6 +622,12 @@ class _Catalog:
 
     references: tuple[TileInfo, ...] = ()
     landcover: tuple[TileInfo, ...] = ()
+    overlaps: dict[str, Overlap] = field(default_factory=dict)  # see catalog.tile_overlaps
+
+    def covered_of(self, tile: TileInfo) -> tuple[Footprint, ...]:
+        """Footprints of earlier-listed test tiles overlapping this one (their pixels count)."""
+        found = self.overlaps.get(tile.tile_id)
+        return found.covered if found else ()
 
     def landcover_of(self, tile: TileInfo) -> list[TileInfo]:
         return self.cover_index.overlapping(tile.grid)
@@ -621,7 +636,7 @@ class _Catalog:
         """Ids (prefixed by kind) of the reference and land-cover tiles a test tile overlaps."""
         return [f"reference:{t.tile_id}" for t in self.candidates.get(tile.tile_id, [])] + [
             f"landcover:{t.tile_id}" for t in self.landcover_of(tile)
-        ]
+        ] + overlap_sources_of(self.overlaps, tile.tile_id)
 
     def document(self) -> dict[str, Any]:
         """catalog.json: every tile scanned, so a re-check need not open unchanged files."""
@@ -631,7 +646,7 @@ class _Catalog:
         """Fingerprints of every reference and land-cover tile, ids prefixed by kind."""
         return {f"reference:{t.tile_id}": t.fingerprint for t in self.references} | {
             f"landcover:{t.tile_id}": t.fingerprint for t in self.landcover
-        }
+        } | overlap_sources(self.overlaps)
 
 
 #: map(function, *argument lists) -> results in order: on the cluster, or in local threads.
@@ -679,6 +694,7 @@ def _catalog(
         regions_by_crs=_regions_by_crs(region_list, test_tiles),
         references=tuple(ref_tiles),
         landcover=tuple(cover_tiles),
+        overlaps=tile_overlaps(test_tiles),
     )
 
 
@@ -742,7 +758,7 @@ def _scan(
     ]
     scanned = mapper(scan, names, hints) if names else []
     by_path = reused | {s.path: s for s in scanned}
-    ordered = [by_path[str(p)] for p in paths]
+    ordered = unique_tile_ids([by_path[str(p)] for p in paths])  # re-deliveries of one name
     ok = [s for s in ordered if isinstance(s, TileInfo)]
     failed = [s for s in ordered if isinstance(s, ScanFailure)]
     return ok, failed

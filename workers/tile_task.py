@@ -20,7 +20,7 @@ from rasterio.warp import transform_bounds
 
 from workers import summary as dh_summary
 from workers.align import onto_grid
-from workers.catalog import TileInfo
+from workers.catalog import SUPERSEDED, Footprint, TileInfo, covered_mask, superseded_reason
 from workers.coregister_tile import (
     Correction,
     TileEquations,
@@ -140,13 +140,24 @@ def audit_tile(
     options: TileOptions,
     landcover: Sequence[TileInfo] = (),
     estimate: dict[str, Any] | None = None,
+    covered: Sequence[Footprint] = (),
 ) -> TileResult:
     """Difference one test tile against the reference on the test tile's grid and summarise.
 
     regions must already be in the test tile's CRS (see regions.to_crs / clip_to). With
     co-registration, ``estimate`` is the tile's own shift record when already computed.
+    ``covered``: footprints of earlier-listed test tiles (catalog.tile_overlaps); pixels whose
+    centre lies in one are left out, and a tile wholly covered is SUPERSEDED (only read to
+    report a broken file as failed).
     """
     ref_ids = tuple(r.tile_id for r in references)
+    hidden = covered_mask(test.grid, covered) if covered else None
+    if hidden is not None and hidden.all():
+        try:
+            read_tile(test, nodata=options.test_nodata, units=options.test_units)
+        except (AuditError, RasterioError, OSError) as exc:
+            return TileResult(test.tile_id, FAILED, str(exc))
+        return TileResult(test.tile_id, SUPERSEDED, superseded_reason(covered))
     if not references:
         return TileResult(test.tile_id, NO_REFERENCE, "no reference tile overlaps this tile")
     try:
@@ -157,6 +168,9 @@ def audit_tile(
         where = traceback.format_exc(limit=-1).strip().splitlines()[-2:]
         reason = f"unexpected {type(exc).__name__}: {exc} ({' '.join(s.strip() for s in where)})"
         return TileResult(test.tile_id, FAILED, reason, reference_tiles=ref_ids)
+    if hidden is not None:  # the earlier-listed tiles count these pixels
+        test_heights = None if layers.test is None else np.where(hidden, np.nan, layers.test)
+        layers = replace(layers, dh=np.where(hidden, np.nan, layers.dh), test=test_heights)
     result = summarise_tile(test, layers, regions, options, reference_tiles=ref_ids)
     if options.coregistration is not None:
         result = with_coregistration(
