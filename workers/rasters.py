@@ -111,22 +111,24 @@ def implausible_heights(
             f"({PLAUSIBLE_HEIGHT_M[0]:,.0f} to {PLAUSIBLE_HEIGHT_M[1]:,.0f} m)"
         )
         return Implausible(value, int(np.count_nonzero(data == value)), valid, why)
-    for value, beyond in ((low, np.greater), (high, np.less)):
+    gap = VOID_GAP_M / metres_per_unit
+    for value, near in ((low, (low, low + gap)), (high, (high - gap, high))):
         count = int(np.count_nonzero(data == value))
         if value in VOID_CODES:
             return Implausible(value, count, valid, "a common code for voids")
         if count < 2 or low == high:
             continue
-        with np.errstate(invalid="ignore"):
-            nearest = float(np.nanmin(np.abs(data[beyond(data, value)] - value)))
-        if nearest * metres_per_unit > VOID_GAP_M:
-            return Implausible(
-                value,
-                count,
-                valid,
-                f"{nearest * metres_per_unit:,.0f} m away from every other height of the tile "
-                "(a void code, not terrain)",
-            )
+        with np.errstate(invalid="ignore"):  # boolean masks only: the heights are not copied
+            if np.any((data >= near[0]) & (data <= near[1]) & (data != value)):
+                continue
+            others = data[data != value]
+        nearest = float(np.nanmin(np.abs(others - value))) * metres_per_unit
+        return Implausible(
+            value,
+            count,
+            valid,
+            f"{nearest:,.0f} m away from every other height of the tile (a void code, not terrain)",
+        )
     return None
 
 
