@@ -37,7 +37,8 @@ EXIT_CODES = """exit status:
      valid pixels; see the cautions), or a followed server job was dismissed
   2  nothing was run or written: bad spec, input file, option, output folder, unreachable
      scheduler or server (the message names the file, field or option)
-  3  internal error: a bug in demaudit; nothing was written (--traceback shows details)"""
+  3  internal error: a bug in demaudit; nothing was written (--traceback shows details)
+  130  interrupted (Ctrl-C): nothing was written"""
 
 #: How long `--scheduler` may take to answer before the run gives up (seconds).
 SCHEDULER_CONNECT_TIMEOUT_S = 5.0

@@ -132,6 +132,22 @@ def test_a_late_internal_error_leaves_the_earlier_result_whole(
     assert snapshot(out) == before and leftovers(out) == []
 
 
+def test_an_interrupted_run_leaves_the_earlier_result_whole(
+    archive, demaudit, tmp_path, monkeypatch
+):
+    out = tmp_path / "out"
+    assert demaudit("run", str(archive / "job.yaml"), "--out", str(out))[0] == 0
+    before = snapshot(out)
+
+    def interrupted(*args, **kwargs):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr("service.runner.write_figures", interrupted)
+    code, _, err = demaudit("run", str(archive / "job.yaml"), "--out", str(out))
+    assert code == 130 and "interrupted" in err
+    assert snapshot(out) == before and leftovers(out) == []
+
+
 def test_disk_full_while_writing_is_one_line_and_changes_nothing(
     archive, demaudit, tmp_path, monkeypatch
 ):
