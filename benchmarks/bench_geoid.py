@@ -6,8 +6,9 @@ For tiles of 30 m and 90 m pixels over steep EGM96 (Puerto Rico trench, Himalaya
   former  N from PROJ on a 64-pixel lattice, interpolated linearly (demaudit before issue 11),
   grid    workers.datum.undulation_on_grid (the geoid grid's bilinear form at every pixel),
   proj    PROJ at every pixel centre (exact, the reference),
-and prints each one's best and median wall time and its largest |error| against the reference.
-Numbers vary with whatever else the machine runs; the three are interleaved so they share it.
+and prints each one's best and median processor time (this process, all threads) and its
+largest |error| against the reference. Numbers vary with whatever else the machine runs; the
+three are interleaved so they share it.
 """
 
 from __future__ import annotations
@@ -69,9 +70,9 @@ def main() -> None:
             errors = {}
             for _ in range(args.repeat):
                 for name, method in methods.items():
-                    t0 = time.perf_counter()
+                    t0 = time.process_time()
                     n = method(grid)
-                    times[name].append(time.perf_counter() - t0)
+                    times[name].append(time.process_time() - t0)
                     errors[name] = float(np.max(np.abs(n - reference)))
             print(f"{site}, {res:g} m pixels, {args.pixels} x {args.pixels}:")
             for name in methods:

@@ -529,8 +529,8 @@ def _node_lattice(vertical_crs: str, grid_dirs: tuple[str, ...]) -> NodeLattice 
     if methods.count("vgridshift") != 1 or set(methods) - {"vgridshift", "unitconvert", "axisswap"}:
         return None
     grids = [g for op in transformer.operations or () for g in op.grids]
-    if len(grids) != 1 or not grids[0].full_name:
-        return None
+    if len(grids) != 1 or not grids[0].full_name or not Path(grids[0].full_name).is_file():
+        return None  # several grids, or one PROJ reads from the network: PROJ at every pixel
     return _read_node_lattice(grids[0].full_name)
 
 
