@@ -313,3 +313,14 @@ def test_finest_graded_class_is_the_smallest_rmse_among_the_standards_graded():
         0.02,
         "user-defined RMSE",
     )
+
+
+def test_missing_grid_on_a_raster_grid_is_an_error_not_a_silent_zero():
+    # EGM2008 (EPSG:3855) needs us_nga_egm08_25.tif, absent from proj-data here (see above).
+    grid = utm_grid(20, 10)
+    try:
+        n = undulation_on_grid(grid, vertical_crs="EPSG:3855")
+    except GeoidGridError as exc:
+        assert "EPSG:3855" in str(exc)
+    else:
+        assert np.all(np.abs(n) > 10)
