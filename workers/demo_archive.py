@@ -22,6 +22,7 @@ import os
 import shutil
 from collections.abc import Callable, Iterator
 from concurrent.futures import Future, ProcessPoolExecutor, as_completed
+from contextlib import contextmanager
 from dataclasses import asdict, dataclass, field, replace
 from functools import lru_cache
 from pathlib import Path
@@ -366,7 +367,10 @@ def _run_tasks(
             report(number, total)
         return outcomes
     spawn = multiprocessing.get_context("spawn")  # safe when the caller runs threads
-    with ProcessPoolExecutor(max_workers=min(workers, total), mp_context=spawn) as pool:
+    with (
+        _one_thread_per_worker(),
+        ProcessPoolExecutor(max_workers=min(workers, total), mp_context=spawn) as pool,
+    ):
         futures: list[Future[dict[str, Any]]] = [
             pool.submit(_make_tile, out_dir, world, layout, task) for task in tasks
         ]
@@ -374,6 +378,23 @@ def _run_tasks(
             future.result()  # a failed tile stops the archive here
             report(number, total)
         return [future.result() for future in futures]
+
+
+_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+
+
+@contextmanager
+def _one_thread_per_worker() -> Iterator[None]:
+    """Workers started inside get one BLAS thread each (they run one per core already; the
+    small products of _Waves are faster on one thread). Variables already set are kept."""
+    added = [name for name in _THREAD_VARIABLES if name not in os.environ]
+    for name in added:
+        os.environ[name] = "1"
+    try:
+        yield
+    finally:
+        for name in added:
+            os.environ.pop(name, None)
 
 
 def _make_tile(

@@ -20,6 +20,7 @@ import math
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from enum import IntEnum
+from functools import cached_property
 
 import numpy as np
 import shapely
@@ -348,26 +349,99 @@ def _only_where(mask: np.ndarray, field: Callable[[_Place], np.ndarray], at: _Pl
     return out
 
 
-@dataclass(frozen=True, eq=False)
 class _Layout:
-    """Where points lie in the province layout (see _border_distances and _weights)."""
+    """Where points lie in the province layout: metres west of the west/east border and north
+    of the north/south border, the masks of those sides and the province weights.
 
-    to_west: np.ndarray
-    to_north: np.ndarray
-    weights: dict[str, np.ndarray]
+    The full arrays are made only when asked for. On a grid the extremes of the distances come
+    from the axes alone (the arithmetic is monotonic in each axis), so a tile away from the
+    borders gets constant masks and weights without them.
+    """
+
+    def __init__(self, world: DemoWorld, at: _Place) -> None:
+        self.world, self.at = world, at
+        grid = world.grid
+        self._west_axis = 0.5 + world.west_border(at.v)
+        self._north_axis = 0.5 + world.north_border(at.u)
+        if at.is_grid:
+            u, v = at.u, at.v
+            self.west_range = (
+                (self._west_axis.min() - u.max()) * grid.width_m,
+                (self._west_axis.max() - u.min()) * grid.width_m,
+            )
+            self.north_range = (
+                (self._north_axis.min() - v.max()) * grid.height_m,
+                (self._north_axis.max() - v.min()) * grid.height_m,
+            )
+        else:
+            self.west_range = _extremes(self.to_west)
+            self.north_range = _extremes(self.to_north)
+
+    @cached_property
+    def to_west(self) -> np.ndarray:
+        full = (self._west_axis - self.at.u) * self.world.grid.width_m
+        return np.broadcast_to(full, self.at.shape)
+
+    @cached_property
+    def to_north(self) -> np.ndarray:
+        full = (self._north_axis - self.at.v) * self.world.grid.height_m
+        return np.broadcast_to(full, self.at.shape)
+
+    @cached_property
+    def west(self) -> np.ndarray:
+        """True west of the west/east border."""
+        return self._positive(self.west_range, "to_west")
+
+    @cached_property
+    def north(self) -> np.ndarray:
+        """True north of the north/south border."""
+        return self._positive(self.north_range, "to_north")
+
+    def _positive(self, extremes: tuple[float, float], name: str) -> np.ndarray:
+        if extremes[0] > 0 or extremes[1] <= 0:
+            return np.broadcast_to(np.bool_(extremes[0] > 0), self.at.shape)
+        return np.asarray(getattr(self, name) > 0)
+
+    @cached_property
+    def weights(self) -> dict[str, np.ndarray]:
+        blend = self.world.blend_m
+        west_upland = self._step(self.west_range, blend, "to_west")
+        west_lowland = self._step(self.west_range, blend / 4, "to_west")  # HF, TC: a few metres
+        north = self._step(self.north_range, blend, "to_north")
+        weights = {
+            "SU": west_upland * north,
+            "EW": (1 - west_upland) * north,
+            "HF": west_lowland * (1 - north),
+            "TC": (1 - west_lowland) * (1 - north),
+        }
+        shape = self.at.shape
+        return {
+            code: np.broadcast_to(np.asarray(w, dtype=float), shape) for code, w in weights.items()
+        }
+
+    def _step(self, extremes: tuple[float, float], width: float, name: str) -> float | np.ndarray:
+        """_smoothstep(distance / width), a plain 0.0 or 1.0 when it is that everywhere."""
+        if extremes[0] / width >= 1.0:  # division is monotonic
+            return 1.0
+        if extremes[1] / width <= 0.0:
+            return 0.0
+        return _smoothstep(getattr(self, name) / width)
+
+
+def _extremes(values: np.ndarray) -> tuple[float, float]:
+    if not values.size:
+        return (math.inf, math.inf)
+    return float(values.min()), float(values.max())
 
 
 def _layout(world: DemoWorld, at: _Place) -> _Layout:
-    to_west, to_north = _border_distances(world, at)
-    return _Layout(to_west=to_west, to_north=to_north, weights=_weights(world, to_west, to_north))
+    return _Layout(world, at)
 
 
 def _border_distances(world: DemoWorld, at: _Place) -> tuple[np.ndarray, np.ndarray]:
     """Metres west of the west/east border and north of the north/south border."""
-    shape = at.shape
-    to_west = (0.5 + world.west_border(at.v) - at.u) * world.grid.width_m
-    to_north = (0.5 + world.north_border(at.u) - at.v) * world.grid.height_m
-    return np.broadcast_to(to_west, shape), np.broadcast_to(to_north, shape)
+    layout = _Layout(world, at)
+    return layout.to_west, layout.to_north
 
 
 def _smoothstep(z: np.ndarray) -> np.ndarray:
@@ -376,36 +450,12 @@ def _smoothstep(z: np.ndarray) -> np.ndarray:
     return z * z * (3.0 - 2.0 * z)
 
 
-def _step(distance: np.ndarray, width: float) -> float | np.ndarray:
-    """_smoothstep(distance / width), as a plain 0.0 or 1.0 when it is that everywhere."""
-    if distance.size and distance.min() / width >= 1.0:  # division is monotonic
-        return 1.0
-    if distance.size and distance.max() / width <= 0.0:
-        return 0.0
-    return _smoothstep(distance / width)
-
-
 def province_weights(
     world: DemoWorld, easting: np.ndarray, northing: np.ndarray
 ) -> dict[str, np.ndarray]:
     """Smooth membership (0..1, summing to 1) of each point in SU, EW, HF and TC."""
     weights = _layout(world, _place(world, easting, northing)).weights
     return {code: np.array(weight) for code, weight in weights.items()}
-
-
-def _weights(world: DemoWorld, to_west: np.ndarray, to_north: np.ndarray) -> dict[str, np.ndarray]:
-    """Province weights; where one is the same everywhere it is a read-only broadcast view."""
-    west_upland = _step(to_west, world.blend_m)
-    west_lowland = _step(to_west, world.blend_m / 4)  # HF and TC differ by a few metres
-    north = _step(to_north, world.blend_m)
-    weights = {
-        "SU": west_upland * north,
-        "EW": (1 - west_upland) * north,
-        "HF": west_lowland * (1 - north),
-        "TC": (1 - west_lowland) * (1 - north),
-    }
-    shape = to_west.shape
-    return {code: np.broadcast_to(np.asarray(w, dtype=float), shape) for code, w in weights.items()}
 
 
 def _disc_distance(world: DemoWorld, at: _Place, disc: tuple[float, float, float]) -> np.ndarray:
@@ -529,7 +579,7 @@ def land_cover(world: DemoWorld, easting: np.ndarray, northing: np.ndarray) -> n
 
 
 def _land_cover(world: DemoWorld, at: _Place, layout: _Layout) -> np.ndarray:
-    west, north = layout.to_west > 0, layout.to_north > 0
+    west, north = layout.west, layout.north
     forest = _only_where(north, lambda p: world.forest_field(p.x, p.y), at)
     classes = np.full(at.shape, LandCover.OPEN_GROUND, dtype=np.uint8)
     classes[(west & north & (forest > -0.7)) | (~west & north & (forest > 1.1))] = LandCover.FOREST
@@ -548,7 +598,7 @@ def _water(world: DemoWorld, at: _Place, layout: _Layout) -> np.ndarray:
     offshore = inland < 0
     island = _only_where(offshore, lambda p: _island_height(world, p), at)
     sea = offshore & (island <= 0)
-    fen = (layout.to_west > 0) & ~(layout.to_north > 0) & (layout.weights["HF"] > 0.8)
+    fen = layout.west & ~layout.north & (layout.weights["HF"] > 0.8)
     lakes = fen & (_only_where(fen, lambda p: world.lake_field(p.x, p.y), at) > 1.0)
     return np.asarray(sea | lakes)
 
