@@ -32,14 +32,16 @@ def _compiled(name: str) -> Any:
 
 
 def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, maxs, tail):  # type: ignore[no-untyped-def]
-    """Per value: add it to its cell's sum and extremes; count it in its linear bin
-    (floor(x / linear_width), as summary.bin_index) or list it in ``tail``. Returns how many
-    values went to the tail."""
+    """Per value (NaN, infinite and negative-cell values skipped): add it to its cell's sum and
+    extremes; count it in its linear bin (floor(x / linear_width), as summary.bin_index) or list
+    it in ``tail``. Returns how many values went to the tail."""
     n_tail = 0
     columns = 2 * k_limit
     for i in range(x.size):
         v = x[i]
         c = key[i]
+        if c < 0 or not math.isfinite(v):
+            continue
         sums[c] += v
         if v < mins[c]:
             mins[c] = v
@@ -57,9 +59,11 @@ def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, 
 
 
 def _deviation_sweep(x, key, mean, residual, squares):  # type: ignore[no-untyped-def]
-    """Per cell: the sum of deviations from mean and of their squares."""
+    """Per cell: the sum of deviations from mean and of their squares (same values skipped)."""
     for i in range(x.size):
         c = key[i]
+        if c < 0 or not math.isfinite(x[i]):
+            continue
         d = x[i] - mean[c]
         residual[c] += d
         squares[c] += d * d

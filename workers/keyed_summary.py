@@ -117,16 +117,20 @@ class CellSummaries:
 def summarise_cells(
     values: NDArray[np.floating], cells: NDArray[np.integer], n_cells: int
 ) -> CellSummaries:
-    """Summaries of values (1-D, finite, metres) per cell (1-D, same length, 0..n_cells-1).
+    """Summaries of values (1-D, metres) per cell (1-D, same length, 0..n_cells-1).
 
-    NaN or infinite values are not allowed here (the caller selects the valid pixels).
+    NaN and infinite values, and values whose cell is negative, are left out.
     """
     x = np.asarray(values, dtype=np.float64)
-    key = np.asarray(cells, dtype=np.intp)
+    key = np.asarray(cells)
     if x.shape != key.shape or x.ndim != 1:
         raise ValueError(f"values {x.shape} and cells {key.shape} must be 1-D of one length")
     if kernels.AVAILABLE and n_cells * _WIDTH <= MAX_COUNTERS:
         return _summarise_compiled(x, key, n_cells)
+    keep = np.isfinite(x) & (key >= 0)
+    if not keep.all():
+        x, key = x[keep], key[keep]
+    key = key.astype(np.intp, copy=False)
     count = np.bincount(key, minlength=n_cells)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.bincount(key, weights=x, minlength=n_cells) / count
@@ -193,7 +197,7 @@ def _summarise_compiled(
         tail,
     )
     tail = tail[:n_tail]
-    tail_key = key[tail]
+    tail_key = key[tail].astype(np.intp)
     count = dense.sum(axis=1) + np.bincount(tail_key, minlength=n_cells)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.where(count > 0, sums / count, 0.0)

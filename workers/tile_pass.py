@@ -47,37 +47,36 @@ def summarise_pixels(
     """Summaries of dh (metres; NaN = no value) for the tile, each region (masks on the tile's
     grid) and each area x stratum (land-cover class and group from ``landcover``, slope band of
     ``reference``, both on the tile's grid). Pixels of excluded classes leave every summary."""
-    valid = np.isfinite(dh)
-    dropped = 0
-    codes = None
-    if landcover is not None:
-        codes = class_codes(landcover, classes, size=dh.size)
-        excluded = codes == EXCLUDED_CODE
-        dropped = int(np.count_nonzero(excluded & valid))
-        if dropped:
-            valid &= ~excluded
-        del excluded
-    (flat,) = np.nonzero(valid.ravel())
-    del valid
     layout = stratum_cells(
         with_landcover=landcover is not None, classes=classes, slope_edges=slope_edges
     )
     px, py = pixel_size_m
-    bands = slope_bands(reference, slope_edges, pixel_size_x_m=px, pixel_size_y_m=py)
-    if codes is None:
-        cells = bands
-    else:
-        cells = codes.astype(np.int32)
-        cells *= layout.n_bands + 1
-        cells += bands
-    del bands, codes
+    cells: NDArray[np.integer] = slope_bands(
+        reference, slope_edges, pixel_size_x_m=px, pixel_size_y_m=py
+    )
+    keys: NDArray[np.integer]
+    excluded = None
+    if landcover is not None:
+        codes = class_codes(landcover, classes, size=dh.size)
+        excluded = codes == EXCLUDED_CODE
+        cells = codes.astype(np.int32) * (layout.n_bands + 1) + cells
+        del codes
+    dropped = 0 if excluded is None else int(np.count_nonzero(excluded & np.isfinite(dh)))
     if len(region_masks) <= _DIRECT_REGIONS:
-        keys, members = _keys_on_grid(cells, region_masks, layout.n_cells, flat)
+        # keys on the grid, -1 for excluded pixels; NaN dh and those are left out by the sweep
+        keys, members = _keys_on_grid(cells, region_masks, layout.n_cells, excluded)
+        per_key = summarise_cells(dh.ravel(), keys.ravel(), len(members) * layout.n_cells)
     else:
+        valid = np.isfinite(dh)
+        if excluded is not None:
+            valid &= ~excluded
+        (flat,) = np.nonzero(valid.ravel())
+        del valid
         keys, members = membership_patterns(flat, region_masks)
         keys *= layout.n_cells
         keys += cells.ravel()[flat]
-    per_key = summarise_cells(dh.ravel()[flat], keys, len(members) * layout.n_cells)
+        per_key = summarise_cells(dh.ravel()[flat], keys, len(members) * layout.n_cells)
+    del keys, cells, excluded
     areas: dict[str, DhSummary] = {}
     strata: dict[str, dict[str, DhSummary]] = {}
     n_cells = layout.n_cells
@@ -131,18 +130,20 @@ def _keys_on_grid(
     cells: NDArray[np.integer],
     region_masks: Mapping[str, NDArray[np.bool_]],
     n_cells: int,
-    flat: NDArray[np.intp],
-) -> tuple[NDArray[np.intp], list[frozenset[str]]]:
-    """Keys pattern * n_cells + cell built on the tile's grid, then gathered once; every
-    membership pattern of the few regions is numbered (the bits of the pattern number)."""
+    excluded: NDArray[np.bool_] | None,
+) -> tuple[NDArray[np.int32], list[frozenset[str]]]:
+    """Keys pattern * n_cells + cell on the tile's grid (-1 where excluded); every membership
+    pattern of the few regions is numbered (the bits of the pattern number)."""
     ids = list(region_masks)
     key = cells.astype(np.int32)
     for bit, region_id in enumerate(ids):
         np.add(key, (1 << bit) * n_cells, out=key, where=region_masks[region_id])
+    if excluded is not None:
+        key[excluded] = -1
     members = [
         frozenset(r for bit, r in enumerate(ids) if (p >> bit) & 1) for p in range(1 << len(ids))
     ]
-    return key.ravel()[flat].astype(np.intp), members
+    return key, members
 
 
 _DIRECT_REGIONS = 3  # up to 2^3 patterns, each numbered whether it occurs or not

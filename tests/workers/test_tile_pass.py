@@ -236,3 +236,15 @@ def test_merge_all_histograms_are_the_former_ones(tiles: int) -> None:
     assert merged.bins.dtype == np.int64 and merged.counts.dtype == np.int64
     np.testing.assert_array_equal(merged.bins, bins)
     np.testing.assert_array_equal(merged.counts, counts)
+
+
+def test_cells_leave_out_nan_infinite_and_negative_cells() -> None:
+    rng = np.random.default_rng(12)
+    x = rng.normal(0.1, 0.5, 3000)
+    x[::17] = np.nan
+    x[5::31] = np.inf
+    x[7::29] = -np.inf
+    cells = rng.integers(-1, 3, x.size)  # -1: left out (an excluded pixel)
+    per_cell = keyed_summary.summarise_cells(x, cells.astype(np.int32), 3)
+    for c in range(3):
+        assert_same(per_cell.union([c]), dhs.summarise(x[cells == c]), str(c))
