@@ -27,8 +27,14 @@ def _compiled(name: str) -> Any:
     if name not in _COMPILED:
         from numba import njit
 
+        for needed in _CALLS.get(name, ()):  # loops called from this one, bound before compiling
+            globals()[f"{needed}_compiled"] = _compiled(needed)
         _COMPILED[name] = njit(cache=True, nogil=True)(globals()[f"_{name}"])
     return _COMPILED[name]
+
+
+_CALLS = {"block_sweep": ("pairwise_sum",)}
+pairwise_sum_compiled: Any = None  # set by _compiled("block_sweep")
 
 
 def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, maxs, tail):  # type: ignore[no-untyped-def]
@@ -103,6 +109,54 @@ def _band_sweep(z, half_x, half_y, full_x, full_y, lower, upper, none, out):  # 
                 out[r, c] = surely - 1
 
 
+def _pairwise_sum(a, n):  # type: ignore[no-untyped-def]
+    """Sum of a[:n] in numpy's pairwise order for n <= 128 (one block of eight accumulators)."""
+    if n < 8:
+        res = 0.0
+        for i in range(n):
+            res += a[i]
+        return res
+    r0, r1, r2, r3, r4, r5, r6, r7 = a[0], a[1], a[2], a[3], a[4], a[5], a[6], a[7]
+    i = 8
+    while i < n - (n % 8):
+        r0 += a[i]
+        r1 += a[i + 1]
+        r2 += a[i + 2]
+        r3 += a[i + 3]
+        r4 += a[i + 4]
+        r5 += a[i + 5]
+        r6 += a[i + 6]
+        r7 += a[i + 7]
+        i += 8
+    res = ((r0 + r1) + (r2 + r3)) + ((r4 + r5) + (r6 + r7))
+    while i < n:
+        res += a[i]
+        i += 1
+    return res
+
+
+def _block_sweep(dh, factor, total, count, row):  # type: ignore[no-untyped-def]
+    """Per factor x factor block: the sum of its finite values (as numpy's
+    ``sum(axis=(1, 3))`` of the zero-padded blocks adds them: row by row, each row pairwise)
+    and how many there are."""
+    rows, cols = dh.shape
+    blocks_down, blocks_across = total.shape
+    for b in range(blocks_down):
+        for i in range(factor):
+            y = b * factor + i
+            for c in range(blocks_across):
+                for j in range(factor):
+                    x = c * factor + j
+                    v = 0.0
+                    if y < rows and x < cols:
+                        w = np.float64(dh[y, x])
+                        if math.isfinite(w):
+                            v = w
+                            count[b, c] += 1
+                    row[j] = v
+                total[b, c] += pairwise_sum_compiled(row, factor)
+
+
 def cell_sweep(*args: Any) -> int:
     """Compiled _cell_sweep (same arguments)."""
     return int(_compiled("cell_sweep")(*args))
@@ -116,3 +170,8 @@ def deviation_sweep(*args: Any) -> None:
 def band_sweep(*args: Any) -> None:
     """Compiled _band_sweep (same arguments)."""
     _compiled("band_sweep")(*args)
+
+
+def block_sweep(*args: Any) -> None:
+    """Compiled _block_sweep (same arguments)."""
+    _compiled("block_sweep")(*args)

@@ -6,6 +6,7 @@ import numpy as np
 import pytest
 import xarray as xr
 
+from workers import kernels
 from workers.difference import block_mean
 
 
@@ -37,11 +38,40 @@ def former_block_mean(dh: np.ndarray, factor: int) -> np.ndarray:
         return np.where(count > 0, total / np.maximum(count, 1), np.nan).astype(np.float32)
 
 
-@pytest.mark.parametrize(("shape", "factor"), [((1501, 1499), 8), ((64, 64), 8), ((9, 7), 3)])
-def test_block_mean_keeps_its_former_bits(shape, factor):
+@pytest.mark.parametrize("compiled", [True, False])
+@pytest.mark.parametrize(
+    ("shape", "factor"),
+    [
+        ((1501, 1499), 8),
+        ((64, 64), 8),
+        ((9, 7), 3),
+        ((40, 50), 1),
+        ((33, 70), 5),
+        ((50, 61), 13),
+        ((70, 300), 20),
+        ((130, 400), 128),
+        ((5, 30), 8),
+        ((30, 5), 8),  # one block across: numpy path
+    ],
+)
+def test_block_mean_keeps_its_former_bits(shape, factor, compiled, monkeypatch):
+    if compiled and not kernels.AVAILABLE:
+        pytest.skip("numba is not installed")
+    monkeypatch.setattr(kernels, "AVAILABLE", compiled)
     rng = np.random.default_rng(2)
     dh = rng.normal(0.2, 3.0, shape) * 10.0 ** rng.integers(-6, 3, shape)
     dh[rng.random(shape) < 0.1] = np.nan
     dh[rng.random(shape) < 0.01] = np.inf
     dh[:factor, :factor] = np.nan
     np.testing.assert_array_equal(block_mean(dh, factor), former_block_mean(dh, factor))
+
+
+@pytest.mark.parametrize("compiled", [True, False])
+def test_block_mean_of_float32_keeps_its_former_bits(compiled, monkeypatch):
+    if compiled and not kernels.AVAILABLE:
+        pytest.skip("numba is not installed")
+    monkeypatch.setattr(kernels, "AVAILABLE", compiled)
+    rng = np.random.default_rng(3)
+    dh = rng.normal(100.0, 30.0, (203, 157)).astype(np.float32)
+    dh[rng.random(dh.shape) < 0.1] = np.nan
+    np.testing.assert_array_equal(block_mean(dh, 8), former_block_mean(dh, 8))
