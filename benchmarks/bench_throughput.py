@@ -18,7 +18,8 @@ What one run does, for two archives it writes itself (kept in ``--cache`` and re
 
 For each archive and each of the two sizes (the first ``--tiles`` test tiles as a block at the
 north-west corner, then all of them) it runs, each in a fresh subprocess whose whole process tree
-is sampled with psutil every 50 ms for the peak resident memory:
+is sampled with psutil every 50 ms for the peak resident memory (a contender's two sizes run
+back to back, so that both see a similar load from other processes):
 
 * ``decode``: rasterio reads every test tile and every reference tile that overlaps them, in 2
   processes, and computes nothing;
@@ -702,9 +703,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         contenders = ["decode", "naive", "demaudit-w2", "demaudit-w1"]
         if kind == REPROJECTED:
             contenders.insert(1, "decode+warp")
-        for subset in (small, big):
-            plan = make_plan(folder, kind, big, subset)
-            runs += run_all(plan, work, contenders)
+        plans = [make_plan(folder, kind, big, subset) for subset in (small, big)]
+        for contender in contenders:  # the two sizes back to back: they see a similar load
+            for plan in plans:
+                runs += run_all(plan, work, [contender])
         spec = work / f"spec-{kind}-{small.count}" / "spec.yaml"
         phase_table[kind] = phases(spec)
     say(report(runs, sizes, pixels, phase_table, command))
