@@ -89,7 +89,7 @@ from workers.tile_task import (
     OK,
     TileOptions,
     TileResult,
-    audit_tile,
+    audit_and_store,
 )
 from workers.writers import (
     OutputError,
@@ -346,7 +346,7 @@ def _run_into(
             clock.mark("carry_over")
     futures = [
         client.submit(
-            audit_tile,
+            audit_and_store,
             tile,
             catalog.candidates[tile.tile_id],
             region_ops.clip_to(catalog.regions_by_crs.get(tile.grid.crs, []), tile.bounds),
@@ -354,6 +354,7 @@ def _run_into(
             catalog.landcover_of(tile),
             tile_shifts.get(tile.tile_id),
             covered=catalog.covered_of(tile),
+            summaries_to=None if summaries is None else str(summaries.zarr_path),
             pure=False,
             retries=retries,
             key=f"audit-tile-{tile.tile_id}-{run_id}",
@@ -484,7 +485,9 @@ def _fold(
         after.add(result.corrected)
     store.write_overview(result.tile_id, result.overview)
     if result.status == OK and summaries is not None:
-        summaries.write(result.tile_id, entries_of(result), excluded=result.excluded)
+        by_worker = result.summaries_stored and summaries.has(result.tile_id)  # audit_and_store
+        if not by_worker:
+            summaries.write(result.tile_id, entries_of(result), excluded=result.excluded)
 
 
 @dataclass(frozen=True)

@@ -10,6 +10,7 @@ from __future__ import annotations
 import traceback
 from collections.abc import Sequence
 from dataclasses import dataclass, field, replace
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -107,6 +108,7 @@ class TileResult:
     reference_tiles: tuple[str, ...] = ()
     coregistration: dict[str, Any] | None = None
     corrected: TileResult | None = None
+    summaries_stored: bool = False  # the worker wrote them to the results store (audit_and_store)
 
 
 #: With co-registration the reference is read this many test pixels beyond the tile, so that
@@ -177,6 +179,26 @@ def audit_tile(
             test, references, layers, regions, options, result, estimate=estimate
         )
     return result
+
+
+def audit_and_store(*args: Any, summaries_to: str | None = None, **kwargs: Any) -> TileResult:
+    """audit_tile (same arguments), then the worker writes the tile's summaries into the results
+    store at ``summaries_to`` (its tile_summaries group) instead of the client. The result says
+    so (summaries_stored); the client still checks that they arrived and writes them when not
+    (a worker that cannot reach the store, or sees another disk at that path)."""
+    result = audit_tile(*args, **kwargs)
+    if summaries_to is None or result.status != OK:
+        return result
+    if result.summary.count == 0 and result.excluded == 0:
+        return result  # the runner gives it status no_valid_pixels and stores nothing
+    from workers.summary_store import TileSummaryStore, entries_of  # summary_store imports us
+
+    try:
+        store = TileSummaryStore(Path(summaries_to), mode="a")
+        store.write(result.tile_id, entries_of(result), excluded=result.excluded)
+    except Exception:  # noqa: BLE001 - any failure here leaves the writing to the client
+        return result
+    return replace(result, summaries_stored=True)
 
 
 def with_coregistration(
@@ -321,8 +343,10 @@ def summarise_tile(
         pixel_size_m=(px, py),
     )
     dh_valid = dh
+    excluded = None
     if found.excluded:
         excluded = excluded_mask(layers.landcover, options.landcover_classes)
+    if excluded is not None:
         dh_valid = np.where(excluded, np.nan, dh)
     per_area = found.areas
     per_stratum = found.strata
