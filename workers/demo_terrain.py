@@ -538,7 +538,9 @@ def _terrain(world: DemoWorld, at: _Place, layout: _Layout) -> np.ndarray:
             term[weighs] = weight[weighs] * relief(at.subset(weighs))
         total = term if first else total + term
         first = False
-    return np.asarray(np.broadcast_to(total, at.shape))
+    if total.shape == at.shape and total.flags.writeable:
+        return total
+    return np.array(np.broadcast_to(total, at.shape))  # a writable array of its own
 
 
 def true_terrain(world: DemoWorld, easting: np.ndarray, northing: np.ndarray) -> np.ndarray:

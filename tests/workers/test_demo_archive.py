@@ -540,7 +540,7 @@ def test_grid_evaluation_equals_the_pointwise_one() -> None:
         assert np.array_equal(np.broadcast_to(east_axis, easting.shape), easting)
         on_grid = true_terrain(world, east_axis, north_axis)
         pointwise = true_terrain(world, easting, northing)
-        assert on_grid.shape == (300, 300)
+        assert on_grid.shape == (300, 300) and on_grid.flags.writeable  # callers add to it
         # cos(a + b) as cos a cos b - sin a sin b: rounding only (heights up to 400 m)
         np.testing.assert_allclose(on_grid, pointwise, rtol=0, atol=1e-10)
         assert np.array_equal(
