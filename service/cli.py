@@ -710,6 +710,8 @@ def _print_report(document: dict[str, Any], out_dir: Path) -> None:
             verdict = {True: "met", False: "NOT met", None: "not decided"}[grade.get("met")]
             if "accuracy_z_95_m" in grade and "met" not in grade:
                 verdict = f"Accuracy_z (95 %) {_metres(grade['accuracy_z_95_m'])}"
+            if grade.get("scope") and grade.get("met") is not None:
+                verdict += " (non-vegetated checks only)"
             label = f"{grade['standard']} {grade.get('class', '')}".strip()
             print(f"  {label}: {verdict}")
     failed = [t for t in document["tiles"] if t["status"] == "failed"]
