@@ -38,6 +38,7 @@ from service.cluster import dask_client
 from service.deps import Authorized
 from service.jobs import JobDispatcher, Runner, current_job_id, recover_after_restart
 from service.jobstore import JobStore, SqliteJobStore
+from service.negotiation import HeadAsGet
 from service.notify import Notifier, Resolver, system_resolver
 from service.routes import health, jobs, landing, processes, schedules
 from service.runner import run_job
@@ -181,6 +182,7 @@ def create_app(
     app.include_router(schedules.router, dependencies=[Authorized])
     app.include_router(health.router)
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
+    app.add_middleware(HeadAsGet)
     return app
 
 

@@ -179,6 +179,7 @@ _DESCRIPTIONS = {
     404: "No such process, job, schedule, tile, region or file; or the result is not ready.",
     409: "The job failed (problem document with its reason).",
     410: "The job was dismissed (problem document).",
+    406: "The Accept header allows none of the media types offered (problem document).",
     413: "Request body too large (problem document).",
     422: "Invalid job spec or a refused webhook; the detail names each field at fault "
     "(problem document).",

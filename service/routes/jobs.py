@@ -15,6 +15,7 @@ from service.auth import Principal
 from service.deps import DispatcherDep, PrincipalDep, StoreDep
 from service.jobs import PROCESS_ID, JobDispatcher
 from service.jobstore import ACCEPTED, DISMISSED, FAILED, RUNNING, JobRecord, JobStatus, JobStore
+from service.negotiation import AcceptsJson, negotiate
 from service.problems import (
     JobFailedError,
     JobGoneError,
@@ -25,7 +26,7 @@ from service.problems import (
 )
 from service.routes.documents import JSON, JobList, Link, StatusInfo, job_url, status_document
 
-router = APIRouter(prefix="/jobs", tags=["Jobs"], responses=responses(401))
+router = APIRouter(prefix="/jobs", tags=["Jobs"], responses=responses(401, 406))
 
 ZARR = "application/vnd+zarr"
 MAX_OFFSET = 10**9
@@ -84,6 +85,7 @@ def list_jobs(
 ) -> JobList:
     """The caller's jobs (an admin's: all jobs), newest first; filter by status and page with
     limit and offset."""
+    negotiate(request, (JSON,))
     statuses = set(status) if status else None
     if process_id is not None and PROCESS_ID not in process_id:
         statuses = set()
@@ -122,10 +124,17 @@ def get_job(
     job_id: JobId, request: Request, store: StoreDep, principal: PrincipalDep
 ) -> StatusInfo:
     """The status of a job."""
+    negotiate(request, (JSON,))
     return status_document(request, _record(store, job_id, principal))
 
 
-@router.delete("/{jobID}", name="dismiss_job", response_model=StatusInfo, responses=responses(404))
+@router.delete(
+    "/{jobID}",
+    name="dismiss_job",
+    dependencies=[AcceptsJson],
+    response_model=StatusInfo,
+    responses=responses(404),
+)
 def dismiss_job(
     job_id: JobId,
     request: Request,
@@ -141,7 +150,12 @@ def dismiss_job(
     return status_document(request, record)
 
 
-@router.get("/{jobID}/results", name="job_results", responses=responses(404, 409, 410))
+@router.get(
+    "/{jobID}/results",
+    name="job_results",
+    dependencies=[AcceptsJson],
+    responses=responses(404, 409, 410),
+)
 def job_results(
     job_id: JobId,
     request: Request,
@@ -162,7 +176,12 @@ def job_results(
     }
 
 
-@router.get("/{jobID}/tiles/{tile}", name="job_tile", responses=responses(404, 409, 410))
+@router.get(
+    "/{jobID}/tiles/{tile}",
+    name="job_tile",
+    dependencies=[AcceptsJson],
+    responses=responses(404, 409, 410),
+)
 def job_tile(
     job_id: JobId,
     tile: str,
@@ -179,7 +198,12 @@ def job_tile(
     raise NoSuchItemError(f"job {job_id} has no tile {tile!r}")
 
 
-@router.get("/{jobID}/regions/{region}", name="job_region", responses=responses(404, 409, 410))
+@router.get(
+    "/{jobID}/regions/{region}",
+    name="job_region",
+    dependencies=[AcceptsJson],
+    responses=responses(404, 409, 410),
+)
 def job_region(
     job_id: JobId,
     region: str,

@@ -6,6 +6,7 @@ from typing import Any
 
 from fastapi import APIRouter, Request
 
+from service.negotiation import AcceptsJson
 from service.problems import responses
 from service.routes.documents import (
     JSON,
@@ -15,7 +16,7 @@ from service.routes.documents import (
     Link,
 )
 
-router = APIRouter(tags=["Capabilities"], responses=responses(401))
+router = APIRouter(tags=["Capabilities"], responses=responses(401, 406), dependencies=[AcceptsJson])
 
 CONFORMANCE = [
     "http://www.opengis.net/spec/ogcapi-processes-1/1.0/conf/core",

@@ -10,6 +10,7 @@ from pydantic import BaseModel, ConfigDict, Field
 
 from service.deps import DispatcherDep, PrincipalDep, SettingsDep
 from service.jobs import PROCESS_ID
+from service.negotiation import AcceptsJson
 from service.problems import NoSuchProcessError, responses
 from service.routes.documents import (
     JSON,
@@ -24,7 +25,12 @@ from workers.spec import JobSpec
 
 ProcessId = Annotated[str, PathParam(alias="processID", description="The process's id.")]
 
-router = APIRouter(prefix="/processes", tags=["Processes"], responses=responses(401))
+router = APIRouter(
+    prefix="/processes",
+    tags=["Processes"],
+    responses=responses(401, 406),
+    dependencies=[AcceptsJson],
+)
 
 VERSION = "0.1.0"
 TITLE = "Audit the vertical accuracy of a tiled DEM"
