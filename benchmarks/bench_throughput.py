@@ -439,10 +439,12 @@ class Run:
     peak_mib: float
     output: str = ""
     load: float = 0.0
+    ok: bool = True  # a failed run (exit status not 0) counts in no figure
 
 
-def measure(command: list[str]) -> tuple[float, float, str]:
-    """Wall seconds, peak RSS (MiB) of the whole process tree, and stdout of a command."""
+def measure(command: list[str]) -> tuple[float, float, str, bool]:
+    """Wall seconds, peak RSS (MiB) of the whole process tree, stdout of a command, and
+    whether it ended with exit status 0."""
     started = time.perf_counter()
     proc = subprocess.Popen(command, stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     peak = 0
@@ -471,7 +473,7 @@ def measure(command: list[str]) -> tuple[float, float, str]:
     sampler.join()
     if proc.returncode != 0:
         say(f"  FAILED ({proc.returncode}): {' '.join(command)}\n{err[-2000:]}")
-    return seconds, peak / 2**20, out
+    return seconds, peak / 2**20, out, proc.returncode == 0
 
 
 def run_all(plan: Plan, work: Path, contenders: Sequence[str]) -> list[Run]:
@@ -490,9 +492,9 @@ def run_all(plan: Plan, work: Path, contenders: Sequence[str]) -> list[Run]:
             command += ["--workers", workers, "--quiet"]
         else:
             command = [sys.executable, __file__, "--contender", contender, "--plan", str(plan_path)]
-        seconds, peak, output = measure(command)
+        seconds, peak, output, ok = measure(command)
         load = os.getloadavg()[0]
-        runs.append(Run(contender, plan.kind, plan.size, pixels, seconds, peak, output, load))
+        runs.append(Run(contender, plan.kind, plan.size, pixels, seconds, peak, output, load, ok))
         say(
             f"  {plan.kind:<12}{plan.size:>4} tiles  {contender:<12}{seconds:8.1f} s"
             f"{pixels / seconds / 1e6:8.2f} Mpix/s (whole run){peak:9.0f} MiB peak, "
@@ -581,7 +583,8 @@ class Marginal:
 
 def marginal(runs: Sequence[Run], contender: str, kind: str) -> Marginal | None:
     mine = sorted(
-        (r for r in runs if r.contender == contender and r.kind == kind), key=lambda r: r.size
+        (r for r in runs if r.contender == contender and r.kind == kind and r.ok),
+        key=lambda r: r.size,
     )
     if len(mine) < 2 or mine[-1].seconds <= mine[0].seconds:
         return None
@@ -635,6 +638,8 @@ def report(
                 continue
             m = marginal(runs, contender, kind)
             rate = f"{m.mpix_s:.2f}" if m else "n/a"
+            if not all(r.ok for r in mine):
+                rate = "FAILED"
             peaks = f"{mine[0].peak_mib:,.0f} -> {mine[-1].peak_mib:,.0f}"
             secs = " / ".join(f"{r.seconds:.1f}" for r in mine)
             loads = " / ".join(f"{r.load:.1f}" for r in mine)
