@@ -23,7 +23,7 @@ from numpy.typing import NDArray
 from shapely.geometry import Point
 
 from workers import regions as region_ops
-from workers.catalog import TileInfo
+from workers.catalog import Footprint, TileInfo
 from workers.coregister import MAX_STANDARD_ERROR_PX, CannotEstimateError, FitResult, solve
 from workers.coregister_tile import Correction, TileEquations
 from workers.regions import Region
@@ -40,6 +40,7 @@ def estimate_job_correction(
     regions: Mapping[str, list[Region]],
     options: TileOptions,
     known: Mapping[str, dict[str, Any]] | None = None,
+    covered: Callable[[TileInfo], Sequence[Footprint]] = lambda _tile: (),
 ) -> tuple[Correction | None, dict[str, Any], dict[str, dict[str, Any]]]:
     """The job's correction (None when it cannot be estimated), a report of the estimate and
     the tiles' own shift records (tile id -> record).
@@ -47,6 +48,8 @@ def estimate_job_correction(
     known: tile id -> shift record from an earlier run of tiles whose inputs did not change
     (a re-check); those tiles are not estimated again. The pooled estimate ignores it (its
     passes depend on the whole job's shift) and visits every sampled tile.
+    covered: a tile's footprints of earlier-listed test tiles (catalog.tile_overlaps); those
+    pixels are counted once, in the earlier tile, here as in the statistics.
     """
     coreg = options.coregistration
     assert coreg is not None
@@ -54,7 +57,13 @@ def estimate_job_correction(
     reuse = dict(known or {}) if coreg.job_estimate == "tile_median" else {}
     futures = {
         t.tile_id: client.submit(
-            estimate_tile_shift, t, references[t.tile_id], options, landcover(t), pure=False
+            estimate_tile_shift,
+            t,
+            references[t.tile_id],
+            options,
+            landcover(t),
+            covered(t),
+            pure=False,
         )
         for t in sample
         if t.tile_id not in reuse
@@ -69,7 +78,7 @@ def estimate_job_correction(
         report["regions"] = _region_medians(records, sample, regions)
     else:
         correction, report = _pooled(
-            client, sample, references, landcover, regions, options, origin
+            client, sample, references, landcover, regions, options, origin, covered
         )
     report["tiles_used"] = len(sample)
     report["tiles_estimated_earlier"] = sum(t.tile_id in reuse for t in sample)
@@ -200,6 +209,7 @@ def _pooled(
     regions: Mapping[str, list[Region]],
     options: TileOptions,
     at: Correction,
+    covered: Callable[[TileInfo], Sequence[Footprint]],
 ) -> tuple[Correction | None, dict[str, Any]]:
     coreg = options.coregistration
     assert coreg is not None
@@ -209,7 +219,7 @@ def _pooled(
     fit: FitResult | None = None
     try:
         for _ in range(coreg.max_iterations):
-            equations = _pass(client, sample, references, landcover, regions, options, at)
+            equations = _pass(client, sample, references, landcover, regions, options, at, covered)
             fit = solve(equations.shift, what="horizontal shift")
             d_north, d_east = fit.beta[0], fit.beta[1]
             at = replace(at, east_m=at.east_m + d_east, north_m=at.north_m + d_north)
@@ -217,7 +227,7 @@ def _pooled(
             if np.hypot(d_east, d_north) / px < coreg.tolerance_px:
                 converged = True
                 break
-        equations = _pass(client, sample, references, landcover, regions, options, at)
+        equations = _pass(client, sample, references, landcover, regions, options, at, covered)
     except CannotEstimateError as exc:
         return None, {"status": "cannot_estimate", "reason": str(exc), "method": "pooled"}
     assert fit is not None
@@ -250,6 +260,7 @@ def _pass(
     regions: Mapping[str, list[Region]],
     options: TileOptions,
     at: Correction,
+    covered: Callable[[TileInfo], Sequence[Footprint]],
 ) -> TileEquations:
     futures = [
         client.submit(
@@ -260,6 +271,7 @@ def _pass(
             options,
             landcover(t),
             at,
+            covered(t),
             pure=False,
         )
         for t in tiles

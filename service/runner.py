@@ -317,6 +317,7 @@ def _run_into(
             regions=catalog.regions_by_crs,
             options=options,
             known=known_shifts(prior, change) if prior is not None and change else {},
+            covered=catalog.covered_of,
         )
         options = replace(options, correction=correction)
     clock.mark("catalog_and_coregistration")

@@ -170,9 +170,7 @@ def audit_tile(
         where = traceback.format_exc(limit=-1).strip().splitlines()[-2:]
         reason = f"unexpected {type(exc).__name__}: {exc} ({' '.join(s.strip() for s in where)})"
         return TileResult(test.tile_id, FAILED, reason, reference_tiles=ref_ids)
-    if hidden is not None:  # the earlier-listed tiles count these pixels
-        test_heights = None if layers.test is None else np.where(hidden, np.nan, layers.test)
-        layers = replace(layers, dh=np.where(hidden, np.nan, layers.dh), test=test_heights)
+    layers = without_pixels(layers, hidden)  # the earlier-listed tiles count these pixels
     result = summarise_tile(test, layers, regions, options, reference_tiles=ref_ids)
     if options.coregistration is not None:
         result = with_coregistration(
@@ -281,20 +279,34 @@ def own_estimate(test: TileInfo, layers: TileSurfaces, options: TileOptions) -> 
     )
 
 
+def without_pixels(layers: TileSurfaces, hidden: NDArray[np.bool_] | None) -> TileSurfaces:
+    """layers with dh and the test heights set to NaN where ``hidden`` (None: unchanged)."""
+    if hidden is None:
+        return layers
+    test_heights = None if layers.test is None else np.where(hidden, np.nan, layers.test)
+    return replace(layers, dh=np.where(hidden, np.nan, layers.dh), test=test_heights)
+
+
 def estimate_tile_shift(
     test: TileInfo,
     references: Sequence[TileInfo],
     options: TileOptions,
     landcover: Sequence[TileInfo],
+    covered: Sequence[Footprint] = (),
 ) -> dict[str, Any]:
-    """Task: read one tile and return its own shift record (status 'failed' when unreadable)."""
+    """Task: read one tile and return its own shift record (status 'failed' when unreadable).
+
+    ``covered`` as in audit_tile: pixels counted by an earlier-listed tile take no part."""
     if not references:
         return {"status": "cannot_estimate", "reason": "no reference tile overlaps this tile"}
+    hidden = covered_mask(test.grid, covered) if covered else None
+    if hidden is not None and hidden.all():
+        return {"status": "cannot_estimate", "reason": superseded_reason(covered)}
     try:
         layers = tile_surfaces(test, references, options, landcover=landcover)
     except (AuditError, RasterioError, OSError) as exc:
         return {"status": "failed", "reason": str(exc)}
-    return own_estimate(test, layers, options)
+    return own_estimate(test, without_pixels(layers, hidden), options)
 
 
 def estimate_tile(
@@ -304,15 +316,21 @@ def estimate_tile(
     options: TileOptions,
     landcover: Sequence[TileInfo],
     at: Correction,
+    covered: Sequence[Footprint] = (),
 ) -> TileEquations | None:
     """One tile's equations for the job-wide co-registration at correction ``at`` (None when the
-    tile cannot be read: the estimate then rests on the other tiles)."""
+    tile cannot be read: the estimate then rests on the other tiles). ``covered`` as in
+    audit_tile: pixels counted by an earlier-listed tile add no equations."""
     if not references:
+        return None
+    hidden = covered_mask(test.grid, covered) if covered else None
+    if hidden is not None and hidden.all():
         return None
     try:
         layers = tile_surfaces(test, references, options, landcover=landcover, shift=at)
     except (AuditError, RasterioError, OSError):
         return None
+    layers = without_pixels(layers, hidden)
     assert layers.test is not None
     masks = {r.region_id: region_mask(r, test.grid) for r in regions}
     cover = cover_ok(layers.landcover, options.landcover_classes)
