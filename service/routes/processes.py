@@ -11,6 +11,7 @@ from pydantic import BaseModel, ConfigDict, Field
 from service.deps import DispatcherDep, PrincipalDep, SettingsDep
 from service.jobs import PROCESS_ID
 from service.negotiation import AcceptsJson
+from service.openapi import oas30_schema
 from service.problems import NoSuchProcessError, responses
 from service.routes.documents import (
     JSON,
@@ -88,7 +89,7 @@ def _inputs() -> dict[str, Any]:
     required = set(schema.get("required", ()))
     inputs = {}
     for name, prop in schema["properties"].items():
-        prop = inline_refs(prop, defs)
+        prop = oas30_schema(inline_refs(prop, defs))
         inputs[name] = {
             "title": prop.pop("title", name),
             "description": prop.get("description", ""),
