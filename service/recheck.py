@@ -10,7 +10,7 @@ from functools import cached_property
 from pathlib import Path
 from typing import Any
 
-from workers.catalog import TileInfo, tiles_from_catalog
+from workers.catalog import TileInfo, headers_checked, tiles_from_catalog
 from workers.errors import SpecError
 from workers.merge import JobAccumulator
 from workers.recheck import ChangePlan, Thresholds, compare, lost_grades, plan
@@ -60,6 +60,16 @@ class Baseline:
         except (OSError, json.JSONDecodeError):
             return {}
         return tiles_from_catalog(doc)
+
+    @cached_property
+    def catalog_headers_checked(self) -> bool:
+        """Whether the baseline's catalog passed today's header checks (else headers are opened
+        again; fingerprints of unchanged files are still reused)."""
+        try:
+            doc = json.loads((self.folder / "catalog.json").read_text(encoding="utf-8"))
+        except (OSError, json.JSONDecodeError):
+            return False
+        return headers_checked(doc)
 
     @property
     def has_job_totals(self) -> bool:

@@ -58,6 +58,7 @@ from workers.catalog import (
 )
 from workers.checkpoints import CheckpointFile
 from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation, vertical_transformations
+from workers.error_model import ErrorModelAccumulator, attach_error_model
 from workers.errors import AuditError, EmptyOverlapError, TileReadError
 from workers.figures import write_figures
 from workers.grading import Measured
@@ -298,7 +299,12 @@ def _run_into(
     clock = Phases()
     options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
     catalog = _catalog(
-        _dask_map(client), job, options, prior.catalog if prior else {}, inputs.regions
+        _dask_map(client),
+        job,
+        options,
+        prior.catalog if prior else {},
+        inputs.regions,
+        headers_checked=prior.catalog_headers_checked if prior else False,
     )
     sources = catalog.source_fingerprints()
     region_ids = [r.region_id for r in catalog.regions]
@@ -364,6 +370,8 @@ def _run_into(
     ]
     total = len(catalog.tests) + len(catalog.test_failures)
     done = total - len(futures)
+    em = job.spec.error_model
+    errors = [ErrorModelAccumulator(max_points=em.max_samples if em else 0) for _ in range(2)]
     for future in as_completed(futures):
         if should_stop is not None and should_stop():
             client.cancel(futures)
@@ -371,6 +379,8 @@ def _run_into(
         result = _with_status(_result_of(future))
         future.release()
         _fold(result, acc, after, store, summaries)
+        errors[0].add(result.error_sample)
+        errors[1].add(result.corrected.error_sample if result.corrected else None)
         records[result.tile_id] = _tile_record(
             result.tile_id,
             result.status,
@@ -402,6 +412,10 @@ def _run_into(
         }
     overall = area_entry(acc.overall, acc.strata_of(ALL), **rule)
     clock.mark("statistics")
+    error_model = _error_model(job, options, errors, overall, region_docs, coregistration)
+    if error_model is not None:
+        error_model, overall, region_docs = error_model
+    clock.mark("error_model")
     _write_tables(store, tile_rows, overall, region_docs, coregistration)
     clock.mark("tables")
     document = build_summary(
@@ -428,6 +442,8 @@ def _run_into(
         + ([] if layout else ["no dh overview: the test tiles are not on one grid"]),
         coregistration=coregistration,
     )
+    if error_model is not None:
+        document["error_model"] = error_model
     vertical = vertical_transformations(job.spec, grid_dirs=options.grid_dirs)
     document["sources"] = {**sources, "vertical_transformations": vertical}
     document["cautions"] += vertical_accuracy_cautions(vertical, job.spec.grading)
@@ -442,21 +458,58 @@ def _run_into(
     clock.mark("checkpoints")
     if raster:
         document["grading_indicative"] = _indicative_grading(acc, job)
-    try:
-        document["figures"] = write_figures(out_dir, document)
-        write_report(out_dir, document)
-    except (OSError, ValueError, KeyError) as exc:  # a figure never costs the results
-        document["figures"] = []
-        document["cautions"].append(f"figures or report.html could not be drawn: {exc}")
-    clock.mark("figures_and_report")
     if prior is not None and change is not None:
         limits = Thresholds(**job.spec.recheck.model_dump())
         document["recheck"] = change_report(prior, change, document, limits)
         write_summary(out_dir, document["recheck"], name=CHANGE_REPORT_NAME)
     clock.mark("change_report")
+    try:  # after the change report: the re-check figures draw it
+        map_regions = catalog.regions_by_crs.get(layout.crs, []) if layout else []
+        document["figures"] = write_figures(
+            out_dir,
+            document,
+            overall=acc.overall,
+            strata=acc.strata_of(ALL),
+            regions=[(r.region_id, r.name, r.geometry) for r in map_regions],
+            crs=layout.crs if layout else None,
+        )
+        write_report(out_dir, document)
+    except (OSError, ValueError, KeyError) as exc:  # a figure never costs the results
+        document["figures"] = {}
+        document["cautions"].append(f"figures or report.html could not be drawn: {exc}")
+    clock.mark("figures_and_report")
     document["job"]["timings_s"] = clock.seconds
     write_summary(out_dir, document)
     return document
+
+
+def _error_model(
+    job: ResolvedJob,
+    options: TileOptions,
+    errors: list[ErrorModelAccumulator],
+    overall: dict[str, Any],
+    regions: list[dict[str, Any]],
+    coregistration: dict[str, Any] | None,
+) -> tuple[dict[str, Any], dict[str, Any], list[dict[str, Any]]] | None:
+    """The error model (workers/error_model.py) of dh, and of dh after co-registration (in
+    coregistration.after), with the areas' uncertainties; None when the spec asks for none."""
+    em = job.spec.error_model
+    if em is None:
+        return None
+    layout: dict[str, Any] = {
+        "max_distance_m": em.max_distance_m,
+        "seed": em.seed,
+        "with_landcover": job.spec.landcover is not None,
+        "classes": options.landcover_classes,
+        "slope_edges": options.slope_edges_deg,
+    }
+    after = (coregistration or {}).get("after")
+    if after is not None and errors[1].tiles:
+        section, after["overall"], after["regions"] = attach_error_model(
+            errors[1], overall=after["overall"], regions=after["regions"], **layout
+        )
+        after["error_model"] = section
+    return attach_error_model(errors[0], overall=overall, regions=regions, **layout)
 
 
 class Phases:
@@ -532,6 +585,9 @@ def _reuse_of(
         {t.tile_id: catalog.sources_of(t) for t in catalog.tests},
         region_fingerprint=region_fingerprint,
     )
+    if job.spec.error_model is not None and change.reuse:  # fitted on every tile's samples
+        redo = dict.fromkeys(change.reuse, "the error model samples every tile")
+        change = replace(change, recompute=change.recompute | redo, reuse=())
     if not change.reuse:
         return _Reuse(prior, change)
     try:
@@ -670,12 +726,17 @@ def _catalog(
     options: TileOptions,
     known: Mapping[str, TileInfo],
     region_list: list[Region],
+    *,
+    headers_checked: bool = False,
 ) -> _Catalog:
-    """Scan every tile (with mapper), index the reference, check overlap, geoid and regions."""
-    test_tiles, test_failures = _scan(mapper, job.test_tiles, known)
-    ref_tiles, ref_failures = _scan(mapper, job.reference_tiles, known)
+    """Scan every tile (with mapper), index the reference, check overlap, geoid and regions.
+
+    known: an earlier scan; with headers_checked its unchanged tiles are not opened again."""
+    reuse = known if headers_checked else {}
+    test_tiles, test_failures = _scan(mapper, job.test_tiles, known, reuse)
+    ref_tiles, ref_failures = _scan(mapper, job.reference_tiles, known, reuse)
     cover_tiles, cover_failures = _scan(
-        mapper, job.landcover_tiles, known, scan=scan_landcover_tile
+        mapper, job.landcover_tiles, known, reuse, scan=scan_landcover_tile
     )
     if not test_tiles:
         raise TileReadError("no test tile could be read: " + _reasons(test_failures))
@@ -748,12 +809,14 @@ def _scan(
     mapper: Mapper,
     paths: Sequence[Path],
     known: Mapping[str, TileInfo],
+    reuse: Mapping[str, TileInfo],
     scan: Callable[..., TileInfo | ScanFailure] = scan_tile,
 ) -> tuple[list[TileInfo], list[ScanFailure]]:
-    """Scan tiles on the cluster; a tile an earlier scan knows, with the same size and
-    modification time, is taken from that scan without opening the file."""
+    """Scan tiles on the cluster; a tile in ``reuse`` with the same size and modification time
+    is taken from it without opening the file; one in ``known`` (an earlier scan) with the same
+    size and modification time is opened for its header but not hashed again."""
     reused = {
-        str(p): known[str(p)] for p in paths if str(p) in known and unchanged(known[str(p)], p)
+        str(p): reuse[str(p)] for p in paths if str(p) in reuse and unchanged(reuse[str(p)], p)
     }
     names = [str(p) for p in paths if str(p) not in reused]
     hints: list[Known | None] = [

@@ -371,10 +371,16 @@ def _overlap(a: Sequence[float], b: Sequence[float]) -> bool:
     return min(a[2], b[2]) > max(a[0], b[0]) and min(a[3], b[3]) > max(a[1], b[1])
 
 
+HEADER_CHECKS = 2
+"""Version of the checks a scan makes on a tile's header (2: rasters that cannot be elevation
+are refused). A re-check opens again the headers of tiles an older catalog accepted."""
+
+
 def catalog_document(tiles: Sequence[TileInfo]) -> dict[str, object]:
     """A JSON-ready record of scanned tiles (CRS definitions stored once)."""
     crs_list = list(dict.fromkeys(t.grid.crs for t in tiles))
     return {
+        "header_checks": HEADER_CHECKS,
         "crs": crs_list,
         "tiles": [
             {
@@ -393,6 +399,11 @@ def catalog_document(tiles: Sequence[TileInfo]) -> dict[str, object]:
             for t in tiles
         ],
     }
+
+
+def headers_checked(document: dict[str, Any]) -> bool:
+    """True when a catalog_document's tiles passed the header checks a scan makes today."""
+    return document.get("header_checks") == HEADER_CHECKS
 
 
 def tiles_from_catalog(document: dict[str, Any]) -> dict[str, TileInfo]:
