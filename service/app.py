@@ -30,6 +30,7 @@ from typing import Any
 
 import httpx
 from fastapi import FastAPI
+from fastapi.staticfiles import StaticFiles
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service import problems
@@ -40,7 +41,7 @@ from service.jobs import JobDispatcher, Runner, current_job_id, recover_after_re
 from service.jobstore import JobStore, SqliteJobStore
 from service.negotiation import HeadAsGet
 from service.notify import Notifier, Resolver, system_resolver
-from service.routes import health, jobs, landing, processes, schedules
+from service.routes import health, jobs, landing, pages, processes, schedules
 from service.runner import run_job
 from service.scheduler import Clock, Scheduler, resolve_inputs, scaled_clock
 from service.settings import Settings
@@ -178,9 +179,12 @@ def create_app(
     problems.install(app)
     app.include_router(landing.router, dependencies=[Authorized])
     app.include_router(processes.router, dependencies=[Authorized])
+    app.include_router(pages.pages)  # browser navigations only; before the JSON routes
     app.include_router(jobs.router, dependencies=[Authorized])
+    app.include_router(pages.reports, dependencies=[Authorized])
     app.include_router(schedules.router, dependencies=[Authorized])
     app.include_router(health.router)
+    app.mount("/static", StaticFiles(directory=pages.STATIC_DIR), name="static")
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
     app.add_middleware(HeadAsGet)
     return app

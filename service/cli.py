@@ -542,6 +542,7 @@ def _cmd_status(args: argparse.Namespace, settings: Settings) -> int:
                 return 2
             job = response.json()
             print(f"job {job['jobID']} {job['status']} ({job['progress']} %): {job['message']}")
+            _print_job_links(args.server, job["jobID"], job["status"])
             return _exit_status(job["status"], job.get("message") or "")
     except httpx.HTTPError as exc:
         print(f"demaudit: error: cannot reach {args.server}: {exc}", file=sys.stderr)
@@ -660,7 +661,16 @@ def _watch(http: Any, job_id: str, *, interval: float) -> int:
     finally:
         bar.close()
     print(f"job {job_id} {job['status']}: {job['message']}")
+    _print_job_links(str(http.base_url), job_id, job["status"])
     return _exit_status(job["status"], job.get("message") or "")
+
+
+def _print_job_links(server: str, job_id: str, status: str) -> None:
+    """Where a person follows the job (its page) and, once it succeeded, reads its report."""
+    page = f"{server.rstrip('/')}/jobs/{job_id}"
+    print(f"page: {page} (in a browser, with the token)")
+    if status == "successful":
+        print(f"report: {page}/report (shown on the page; programs send the token)")
 
 
 def _exit_status(status: str, message: str = "") -> int:
@@ -731,7 +741,8 @@ def _print_report(document: dict[str, Any], out_dir: Path) -> None:
         print("\ncautions:")
         for caution in notable:
             print(f"  ! {caution}")
-    print("\n" + document["cautions"][0])
+    print(f"\nreport: {folder / 'report.html'}")
+    print(document["cautions"][0])
 
 
 def _metres(value: float | None) -> str:
