@@ -9,10 +9,11 @@
     (lease holder only)          │ on_end ──► service.notify (webhooks)      │ one shared
                     service.jobstore (SQLite) ◄── status, progress ──────────┘ Dask client
 
-The lifespan opens the job store (failing jobs a dead process left unfinished), connects the Dask
-client (``Settings.scheduler`` or an embedded LocalCluster), starts the dispatcher and the
-scheduler loop; at shut-down it stops the scheduler, fails and stops the jobs still running and
-gives pending webhook calls a moment. Exceptions become problem documents in ``service.problems``
+The lifespan opens the job store, connects the Dask client (``Settings.scheduler``, watched and
+made anew after an outage, or an embedded LocalCluster), starts the dispatcher (its lease in the
+store; it fails the jobs of API processes that are gone) and the scheduler loop; at shut-down
+it stops the scheduler, fails and stops the jobs still running and gives pending webhook calls
+a moment. Exceptions become problem documents in ``service.problems``
 only.
 """
 
@@ -35,12 +36,14 @@ from starlette.types import ASGIApp, Message, Receive, Scope, Send
 
 from service import problems
 from service.auth import Principals, load_principals
-from service.cluster import dask_client
+from service.cluster import ClusterConnection, cluster_connection
 from service.deps import Authorized
-from service.jobs import JobDispatcher, Runner, current_job_id, recover_after_restart
+from service.jobs import JobDispatcher, Runner, current_job_id
 from service.jobstore import JobStore, SqliteJobStore
 from service.negotiation import HeadAsGet
 from service.notify import Notifier, Resolver, system_resolver
+from service.openapi import serve_openapi30
+from service.public_base import PublicBase
 from service.routes import health, jobs, landing, pages, processes, schedules
 from service.runner import run_job
 from service.scheduler import Clock, Scheduler, resolve_inputs, scaled_clock
@@ -56,10 +59,11 @@ log = logging.getLogger("demaudit.api")
 
 
 def _default_client(settings: Settings) -> AbstractContextManager[Any]:
-    return dask_client(
+    return cluster_connection(
         settings.scheduler,
         workers=settings.local_workers,
         memory_limit=settings.worker_memory_limit,
+        timeout_s=settings.scheduler_timeout_s,
     )
 
 
@@ -116,12 +120,13 @@ def create_app(
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
         job_store = store if store is not None else SqliteJobStore(settings.job_store)
-        recover_after_restart(job_store)
         cluster = client_factory(settings)
         # enter and leave the client in one context: distributed.Client keeps a ContextVar token
         context = contextvars.copy_context()
         loop = asyncio.get_running_loop()
-        client = await loop.run_in_executor(None, context.run, cluster.__enter__)
+        entered = await loop.run_in_executor(None, context.run, cluster.__enter__)
+        # a ClusterConnection is made anew after a scheduler outage; a bare client is kept
+        client = entered if isinstance(entered, ClusterConnection) else ClusterConnection(entered)
         notifier = Notifier(
             job_store,
             attempts=settings.webhook_attempts,
@@ -141,7 +146,11 @@ def create_app(
             retries=settings.task_retries,
             runner=runner,
             on_end=notifier.after_job,
+            stall_timeout_s=settings.job_stall_timeout_s,
+            lease_s=settings.runner_lease_s,
+            watch_interval_s=min(2.0, settings.runner_lease_s / 4),
         )
+        dispatcher.start()  # takes the lease, fails the jobs of processes that are gone
         scheduler = Scheduler(
             job_store,
             dispatcher,
@@ -187,6 +196,8 @@ def create_app(
     app.mount("/static", StaticFiles(directory=pages.STATIC_DIR), name="static")
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
     app.add_middleware(HeadAsGet)
+    app.add_middleware(PublicBase, base_url=settings.public_base_url)  # links never from Host
+    serve_openapi30(app)
     return app
 
 

@@ -61,11 +61,23 @@ class Settings(BaseSettings):
     """Largest request body the REST service reads (HTTP 413 beyond)."""
     task_retries: int = Field(default=1, ge=0)
     """Retries of a tile task whose worker was lost."""
+    job_stall_timeout_s: float | None = Field(default=600.0, gt=0)
+    """A job none of whose waiting Dask tasks finished for this long fails ("no tile finished
+    for N s; workers: W"), e.g. when every worker is gone; unset (``null``) waits for ever."""
+    scheduler_timeout_s: float = Field(default=30.0, gt=0)
+    """How long one Dask client waits for the external scheduler (at start-up, after losing
+    it); then the REST service makes a new client, every few seconds, until it answers."""
+    runner_lease_s: float = Field(default=60.0, gt=0)
+    """Life of an API process's lease on its jobs without renewal (renewed every 2 s); once it
+    runs out, another API process sharing the job store fails those jobs."""
     token: str | None = None
     """Bearer token that ``demaudit submit`` and ``demaudit status`` send (DEMAUDIT_TOKEN)."""
+    public_base_url: str | None = None
+    """The API's public base URL (``https://audit.example.org/api``): every link, Location
+    header and webhook payload link is built on it, never on a request's Host header. Unset:
+    links are relative (``/jobs/<id>``). See ``service.public_base``."""
     public_url: str | None = None
-    """The API's public base URL, for links in webhook notifications (default: the URL a
-    schedule was created through)."""
+    """Former name of public_base_url (DEMAUDIT_PUBLIC_URL); either sets both."""
 
     # --- schedules (nightly re-checks) --------------------------------------------------------
     schedule_tick_s: float = Field(default=15.0, gt=0)
@@ -105,6 +117,19 @@ class Settings(BaseSettings):
         if text.startswith("["):
             return json.loads(text)
         return [part.strip() for part in text.split(",") if part.strip()]
+
+    @field_validator("public_base_url", "public_url")
+    @classmethod
+    def _base_url(cls, value: str | None) -> str | None:
+        from service.public_base import check_base_url
+
+        return None if value is None else check_base_url(value)
+
+    @model_validator(mode="after")
+    def _one_base_url(self) -> Settings:
+        self.public_base_url = self.public_base_url or self.public_url
+        self.public_url = self.public_base_url
+        return self
 
     @model_validator(mode="after")
     def _schedule_clock(self) -> Settings:

@@ -4,22 +4,39 @@ A spec names a test DEM (tiles), a reference (tiles), optional regions to aggreg
 processing options. It is read from YAML or JSON; relative paths resolve against the folder of the
 spec file (or a base folder given by the caller). Unknown keys and inconsistent values are rejected
 with a :class:`~workers.errors.SpecError` whose message names the field.
+
+Bounds (so a request cannot make the server list folders for minutes): a path is at most
+MAX_PATH_CHARS characters with no control character (NUL included); a tile list holds at most
+MAX_PATHS_PER_LIST entries, of which at most MAX_GLOBS_PER_LIST are glob patterns; the files
+a field's patterns and folders expand to are counted as they are listed, and more than
+MAX_FILES_PER_FIELD is refused without listing further. Paths in messages are shown relative
+to their data root (workers/confine.py: shown); without data roots as resolved.
 """
 
 from __future__ import annotations
 
 import glob
 import json
-from collections.abc import Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Annotated, Any, Literal
 
 import yaml
-from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
+from pydantic import (
+    BaseModel,
+    BeforeValidator,
+    ConfigDict,
+    Field,
+    ValidationError,
+    field_validator,
+    model_validator,
+)
+from pydantic.json_schema import WithJsonSchema
 from pyproj import CRS
 from pyproj.exceptions import CRSError
 
+from workers.confine import Roots, real_roots, shown
 from workers.errors import DataRootError, SpecError
 
 Units = Literal["metre", "foot", "us_survey_foot"]
@@ -33,6 +50,75 @@ METRES_PER_UNIT: dict[str, float] = {
     "foot": 0.3048,
     "us_survey_foot": 1200.0 / 3937.0,
 }
+
+
+#: Longest path a spec may give (characters); Linux allows 4,096 bytes, data paths need far less.
+MAX_PATH_CHARS = 1024
+#: Entries of one tile list (test.tiles, reference.tiles, landcover.tiles).
+MAX_PATHS_PER_LIST = 1000
+#: Glob patterns among them (each lists a folder).
+MAX_GLOBS_PER_LIST = 100
+#: Files the patterns and folders of one field may expand to (listing stops beyond).
+MAX_FILES_PER_FIELD = 100_000
+
+
+def _path_problem(value: str) -> str | None:
+    if not value:
+        return "an empty path"
+    if len(value) > MAX_PATH_CHARS:
+        return f"a path of {len(value):,} characters (at most {MAX_PATH_CHARS:,})"
+    if any(ord(c) < 32 or ord(c) == 127 for c in value):
+        return "a path may not hold control characters (NUL, newline, ...)"
+    return None
+
+
+def _plain_path(value: object) -> object:
+    problem = _path_problem(value) if isinstance(value, str) else None
+    if problem:
+        raise ValueError(problem)
+    return value
+
+
+def _tile_entries(value: object) -> object:
+    """test.tiles and the like: a path, or a list of paths with few globs (see module bounds)."""
+    if isinstance(value, str):
+        return _plain_path(value)
+    if not isinstance(value, list):
+        return value  # the type check says what is wrong
+    if not value or len(value) > MAX_PATHS_PER_LIST:
+        raise ValueError(f"list 1 to {MAX_PATHS_PER_LIST:,} paths (found {len(value):,})")
+    for number, entry in enumerate(value):
+        problem = _path_problem(entry) if isinstance(entry, str) else "not a string"
+        if problem:
+            raise ValueError(f"entry {number}: {problem}")
+    globs = sum(1 for p in value if glob.has_magic(p))
+    if globs > MAX_GLOBS_PER_LIST:
+        raise ValueError(
+            f"at most {MAX_GLOBS_PER_LIST} glob patterns per list (found {globs:,}); use fewer, "
+            "wider patterns or a folder"
+        )
+    return value
+
+
+_PATH_SCHEMA = {"type": "string", "minLength": 1, "maxLength": MAX_PATH_CHARS}
+SpecPath = Annotated[str, BeforeValidator(_plain_path), WithJsonSchema(_PATH_SCHEMA)]
+TilePaths = Annotated[
+    str | list[str],
+    BeforeValidator(_tile_entries),
+    WithJsonSchema(
+        {
+            "anyOf": [
+                _PATH_SCHEMA,
+                {
+                    "type": "array",
+                    "items": _PATH_SCHEMA,
+                    "minItems": 1,
+                    "maxItems": MAX_PATHS_PER_LIST,
+                },
+            ]
+        }
+    ),
+]
 
 
 class _Strict(BaseModel):
@@ -80,7 +166,10 @@ class _Heights(_Strict):
 class TileSource(_Heights):
     """A set of raster tiles with the vertical datum and unit of their heights."""
 
-    tiles: str | list[str] = Field(description="A glob, a folder, or a list of GeoTIFF paths.")
+    tiles: TilePaths = Field(
+        description="A glob, a folder, or a list of GeoTIFF paths (at most 1000 entries, of "
+        "which at most 100 globs)."
+    )
     nodata: float | None = Field(
         default=None,
         description="A value marking voids, besides the nodata value the tiles declare (e.g. "
@@ -92,7 +181,7 @@ class CheckpointSource(_Heights):
     """Surveyed checkpoints: CSV (columns named below; '#' lines may hold 'key: value' such as
     'horizontal_crs: EPSG:32632' and 'survey_rmse_m: 0.02') or GeoJSON points."""
 
-    file: str
+    file: SpecPath
     crs: str | None = Field(
         default=None,
         description="Horizontal CRS of the points (CSV: else the file's 'horizontal_crs' line; "
@@ -120,7 +209,7 @@ Standard = Literal["nssda", "asprs2014", "asprs2023", "quality_level", "user"]
 class Grading(_Strict):
     """Which standards to grade against and the class each requires."""
 
-    standards: list[Standard] = ["nssda", "asprs2014", "asprs2023"]
+    standards: list[Standard] = Field(default=["nssda", "asprs2014", "asprs2023"], max_length=10)
     asprs_class_cm: float = Field(default=10.0, gt=0)
     quality_level: Literal["QL0", "QL1", "QL2", "QL3"] = "QL2"
     nssda_required_accuracy_m: float | None = Field(default=None, gt=0)
@@ -133,7 +222,9 @@ class Grading(_Strict):
 class RegionSource(_Strict):
     """Polygons to aggregate over: a GeoJSON FeatureCollection and the property naming each."""
 
-    file: str = Field(description="GeoJSON FeatureCollection (CRS as declared, else EPSG:4326).")
+    file: SpecPath = Field(
+        description="GeoJSON FeatureCollection (CRS as declared, else EPSG:4326)."
+    )
     id_property: str = Field(default="code", description="Feature property holding the region id.")
 
 
@@ -162,8 +253,12 @@ class LandCoverClass(_Strict):
 class LandCoverSource(_Strict):
     """A land-cover raster (any grid; resampled by nearest neighbour onto the test grid)."""
 
-    tiles: str | list[str] = Field(description="A glob, a folder, or a list of GeoTIFF paths.")
+    tiles: TilePaths = Field(
+        description="A glob, a folder, or a list of GeoTIFF paths (at most 1000 entries, of "
+        "which at most 100 globs)."
+    )
     classes: dict[int, LandCoverClass] = Field(
+        max_length=1000,
         description="Class value -> name and group (non_vegetated, vegetated or excluded). "
         "Pixels of excluded classes, and of values not listed, leave every statistic."
     )
@@ -181,6 +276,7 @@ class Strata(_Strict):
 
     slope_bands_deg: list[float] = Field(
         default=[0.0, 5.0, 15.0, 30.0, 45.0],
+        max_length=32,
         description="Lower edges of the slope bands in degrees; the last band is open-ended.",
     )
 
@@ -242,6 +338,22 @@ class Recheck(_Strict):
     median_moved_m: float = Field(default=0.05, ge=0)
 
 
+class ErrorModel(_Strict):
+    """Opt-in error model on stable terrain: spread by slope, spatial correlation, standard
+    errors of regional figures (workers/error_model.py). Costs more than the rest of the audit."""
+
+    max_distance_m: float = Field(
+        default=5000.0, gt=0, description="Longest pair distance of the empirical variogram."
+    )
+    seed: int = Field(default=0, ge=0, description="Seed of the pixel samples (reproducible).")
+    samples_per_tile: int = Field(
+        default=2000, ge=10, le=100_000, description="Stable pixels sampled per test tile."
+    )
+    max_samples: int = Field(
+        default=100_000, ge=100, le=2_000_000, description="Samples kept for the variogram."
+    )
+
+
 class JobSpec(_Strict):
     """One audit: a test DEM against a reference, over regions."""
 
@@ -256,6 +368,7 @@ class JobSpec(_Strict):
     coregistration: Coregistration | None = None
     grading: Grading = Grading()
     recheck: Recheck = Recheck()
+    error_model: ErrorModel | None = None
     options: Options = Options()
 
     @model_validator(mode="after")
@@ -269,7 +382,10 @@ class JobSpec(_Strict):
 
 @dataclass(frozen=True)
 class ResolvedJob:
-    """A validated spec with every path made absolute and every tile glob expanded."""
+    """A validated spec with every path made absolute and every tile glob expanded.
+
+    ``data_roots`` (resolved) confine every read of the job's files (workers/confine.py); None
+    when the job was resolved without roots."""
 
     spec: JobSpec
     test_tiles: tuple[Path, ...]
@@ -277,6 +393,11 @@ class ResolvedJob:
     region_file: Path | None
     landcover_tiles: tuple[Path, ...] = ()
     checkpoint_file: Path | None = None
+    data_roots: Roots = None
+
+    def shown(self, path: str | Path) -> str:
+        """path as messages and summary.json show it (relative to its data root)."""
+        return shown(path, self.data_roots)
 
 
 def parse_spec(data: dict[str, Any]) -> JobSpec:
@@ -320,9 +441,11 @@ def resolve(
 ) -> ResolvedJob:
     """Make paths absolute against base_dir, expand tile globs and check the files exist.
 
-    When data_roots is given, every path must lie inside one of them (DataRootError otherwise).
+    When data_roots is given, every path must lie inside one of them (DataRootError otherwise),
+    and the job's reads stay confined to them (ResolvedJob.data_roots). Problems name the field;
+    paths in messages are relative to their data root.
     """
-    roots = [Path(r).resolve() for r in data_roots] if data_roots else None
+    roots = real_roots(data_roots)
     test = _expand_tiles(spec.test.tiles, base_dir=base_dir, field="test.tiles", roots=roots)
     ref: tuple[Path, ...] = ()
     if spec.reference is not None:
@@ -331,20 +454,16 @@ def resolve(
         )
     checkpoint_file = None
     if spec.checkpoints is not None:
-        checkpoint_file = _resolve_path(spec.checkpoints.file, base_dir, "checkpoints.file", roots)
-        if not checkpoint_file.is_file():
-            raise SpecError(f"checkpoints.file: no such file {checkpoint_file}")
+        checkpoint_file = _resolve_file(spec.checkpoints.file, base_dir, "checkpoints.file", roots)
     region_file = None
     if spec.region is not None:
-        region_file = _resolve_path(spec.region.file, base_dir, "region.file", roots)
-        if not region_file.is_file():
-            raise SpecError(f"region.file: no such file {region_file}")
+        region_file = _resolve_file(spec.region.file, base_dir, "region.file", roots)
     landcover: tuple[Path, ...] = ()
     if spec.landcover is not None:
         landcover = _expand_tiles(
             spec.landcover.tiles, base_dir=base_dir, field="landcover.tiles", roots=roots
         )
-    return ResolvedJob(spec, test, ref, region_file, landcover, checkpoint_file)
+    return ResolvedJob(spec, test, ref, region_file, landcover, checkpoint_file, roots)
 
 
 def resolve_in_roots(spec: JobSpec, *, data_roots: Sequence[Path] | None) -> ResolvedJob:
@@ -355,37 +474,85 @@ def resolve_in_roots(spec: JobSpec, *, data_roots: Sequence[Path] | None) -> Res
     return resolve(spec, base_dir=base_dir, data_roots=data_roots)
 
 
-def _resolve_path(raw: str, base_dir: Path, field: str, roots: list[Path] | None) -> Path:
-    path = Path(raw).expanduser()
+def _resolve_path(raw: str, base_dir: Path, field: str, roots: Roots) -> Path:
+    """raw made absolute and resolved; SpecError naming the field for a path that cannot be a
+    path (NUL, too long, an unknown ~user), DataRootError when it lies outside the roots."""
+    if "\0" in raw or len(raw) > MAX_PATH_CHARS:
+        raise SpecError(f"{field}: not a usable path (NUL byte, or over {MAX_PATH_CHARS} chars)")
+    try:
+        path = Path(raw).expanduser()
+    except RuntimeError:  # pathlib: no home folder for that user
+        user = raw[1:].split("/", 1)[0]
+        raise SpecError(f"{field}: cannot expand '~{user}': no such user") from None
     if not path.is_absolute():
         path = base_dir / path
-    path = path.resolve()
+    try:
+        path = path.resolve()
+    except (OSError, ValueError) as exc:
+        why = getattr(exc, "strerror", None) or str(exc)
+        raise SpecError(f"{field}: {raw!r} cannot be resolved: {why}") from None
     if roots is not None and not any(path.is_relative_to(r) for r in roots):
-        raise DataRootError(f"{field}: {path} lies outside the allowed data roots")
+        raise DataRootError(f"{field}: {raw!r} lies outside the allowed data roots")
     return path
 
 
+def _resolve_file(raw: str, base_dir: Path, field: str, roots: Roots) -> Path:
+    path = _resolve_path(raw, base_dir, field, roots)
+    if not _is(path.is_file):
+        raise SpecError(f"{field}: no such file {shown(path, roots)}")
+    return path
+
+
+def _is(check: Callable[[], bool]) -> bool:
+    """path.is_file() and the like, False where the OS cannot say (e.g. a name too long)."""
+    try:
+        return check()
+    except (OSError, ValueError):
+        return False
+
+
 def _expand_tiles(
-    tiles: str | list[str], *, base_dir: Path, field: str, roots: list[Path] | None
+    tiles: str | list[str], *, base_dir: Path, field: str, roots: Roots
 ) -> tuple[Path, ...]:
     patterns = [tiles] if isinstance(tiles, str) else list(tiles)
     found: list[Path] = []
+    budget = [MAX_FILES_PER_FIELD]
     for pattern in patterns:
         path = _resolve_path(pattern, base_dir, field, roots)
-        if path.is_dir():
-            matches = sorted(p for p in path.iterdir() if p.suffix.lower() in {".tif", ".tiff"})
+        if _is(path.is_dir):
+            matches = sorted(_listed(_folder_tiles(path), budget, field))
         elif glob.has_magic(str(path)):
-            matches = sorted(Path(p) for p in glob.glob(str(path)))
-        elif path.is_file():
+            matches = sorted(_listed(map(Path, glob.iglob(str(path))), budget, field))
+        elif _is(path.is_file):
             matches = [path]
         else:
-            raise SpecError(f"{field}: no such file or folder {path}")
+            raise SpecError(f"{field}: no such file or folder {shown(path, roots)}")
         if not matches:
-            raise SpecError(f"{field}: {pattern!r} matches no tiles (looked in {path})")
+            raise SpecError(
+                f"{field}: {pattern!r} matches no tiles (looked in {shown(path, roots)})"
+            )
         for match in matches:  # a match may be a symlink leading out of the roots
             real = match.resolve()
             if roots is not None and not any(real.is_relative_to(r) for r in roots):
-                raise DataRootError(f"{field}: {match.name} leads outside the allowed data roots")
+                raise DataRootError(
+                    f"{field}: {shown(match, roots)} leads outside the allowed data roots"
+                )
         found.extend(matches)
     unique = tuple(dict.fromkeys(found))
     return unique
+
+
+def _folder_tiles(folder: Path) -> Iterator[Path]:
+    return (p for p in folder.iterdir() if p.suffix.lower() in {".tif", ".tiff"})
+
+
+def _listed(paths: Iterable[Path], budget: list[int], field: str) -> Iterator[Path]:
+    """paths, counted against the field's budget of files (SpecError once it is spent)."""
+    for path in paths:
+        budget[0] -= 1
+        if budget[0] < 0:
+            raise SpecError(
+                f"{field}: the patterns and folders list more than {MAX_FILES_PER_FIELD:,} "
+                "files; split the job"
+            )
+        yield path
