@@ -1,10 +1,20 @@
-"""The Dask client: an embedded LocalCluster by default, an external scheduler on request."""
+"""The Dask client: an embedded LocalCluster by default, an external scheduler on request.
+
+The REST service holds a :class:`ClusterConnection` (the shared client, made anew after a
+scheduler outage) and gives each job a :class:`JobClient` (which remembers the job's futures,
+so that a stalled or lost job can be told and stopped).
+"""
 
 from __future__ import annotations
 
 import logging
-from collections.abc import Iterator
+import math
+import threading
+import time
+import weakref
+from collections.abc import Callable, Iterator
 from contextlib import contextmanager
+from typing import Any
 
 from distributed import Client, LocalCluster
 
@@ -18,6 +28,8 @@ WORKER_ENV = {
     "GDAL_NUM_THREADS": "1",
     "GDAL_CACHEMAX": "128",
 }
+
+log = logging.getLogger("demaudit.cluster")
 
 
 @contextmanager
@@ -44,3 +56,209 @@ def dask_client(
             yield client
     finally:
         cluster.close()
+
+
+class ClusterUnavailableError(RuntimeError):
+    """The Dask scheduler does not answer: new jobs are refused until it does again."""
+
+
+#: Client states from which distributed reconnects by itself (within the client's timeout).
+_RECOVERING = frozenset({"newly-created", "connecting"})
+
+
+class ClusterConnection:
+    """The shared Dask client, made anew when the old one gave up on a lost scheduler.
+
+    distributed.Client retries a lost scheduler for its own timeout, then closes for good
+    (every later submission fails). :meth:`ensure` replaces a closed client by a new one to the
+    same address (``connect``), at most once every ``retry_s`` seconds; :meth:`watch` does so
+    from a background thread. Without ``connect`` (a client made elsewhere, e.g. a test's) the
+    client is kept as it is. ``status`` and ``nthreads`` answer for the current client, so the
+    connection stands in for it in the health probes.
+    """
+
+    def __init__(
+        self,
+        client: Any,
+        *,
+        connect: Callable[[], Any] | None = None,
+        address: str | None = None,
+        retry_s: float = 2.0,
+    ) -> None:
+        self._client = client
+        self._connect = connect
+        self.address = address
+        self._retry_s = retry_s
+        self._lock = threading.Lock()
+        self._last_try = -math.inf
+        self._stop = threading.Event()
+        self._watcher: threading.Thread | None = None
+        self.reconnections = 0
+
+    @property
+    def client(self) -> Any:
+        """The current client."""
+        return self._client
+
+    @property
+    def status(self) -> str:
+        """The current client's status (``running`` when it can take work)."""
+        return str(getattr(self._client, "status", "running"))
+
+    def nthreads(self) -> Any:
+        """Threads per connected worker (the current client's answer)."""
+        return self._client.nthreads()
+
+    def available(self) -> bool:
+        """Whether the client is connected to a scheduler now (a closed one is replaced
+        first, when it may be)."""
+        return self.ensure()
+
+    def ensure(self) -> bool:
+        """Replace a closed client by a new one (when a connect function is known and the last
+        try is retry_s old); whether a connected client is there afterwards."""
+        client = self._client
+        status = str(getattr(client, "status", "running"))
+        if status == "running":
+            return True
+        if status in _RECOVERING or self._connect is None:
+            return False
+        with self._lock:
+            if self._client is not client:
+                return self.status == "running"
+            now = time.monotonic()
+            if now - self._last_try < self._retry_s:
+                return False
+            self._last_try = now
+            try:
+                fresh = self._connect()
+            except Exception as exc:  # noqa: BLE001 - retried later; the probes report it
+                log.warning("the Dask scheduler %s still does not answer: %s", self.address, exc)
+                return False
+            self._client = fresh
+            self.reconnections += 1
+        log.warning("connected anew to the Dask scheduler %s", self.address)
+        _close_quietly(client)
+        return True
+
+    def watch(self, interval_s: float = 2.0) -> None:
+        """Check (and replace) the client every interval_s seconds on a daemon thread."""
+        if self._connect is None or self._watcher is not None:
+            return
+
+        def loop() -> None:
+            while not self._stop.wait(interval_s):
+                self.ensure()
+
+        self._watcher = threading.Thread(target=loop, name="demaudit-cluster", daemon=True)
+        self._watcher.start()
+
+    def close(self) -> None:
+        """Stop watching; close the client when this connection made it."""
+        self._stop.set()
+        if self._watcher is not None:
+            self._watcher.join(timeout=10)
+        if self._connect is not None:
+            _close_quietly(self._client)
+
+
+def _close_quietly(client: Any) -> None:
+    try:
+        client.close(timeout=5)
+    except Exception:  # noqa: BLE001 - the client is being dropped anyway
+        log.debug("closing a dropped Dask client failed", exc_info=True)
+
+
+@contextmanager
+def cluster_connection(
+    scheduler: str | None = None,
+    *,
+    workers: int = 2,
+    memory_limit: str = "4GiB",
+    timeout_s: float = 30.0,
+) -> Iterator[ClusterConnection]:
+    """A watched connection to the external scheduler (each client waits up to timeout_s for
+    it, at first and after losing it), or to an embedded local cluster (as dask_client)."""
+    if not scheduler:
+        with dask_client(None, workers=workers, memory_limit=memory_limit) as client:
+            yield ClusterConnection(client)
+        return
+
+    def connect() -> Client:
+        return Client(scheduler, timeout=f"{timeout_s}s")
+
+    connection = ClusterConnection(connect(), connect=connect, address=scheduler)
+    connection.watch()
+    try:
+        yield connection
+    finally:
+        connection.close()
+
+
+class JobClient:
+    """One job's view of the shared client: the futures the job submits are remembered (weakly),
+    so that the dispatcher can tell when the job last made progress, whether the cluster
+    dropped its tasks (a lost scheduler cancels every future), and cancel them all.
+
+    Everything else is passed to the client.
+    """
+
+    def __init__(self, client: Any) -> None:
+        self._client = client
+        self._futures: weakref.WeakSet[Any] = weakref.WeakSet()
+        self._lock = threading.Lock()
+        self._pending: set[Any] = set()
+        self.last_progress = time.monotonic()
+        self.cancelled_by_us = False
+
+    def submit(self, *args: Any, **kwargs: Any) -> Any:
+        future = self._client.submit(*args, **kwargs)
+        self._track([future])
+        return future
+
+    def map(self, *args: Any, **kwargs: Any) -> Any:
+        futures = self._client.map(*args, **kwargs)
+        self._track(futures)
+        return futures
+
+    def cancel(self, futures: Any, *args: Any, **kwargs: Any) -> Any:
+        if self.cancelled_by_us or self.lost():
+            return None  # already cancelled (by the dispatcher, or by the lost connection)
+        self.cancelled_by_us = True
+        return self._client.cancel(futures, *args, **kwargs)
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self._client, name)
+
+    def _track(self, futures: Any) -> None:
+        with self._lock:
+            for future in futures:
+                self._futures.add(future)
+
+    def _live(self) -> list[Any]:
+        with self._lock:
+            return list(self._futures)
+
+    def lost(self) -> bool:
+        """Whether a future of the job was cancelled by someone else than the job (the client
+        cancels all when it loses the scheduler)."""
+        if self.cancelled_by_us:
+            return False
+        return any(getattr(f, "status", None) == "cancelled" for f in self._live())
+
+    def stalled_for(self) -> float:
+        """Seconds since a task of the job last finished, while some are waiting (0 when none
+        waits)."""
+        now = time.monotonic()
+        waiting = {f.key for f in self._live() if not f.done()}
+        if not waiting or self._pending - waiting:
+            self.last_progress = now  # nothing waits, or something finished since last look
+        self._pending = waiting
+        return now - self.last_progress
+
+    def cancel_all(self) -> None:
+        """Cancel every task of the job still on the cluster."""
+        self.cancelled_by_us = True
+        futures = [f for f in self._live() if not f.done()]
+        if futures:
+            self._client.cancel(futures)

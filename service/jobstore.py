@@ -5,8 +5,11 @@ from several threads of one process) and :class:`MemoryJobStore` serves unit tes
 store would implement the same methods; :meth:`JobStore.update` is a compare-and-set on the
 status, which a SQL ``UPDATE ... WHERE status IN (...)`` gives in any database.
 
-One API process owns a store: at start-up it fails the jobs a previous process left unfinished
-(:meth:`JobStore.fail_unfinished`), which would be wrong for several processes sharing one store.
+Several API processes may share one store. Each job records the process that runs it
+(``runner_instance``), and each process holds a lease in the ``runner_instances`` table that it
+renews while it lives (:meth:`JobStore.renew_lease`). Start-up recovery and the periodic sweep
+(``service.jobs.recover_orphans``) fail only the unfinished jobs of processes that are gone: no
+lease, a lease that ran out, or a process id on this host that no longer runs.
 
 The store also keeps the schedules of nightly re-checks: the contract and both implementations
 of that part are in ``service.schedulestore`` (:class:`ScheduleStore`, which JobStore extends).
@@ -46,6 +49,7 @@ __all__ = [
     "JobRecord",
     "JobStatus",
     "JobStore",
+    "Lease",
     "MemoryJobStore",
     "NotifyWhen",
     "RunOutcome",
@@ -96,6 +100,23 @@ class JobRecord:
     owner: str | None = None
     """The principal that submitted the job (a scheduled run: the schedule's owner); None for
     a job recorded before owners were (visible to admins only)."""
+    runner_instance: str | None = None
+    """The API process that runs (or queued) the job: ``host:pid:random``; None for a job
+    recorded before this column was."""
+    cause: str | None = None
+    """Why a failed job failed: ``invalid-input``, ``resources-exhausted``,
+    ``cluster-unavailable``, ``interrupted`` or ``internal`` (None otherwise, and for failures
+    recorded before causes were)."""
+
+
+@dataclass(frozen=True)
+class Lease:
+    """An API process's claim to its jobs: alive while ``expires`` lies ahead (it renews it)."""
+
+    instance: str
+    host: str
+    pid: int
+    expires: dt.datetime
 
 
 _COLUMNS = tuple(f.name for f in dataclasses.fields(JobRecord))
@@ -106,6 +127,7 @@ _CHANGEABLE = frozenset(_COLUMNS) - {
     "inputs",
     "schedule_id",
     "owner",
+    "runner_instance",
 }
 
 
@@ -166,6 +188,18 @@ class JobStore(ScheduleStore, Protocol):
         """Write a probe row (readiness); raises when the store cannot be written."""
         ...
 
+    def renew_lease(self, lease: Lease) -> None:
+        """Record (or extend) an API process's lease."""
+        ...
+
+    def drop_lease(self, instance: str) -> None:
+        """Forget a process's lease (it stopped cleanly)."""
+        ...
+
+    def leases(self) -> list[Lease]:
+        """Every recorded lease."""
+        ...
+
     def close(self) -> None:
         """Release the store's resources."""
         ...
@@ -191,6 +225,7 @@ class MemoryJobStore(MemorySchedules):
 
     def __init__(self) -> None:
         self._records: dict[str, JobRecord] = {}
+        self._leases: dict[str, Lease] = {}
         self._lock = threading.Lock()
         self._open_schedules()
 
@@ -260,6 +295,18 @@ class MemoryJobStore(MemorySchedules):
     def check_writable(self) -> None:
         pass
 
+    def renew_lease(self, lease: Lease) -> None:
+        with self._lock:
+            self._leases[lease.instance] = lease
+
+    def drop_lease(self, instance: str) -> None:
+        with self._lock:
+            self._leases.pop(instance, None)
+
+    def leases(self) -> list[Lease]:
+        with self._lock:
+            return list(self._leases.values())
+
     def close(self) -> None:
         pass
 
@@ -280,13 +327,27 @@ CREATE TABLE IF NOT EXISTS jobs (
     inputs      TEXT NOT NULL,
     schedule_id TEXT,
     notification TEXT,
-    owner       TEXT
+    owner       TEXT,
+    runner_instance TEXT,
+    cause       TEXT
 );
 CREATE INDEX IF NOT EXISTS jobs_status_created ON jobs (status, created);
 CREATE INDEX IF NOT EXISTS jobs_created ON jobs (created);
 CREATE TABLE IF NOT EXISTS probes (name TEXT PRIMARY KEY, at TEXT NOT NULL);
+CREATE TABLE IF NOT EXISTS runner_instances (
+    instance TEXT PRIMARY KEY,
+    host     TEXT NOT NULL,
+    pid      INTEGER NOT NULL,
+    expires  TEXT NOT NULL
+);
 """
-_ADDED_COLUMNS = {"schedule_id": "TEXT", "notification": "TEXT", "owner": "TEXT"}
+_ADDED_COLUMNS = {
+    "schedule_id": "TEXT",
+    "notification": "TEXT",
+    "owner": "TEXT",
+    "runner_instance": "TEXT",
+    "cause": "TEXT",
+}
 """Columns newer than the first jobs table: added when an older file is opened (older jobs have
 no owner: only admins see them)."""
 _LATER_INDEXES = "CREATE INDEX IF NOT EXISTS jobs_owner_created ON jobs (owner, created);"
@@ -408,6 +469,26 @@ class SqliteJobStore(SqliteSchedules):
                 "ON CONFLICT (name) DO UPDATE SET at = excluded.at",
                 (at,),
             )
+
+    def renew_lease(self, lease: Lease) -> None:
+        expires = lease.expires.isoformat(timespec="milliseconds")
+        with self._lock:
+            self._db.execute(
+                "INSERT INTO runner_instances (instance, host, pid, expires) VALUES (?, ?, ?, ?) "
+                "ON CONFLICT (instance) DO UPDATE SET expires = excluded.expires",
+                (lease.instance, lease.host, lease.pid, expires),
+            )
+
+    def drop_lease(self, instance: str) -> None:
+        with self._lock:
+            self._db.execute("DELETE FROM runner_instances WHERE instance = ?", (instance,))
+
+    def leases(self) -> list[Lease]:
+        with self._lock:
+            rows = self._db.execute(
+                "SELECT instance, host, pid, expires FROM runner_instances"
+            ).fetchall()
+        return [Lease(r[0], r[1], int(r[2]), dt.datetime.fromisoformat(r[3])) for r in rows]
 
     def close(self) -> None:
         with self._lock:

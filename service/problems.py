@@ -15,6 +15,11 @@ Hierarchy of the errors the routes raise::
     ├── BodyTooLargeError   413  request body over the configured limit
     └── WebhookNotAllowedError 422  a schedule's webhook may not be called (scheme, address)
 
+A failed job's results are 409 ``job-failed`` whatever the cause; the problem's ``cause`` member
+(``failure_cause``) tells bad input (422-like) from exhausted resources, a cluster fault, an
+interruption and an internal error. A submission while the Dask scheduler does not answer
+(service.cluster.ClusterUnavailableError) is 503 ``cluster-unavailable`` with Retry-After.
+
 ``install(app)`` also maps the pipeline's own errors (``workers.errors``): a path outside the data
 roots (DataRootError) is 403, any other invalid spec (SpecError and its kin) is 422, request
 validation errors are 400 (query, path, headers, malformed JSON) or 422 (the body's content),
@@ -34,6 +39,7 @@ from fastapi.responses import JSONResponse
 from pydantic import BaseModel, ConfigDict, Field
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
+from service.cluster import ClusterUnavailableError
 from workers.errors import AuditError, DataRootError
 
 __all__ = [
@@ -51,6 +57,7 @@ __all__ = [
     "ResultNotReadyError",
     "UnauthorizedError",
     "WebhookNotAllowedError",
+    "failure_cause",
     "install",
     "problem_response",
     "responses",
@@ -134,6 +141,23 @@ class WebhookNotAllowedError(ProblemError):
     status, type, title = 422, _OWN + "webhook-refused", "Webhook refused"
 
 
+FAILURE_CAUSES: dict[str, tuple[int, str]] = {
+    "invalid-input": (422, "The job's input cannot be used"),
+    "resources-exhausted": (507, "The server ran out of disk or memory"),
+    "cluster-unavailable": (503, "The Dask cluster could not run the job"),
+    "interrupted": (503, "The server stopped while the job ran"),
+    "internal": (500, "Internal error"),
+}
+"""A failed job's cause (service.jobs.CAUSES) -> the status and title its problem would have."""
+
+
+def failure_cause(cause: str | None) -> dict[str, Any]:
+    """The ``cause`` member of a failed job's problem: type, title and the like status."""
+    status, title = FAILURE_CAUSES.get(cause or "internal", FAILURE_CAUSES["internal"])
+    known = cause if cause in FAILURE_CAUSES else "internal"
+    return {"type": _OWN + known, "title": title, "status": status}
+
+
 _FORBIDDEN = (403, _OWN + "outside-data-roots", "Path outside the data roots")
 _INVALID_SPEC = (422, _OWN + "invalid-spec", "Invalid job spec")
 _INVALID_REQUEST = (400, _OWN + "invalid-parameter", "Invalid request parameter")
@@ -192,6 +216,7 @@ def install(app: FastAPI) -> None:
     app.add_exception_handler(RequestValidationError, _validation)
     app.add_exception_handler(StarletteHTTPException, _http)
     app.add_exception_handler(AuditError, _audit)
+    app.add_exception_handler(ClusterUnavailableError, _unavailable)
     app.add_exception_handler(Exception, _internal)
 
 
@@ -259,6 +284,17 @@ async def _audit(request: Request, exc: Exception) -> JSONResponse:
     status, type_, title = _FORBIDDEN if isinstance(exc, DataRootError) else _INVALID_SPEC
     return problem_response(
         status, type=type_, title=title, detail=str(exc), instance=request.url.path
+    )
+
+
+async def _unavailable(request: Request, exc: Exception) -> JSONResponse:
+    return problem_response(
+        503,
+        type=_OWN + "cluster-unavailable",
+        title="Cluster unavailable",
+        detail=str(exc),
+        instance=request.url.path,
+        headers={"Retry-After": "10"},
     )
 
 

@@ -63,9 +63,11 @@ def health_live() -> dict[str, str]:
     name="health_ready",
     responses={503: {"description": "Not ready: the checks say which part failed."}},
 )
-def health_ready(client: ClientDep, store: StoreDep) -> JSONResponse:
+def health_ready(client: ClientDep, store: StoreDep, dispatcher: DispatcherDep) -> JSONResponse:
     """Readiness: the Dask scheduler answers, workers are connected, the job store is
-    writable. 200 when all hold, else 503; each check says pass or fail (and why)."""
+    writable (a probe write now, and the jobs' last write). 200 when all hold, else 503; each
+    check says pass or fail (and why). While the scheduler does not answer, new jobs are refused
+    (503 ``cluster-unavailable``) and the client is made anew every few seconds."""
     workers = cluster_workers(client)
     checks: dict[str, dict[str, Any]] = {
         "scheduler": {"status": "pass" if workers is not None else "fail"},
@@ -83,6 +85,13 @@ def health_ready(client: ClientDep, store: StoreDep) -> JSONResponse:
             "status": "fail",
             "reason": f"the job store cannot be written ({type(exc).__name__})",
         }
+    else:
+        problem = dispatcher.store_problem()
+        if problem is not None:
+            checks["store"] = {
+                "status": "fail",
+                "reason": f"the last write of a job record failed ({problem.split(':')[0]})",
+            }
     ready = all(c["status"] == "pass" for c in checks.values())
     return JSONResponse(
         {"status": "pass" if ready else "fail", "checks": checks},

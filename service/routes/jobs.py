@@ -22,6 +22,7 @@ from service.problems import (
     NoSuchItemError,
     NoSuchJobError,
     ResultNotReadyError,
+    failure_cause,
     responses,
 )
 from service.routes.documents import JSON, JobList, Link, StatusInfo, job_url, status_document
@@ -50,7 +51,9 @@ def _finished_output(dispatcher: JobDispatcher, record: JobRecord) -> pathlib.Pa
             "its results are not ready"
         )
     if record.status == FAILED:
-        raise JobFailedError(f"job {record.job_id} failed: {record.message}")
+        raise JobFailedError(
+            f"job {record.job_id} failed: {record.message}", cause=failure_cause(record.cause)
+        )
     if record.status == DISMISSED:
         raise JobGoneError(f"job {record.job_id} was dismissed; it has no results")
     return dispatcher.results_path(record.job_id)
