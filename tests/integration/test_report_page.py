@@ -2,7 +2,10 @@
 
 from __future__ import annotations
 
+import html
+import json
 import os
+import re
 import shutil
 import subprocess
 import tempfile
@@ -45,6 +48,32 @@ def chromium(*args: str) -> subprocess.CompletedProcess[str]:
         )
 
 
+PROBE = """<script>
+window.addEventListener("load", () => {
+  const out = document.createElement("pre");
+  out.id = "probe";
+  out.textContent = JSON.stringify(
+    Array.from(document.images, (i) => [i.dataset.name, i.naturalWidth, i.src.slice(0, 22)]));
+  document.body.appendChild(out);
+});
+</script>"""
+
+
+def _decoded_images(*, page_file, tmp_path) -> dict[str, int]:
+    """naturalWidth of each image of the page, read by a probe script added to a copy of it in
+    a folder of its own (so a figure linked instead of embedded would not load)."""
+    folder = tmp_path / "probe"
+    folder.mkdir()
+    probe = folder / "report.html"
+    probe.write_text(page_file.read_text(encoding="utf-8").replace("</body>", PROBE + "</body>"))
+    dom = chromium("--virtual-time-budget=10000", "--dump-dom", probe.as_uri()).stdout
+    found = re.search(r'<pre id="probe">(.*?)</pre>', dom, re.S)
+    assert found, "the probe script did not run"
+    rows = json.loads(html.unescape(found.group(1)))
+    assert all(src == "data:image/png;base64," for _, _, src in rows), rows
+    return {name: width for name, width, _ in rows}
+
+
 def test_report_page_renders_in_chromium(make_archive, dask_client, tmp_path):
     root = make_archive(tiles=2, pixels=40, noise=0.3)
     spec = job_spec.parse_spec(job_spec.load_spec_file(root / "job.yaml"))
@@ -56,8 +85,13 @@ def test_report_page_renders_in_chromium(make_archive, dask_client, tmp_path):
     assert "Cautions" in dom and "do not replace" in dom
     assert "WEST" in dom and "EAST" in dom
     assert f"{doc['overall']['count']:,}" in dom
-    for name in doc["figures"]:
-        assert f'src="{name}"' in dom
+    for anchor in ("overall", "regions", "tiles", "strata", "sources"):
+        assert f'<section id="{anchor}">' in dom
+    assert {"dh_map.png", "dh_histogram.png", "tile_grade.png"} <= set(doc["figures"])
+    decoded = _decoded_images(page_file=out / "report.html", tmp_path=tmp_path)
+    # every figure is embedded (no file next to the page is fetched) and the browser decodes it
+    assert set(decoded) == set(doc["figures"])
+    assert all(width > 100 for width in decoded.values()), decoded
     shot = tmp_path / "page.png"
     chromium("--window-size=1100,1400", f"--screenshot={shot}", page)
     pixels = np.asarray(Image.open(shot).convert("L"), dtype=float)
