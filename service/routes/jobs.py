@@ -8,15 +8,28 @@ import pathlib
 from functools import lru_cache
 from typing import Annotated, Any
 
-from fastapi import APIRouter, Path, Query, Request
+from fastapi import APIRouter, Path, Query, Request, Response
 from fastapi.responses import FileResponse
 
 from service.auth import Principal
 from service.deps import DispatcherDep, PrincipalDep, StoreDep
+from service.execution import OUTPUTS
+from service.execution import forget as forget_execution
+from service.execution import load as load_execution
 from service.jobs import PROCESS_ID, JobDispatcher
-from service.jobstore import ACCEPTED, DISMISSED, FAILED, RUNNING, JobRecord, JobStatus, JobStore
+from service.jobstore import (
+    ACCEPTED,
+    DISMISSED,
+    FAILED,
+    RUNNING,
+    JobRecord,
+    JobStatus,
+    JobStore,
+    utc_now,
+)
 from service.negotiation import AcceptsJson, negotiate
 from service.problems import (
+    BadRequestError,
     JobFailedError,
     JobGoneError,
     NoSuchItemError,
@@ -25,12 +38,24 @@ from service.problems import (
     failure_cause,
     responses,
 )
-from service.routes.documents import JSON, JobList, Link, StatusInfo, job_url, status_document
+from service.routes.documents import (
+    JSON,
+    REL_RESULTS,
+    JobList,
+    Link,
+    StatusInfo,
+    job_matches,
+    job_url,
+    parse_datetime_filter,
+    status_document,
+)
 
 router = APIRouter(prefix="/jobs", tags=["Jobs"], responses=responses(401, 406))
 
 ZARR = "application/vnd+zarr"
 MAX_OFFSET = 10**9
+MAX_LIMIT = 10_000
+"""The largest page (OGC API - Processes 1.0, job-list: limit up to 10,000)."""
 JobId = Annotated[str, Path(alias="jobID", description="The job's id.")]
 
 
@@ -83,25 +108,73 @@ def list_jobs(
     principal: PrincipalDep,
     status: Annotated[list[JobStatus] | None, Query(description="Only jobs in these.")] = None,
     process_id: Annotated[list[str] | None, Query(alias="processID")] = None,
-    limit: Annotated[int, Query(ge=1, le=1000)] = 10,
+    job_type: Annotated[
+        list[str] | None, Query(alias="type", description="Only jobs of these types (process).")
+    ] = None,
+    datetime: Annotated[
+        str | None,
+        Query(
+            description="Only jobs created at this instant or within this interval "
+            "(RFC 3339, start/end, '..' for an open end).",
+            max_length=100,
+        ),
+    ] = None,
+    min_duration: Annotated[
+        int | None, Query(alias="minDuration", ge=0, description="Seconds run, at least.")
+    ] = None,
+    max_duration: Annotated[
+        int | None, Query(alias="maxDuration", ge=0, description="Seconds run, at most.")
+    ] = None,
+    limit: Annotated[
+        int, Query(ge=1, description=f"Jobs per page (larger values count as {MAX_LIMIT}).")
+    ] = 10,
     offset: Annotated[int, Query(ge=0, le=MAX_OFFSET)] = 0,
 ) -> JobList:
-    """The caller's jobs (an admin's: all jobs), newest first; filter by status and page with
-    limit and offset."""
+    """The caller's jobs (an admin's: all jobs), newest first; filter by status, processID,
+    type, creation time and duration, and page with limit and offset."""
     negotiate(request, (JSON,))
+    limit = min(limit, MAX_LIMIT)
     statuses = set(status) if status else None
     if process_id is not None and PROCESS_ID not in process_id:
         statuses = set()
+    if job_type is not None and "process" not in job_type:
+        statuses = set()
+    try:
+        created = parse_datetime_filter(datetime) if datetime is not None else None
+    except ValueError as exc:
+        raise BadRequestError(f"query.datetime: {exc}") from None
     owner = principal.owner_filter
-    matched = store.count(statuses=statuses, owner=owner)
-    records = store.find(statuses=statuses, limit=limit, offset=offset, owner=owner)
-    links = [Link(href=str(request.url), rel="self", type=JSON)]
+    if created is None and min_duration is None and max_duration is None:
+        matched = store.count(statuses=statuses, owner=owner)
+        records = store.find(statuses=statuses, limit=limit, offset=offset, owner=owner)
+    else:  # filters the store cannot apply: over every record of the caller, newest first
+        everything = store.find(
+            statuses=statuses,
+            limit=max(1, store.count(statuses=statuses, owner=owner)),
+            offset=0,
+            owner=owner,
+        )
+        now = utc_now()
+        kept = [
+            r
+            for r in everything
+            if job_matches(
+                r,
+                created=created,
+                min_duration_s=min_duration,
+                max_duration_s=max_duration,
+                now=now,
+            )
+        ]
+        matched, records = len(kept), kept[offset : offset + limit]
+    links = [Link(href=str(request.url), rel="self", type=JSON, title="this page")]
     if offset + len(records) < matched:
         links.append(
             Link(
                 href=str(request.url.include_query_params(offset=offset + limit, limit=limit)),
                 rel="next",
                 type=JSON,
+                title="the next page",
             )
         )
     if offset > 0:
@@ -112,6 +185,7 @@ def list_jobs(
                 ),
                 rel="prev",
                 type=JSON,
+                title="the previous page",
             )
         )
     return JobList(
@@ -150,6 +224,7 @@ def dismiss_job(
     record = dispatcher.dismiss(job_id)
     if record is None:
         raise NoSuchJobError(f"there is no job {job_id!r}")
+    forget_execution(dispatcher.results_dir, job_id)
     return status_document(request, record)
 
 
@@ -166,17 +241,62 @@ def job_results(
     dispatcher: DispatcherDep,
     principal: PrincipalDep,
 ) -> dict[str, Any]:
-    """The results of a successful job: the summary document and a link to results.zarr."""
+    """The results of a successful job: a results document with the outputs asked for at
+    execution (summary as a qualified value, results.zarr by reference), or, when the
+    execution asked for ``response: raw``, the summary document itself."""
     record = _record(store, job_id, principal)
     summary = _summary_of(dispatcher, record)
-    return {
-        "summary": summary,
-        "results": {
-            "href": f"{job_url(request, job_id)}/results.zarr",
-            "type": ZARR,
-            "title": "results.zarr (read with xarray.open_zarr(href, group=...))",
-        },
+    execution = load_execution(dispatcher.results_dir, job_id)
+    if execution.response == "raw":
+        return summary
+    outputs = {
+        "summary": {"value": summary, "mediaType": JSON},
+        "results": _results_link(request, job_id),
     }
+    return {name: outputs[name] for name in execution.outputs if name in outputs}
+
+
+def _results_link(request: Request, job_id: str) -> dict[str, Any]:
+    return {
+        "href": f"{job_url(request, job_id)}/results.zarr",
+        "type": ZARR,
+        "title": "results.zarr (read with xarray.open_zarr(href, group=...))",
+    }
+
+
+@router.get(
+    "/{jobID}/results/{outputID}",
+    name="job_output",
+    responses={
+        **responses(404, 409, 410),
+        204: {"description": "results (by reference): a Link header names results.zarr."},
+    },
+)
+def job_output(
+    job_id: JobId,
+    output_id: Annotated[str, Path(alias="outputID", description="summary or results.")],
+    request: Request,
+    store: StoreDep,
+    dispatcher: DispatcherDep,
+    principal: PrincipalDep,
+) -> Any:
+    """One output of a successful job: summary (the document itself), or results (by
+    reference: 204 with a Link header naming results.zarr)."""
+    if output_id not in OUTPUTS:
+        raise NoSuchItemError(
+            f"process {PROCESS_ID} has no output {output_id!r}; its outputs are "
+            f"{', '.join(OUTPUTS)}"
+        )
+    if output_id == "summary":
+        negotiate(request, (JSON,))
+    summary = _summary_of(dispatcher, _record(store, job_id, principal))
+    if output_id == "summary":
+        return summary
+    link = _results_link(request, job_id)
+    return Response(
+        status_code=204,
+        headers={"Link": f'<{link["href"]}>; rel="{REL_RESULTS}"; type="{ZARR}"'},
+    )
 
 
 @router.get(

@@ -6,9 +6,12 @@ from typing import Annotated, Any, Literal
 
 from fastapi import APIRouter, Header, Request, Response
 from fastapi import Path as PathParam
-from pydantic import BaseModel, ConfigDict, Field
+from fastapi.exceptions import RequestValidationError
+from pydantic import BaseModel, ConfigDict, Field, ValidationError, WithJsonSchema
 
 from service.deps import DispatcherDep, PrincipalDep, SettingsDep
+from service.execution import Execution, spec_inputs
+from service.execution import save as save_execution
 from service.jobs import PROCESS_ID
 from service.negotiation import AcceptsJson
 from service.openapi import oas30_schema
@@ -44,17 +47,68 @@ DESCRIPTION = (
 )
 
 
+def _with_references(schema: dict[str, Any]) -> dict[str, Any]:
+    """An input's schema, also as a qualified value or a reference (execute.yaml's forms)."""
+    qualified = {
+        "type": "object",
+        "required": ["value"],
+        "properties": {"value": schema, "mediaType": {"type": "string", "enum": [JSON]}},
+        "additionalProperties": False,
+    }
+    reference = {
+        "type": "object",
+        "required": ["href"],
+        "properties": {
+            "href": {
+                "type": "string",
+                "description": "A JSON or YAML file inside the data roots (relative to the "
+                "first root, or file://); remote URLs are not supported.",
+            },
+            "type": {"type": "string"},
+            "rel": {"type": "string"},
+            "title": {"type": "string"},
+        },
+        "additionalProperties": False,
+    }
+    return {"anyOf": [schema, qualified, reference]}
+
+
+def _inputs_schema() -> dict[str, Any]:
+    """JSON schema of an execute request's inputs: the job spec's keys, each inline, qualified
+    ({"value": ...}) or by reference ({"href": ...})."""
+    schema = JobSpec.model_json_schema()
+    defs = schema.get("$defs", {})
+    return {
+        "type": "object",
+        "description": "The job spec (see the process description): each input inline, as "
+        'a qualified value {"value": ...} or by reference {"href": ...} to a file inside the '
+        "data roots.",
+        "required": schema.get("required", []),
+        "properties": {
+            name: _with_references(inline_refs(prop, defs))
+            for name, prop in schema["properties"].items()
+        },
+        "additionalProperties": False,
+    }
+
+
 class ExecuteRequest(BaseModel):
     """An OGC execute request: the job spec as ``inputs``."""
 
     model_config = ConfigDict(extra="forbid")
 
-    inputs: JobSpec = Field(description="The job spec (see the process description).")
+    inputs: Annotated[dict[str, Any], WithJsonSchema(_inputs_schema())]
     outputs: dict[str, Any] | None = Field(
-        default=None, description="Accepted and ignored: every job has both outputs."
+        default=None,
+        description="The outputs the results show (summary, results; default both), each "
+        "with an optional format.mediaType and transmissionMode.",
     )
-    response: Literal["document"] = Field(
-        default="document", description="Results are always returned as a JSON document."
+    response: Literal["document", "raw"] = Field(
+        default="document",
+        description="'document': a results document; 'raw': the one output 'summary' as is.",
+    )
+    subscriber: dict[str, Any] | None = Field(
+        default=None, description="Not supported (no 'callback' conformance class): refused."
     )
 
 
@@ -143,7 +197,7 @@ def describe_process(process_id: ProcessId, request: Request) -> dict[str, Any]:
     name="execute",
     status_code=201,
     response_model=StatusInfo,
-    responses=responses(400, 403, 404, 413, 422),
+    responses=responses(400, 403, 404, 406, 413, 422),
 )
 def execute(
     process_id: ProcessId,
@@ -157,12 +211,29 @@ def execute(
 ) -> StatusInfo:
     """Start a job (always asynchronous); the Location header names its status document."""
     _check_process(process_id)
+    execution = Execution.of(
+        outputs=body.outputs, response=body.response, subscriber=body.subscriber
+    )
+    spec = _job_spec(spec_inputs(body.inputs, data_roots=settings.data_roots))
     # relative paths resolve against the first data root (the server's folder without roots,
     # which only --insecure-local allows)
-    job = job_spec.resolve_in_roots(body.inputs, data_roots=settings.data_roots)
-    record = dispatcher.submit(job, body.inputs.model_dump(mode="json"), owner=principal.name)
+    job = job_spec.resolve_in_roots(spec, data_roots=settings.data_roots)
+    record = dispatcher.submit(job, spec.model_dump(mode="json"), owner=principal.name)
+    save_execution(settings.results_dir, record.job_id, execution)
     document = status_document(request, record)
     response.headers["Location"] = str(request.url_for("get_job", jobID=record.job_id))
     if prefer and "respond-async" in prefer:
         response.headers["Preference-Applied"] = "respond-async"
     return document
+
+
+def _job_spec(inputs: dict[str, Any]) -> JobSpec:
+    """The inputs validated as a job spec; errors name ``body.inputs.<field>`` (422)."""
+    try:
+        return JobSpec.model_validate(inputs)
+    except ValidationError as exc:
+        errors = [
+            {**e, "loc": ("body", "inputs", *e["loc"])}
+            for e in exc.errors(include_url=False, include_input=False)
+        ]
+        raise RequestValidationError(errors) from None

@@ -248,7 +248,7 @@ def test_the_demo_over_http_equals_a_direct_run(server, dask, roots, tmp_path):
         status = http.get(f"/jobs/{job_id}").json()
         assert status["status"] == "successful" and status["progress"] == 100
         results = http.get(f"/jobs/{job_id}/results").json()
-        assert_same_results(results["summary"], direct)
+        assert_same_results(results["summary"]["value"], direct)
         region = http.get(f"/jobs/{job_id}/regions/HF").json()
         assert (
             region["stats"]["count"]
@@ -355,7 +355,7 @@ def test_twenty_jobs_at_once_give_independent_correct_results(server, dask, root
         for n, job_id in enumerate(ids):
             status = wait_until(http, job_id, lambda s: s["status"] in FINISHED, timeout=120)
             assert status["status"] == "successful", status
-            summary = http.get(f"/jobs/{job_id}/results").json()["summary"]
+            summary = http.get(f"/jobs/{job_id}/results").json()["summary"]["value"]
             assert summary["job"]["name"] == f"tiny-{n:02d}"
             assert_same_statistics(summary["overall"], want[n % 2]["overall"])
             for mine, theirs in zip(summary["regions"], want[n % 2]["regions"], strict=True):

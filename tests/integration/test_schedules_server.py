@@ -179,7 +179,7 @@ def test_two_servers_on_one_store_run_each_slot_once(processes, cluster, archive
         ok = [j for j in jobs_of(store, schedule_id) if j["status"] == "successful"]
         last_ok = max(ok, key=lambda j: j["created"])["job_id"]
         assert http.get(f"/jobs/{last_ok}").json()["scheduleID"] == schedule_id
-        summary = http.get(f"/jobs/{last_ok}/results").json()["summary"]
+        summary = http.get(f"/jobs/{last_ok}/results").json()["summary"]["value"]
     recheck = summary["recheck"]
     assert recheck["tiles_reused"] == 4 and recheck["tiles_recomputed"] == []
     assert recheck["regressions"] == 0

@@ -214,7 +214,7 @@ def test_a_job_runs_to_success_with_progress_and_results(api, runner, submit, wa
     assert any(link["rel"].endswith("/results") for link in done["links"])
 
     results = api.get(f"/jobs/{job_id}/results").json()
-    assert results["summary"]["job"]["name"] == "unit-job"
+    assert results["summary"]["value"]["job"]["name"] == "unit-job"
     assert results["results"]["href"].endswith(f"/jobs/{job_id}/results.zarr")
     assert api.get(f"/jobs/{job_id}/tiles/t2").json()["stats"] == {"count": 2}
     assert api.get(f"/jobs/{job_id}/regions/EAST").json()["name"] == "East"
@@ -354,7 +354,8 @@ def test_the_sqlite_store_keeps_jobs_across_app_restarts(settings, runner, clust
         create_app(settings, runner=runner, client_factory=cluster_factory), headers=headers
     ) as api:
         assert api.get(f"/jobs/{job_id}").json()["status"] == "successful"
-        assert api.get(f"/jobs/{job_id}/results").json()["summary"]["job"]["name"] == "unit-job"
+        results = api.get(f"/jobs/{job_id}/results").json()
+        assert results["summary"]["value"]["job"]["name"] == "unit-job"
 
 
 def _spec() -> dict:
