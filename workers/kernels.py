@@ -29,7 +29,11 @@ def _compiled(name: str) -> Any:
 
         for needed in _CALLS.get(name, ()):  # loops called from this one, bound before compiling
             globals()[f"{needed}_compiled"] = _compiled(needed)
-        _COMPILED[name] = njit(cache=True, nogil=True)(globals()[f"_{name}"])
+        loop = globals()[f"_{name}"]
+        try:
+            _COMPILED[name] = njit(cache=True, nogil=True)(loop)
+        except RuntimeError:  # no writable cache folder (read-only install): compile per process
+            _COMPILED[name] = njit(cache=False, nogil=True)(loop)
     return _COMPILED[name]
 
 

@@ -248,3 +248,19 @@ def test_cells_leave_out_nan_infinite_and_negative_cells() -> None:
     per_cell = keyed_summary.summarise_cells(x, cells.astype(np.int32), 3)
     for c in range(3):
         assert_same(per_cell.union([c]), dhs.summarise(x[cells == c]), str(c))
+
+
+def test_loops_compile_without_a_cache_folder(monkeypatch: pytest.MonkeyPatch) -> None:
+    numba = pytest.importorskip("numba")
+    real = numba.njit
+
+    def no_cache_folder(*args: object, cache: bool = False, **kwargs: object):  # type: ignore[no-untyped-def]
+        if cache:  # what numba says when no cache locator is available (read-only install)
+            raise RuntimeError("cannot cache function: no locator available")
+        return real(*args, **kwargs)
+
+    monkeypatch.setattr(numba, "njit", no_cache_folder)
+    monkeypatch.setattr(kernels, "_COMPILED", {})
+    x = np.array([0.1, 5.0, np.nan, -0.3])
+    per_cell = keyed_summary.summarise_cells(x, np.array([0, 0, 0, 1]), 2)
+    assert_same(per_cell.union([0]), dhs.summarise(x[:3]), "cell 0")
