@@ -225,7 +225,7 @@ class MemoryJobStore(MemorySchedules):
 
     def __init__(self) -> None:
         self._records: dict[str, JobRecord] = {}
-        self._leases: dict[str, Lease] = {}
+        self._runner_leases: dict[str, Lease] = {}
         self._lock = threading.Lock()
         self._open_schedules()
 
@@ -297,15 +297,15 @@ class MemoryJobStore(MemorySchedules):
 
     def renew_lease(self, lease: Lease) -> None:
         with self._lock:
-            self._leases[lease.instance] = lease
+            self._runner_leases[lease.instance] = lease
 
     def drop_lease(self, instance: str) -> None:
         with self._lock:
-            self._leases.pop(instance, None)
+            self._runner_leases.pop(instance, None)
 
     def leases(self) -> list[Lease]:
         with self._lock:
-            return list(self._leases.values())
+            return list(self._runner_leases.values())
 
     def close(self) -> None:
         pass

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as dt
+import sqlite3
 from collections.abc import Callable, Iterator
 from pathlib import Path
 
@@ -10,6 +11,12 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from service.jobs import (
+    RESTART_MESSAGE,
+    RESTART_QUEUED_MESSAGE,
+    orphan_reason,
+    recover_orphans,
+)
 from service.jobstore import (
     ACCEPTED,
     DISMISSED,
@@ -19,6 +26,7 @@ from service.jobstore import (
     SUCCESSFUL,
     JobRecord,
     JobStore,
+    Lease,
     MemoryJobStore,
     SqliteJobStore,
 )
@@ -151,3 +159,108 @@ def test_jobs_keep_their_owner_and_filter_by_it(make_store):
     assert store.find(owner="bob", statuses={ACCEPTED}) == []
     with pytest.raises(ValueError, match="owner"):
         store.update(record(0).job_id, {"owner": "bob"})  # a job never changes hands
+
+
+# --- runner instances, leases and recovery (issue 14 item 5) ----------------------------------
+
+
+def lease(instance: str, *, host: str = "elsewhere", pid: int = 1, minutes: float = 1) -> Lease:
+    return Lease(instance, host, pid, T0 + dt.timedelta(minutes=minutes))
+
+
+def test_runner_instance_and_cause_round_trip_and_leases_renew(make_store):
+    store = make_store()
+    original = record(1, RUNNING, runner_instance="h:1:abcd")
+    store.add(original)
+    assert store.get(original.job_id) == original
+    with pytest.raises(ValueError):  # the runner of a job never changes
+        store.update(original.job_id, {"runner_instance": "h:2:ef01"})
+    failed = store.update(original.job_id, {"status": FAILED, "cause": "invalid-input"})
+    assert failed is not None and failed.cause == "invalid-input"
+
+    store.renew_lease(lease("a", minutes=1))
+    store.renew_lease(lease("b", minutes=1))
+    store.renew_lease(lease("a", minutes=5))  # renewal moves the expiry only
+    assert sorted(store.leases(), key=lambda x: x.instance) == [
+        lease("a", minutes=5),
+        lease("b", minutes=1),
+    ]
+    store.drop_lease("a")
+    assert store.leases() == [lease("b", minutes=1)]
+
+
+def test_an_older_sqlite_file_gains_the_runner_columns(tmp_path):
+    path = tmp_path / "old.sqlite"
+    db = sqlite3.connect(path)
+    db.execute(
+        "CREATE TABLE jobs (job_id TEXT PRIMARY KEY, process_id TEXT NOT NULL, status TEXT NOT "
+        "NULL, message TEXT NOT NULL, created TEXT NOT NULL, updated TEXT NOT NULL, started "
+        "TEXT, finished TEXT, progress INTEGER NOT NULL DEFAULT 0, tiles_done INTEGER NOT NULL "
+        "DEFAULT 0, tiles_total INTEGER NOT NULL DEFAULT 0, inputs TEXT NOT NULL)"
+    )
+    at = T0.isoformat()
+    db.execute(
+        "INSERT INTO jobs (job_id, process_id, status, message, created, updated, inputs) "
+        "VALUES ('x', 'dem-audit', 'running', 'm', ?, ?, '{}')",
+        (at, at),
+    )
+    db.commit()
+    db.close()
+    store = SqliteJobStore(path)
+    old = store.get("x")
+    assert old is not None and old.runner_instance is None and old.cause is None
+    assert recover_orphans(store, instance="me", now=T0) == ["x"]  # no runner: recovered
+    store.close()
+
+
+HOST, PID = "here", 4242
+
+
+@pytest.mark.parametrize(
+    ("runner", "leases", "alive", "gone"),
+    [
+        ("me", {}, set(), False),  # this process's own job
+        (None, {}, set(), True),  # recorded before runner instances
+        ("other", {}, set(), True),  # no lease (it stopped cleanly, or never took one)
+        ("other", {"other": lease("other", host="far", pid=7)}, set(), False),  # live lease
+        ("other", {"other": lease("other", host="far", pid=7, minutes=-1)}, set(), True),
+        ("other", {"other": lease("other", host=HOST, pid=7)}, {7}, False),  # alive here
+        ("other", {"other": lease("other", host=HOST, pid=7)}, set(), True),  # its pid is gone
+        ("other", {"other": lease("other", host=HOST, pid=PID)}, {PID}, True),  # our pid: old us
+    ],
+)
+def test_orphan_reason_fails_only_jobs_of_processes_that_are_gone(runner, leases, alive, gone):
+    job = record(1, RUNNING, runner_instance=runner)
+    reason = orphan_reason(
+        job, leases, instance="me", now=T0, host=HOST, pid=PID, pid_alive=alive.__contains__
+    )
+    assert (reason is not None) == gone
+
+
+def test_recovery_fails_orphans_removes_their_partial_outputs_and_spares_a_live_neighbour(
+    make_store, tmp_path
+):
+    store = make_store()
+    results = tmp_path / "results"
+    dead = record(1, RUNNING, runner_instance="dead")
+    live = record(2, RUNNING, runner_instance="live")
+    mine = record(3, ACCEPTED, runner_instance="me")
+    queued_dead = record(4, ACCEPTED, runner_instance="dead")
+    for job in (dead, live, mine, queued_dead):
+        store.add(job)
+        (results / f"{job.job_id}.partial-{job.job_id}" / "results.zarr").mkdir(parents=True)
+    (results / dead.job_id).mkdir()  # an older result the dead run was replacing
+    store.renew_lease(lease("live", host="far", pid=1, minutes=10))
+    store.renew_lease(lease("dead", host="far", pid=1, minutes=-1))
+
+    failed = recover_orphans(store, results_dir=results, instance="me", now=T0)
+
+    assert sorted(failed) == sorted([dead.job_id, queued_dead.job_id])
+    ended = store.get(dead.job_id)
+    assert ended is not None and ended.status == FAILED and ended.cause == "interrupted"
+    assert ended.message == RESTART_MESSAGE
+    queued = store.get(queued_dead.job_id)
+    assert queued is not None and queued.message == RESTART_QUEUED_MESSAGE
+    assert store.get(live.job_id) == live and store.get(mine.job_id) == mine
+    left = sorted(p.name for p in results.iterdir())
+    assert left == sorted(f"{j.job_id}.partial-{j.job_id}" for j in (live, mine))
