@@ -279,3 +279,12 @@ def test_the_wrapper_keeps_dated_runs_and_points_latest_at_the_newest_success(tm
     kept = sorted(p.name for p in root.iterdir())
     assert kept == ["2026-11-05T020000Z", "2026-11-06T020000Z.failed", "latest"]
     assert night("2026-11-05T020000Z") == 73  # an existing run folder is never overwritten
+
+
+def test_deployed_workers_get_the_thread_and_cache_settings_of_local_workers():
+    from service.cluster import WORKER_ENV
+
+    worker = only("Deployment", "dask-worker")
+    assert {k: str(v) for k, v in env_of(worker).items() if k in WORKER_ENV} == WORKER_ENV
+    compose = yaml.safe_load((DEPLOY / "compose.yaml").read_text())
+    assert compose["services"]["worker"]["environment"] == WORKER_ENV
