@@ -35,7 +35,7 @@ def read_job_checkpoints(job: ResolvedJob) -> CheckpointFile:
     runner calls this before the first tile, so a bad file costs no results."""
     spec = job.spec.checkpoints
     assert spec is not None and job.checkpoint_file is not None
-    return open_checkpoints(job.checkpoint_file, spec)
+    return open_checkpoints(job.checkpoint_file, spec, roots=job.data_roots)
 
 
 def audit_checkpoints(
@@ -95,6 +95,7 @@ def audit_checkpoints(
             classes=options.landcover_classes,
             job=job,
             out_dir=out_dir,
+            fingerprint=data.fingerprint or None,
         )
     _sample(
         client,
@@ -116,6 +117,7 @@ def audit_checkpoints(
         classes=options.landcover_classes,
         job=job,
         out_dir=out_dir,
+        fingerprint=data.fingerprint or None,
     )
 
 
@@ -226,7 +228,10 @@ def _section(
     classes: Sequence[ClassInfo],
     job: ResolvedJob,
     out_dir: Path,
+    fingerprint: str | None,
 ) -> dict[str, Any]:
+    """The summary's checkpoints section; fingerprint: SHA-256 of the bytes the points were
+    read from."""
     used = [r for r in records.values() if r.get("status") == "used"]
     group_of = {c.value: c.group for c in classes}
     unclassified_group = job.spec.checkpoints.unclassified_group if job.spec.checkpoints else None
@@ -259,8 +264,8 @@ def _section(
     cautions = _cover_cautions(used, group)
     _write_residuals(out_dir / RESIDUALS_NAME, records)
     return {
-        "file": str(job.checkpoint_file),
-        "file_fingerprint": file_fingerprint(job.checkpoint_file) if job.checkpoint_file else None,
+        "file": job.shown(job.checkpoint_file) if job.checkpoint_file else None,
+        "file_fingerprint": fingerprint,
         "survey_rmse_m": survey,
         "counts": {"read": len(records), "used": len(used), "rejected": len(records) - len(used)},
         "stats": residual_statistics(dh),
@@ -365,7 +370,9 @@ def earlier_heights(
     path = Path(folder) / RESIDUALS_NAME
     if job.checkpoint_file is None or not path.is_file():
         return {}
-    if section.get("file_fingerprint") != file_fingerprint(job.checkpoint_file):
+    if section.get("file_fingerprint") != file_fingerprint(
+        job.checkpoint_file, roots=job.data_roots
+    ):
         return {}
     with open(path, newline="", encoding="utf-8") as fh:
         reader = csv.reader(fh)

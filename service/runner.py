@@ -57,6 +57,7 @@ from workers.catalog import (
     unique_tile_ids,
 )
 from workers.checkpoints import CheckpointFile
+from workers.confine import Roots
 from workers.datum import DEFAULT_GRID_DIRS, geoid_undulation, vertical_transformations
 from workers.error_model import ErrorModelAccumulator, attach_error_model
 from workers.errors import AuditError, EmptyOverlapError, TileReadError
@@ -226,12 +227,12 @@ def validate_job(
         f"reference, {len(catalog.landcover)} land-cover"
     )
     if inputs.regions:
-        notes.append(f"regions: {len(inputs.regions)} read from {job.region_file}")
+        notes.append(f"regions: {len(inputs.regions)} read from {job.shown(job.region_file)}")
     if inputs.checkpoints is not None:
         data = inputs.checkpoints
         notes.append(
             f"checkpoints: {len(data.points)} points, {len(data.rejected)} rows rejected, "
-            f"from {job.checkpoint_file}"
+            f"from {job.shown(job.checkpoint_file)}"
         )
     problems = [f"test tile {f.tile_id}: {f.reason}" for f in catalog.test_failures]
     problems += [f"{r['tile']}: {r['reason']}" for r in catalog.reference_failures]
@@ -271,14 +272,17 @@ def _local_map(function: Callable[..., Any], *arguments: Sequence[Any]) -> list[
 
 
 def _header_only(
-    scan: Callable[..., TileInfo | ScanFailure], path: str, known: Known | None = None
+    scan: Callable[..., TileInfo | ScanFailure],
+    path: str,
+    known: Known | None = None,
+    roots: Roots = None,
 ) -> TileInfo | ScanFailure:
     """A tile scan without hashing the content (the fingerprint is left empty)."""
     try:
         stat = Path(path).stat()
     except OSError:
-        return scan(path)  # reports the unreadable file
-    return scan(path, (stat.st_size, stat.st_mtime_ns, ""))
+        return scan(path, None, roots)  # reports the unreadable file
+    return scan(path, (stat.st_size, stat.st_mtime_ns, ""), roots)
 
 
 def _run_into(
@@ -600,7 +604,9 @@ def _reuse_of(
 
 def _region_fingerprint(job: ResolvedJob) -> str | None:
     """SHA-256 of the region file (None without regions): editing it changes every region."""
-    return file_fingerprint(job.region_file) if job.region_file is not None else None
+    if job.region_file is None:
+        return None
+    return file_fingerprint(job.region_file, roots=job.data_roots)
 
 
 def _carry_over(
@@ -733,10 +739,11 @@ def _catalog(
 
     known: an earlier scan; with headers_checked its unchanged tiles are not opened again."""
     reuse = known if headers_checked else {}
-    test_tiles, test_failures = _scan(mapper, job.test_tiles, known, reuse)
-    ref_tiles, ref_failures = _scan(mapper, job.reference_tiles, known, reuse)
+    roots = job.data_roots
+    test_tiles, test_failures = _scan(mapper, job.test_tiles, known, reuse, roots=roots)
+    ref_tiles, ref_failures = _scan(mapper, job.reference_tiles, known, reuse, roots=roots)
     cover_tiles, cover_failures = _scan(
-        mapper, job.landcover_tiles, known, reuse, scan=scan_landcover_tile
+        mapper, job.landcover_tiles, known, reuse, scan=scan_landcover_tile, roots=roots
     )
     if not test_tiles:
         raise TileReadError("no test tile could be read: " + _reasons(test_failures))
@@ -811,19 +818,23 @@ def _scan(
     known: Mapping[str, TileInfo],
     reuse: Mapping[str, TileInfo],
     scan: Callable[..., TileInfo | ScanFailure] = scan_tile,
+    roots: Roots = None,
 ) -> tuple[list[TileInfo], list[ScanFailure]]:
     """Scan tiles on the cluster; a tile in ``reuse`` with the same size and modification time
     is taken from it without opening the file; one in ``known`` (an earlier scan) with the same
-    size and modification time is opened for its header but not hashed again."""
+    size and modification time is opened for its header but not hashed again. Every tile's
+    reads are confined to roots (workers/confine.py)."""
     reused = {
-        str(p): reuse[str(p)] for p in paths if str(p) in reuse and unchanged(reuse[str(p)], p)
+        str(p): replace(reuse[str(p)], roots=roots)
+        for p in paths
+        if str(p) in reuse and unchanged(reuse[str(p)], p)
     }
     names = [str(p) for p in paths if str(p) not in reused]
     hints: list[Known | None] = [
         (known[n].size_bytes, known[n].mtime_ns, known[n].fingerprint) if n in known else None
         for n in names
     ]
-    scanned = mapper(scan, names, hints) if names else []
+    scanned = mapper(scan, names, hints, [roots] * len(names)) if names else []
     by_path = reused | {s.path: s for s in scanned}
     ordered = unique_tile_ids([by_path[str(p)] for p in paths])  # re-deliveries of one name
     ok = [s for s in ordered if isinstance(s, TileInfo)]
@@ -848,7 +859,9 @@ def _check_geoid(options: TileOptions, sample: TileInfo) -> None:
 def _load_regions(job: ResolvedJob) -> list[Region]:
     if job.region_file is None or job.spec.region is None:
         return []
-    return region_ops.read_regions(job.region_file, id_property=job.spec.region.id_property)
+    return region_ops.read_regions(
+        job.region_file, id_property=job.spec.region.id_property, roots=job.data_roots
+    )
 
 
 def _regions_by_crs(

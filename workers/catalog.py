@@ -1,7 +1,9 @@
 """Tile catalog: what each tile is (bounds, CRS, resolution, nodata, fingerprint) and which
 reference tiles overlap a test tile.
 
-``scan_tile`` is the only function here that touches files; the index is pure.
+``scan_tile`` is the only function here that touches files; the index is pure. It opens each
+file once through workers/confine.py: the header, the size and the fingerprint all come from that
+one open file, checked against the data roots; a tile that leads outside them fails its scan.
 """
 
 from __future__ import annotations
@@ -15,7 +17,6 @@ from pathlib import Path
 from typing import Any
 
 import numpy as np
-import rasterio
 import shapely
 from numpy.typing import NDArray
 from pyproj import CRS, Transformer
@@ -25,15 +26,15 @@ from rasterio.features import rasterize
 from shapely import STRtree, box, segmentize
 from shapely.geometry.base import BaseGeometry
 
-from workers.errors import MissingCRSError, NotElevationError, TileReadError
+from workers.confine import Roots, open_confined, shown
+from workers.errors import DataRootError, MissingCRSError, NotElevationError, TileReadError
 from workers.grid import Grid
-
-_FINGERPRINT_BLOCK = 1 << 20
 
 
 @dataclass(frozen=True)
 class TileInfo:
-    """What the catalog knows of one tile. ``fingerprint`` is the SHA-256 of the file's bytes."""
+    """What the catalog knows of one tile. ``fingerprint`` is the SHA-256 of the file's bytes;
+    ``roots`` the data roots every read of the file is confined to (None: not confined)."""
 
     tile_id: str
     path: str
@@ -43,6 +44,7 @@ class TileInfo:
     size_bytes: int
     fingerprint: str
     mtime_ns: int = 0
+    roots: Roots = None
 
     @property
     def bounds(self) -> tuple[float, float, float, float]:
@@ -94,7 +96,7 @@ _COLOURS = {ColorInterp.red, ColorInterp.green, ColorInterp.blue, ColorInterp.al
 
 
 def scan_tile(
-    path: str | Path, known: Known | None = None, *, kind: str = ELEVATION
+    path: str | Path, known: Known | None = None, roots: Roots = None, *, kind: str = ELEVATION
 ) -> TileInfo | ScanFailure:
     """Read a tile's header and fingerprint; a failure is returned, not raised.
 
@@ -104,16 +106,21 @@ def scan_tile(
 
     ``kind`` is ELEVATION (test and reference tiles) or LANDCOVER; a raster that cannot be of
     that kind fails with the reason (see not_of_kind).
+
+    ``roots`` (resolved data roots) confine the read: a file leading outside them fails with
+    'leads outside the allowed data roots'; messages show paths relative to their root.
     """
     try:
-        return _scan(Path(path), known, kind)
-    except (TileReadError, MissingCRSError) as exc:
+        return _scan(Path(path), known, kind, roots)
+    except (TileReadError, MissingCRSError, DataRootError) as exc:
         return ScanFailure(tile_id_of(path), str(path), str(exc))
 
 
-def scan_landcover_tile(path: str | Path, known: Known | None = None) -> TileInfo | ScanFailure:
+def scan_landcover_tile(
+    path: str | Path, known: Known | None = None, roots: Roots = None
+) -> TileInfo | ScanFailure:
     """scan_tile for a land-cover raster (a palette is allowed)."""
-    return scan_tile(path, known, kind=LANDCOVER)
+    return scan_tile(path, known, roots, kind=LANDCOVER)
 
 
 def not_of_kind(
@@ -145,53 +152,64 @@ def _has_colormap(src: Any) -> bool:
     return True
 
 
-def _scan(path: Path, known: Known | None, kind: str = ELEVATION) -> TileInfo:
+def _scan(path: Path, known: Known | None, kind: str, roots: Roots) -> TileInfo:
     try:
-        with rasterio.open(path) as src:
-            if src.crs is None:
-                raise MissingCRSError(f"tile {path.name} has no CRS")
-            if src.count < 1:
-                raise TileReadError(f"tile {path.name} has no bands")
-            why = not_of_kind(
-                count=src.count,
-                dtype=src.dtypes[0],
-                colorinterp=src.colorinterp,
-                has_colormap=_has_colormap(src),
-                kind=kind,
-            )
-            if why is not None:
-                raise NotElevationError(f"tile {path.name} holds {why}; it was not used")
-            grid = Grid(
-                crs=src.crs.to_wkt(),
-                transform=tuple(src.transform)[:6],  # type: ignore[arg-type]
-                width=src.width,
-                height=src.height,
-            )
-            nodata = None if src.nodata is None else float(src.nodata)
-            dtype = src.dtypes[0]
-    except RasterioIOError as exc:
-        raise TileReadError(f"tile {path.name} cannot be opened: {exc}") from None
-    stat = path.stat()
-    same = known is not None and (known[0], known[1]) == (stat.st_size, stat.st_mtime_ns)
-    return TileInfo(
-        tile_id=tile_id_of(path),
-        path=str(path),
-        grid=grid,
-        nodata=nodata,
-        dtype=dtype,
-        size_bytes=stat.st_size,
-        fingerprint=known[2] if same and known is not None else file_fingerprint(path),
-        mtime_ns=stat.st_mtime_ns,
+        opened = open_confined(path, roots)
+    except DataRootError as exc:
+        raise DataRootError(f"tile {exc}") from None
+    except OSError as exc:
+        raise TileReadError(f"tile {shown(path, roots)} cannot be opened: {exc.strerror}") from None
+    with opened:
+        try:
+            with opened.raster() as src:
+                grid, nodata, dtype = _header(src, path.name, kind)
+        except RasterioIOError as exc:
+            reason = opened.clean(str(exc))
+            raise TileReadError(f"tile {opened.name} cannot be opened: {reason}") from None
+        same = known is not None and (known[0], known[1]) == (opened.size, opened.mtime_ns)
+        return TileInfo(
+            tile_id=tile_id_of(path),
+            path=str(path),
+            grid=grid,
+            nodata=nodata,
+            dtype=dtype,
+            size_bytes=opened.size,
+            fingerprint=known[2] if same and known is not None else opened.sha256(),
+            mtime_ns=opened.mtime_ns,
+            roots=roots,
+        )
+
+
+def _header(src: Any, name: str, kind: str) -> tuple[Grid, float | None, str]:
+    """Grid, nodata and data type of an open raster; refusals name the tile."""
+    if src.crs is None:
+        raise MissingCRSError(f"tile {name} has no CRS")
+    if src.count < 1:
+        raise TileReadError(f"tile {name} has no bands")
+    why = not_of_kind(
+        count=src.count,
+        dtype=src.dtypes[0],
+        colorinterp=src.colorinterp,
+        has_colormap=_has_colormap(src),
+        kind=kind,
     )
+    if why is not None:
+        raise NotElevationError(f"tile {name} holds {why}; it was not used")
+    grid = Grid(
+        crs=src.crs.to_wkt(),
+        transform=tuple(src.transform)[:6],  # type: ignore[arg-type]
+        width=src.width,
+        height=src.height,
+    )
+    nodata = None if src.nodata is None else float(src.nodata)
+    return grid, nodata, src.dtypes[0]
 
 
-def file_fingerprint(path: Path) -> str:
-    """SHA-256 of a file's content (touching a file does not change it)."""
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        while block := fh.read(_FINGERPRINT_BLOCK):
-            digest.update(block)
-    return digest.hexdigest()
+def file_fingerprint(path: Path, *, roots: Roots = None) -> str:
+    """SHA-256 of a file's content (touching a file does not change it), read from one open
+    file checked against roots (workers/confine.py; DataRootError when it leads outside)."""
+    with open_confined(path, roots) as opened:
+        return opened.sha256()
 
 
 @lru_cache(maxsize=64)

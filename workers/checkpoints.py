@@ -12,6 +12,7 @@ tile edge are sampled from the mosaic of neighbouring tiles, so tile edges do no
 from __future__ import annotations
 
 import csv
+import hashlib
 import json
 import math
 import re
@@ -25,7 +26,8 @@ from numpy.typing import NDArray
 from pyproj import CRS
 from pyproj.exceptions import CRSError
 
-from workers.errors import SpecError
+from workers.confine import Roots, open_confined
+from workers.errors import DataRootError, SpecError
 from workers.grid import Grid
 from workers.spec import CheckpointSource
 
@@ -51,12 +53,14 @@ class Rejected:
 
 @dataclass(frozen=True)
 class CheckpointFile:
-    """What a checkpoint file holds: usable points, rejected rows and header key-values."""
+    """What a checkpoint file holds: usable points, rejected rows and header key-values;
+    ``fingerprint`` is the SHA-256 of the bytes these were read from."""
 
     points: tuple[Checkpoint, ...]
     rejected: tuple[Rejected, ...]
     header: dict[str, str]
     declared_crs: str | None = None
+    fingerprint: str = ""
 
 
 def read_checkpoints(
@@ -67,6 +71,7 @@ def read_checkpoints(
     y_column: str = "northing",
     height_column: str = "height",
     landcover_column: str | None = "landcover",
+    roots: Roots = None,
 ) -> CheckpointFile:
     """Read CSV (with '#' header lines of 'key: value') or GeoJSON points.
 
@@ -78,7 +83,7 @@ def read_checkpoints(
     (``12,5``, also ``512.345,67``) are read as such, the European spreadsheet convention.
     """
     path = Path(path)
-    text = _decoded(path)
+    text, fingerprint = _decoded(path, roots)
     required = (x_column, y_column, height_column)
     if path.suffix.lower() in {".geojson", ".json"}:
         rows, header, crs = _geojson_rows(text, path, x_column, y_column)
@@ -89,25 +94,31 @@ def read_checkpoints(
     columns = (id_column, x_column, y_column, height_column, landcover_column)
     points, rejected = _parse_rows(rows, columns)
     return CheckpointFile(
-        tuple(points), tuple(rejected), header, crs or header.get("horizontal_crs")
+        tuple(points), tuple(rejected), header, crs or header.get("horizontal_crs"), fingerprint
     )
 
 
-def _decoded(path: Path) -> str:
-    """The file's text: UTF-8 (a byte-order mark is dropped), else Latin-1; binary refused."""
+def _decoded(path: Path, roots: Roots) -> tuple[str, str]:
+    """The file's text: UTF-8 (a byte-order mark is dropped), else Latin-1; binary refused.
+    Read from one open file checked against roots (workers/confine.py); with the SHA-256 of
+    the bytes read."""
     try:
-        raw = path.read_bytes()
+        with open_confined(path, roots) as opened:
+            raw = opened.read_bytes()
+    except DataRootError as exc:
+        raise DataRootError(f"checkpoints.file: {exc}") from None
     except OSError as exc:
-        raise SpecError(f"checkpoints.file: cannot read {path}: {exc.strerror or exc}") from None
+        raise SpecError(f"checkpoints.file: cannot read {exc.strerror or exc}") from None
     if b"\x00" in raw:
         raise SpecError(
             f"checkpoints.file: {path.name} is not text (it holds binary data); expected CSV "
             "or GeoJSON"
         )
+    fingerprint = hashlib.sha256(raw).hexdigest()
     try:
-        return raw.decode("utf-8-sig")
+        return raw.decode("utf-8-sig"), fingerprint
     except UnicodeDecodeError:
-        return raw.decode("latin-1")
+        return raw.decode("latin-1"), fingerprint
 
 
 _DELIMITERS = (",", ";", "\t")
@@ -193,7 +204,9 @@ def _require_properties(
         )
 
 
-def open_checkpoints(path: Path, source: CheckpointSource) -> CheckpointFile:
+def open_checkpoints(
+    path: Path, source: CheckpointSource, *, roots: Roots = None
+) -> CheckpointFile:
     """Read the checkpoint file a spec names and check it can be used at all, before any tile
     runs: the columns (read_checkpoints), a horizontal CRS (checkpoint_crs), and at least one
     usable point. Every problem is a SpecError naming the file and the spec field."""
@@ -204,6 +217,7 @@ def open_checkpoints(path: Path, source: CheckpointSource) -> CheckpointFile:
         y_column=source.y_column,
         height_column=source.height_column,
         landcover_column=source.landcover_column,
+        roots=roots,
     )
     checkpoint_crs(data, path=Path(path), spec_crs=source.crs)
     if not data.points:

@@ -14,13 +14,13 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 import numpy as np
-import rasterio
 from numpy.typing import NDArray
 from rasterio.errors import RasterioError
 from rasterio.windows import Window
 
 from workers.catalog import TileInfo
-from workers.errors import ImplausibleHeightsError, TileReadError
+from workers.confine import open_confined
+from workers.errors import DataRootError, ImplausibleHeightsError, TileReadError
 from workers.grid import Grid
 from workers.spec import METRES_PER_UNIT
 
@@ -54,11 +54,7 @@ def read_tile(
     checked: ImplausibleHeightsError when they hold a void code or heights no terrain has (see
     implausible_heights).
     """
-    try:
-        with rasterio.open(tile.path) as src:
-            raw = src.read(1)
-    except (RasterioError, OSError) as exc:
-        raise TileReadError(f"tile {tile.tile_id} cannot be read: {exc}") from None
+    raw = _read_band(tile, "tile", None)
     data = _voids_to_nan(raw, (tile.nodata, nodata))
     if units is not None:
         check_heights(data, tile_id=tile.tile_id, units=units, role="test")
@@ -200,15 +196,30 @@ def _paste(
     if r0 >= r1 or c0 >= c1:
         return None
     window = Window(c0 - tile_c0, r0 - tile_r0, c1 - c0, r1 - r0)  # type: ignore[call-arg]
-    try:
-        with rasterio.open(tile.path) as src:
-            raw = src.read(1, window=window)
-    except (RasterioError, OSError) as exc:
-        raise TileReadError(f"reference tile {tile.tile_id} cannot be read: {exc}") from None
+    raw = _read_band(tile, "reference tile", window)
     block = _voids_to_nan(raw, (tile.nodata, nodata))
     target = out[r0:r1, c0:c1]
     np.copyto(target, block, where=np.isnan(target))
     return block
+
+
+def _read_band(tile: TileInfo, what: str, window: Window | None) -> NDArray[np.generic]:
+    """Band 1 of the tile (or a window of it), opened confined to the tile's data roots
+    (workers/confine.py): DataRootError when the file now leads outside them, TileReadError
+    when it cannot be read; messages name the tile, never a server path."""
+    try:
+        opened = open_confined(tile.path, tile.roots)
+    except DataRootError as exc:
+        raise DataRootError(f"{what} {tile.tile_id}: {exc}") from None
+    except OSError as exc:
+        raise TileReadError(f"{what} {tile.tile_id} cannot be read: {exc.strerror}") from None
+    with opened:
+        try:
+            with opened.raster() as src:
+                return src.read(1, window=window)  # type: ignore[no-any-return]
+        except (RasterioError, OSError) as exc:
+            reason = opened.clean(str(exc))
+            raise TileReadError(f"{what} {tile.tile_id} cannot be read: {reason}") from None
 
 
 def _is_whole(value: float, tol: float = 1e-6) -> bool:

@@ -20,7 +20,8 @@ from shapely import box, segmentize
 from shapely.geometry import shape
 from shapely.geometry.base import BaseGeometry
 
-from workers.errors import MissingCRSError, SpecError
+from workers.confine import Roots, open_confined
+from workers.errors import DataRootError, MissingCRSError, SpecError
 from workers.grid import Grid
 
 DEFAULT_REGION_CRS = "EPSG:4326"
@@ -43,7 +44,7 @@ class Region:
 _SHAPEFILE_MAGIC = b"\x00\x00\x27\x0a"
 
 
-def read_regions(path: Path, *, id_property: str) -> list[Region]:
+def read_regions(path: Path, *, id_property: str, roots: Roots = None) -> list[Region]:
     """Read a GeoJSON FeatureCollection of polygons; its CRS is the one it declares, else
     EPSG:4326.
 
@@ -52,9 +53,12 @@ def read_regions(path: Path, *, id_property: str) -> list[Region]:
     objects, features without a polygon). An invalid polygon (a self-intersecting ring, e.g. a
     bow-tie) is repaired with shapely.make_valid, keeping all of its area; the region's ``note``
     says so (see region_cautions). A feature with no area left is refused with its id.
+
+    The file is read from one open file checked against ``roots`` (workers/confine.py:
+    DataRootError when it leads outside them); messages show it relative to its root.
     """
     path = Path(path)
-    doc = _feature_collection(path)
+    doc = _feature_collection(path, roots)
     crs = _declared_crs(doc, path)
     features = doc.get("features")
     if not isinstance(features, list):
@@ -66,7 +70,7 @@ def read_regions(path: Path, *, id_property: str) -> list[Region]:
         _region(feature, number, path, id_property, crs) for number, feature in enumerate(features)
     ]
     if not regions:
-        raise SpecError(f"region.file: {path} holds no features")
+        raise SpecError(f"region.file: {path.name} holds no features")
     ids = [r.region_id for r in regions]
     if len(set(ids)) != len(ids):
         raise SpecError(f"region.id_property: ids in {path.name} are not unique: {sorted(ids)}")
@@ -78,12 +82,15 @@ def region_cautions(regions: Sequence[Region]) -> list[str]:
     return [r.note for r in regions if r.note]
 
 
-def _feature_collection(path: Path) -> dict:  # type: ignore[type-arg]
+def _feature_collection(path: Path, roots: Roots) -> dict:  # type: ignore[type-arg]
     expected = "expected a GeoJSON FeatureCollection (UTF-8 JSON text)"
     try:
-        raw = path.read_bytes()
+        with open_confined(path, roots) as opened:
+            raw = opened.read_bytes()
+    except DataRootError as exc:
+        raise DataRootError(f"region.file: {exc}") from None
     except OSError as exc:
-        raise SpecError(f"region.file: cannot read {path}: {exc.strerror or exc}") from None
+        raise SpecError(f"region.file: cannot read {exc.strerror or exc}") from None
     if raw.startswith(_SHAPEFILE_MAGIC) or path.suffix.lower() in {".shp", ".shx", ".dbf"}:
         raise SpecError(
             f"region.file: {path.name} is a shapefile; {expected}. Convert it first, e.g. "
