@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import datetime as dt
 import functools
+import json
 from pathlib import Path
 from typing import Any
 
@@ -249,3 +250,317 @@ def test_json_is_the_default_and_wildcards_get_it(api):
         response = api.get("/processes", headers=headers)
         assert response.status_code == 200, accept
         assert response.headers["content-type"] == "application/json", accept
+
+
+# --- execute: input forms, outputs, response, subscriber ----------------------------------------
+
+EXECUTE = DEM_AUDIT + "/execution"
+
+
+def _execute(api, body: dict[str, Any]):
+    return api.post(EXECUTE, json=body)
+
+
+def test_qualified_values_are_taken(api, spec, runner, wait_for):
+    inputs = {name: {"value": value} for name, value in spec.items()}
+    inputs["reference"]["mediaType"] = "application/json"
+    response = _execute(api, {"inputs": inputs})
+    assert response.status_code == 201, response.text
+    runner.gate.set()
+    job_id = response.json()["jobID"]
+    wait_for(api, job_id, lambda d: d["status"] == "successful")
+    summary = api.get(f"/jobs/{job_id}/results").json()["summary"]["value"]
+    assert summary["job"]["name"] == spec["name"]
+
+
+@pytest.mark.parametrize("form", ["relative", "file-url", "yaml"])
+def test_inputs_by_reference_to_a_file_in_the_data_roots(api, spec, data_root, form):
+    if form == "yaml":
+        (data_root / "test.yaml").write_text(yaml.safe_dump(spec["test"]))
+        href = "test.yaml"
+    else:
+        (data_root / "test.json").write_text(json.dumps(spec["test"]))
+        href = "test.json" if form == "relative" else (data_root / "test.json").as_uri()
+    spec["test"] = {"href": href, "type": "application/json"}
+    response = _execute(api, {"inputs": spec})
+    assert response.status_code == 201, response.text
+
+
+def test_a_reference_outside_the_data_roots_is_403(api, spec, data_root, tmp_path):
+    (tmp_path / "outside.json").write_text(json.dumps(spec["test"]))
+    for href in ("../outside.json", str(tmp_path / "outside.json")):
+        spec["test"] = {"href": href}
+        response = _execute(api, {"inputs": spec})
+        assert response.status_code == 403, (href, response.text)
+        detail = response.json()["detail"]
+        assert detail.startswith("inputs.test.href:") and "outside" in detail
+
+
+@pytest.mark.parametrize(
+    "href", ["https://example.org/test.json", "http://127.0.0.1:9/x", "ftp://example.org/x"]
+)
+def test_remote_references_are_refused_not_fetched(api, spec, href):
+    """The stub resolver of the api fixture would raise for 127.0.0.1 lookups only through
+    webhooks; nothing here may open a connection: the refusal comes before any I/O."""
+    spec["test"] = {"href": href}
+    response = _execute(api, {"inputs": spec})
+    assert response.status_code == 400, response.text
+    body = response.json()
+    assert body["type"] == "urn:demaudit:problem:not-supported"
+    assert "inputs.test.href" in body["detail"] and "remote" in body["detail"]
+    validate(body, "exception.yaml")
+
+
+@pytest.mark.parametrize(
+    ("content", "words"), [(None, "no readable file"), ("{not: [valid", "not a JSON or YAML")]
+)
+def test_an_unreadable_reference_is_422_naming_the_input(api, spec, data_root, content, words):
+    if content is not None:
+        (data_root / "bad.json").write_text(content)
+    spec["test"] = {"href": "bad.json"}
+    response = _execute(api, {"inputs": spec})
+    assert response.status_code == 422, response.text
+    assert response.json()["detail"].startswith("inputs.test.href:")
+    assert words in response.json()["detail"]
+
+
+def test_a_referenced_value_is_still_validated_as_the_spec(api, spec, data_root):
+    (data_root / "test.json").write_text(json.dumps({"tiles": "test", "units": "furlong"}))
+    spec["test"] = {"href": "test.json"}
+    response = _execute(api, {"inputs": spec})
+    assert response.status_code == 422
+    assert any(e["field"] == "body.inputs.test.units" for e in response.json()["errors"])
+
+
+def test_subscriber_is_refused_as_callbacks_are_not_offered(api, spec):
+    body = {"inputs": spec, "subscriber": {"successUri": "https://example.org/done"}}
+    response = _execute(api, body)
+    assert response.status_code == 400
+    assert "subscriber" in response.json()["detail"]
+    conformance = api.get("/conformance").json()["conformsTo"]
+    assert not any(c.endswith("/conf/callback") for c in conformance)
+
+
+def test_unknown_outputs_are_refused(api, spec):
+    response = _execute(api, {"inputs": spec, "outputs": {"pixels": {}}})
+    assert response.status_code == 400
+    assert response.json()["detail"].startswith("outputs.pixels:")
+    wrong_media = {"summary": {"format": {"mediaType": "text/csv"}}}
+    assert _execute(api, {"inputs": spec, "outputs": wrong_media}).status_code == 400
+    by_value = {"results": {"transmissionMode": "value"}}
+    assert _execute(api, {"inputs": spec, "outputs": by_value}).status_code == 400
+
+
+def test_the_results_document_shows_the_outputs_asked_for(api, spec, runner, wait_for):
+    response = _execute(api, {"inputs": spec, "outputs": {"results": {}}})
+    assert response.status_code == 201, response.text
+    job_id = response.json()["jobID"]
+    runner.gate.set()
+    wait_for(api, job_id, lambda d: d["status"] == "successful")
+    results = api.get(f"/jobs/{job_id}/results").json()
+    validate(results, "results.yaml")
+    assert set(results) == {"results"}
+
+
+def test_raw_response_gives_the_summary_itself(api, spec, runner, wait_for):
+    refused = _execute(api, {"inputs": spec, "response": "raw"})
+    assert refused.status_code == 400  # both outputs raw would need multipart
+    assert "raw" in refused.json()["detail"]
+    response = _execute(api, {"inputs": spec, "response": "raw", "outputs": {"summary": {}}})
+    assert response.status_code == 201, response.text
+    job_id = response.json()["jobID"]
+    runner.gate.set()
+    wait_for(api, job_id, lambda d: d["status"] == "successful")
+    raw = api.get(f"/jobs/{job_id}/results")
+    assert raw.headers["content-type"] == "application/json"
+    assert raw.json()["job"]["name"] == spec["name"]  # the document itself, not wrapped
+
+
+def test_one_output_of_a_job(api, runner, submit, wait_for):
+    job_id = _finished(api, runner, submit, wait_for)
+    summary = api.get(f"/jobs/{job_id}/results/summary")
+    assert summary.status_code == 200
+    assert summary.json() == api.get(f"/jobs/{job_id}/results").json()["summary"]["value"]
+    results = api.get(f"/jobs/{job_id}/results/results")
+    assert results.status_code == 204
+    assert results.headers["link"].startswith(f"<http://testserver/jobs/{job_id}/results.zarr>")
+    missing = api.get(f"/jobs/{job_id}/results/pixels")
+    assert missing.status_code == 404
+    validate(missing.json(), "exception.yaml")
+    api.delete(f"/jobs/{job_id}")
+    assert api.get(f"/jobs/{job_id}/results/summary").status_code == 410  # dismissed
+
+
+# --- the job list's parameters -----------------------------------------------------------------
+
+T0 = dt.datetime(2026, 3, 1, 12, 0, tzinfo=dt.UTC)
+
+
+def _record(job_id: str, *, created_h: float, ran_s: float | None) -> JobRecord:
+    created = T0 + dt.timedelta(hours=created_h)
+    started = None if ran_s is None else created + dt.timedelta(seconds=5)
+    finished = None if started is None or ran_s is None else started + dt.timedelta(seconds=ran_s)
+    return JobRecord(
+        job_id=job_id,
+        process_id="dem-audit",
+        status="accepted" if ran_s is None else "successful",
+        message="",
+        created=created,
+        updated=finished or created,
+        started=started,
+        finished=finished,
+        owner="alice",
+    )
+
+
+@pytest.fixture
+def listed(api, store):
+    """Three jobs of alice: waiting (never started), 10 s and 100 s long, an hour apart."""
+    for record in (
+        _record("waiting", created_h=0, ran_s=None),
+        _record("short", created_h=1, ran_s=10),
+        _record("long", created_h=2, ran_s=100),
+    ):
+        store.add(record)
+    return api
+
+
+def _ids(api, **params: Any) -> set[str]:
+    response = api.get("/jobs", params=params)
+    assert response.status_code == 200, response.text
+    validate(response.json(), "jobList.yaml")
+    return {job["jobID"] for job in response.json()["jobs"]}
+
+
+def test_the_job_list_includes_accepted_jobs(listed):
+    """statusCode.yaml counts 'accepted' among a job's statuses and the job list has no
+    default status filter (OGC 18-062r2, job-list): a waiting job is listed."""
+    assert _ids(listed) == {"waiting", "short", "long"}
+    assert _ids(listed, status="accepted") == {"waiting"}
+
+
+def test_the_job_list_filters_by_type(listed):
+    assert _ids(listed, type="process") == {"waiting", "short", "long"}
+    assert _ids(listed, type="other") == set()
+
+
+def test_the_job_list_filters_by_duration(listed):
+    assert _ids(listed, minDuration=50) == {"long"}
+    assert _ids(listed, maxDuration=50) == {"short"}
+    assert _ids(listed, minDuration=10, maxDuration=100) == {"short", "long"}
+    assert listed.get("/jobs", params={"minDuration": -1}).status_code == 400
+
+
+def test_the_job_list_filters_by_creation_time(listed):
+    assert _ids(listed, datetime="2026-03-01T13:00:00Z") == {"short"}
+    assert _ids(listed, datetime="2026-03-01T12:30:00Z/..") == {"short", "long"}
+    assert _ids(listed, datetime="../2026-03-01T13:00:00Z") == {"waiting", "short"}
+    assert _ids(listed, datetime="2026-03-01T12:00:00Z/2026-03-01T13:00:00Z") == {
+        "waiting",
+        "short",
+    }
+    for bad in ("yesterday", "2026-03-02T00:00:00Z/2026-03-01T00:00:00Z", "..", "a/b/c"):
+        response = listed.get("/jobs", params={"datetime": bad})
+        assert response.status_code == 400, bad
+        assert "datetime" in response.json()["detail"]
+
+
+def test_the_job_list_pages_filtered_results(listed):
+    page = listed.get("/jobs", params={"minDuration": 0, "limit": 1}).json()
+    assert page["numberMatched"] == 2 and page["numberReturned"] == 1
+    assert [link["rel"] for link in page["links"]] == ["self", "next"]
+    assert all(isinstance(link["title"], str) for link in page["links"])
+
+
+@pytest.mark.parametrize("limit", [1, 1000, 10_000, 50_000])
+def test_limit_up_to_ten_thousand_is_taken(listed, limit):
+    """OGC 18-062r2, job-list: limit 1..10,000, default 10; a larger value counts as the
+    maximum."""
+    response = listed.get("/jobs", params={"limit": limit})
+    assert response.status_code == 200
+    assert response.json()["numberReturned"] == min(limit, 3)
+    assert listed.get("/jobs", params={"limit": 0}).status_code == 400
+
+
+# --- the pieces: media type choice, OpenAPI 3.0 schema rewriting -------------------------------
+
+J, H = "application/json", "text/html"
+OAS30 = "application/vnd.oai.openapi+json;version=3.0"
+
+
+@pytest.mark.parametrize(
+    ("accept", "offered", "chosen"),
+    [
+        (None, (J, H), J),  # no header: the first offered
+        ("", (J, H), J),
+        ("*/*", (J, H), J),  # a tie goes to the first offered
+        ("text/html,application/xhtml+xml,application/xml;q=0.9,*/*;q=0.8", (J, H), H),  # browser
+        ("application/json;q=0.5, text/html;q=0.6", (J, H), H),
+        ("application/json;q=0.5, text/html;q=0.6", (J,), J),
+        ("text/*", (J, H), H),
+        ("application/xml", (J, H), None),
+        ("*/*;q=0", (J,), None),
+        ("application/json;q=0, */*", (J, H), H),  # the more specific range rules JSON out
+        (OAS30, (OAS30, J), OAS30),
+        (OAS30.replace("3.0", "3.1"), (OAS30,), None),  # parameters must agree
+    ],
+)
+def test_choose_follows_the_accept_header(accept, offered, chosen):
+    """RFC 9110 section 12.5.1: quality values, wildcards, the most specific range wins."""
+    from service.negotiation import choose
+
+    assert choose(accept, offered) == chosen
+
+
+@pytest.mark.parametrize(
+    ("json_schema", "oas30"),
+    [
+        (
+            {"anyOf": [{"type": "string"}, {"type": "null"}], "default": None},
+            {"type": "string", "nullable": True, "default": None},
+        ),
+        ({"type": ["integer", "null"]}, {"type": "integer", "nullable": True}),
+        (
+            {"type": "number", "exclusiveMinimum": 0},
+            {"type": "number", "minimum": 0, "exclusiveMinimum": True},
+        ),
+        (
+            {"type": "number", "exclusiveMaximum": 1},
+            {"type": "number", "maximum": 1, "exclusiveMaximum": True},
+        ),
+        ({"const": "nmad"}, {"enum": ["nmad"]}),
+        (
+            {
+                "type": "object",
+                "propertyNames": {"pattern": "^[0-9]+$"},
+                "additionalProperties": {"type": "string"},
+            },
+            {"type": "object", "additionalProperties": {"type": "string"}},
+        ),
+        ({"examples": [3]}, {"example": 3}),
+        (
+            {"$ref": "#/components/schemas/A", "description": "d"},
+            {"allOf": [{"$ref": "#/components/schemas/A"}], "description": "d"},
+        ),
+        (
+            {"anyOf": [{"$ref": "#/components/schemas/A"}, {"type": "null"}]},
+            {"allOf": [{"$ref": "#/components/schemas/A"}], "nullable": True},
+        ),
+        (
+            {"type": "array", "prefixItems": [{"type": "number"}, {"type": "number"}]},
+            {
+                "type": "array",
+                "items": {"anyOf": [{"type": "number"}, {"type": "number"}]},
+                "minItems": 2,
+                "maxItems": 2,
+            },
+        ),
+    ],
+)
+def test_json_schema_becomes_an_openapi_30_schema_object(json_schema, oas30):
+    """OpenAPI 3.0.3 section 4.7.24 (Schema Object) against JSON Schema 2020-12."""
+    from service.openapi import oas30_schema
+
+    assert oas30_schema(json_schema) == oas30
+    if "$ref" not in json.dumps(oas30):  # schema.yaml refuses nested references (see above)
+        validate(oas30, "schema.yaml")
