@@ -2,7 +2,8 @@
 # Set up demaudit on a fresh Debian machine, idempotently:
 #   - Debian's proj-data, which holds PROJ's EGM96 geoid grid (egm96_15.gtx; pyproj ships none),
 #   - a virtualenv in .venv with demaudit and its test tools installed (editable),
-#   - with --tests (or DEMAUDIT_WITH_BROWSER=1): Debian's chromium, for the report-page test.
+#   - with --tests (or DEMAUDIT_WITH_BROWSER=1): Debian's chromium and chromedriver, for the
+#     report-page and job-page tests.
 # Needs Python 3.11+ as python3 and root (or sudo) for apt-get.
 set -euo pipefail
 cd "$(dirname "$0")/.."
@@ -10,7 +11,8 @@ cd "$(dirname "$0")/.."
 [ "${1:-}" = "--tests" ] && DEMAUDIT_WITH_BROWSER=1
 need_apt=()
 [ -f /usr/share/proj/egm96_15.gtx ] || need_apt+=(proj-data)
-if [ "${DEMAUDIT_WITH_BROWSER:-0}" = "1" ] && ! command -v chromium >/dev/null; then
+if [ "${DEMAUDIT_WITH_BROWSER:-0}" = "1" ] \
+   && ! { command -v chromium && command -v chromedriver; } >/dev/null; then
   need_apt+=(chromium chromium-driver)
 fi
 if [ ${#need_apt[@]} -gt 0 ]; then
