@@ -177,9 +177,16 @@ def change_report(
             limits,
         )
         tiles.append({"tile": tile_id, "why": why} | verdict)
-    before_regions = {r["region"]: r["stats"] for r in baseline.document.get("regions", [])}
+    before_docs = {r["region"]: r for r in baseline.document.get("regions", [])}
     regions = [
-        {"region": r["region"]} | compare(before_regions.get(r["region"]), r["stats"], limits)
+        {"region": r["region"]}
+        | compare(
+            before_docs.get(r["region"], {}).get("stats"),
+            r["stats"],
+            limits,
+            uncertainty_before=before_docs.get(r["region"], {}).get("uncertainty"),
+            uncertainty_after=r.get("uncertainty"),
+        )
         for r in document["regions"]
     ]
     grades = lost_grades(

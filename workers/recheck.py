@@ -81,31 +81,73 @@ def plan(
     return ChangePlan(recompute, tuple(reuse), added, removed)
 
 
+#: Changes within this many combined standard errors are noise (two-sided 95 %).
+NOISE_Z = 1.959964
+
+
 def compare(
-    before: Mapping[str, Any] | None, after: Mapping[str, Any] | None, limits: Thresholds
+    before: Mapping[str, Any] | None,
+    after: Mapping[str, Any] | None,
+    limits: Thresholds,
+    *,
+    uncertainty_before: Mapping[str, Any] | None = None,
+    uncertainty_after: Mapping[str, Any] | None = None,
 ) -> dict[str, Any]:
     """Verdict on one tile's or region's statistics: 'improved', 'regressed' (with flags),
-    'unchanged', 'new' or 'removed'."""
+    'unchanged', 'within_noise', 'new' or 'removed'.
+
+    With both uncertainties (an area's ``uncertainty`` from workers/error_model.py), a change of
+    the median or NMAD smaller than 1.96 x sqrt(se_before^2 + se_after^2) is noise whatever the
+    fixed thresholds say: a verdict resting only on such changes becomes 'within_noise' (its
+    flags move to ``noise``)."""
     if not before or not before.get("count"):
         return {"verdict": "new", "before": before, "after": after, "flags": []}
     if not after or not after.get("count"):
         return {"verdict": "removed", "before": before, "after": after, "flags": []}
     d_nmad = after["nmad"] - before["nmad"]
     d_bias = abs(after["median"]) - abs(before["median"])
+    nmad_noise = _noise(uncertainty_before, uncertainty_after, "nmad_se_m")
+    median_noise = _noise(uncertainty_before, uncertainty_after, "median_se_m")
+    nmad_is_noise = nmad_noise is not None and abs(d_nmad) <= nmad_noise
+    median_is_noise = (
+        median_noise is not None and abs(after["median"] - before["median"]) <= median_noise
+    )
     worse = d_nmad > limits.nmad_worse_fraction * before["nmad"] or d_nmad > limits.nmad_worse_m
     better = -d_nmad > limits.nmad_worse_fraction * before["nmad"] or -d_nmad > limits.nmad_worse_m
-    flags = []
+    flags, noise = [], []
     if worse:
-        flags.append(f"nmad worse by {d_nmad:.3f} m ({d_nmad / before['nmad']:+.0%})")
+        flag = f"nmad worse by {d_nmad:.3f} m ({d_nmad / before['nmad']:+.0%})"
+        (noise if nmad_is_noise else flags).append(flag)
     if d_bias > limits.median_moved_m:
-        flags.append(f"median moved {d_bias:.3f} m away from zero")
+        flag = f"median moved {d_bias:.3f} m away from zero"
+        (noise if median_is_noise else flags).append(flag)
+    improved = (better and not nmad_is_noise) or (
+        -d_bias > limits.median_moved_m and not median_is_noise
+    )
     if flags:
         verdict = "regressed"
-    elif better or -d_bias > limits.median_moved_m:
+    elif improved:
         verdict = "improved"
+    elif noise or (better and nmad_is_noise) or (-d_bias > limits.median_moved_m):
+        verdict = "within_noise"
     else:
         verdict = "unchanged"
-    return {"verdict": verdict, "flags": flags, "before": _brief(before), "after": _brief(after)}
+    out = {"verdict": verdict, "flags": flags, "before": _brief(before), "after": _brief(after)}
+    if nmad_noise is not None or median_noise is not None:
+        out["noise"] = noise
+        out["noise_m"] = {"median": median_noise, "nmad": nmad_noise}
+    return out
+
+
+def _noise(
+    before: Mapping[str, Any] | None, after: Mapping[str, Any] | None, key: str
+) -> float | None:
+    """1.96 x sqrt(se_before^2 + se_after^2) of one statistic, None unless both are known."""
+    a = (before or {}).get(key)
+    b = (after or {}).get(key)
+    if a is None or b is None:
+        return None
+    return float(NOISE_Z * (a * a + b * b) ** 0.5)
 
 
 def lost_grades(

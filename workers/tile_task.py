@@ -34,6 +34,7 @@ from workers.coregister_tile import (
 )
 from workers.datum import DEFAULT_GRID_DIRS, to_metres, vertical_offset_on_grid
 from workers.difference import block_mean, difference
+from workers.error_model import ErrorModelOptions, TileErrorSample, grid_error_sample
 from workers.errors import AuditError
 from workers.grid import Grid
 from workers.rasters import read_mosaic, read_tile
@@ -67,6 +68,7 @@ class TileOptions:
     slope_edges_deg: tuple[float, ...] = (0.0, 5.0, 15.0, 30.0, 45.0)
     coregistration: Coregistration | None = None
     correction: Correction | None = None  # the job-wide correction, set for the main pass
+    error_model: ErrorModelOptions | None = None  # sample the error model (workers/error_model)
 
     @classmethod
     def from_spec(
@@ -86,6 +88,14 @@ class TileOptions:
             landcover_classes=classes_from_spec(spec.landcover.classes) if spec.landcover else (),
             slope_edges_deg=tuple(spec.strata.slope_bands_deg),
             coregistration=spec.coregistration,
+            error_model=None
+            if spec.error_model is None
+            else ErrorModelOptions(
+                seed=spec.error_model.seed,
+                samples_per_tile=spec.error_model.samples_per_tile,
+                outlier_rule=spec.outliers.rule,
+                outlier_factor=spec.outliers.factor,
+            ),
         )
 
 
@@ -109,6 +119,7 @@ class TileResult:
     coregistration: dict[str, Any] | None = None
     corrected: TileResult | None = None
     summaries_stored: bool = False  # the worker wrote them to the results store (audit_and_store)
+    error_sample: TileErrorSample | None = None  # with an error model (workers/error_model.py)
 
 
 #: With co-registration the reference is read this many test pixels beyond the tile, so that
@@ -351,11 +362,12 @@ def summarise_tile(
     valid pixels: workers/tile_pass.py)."""
     dh = layers.dh
     px, py = test.grid.pixel_size_m()
+    masks = {r.region_id: region_mask(r, test.grid) for r in regions}
     found = summarise_pixels(
         dh,
         reference=layers.reference,
         landcover=layers.landcover,
-        region_masks={r.region_id: region_mask(r, test.grid) for r in regions},
+        region_masks=masks,
         classes=options.landcover_classes,
         slope_edges=options.slope_edges_deg,
         pixel_size_m=(px, py),
@@ -378,6 +390,10 @@ def summarise_tile(
         excluded=found.excluded,
         overview=block_mean(dh_valid, options.overview_factor),
         reference_tiles=reference_tiles,
+        error_sample=grid_error_sample(
+            test.grid, test.tile_id, dh, layers.reference, layers.landcover, masks,
+            options.landcover_classes, options.error_model,
+        ),
     )
 
 

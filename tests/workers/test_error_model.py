@@ -193,3 +193,28 @@ def test_stratum_counts_follow_the_slope_bands():
     assert out["landcover:open"].sum() == 15
     assert out["slope_deg:15+"].sum() == 12
     assert out["cover_group:non_vegetated/slope_deg:0-5"].sum() == 10
+
+
+def test_a_change_within_the_combined_uncertainty_is_noise():
+    from workers.recheck import Thresholds, compare
+
+    before = {"count": 10**6, "median": 0.02, "nmad": 0.30}
+    after = {"count": 10**6, "median": 0.10, "nmad": 0.36}  # both beyond the fixed thresholds
+    limits = Thresholds()
+    assert compare(before, after, limits)["verdict"] == "regressed"
+    wide = {"median_se_m": 0.05, "nmad_se_m": 0.04}  # 1.96 x sqrt(2) x 0.05 = 0.139 > 0.08
+    verdict = compare(before, after, limits, uncertainty_before=wide, uncertainty_after=wide)
+    assert verdict["verdict"] == "within_noise" and verdict["flags"] == []
+    assert len(verdict["noise"]) == 2
+    # a median change beyond its noise still regresses, the NMAD change alone being noise
+    narrow = {"median_se_m": 0.01, "nmad_se_m": 0.04}
+    verdict = compare(before, after, limits, uncertainty_before=narrow, uncertainty_after=narrow)
+    assert verdict["verdict"] == "regressed"
+    assert verdict["flags"] == ["median moved 0.080 m away from zero"]
+    # an improvement within noise is noise too; without uncertainties nothing changes
+    verdict = compare(after, before, limits, uncertainty_before=wide, uncertainty_after=wide)
+    assert verdict["verdict"] == "within_noise"
+    assert compare(after, before, limits)["verdict"] == "improved"
+    assert compare(before, before, limits, uncertainty_before=wide, uncertainty_after=wide)[
+        "verdict"
+    ] == "unchanged"
