@@ -93,7 +93,8 @@ class Execution:
                     f"outputs.{name}: the process has no such output; "
                     f"its outputs are {', '.join(OUTPUTS)}"
                 )
-            _check_output(name, (outputs or {}).get(name) or {})
+            wanted = (outputs or {}).get(name)
+            _check_output(name, {} if wanted is None else wanted)
         kind: ResponseType = "raw" if response == "raw" else "document"
         if kind == "raw" and chosen != ("summary",):
             raise NotSupportedError(
@@ -113,7 +114,10 @@ def _check_output(name: str, wanted: Mapping[str, Any]) -> None:
     unknown = set(wanted) - {"format", "transmissionMode"}
     if unknown:
         raise NotSupportedError(f"outputs.{name}: unknown member(s) {', '.join(sorted(unknown))}")
-    media = (wanted.get("format") or {}).get("mediaType") if wanted.get("format") else None
+    format_ = wanted.get("format") or {}
+    if not isinstance(format_, Mapping):
+        raise NotSupportedError(f"outputs.{name}.format: must be an object (mediaType)")
+    media = format_.get("mediaType")
     if media is not None and media != OUTPUTS[name]["mediaType"]:
         raise NotSupportedError(
             f"outputs.{name}.format.mediaType: offered as {OUTPUTS[name]['mediaType']} only"

@@ -347,6 +347,8 @@ def test_unknown_outputs_are_refused(api, spec):
     assert response.json()["detail"].startswith("outputs.pixels:")
     wrong_media = {"summary": {"format": {"mediaType": "text/csv"}}}
     assert _execute(api, {"inputs": spec, "outputs": wrong_media}).status_code == 400
+    for malformed in ({"summary": {"format": "json"}}, {"summary": []}, {"summary": {"x": 1}}):
+        assert _execute(api, {"inputs": spec, "outputs": malformed}).status_code == 400
     by_value = {"results": {"transmissionMode": "value"}}
     assert _execute(api, {"inputs": spec, "outputs": by_value}).status_code == 400
 
