@@ -174,3 +174,21 @@ def test_no_report_while_the_job_runs_or_when_none_was_drawn(api, submit, runner
     wait_for(api, job_id, lambda s: s["status"] == "successful")
     missing = api.get(f"/jobs/{job_id}/report")  # the scripted runner draws no report
     assert missing.status_code == 404 and "no report.html" in missing.json()["detail"]
+
+
+@pytest.mark.parametrize(
+    ("server", "status", "report"),
+    [
+        ("http://127.0.0.1:8000", "running", False),
+        ("https://audit.example.org/api/", "successful", True),
+        ("http://127.0.0.1:8000/", "failed", False),
+    ],
+)
+def test_the_cli_points_at_the_page_and_a_finished_report(capsys, server, status, report):
+    from service.cli import _print_job_links
+
+    _print_job_links(server, "0123abcd", status)
+    lines = capsys.readouterr().out.splitlines()
+    page = server.rstrip("/") + "/jobs/0123abcd"
+    assert lines[0].startswith(f"page: {page} ")
+    assert any(line.startswith(f"report: {page}/report ") for line in lines) is report
