@@ -6,8 +6,16 @@ in batches (one sort per batch instead of one per tile).
 
 A re-check continues an earlier run's merge instead of redoing it: it starts from that run's
 totals (:meth:`JobAccumulator.resume`), takes out the old summaries of the tiles that changed or
-went away (:meth:`JobAccumulator.remove`) and adds their new ones. Histograms and moments undo
-exactly; minimum and maximum do not, so the accumulator keeps them per tile (:class:`TileExtremes`).
+went away (:meth:`JobAccumulator.remove`) and adds their new ones. Histograms undo exactly;
+minimum and maximum do not, so the accumulator keeps them per tile (:class:`TileExtremes`).
+
+Order: tiles arrive in whatever order the cluster finishes them, and a merge of floating-point
+moments in another order differs in the last bits. So the moments (count, mean, M2) of a key are
+not taken from the running merge but from each tile's own moments, kept in the same per-tile
+table, combined by exactly rounded sums (math.fsum, see :meth:`TileExtremes.moments`): the
+result depends on the set of tiles only, not on their order, nor on whether a re-check resumed
+from stored totals (the stored table holds every kept tile's moments). Histogram counts are
+integers, added exactly in any order.
 """
 
 from __future__ import annotations
@@ -37,16 +45,22 @@ def keyed_summaries(result: TileResult) -> dict[Key, DhSummary]:
     return out
 
 
+#: Columns of a TileExtremes row: minimum, maximum, count, mean, M2 of one tile under one key.
+_ROW = 5
+
+
 class TileExtremes:
-    """The minimum and maximum of every key a tile contributed, per tile: what a merge cannot
-    take back. Sparse: a tile holds rows only for its own keys (the tile, the regions it touches,
-    their strata), so the table grows with the entries, not with tiles x keys."""
+    """The minimum, maximum and moments (count, mean, M2) of every key a tile contributed, per
+    tile: what a merge cannot take back, and what merges the moments in no particular order.
+    Sparse: a tile holds rows only for its own keys (the tile, the regions it touches, their
+    strata), so the table grows with the entries, not with tiles x keys."""
 
     def __init__(self) -> None:
         self.keys: list[Key] = []
         self._column: dict[Key, int] = {}
         self._rows: dict[str, tuple[NDArray[np.int64], NDArray[np.float64]]] = {}
         self._reduced: tuple[NDArray[np.float64], NDArray[np.int64]] | None = None
+        self._moments: dict[int, tuple[int, float, float]] | None = None
 
     def put(self, tile_id: str, entries: Mapping[Key, DhSummary]) -> None:
         for key in entries:
@@ -54,13 +68,16 @@ class TileExtremes:
                 self._column[key] = len(self.keys)
                 self.keys.append(key)
         columns = np.array([self._column[k] for k in entries], dtype=np.int64)
-        values = np.array([(s.minimum, s.maximum) for s in entries.values()], dtype=np.float64)
-        self._rows[tile_id] = (columns, values.reshape(-1, 2))
-        self._reduced = None
+        values = np.array(
+            [(s.minimum, s.maximum, s.count, s.mean, s.m2) for s in entries.values()],
+            dtype=np.float64,
+        )
+        self._rows[tile_id] = (columns, values.reshape(-1, _ROW))
+        self._reduced = self._moments = None
 
     def drop(self, tile_id: str) -> None:
         self._rows.pop(tile_id, None)
-        self._reduced = None
+        self._reduced = self._moments = None
 
     def of(self, key: Key) -> tuple[float, float]:
         """(minimum, maximum) of one key over the tiles present."""
@@ -76,6 +93,35 @@ class TileExtremes:
         column = self._column.get(key)
         return 0 if column is None else int(counts[column])
 
+    def moments(self, key: Key) -> tuple[int, float, float]:
+        """(count, mean, M2) of one key over the tiles present, whatever order they came in.
+
+        With n_i, mean_i, M2_i the tiles' own moments: N = sum n_i, mean = fsum(n_i mean_i) / N,
+        M2 = fsum(M2_i and n_i (mean_i - mean)^2) (the parallel-variance identity of Chan,
+        Golub and LeVeque, 1979, summed at once); math.fsum rounds each sum exactly, so the
+        order of the terms does not change a bit. (0, 0.0, 0.0) for a key without pixels."""
+        if self._moments is None:
+            self._moments = self._all_moments()
+        column = self._column.get(key)
+        return self._moments.get(-1 if column is None else column, (0, 0.0, 0.0))
+
+    def _all_moments(self) -> dict[int, tuple[int, float, float]]:
+        columns, values = self._concatenated()
+        counted = values[:, 2] > 0
+        columns, values = columns[counted], values[counted]
+        order = np.argsort(columns, kind="stable")
+        columns, values = columns[order], values[order]
+        starts = [int(i) for i in np.flatnonzero(np.diff(columns, prepend=-1))]
+        out = {}
+        for start, stop in zip(starts, [*starts[1:], columns.size], strict=True):
+            n, means, m2s = values[start:stop, 2], values[start:stop, 3], values[start:stop, 4]
+            total = int(n.sum())  # integers below 2**53: exact in any order
+            mean = math.fsum(n * means) / total
+            deviation = means - mean
+            m2 = math.fsum(np.concatenate([m2s, n * deviation * deviation]))
+            out[int(columns[start])] = (total, mean, m2)
+        return out
+
     def _reduce(self) -> tuple[NDArray[np.float64], NDArray[np.int64]]:
         if self._reduced is None:
             extremes = np.empty((len(self.keys), 2))
@@ -88,12 +134,13 @@ class TileExtremes:
 
     def _concatenated(self) -> tuple[NDArray[np.int64], NDArray[np.float64]]:
         if not self._rows:
-            return np.zeros(0, np.int64), np.zeros((0, 2))
+            return np.zeros(0, np.int64), np.zeros((0, _ROW))
         columns, values = zip(*self._rows.values(), strict=True)
         return np.concatenate(columns), np.concatenate(values)
 
     def to_arrays(self) -> dict[str, object]:
-        """For storage: tile ids, keys, and per row (tile index, key index, minimum, maximum)."""
+        """For storage: tile ids, keys, and per row (tile index, key index) and values
+        (minimum, maximum, count, mean, M2)."""
         tiles = sorted(self._rows)
         sizes = [self._rows[t][0].size for t in tiles]
         columns = [self._rows[t][0] for t in tiles]
@@ -103,7 +150,7 @@ class TileExtremes:
             "keys": list(self.keys),
             "tile": np.repeat(np.arange(len(tiles), dtype=np.int64), sizes),
             "key": np.concatenate(columns) if columns else np.zeros(0, np.int64),
-            "values": np.concatenate(values) if values else np.zeros((0, 2)),
+            "values": np.concatenate(values) if values else np.zeros((0, _ROW)),
         }
 
     @classmethod
@@ -115,6 +162,11 @@ class TileExtremes:
         key: NDArray[np.int64],
         values: NDArray[np.float64],
     ) -> TileExtremes:
+        """The table to_arrays stored; ValueError for a table without the tiles' moments (a
+        store written before they were kept: the re-check then recomputes every tile)."""
+        values = np.asarray(values, dtype=np.float64)
+        if values.size and (values.ndim != 2 or values.shape[1] != _ROW):
+            raise ValueError("the stored per-tile table has no moments (an older results store)")
         extremes = cls()
         extremes.keys = [(str(a), str(s)) for a, s in keys]
         extremes._column = {k: i for i, k in enumerate(extremes.keys)}
@@ -122,7 +174,7 @@ class TileExtremes:
         starts = np.searchsorted(tile[order], np.arange(len(tiles) + 1))
         for i, tile_id in enumerate(tiles):
             rows = order[starts[i] : starts[i + 1]]
-            extremes._rows[tile_id] = (key[rows].astype(np.int64), values[rows].reshape(-1, 2))
+            extremes._rows[tile_id] = (key[rows].astype(np.int64), values[rows].reshape(-1, _ROW))
         return extremes
 
 
@@ -187,15 +239,22 @@ class JobAccumulator:
             self._parts[key] = [dh_summary.merge_all(parts)]
 
     def summary(self, key: Key) -> DhSummary:
-        """The merged summary of one key (empty when nothing was added under it); minimum and
-        maximum come from the per-tile extremes, which stay right after a removal."""
+        """The merged summary of one key (empty when nothing was added under it): histogram
+        from the running merge; moments, minimum and maximum from the per-tile table (the same
+        bits whatever order the tiles came in, and right after a removal)."""
         parts = self._parts.get(key, [])
         merged = dh_summary.merge_all(parts)
         if len(parts) > 1:
             self._parts[key] = [merged]
         if merged.count:
             lo, hi = self._extremes.of(key)
-            merged = replace(merged, minimum=lo, maximum=hi)
+            count, mean, m2 = self._extremes.moments(key)
+            if count != merged.count:
+                raise ValueError(
+                    f"{key}: the tiles' counts ({count}) and the merged histogram "
+                    f"({merged.count}) disagree"
+                )
+            merged = replace(merged, mean=mean, m2=m2, minimum=lo, maximum=hi)
         return merged
 
     def totals(self) -> dict[Key, DhSummary]:
