@@ -416,9 +416,10 @@ def _run_into(
         }
     overall = area_entry(acc.overall, acc.strata_of(ALL), **rule)
     clock.mark("statistics")
-    error_model = _error_model(job, options, errors, overall, region_docs, coregistration)
-    if error_model is not None:
-        error_model, overall, region_docs = error_model
+    fitted = _error_model(job, options, errors, overall, region_docs, coregistration)
+    error_model = None
+    if fitted is not None:
+        error_model, overall, region_docs = fitted
     clock.mark("error_model")
     _write_tables(store, tile_rows, overall, region_docs, coregistration)
     clock.mark("tables")

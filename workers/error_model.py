@@ -142,9 +142,13 @@ def tile_error_sample(
     inside = _within_limits(values, rule=options.outlier_rule, factor=options.outlier_factor)
     flat, values = flat[inside], values[inside]
     slope_flat = slope.ravel()[flat]
-    slope_key = np.clip(np.searchsorted(SLOPE_EDGES_DEG, slope_flat, side="right") - 1, 0, len(SLOPE_EDGES_DEG) - 2)
+    slope_key = np.clip(
+        np.searchsorted(SLOPE_EDGES_DEG, slope_flat, side="right") - 1, 0, len(SLOPE_EDGES_DEG) - 2
+    )
     curv = np.abs(laplacian(reference, px=px, py=py).ravel()[flat]) * 100
-    curv_key = np.where(np.isfinite(curv), np.searchsorted(CURVATURE_EDGES, curv, side="right") - 1, -1)
+    curv_key = np.where(
+        np.isfinite(curv), np.searchsorted(CURVATURE_EDGES, curv, side="right") - 1, -1
+    )
     slope_bins = _binned(values, slope_key, len(SLOPE_EDGES_DEG) - 1)
     curvature_bins = _binned(values, curv_key, len(CURVATURE_EDGES))
     rng = np.random.default_rng([options.seed, zlib.crc32(tile_id.encode())])
@@ -205,7 +209,10 @@ class ErrorModelAccumulator:
         self.stable += sample.stable
         self.outside_limits += sample.outside_limits
         self.pixel_areas.append(sample.pixel_area_m2)
-        for mine, theirs in ((self.slope_bins, sample.slope_bins), (self.curvature_bins, sample.curvature_bins)):
+        for mine, theirs in (
+            (self.slope_bins, sample.slope_bins),
+            (self.curvature_bins, sample.curvature_bins),
+        ):
             for k, s in theirs.items():
                 mine[k] = dh_summary.merge(mine[k], s) if k in mine else s
         for area, c in sample.counts.items():
@@ -256,7 +263,9 @@ def common_metric(points: Mapping[str, NDArray[np.float64]]) -> NDArray[np.float
         p = points[c]
         x, y = p[:, 1], p[:, 2]
         if not projected or c != projected[0]:
-            x, y = Transformer.from_crs(CRS.from_user_input(c), target, always_xy=True).transform(x, y)
+            x, y = Transformer.from_crs(CRS.from_user_input(c), target, always_xy=True).transform(
+                x, y
+            )
         out.append(np.column_stack([x, y, p[:, 3], p[:, 4]]))
     return np.vstack(out)
 
@@ -401,8 +410,14 @@ def _bin_table(bins: Mapping[int, DhSummary], edges: Sequence[float]) -> list[di
         lo, hi = float(edges[k]), float(edges[k + 1])
         centre = 0.5 * (lo + hi) if np.isfinite(hi) else lo
         rows.append(
-            {"low": lo, "high": hi, "centre_deg": centre, "count": int(stats["count"] or 0),
-             "median": stats["median"], "nmad": stats["nmad"]}
+            {
+                "low": lo,
+                "high": hi,
+                "centre_deg": centre,
+                "count": int(stats["count"] or 0),
+                "median": stats["median"],
+                "nmad": stats["nmad"],
+            }
         )
     return rows
 
@@ -568,7 +583,11 @@ def attach_error_model(
     """Fit the model and give the summary.json section, the overall entry and the region
     entries with their ``uncertainty`` (see with_uncertainty)."""
     model = fit_error_model(errors, max_distance_m=max_distance_m, seed=seed)
-    layout = {"with_landcover": with_landcover, "classes": classes, "slope_edges": slope_edges}
+    layout: dict[str, Any] = {
+        "with_landcover": with_landcover,
+        "classes": classes,
+        "slope_edges": slope_edges,
+    }
     overall = with_uncertainty(overall, model, errors.counts.get("*"), **layout)
     regions = [
         with_uncertainty(r, model, errors.counts.get(r["region"]), **layout) for r in regions

@@ -114,7 +114,8 @@ def compare(
     )
     worse = d_nmad > limits.nmad_worse_fraction * before["nmad"] or d_nmad > limits.nmad_worse_m
     better = -d_nmad > limits.nmad_worse_fraction * before["nmad"] or -d_nmad > limits.nmad_worse_m
-    flags, noise = [], []
+    flags: list[str] = []
+    noise: list[str] = []
     if worse:
         flag = f"nmad worse by {d_nmad:.3f} m ({d_nmad / before['nmad']:+.0%})"
         (noise if nmad_is_noise else flags).append(flag)

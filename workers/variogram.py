@@ -112,10 +112,14 @@ def spherical(h: NDArray[np.float64], range_m: float) -> NDArray[np.float64]:
     return 1.5 * u - 0.5 * u**3  # type: ignore[no-any-return]
 
 
-def distance_edges(min_distance_m: float, max_distance_m: float, n_bins: int) -> NDArray[np.float64]:
+def distance_edges(
+    min_distance_m: float, max_distance_m: float, n_bins: int
+) -> NDArray[np.float64]:
     """Log-spaced bin edges: the first bin is [0, min_distance_m), then n_bins - 1 geometric."""
     if not 0 < min_distance_m < max_distance_m:
-        raise ValueError(f"need 0 < min_distance_m < max_distance_m, got {min_distance_m}, {max_distance_m}")
+        raise ValueError(
+            f"need 0 < min_distance_m < max_distance_m, got {min_distance_m}, {max_distance_m}"
+        )
     return np.concatenate([[0.0], np.geomspace(min_distance_m, max_distance_m, n_bins)])
 
 
@@ -218,7 +222,9 @@ def _fit_spherical(
     return VariogramModel(float(p[0]), tuple(comps))
 
 
-def _aic(m: VariogramModel, h: NDArray[np.float64], g: NDArray[np.float64], w: NDArray[np.float64]) -> float:
+def _aic(
+    m: VariogramModel, h: NDArray[np.float64], g: NDArray[np.float64], w: NDArray[np.float64]
+) -> float:
     rss = float(np.sum(w * (g - m.gamma(h)) ** 2) / w.sum())
     k = 1 + 2 * len(m.components)
     return h.size * np.log(max(rss, 1e-300)) + 2 * k

@@ -96,9 +96,13 @@ def test_spread_of_a_region_mean_matches_the_predicted_standard_error():
     n, range_m, sill, nugget = 256, 50.0, 1.0, 0.3
     fields = spherical_fields(n, range_m=range_m, sill=sill, count=300, rng=rng)
     inside = disc(n, 60)  # radius 300 m = 6 ranges
-    means = [(f[inside] + np.sqrt(nugget) * rng.standard_normal(inside.sum())).mean() for f in fields]
+    means = [
+        (f[inside] + np.sqrt(nugget) * rng.standard_normal(inside.sum())).mean() for f in fields
+    ]
     model = vg.VariogramModel(nugget, (vg.Component(range_m, sill),))
-    predicted = np.sqrt(vg.mean_variance(model, n=int(inside.sum()), area_m2=inside.sum() * PIXEL**2))
+    predicted = np.sqrt(
+        vg.mean_variance(model, n=int(inside.sum()), area_m2=inside.sum() * PIXEL**2)
+    )
     assert np.std(means) == pytest.approx(predicted, rel=0.2)
     # the same with the model fitted on one realisation
     fitted = vg.fit_variogram(sampled_variogram(fields[0], k=30_000, rng=rng, max_m=600.0))
@@ -168,11 +172,22 @@ def test_accumulator_keeps_the_same_points_in_any_order():
         rng = np.random.default_rng(i)
         k = 300
         return em.TileErrorSample(
-            "EPSG:32632", 25.0, {}, {}, rng.random(k), rng.random(k), rng.random(k),
-            rng.random(k), rng.random(k), {"*": np.ones((1, em.DEGREE_BINS), np.int64)},
+            "EPSG:32632",
+            25.0,
+            {},
+            {},
+            rng.random(k),
+            rng.random(k),
+            rng.random(k),
+            rng.random(k),
+            rng.random(k),
+            {"*": np.ones((1, em.DEGREE_BINS), np.int64)},
         )
 
-    forward, backward = em.ErrorModelAccumulator(max_points=1000), em.ErrorModelAccumulator(max_points=1000)
+    forward, backward = (
+        em.ErrorModelAccumulator(max_points=1000),
+        em.ErrorModelAccumulator(max_points=1000),
+    )
     for i in range(20):
         forward.add(fake(i))
         backward.add(fake(19 - i))
@@ -215,6 +230,7 @@ def test_a_change_within_the_combined_uncertainty_is_noise():
     verdict = compare(after, before, limits, uncertainty_before=wide, uncertainty_after=wide)
     assert verdict["verdict"] == "within_noise"
     assert compare(after, before, limits)["verdict"] == "improved"
-    assert compare(before, before, limits, uncertainty_before=wide, uncertainty_after=wide)[
-        "verdict"
-    ] == "unchanged"
+    assert (
+        compare(before, before, limits, uncertainty_before=wide, uncertainty_after=wide)["verdict"]
+        == "unchanged"
+    )
