@@ -40,7 +40,7 @@ from service.cluster import ClusterConnection, cluster_connection
 from service.deps import Authorized
 from service.jobs import JobDispatcher, Runner, current_job_id
 from service.jobstore import JobStore, SqliteJobStore
-from service.negotiation import HeadAsGet
+from service.negotiation import AcceptsJson, HeadAsGet
 from service.notify import Notifier, Resolver, system_resolver
 from service.openapi import serve_openapi30
 from service.public_base import PublicBase
@@ -191,7 +191,7 @@ def create_app(
     app.include_router(pages.pages)  # browser navigations only; before the JSON routes
     app.include_router(jobs.router, dependencies=[Authorized])
     app.include_router(pages.reports, dependencies=[Authorized])
-    app.include_router(schedules.router, dependencies=[Authorized])
+    app.include_router(schedules.router, dependencies=[Authorized, AcceptsJson])
     app.include_router(health.router)
     app.mount("/static", StaticFiles(directory=pages.STATIC_DIR), name="static")
     app.add_middleware(BodyLimit, max_bytes=settings.max_body_bytes)
