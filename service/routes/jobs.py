@@ -22,6 +22,7 @@ from service.jobstore import (
     DISMISSED,
     FAILED,
     RUNNING,
+    SUCCESSFUL,
     JobRecord,
     JobStatus,
     JobStore,
@@ -55,6 +56,9 @@ router = APIRouter(prefix="/jobs", tags=["Jobs"], responses=responses(401, 406))
 ZARR = "application/vnd+zarr"
 MAX_OFFSET = 10**9
 MAX_LIMIT = 10_000
+LISTED_BY_DEFAULT = (RUNNING, SUCCESSFUL, FAILED, DISMISSED)
+"""The statuses /jobs lists when no status is asked for (not accepted: OGC 18-062r2,
+/req/job-list/status-response)."""
 """The largest page (OGC API - Processes 1.0, job-list: limit up to 10,000)."""
 JobId = Annotated[str, Path(alias="jobID", description="The job's id.")]
 
@@ -134,7 +138,9 @@ def list_jobs(
     type, creation time and duration, and page with limit and offset."""
     negotiate(request, (JSON,))
     limit = min(limit, MAX_LIMIT)
-    statuses = set(status) if status else None
+    # OGC 18-062r2, /req/job-list/status-response: without a status parameter only running
+    # and finished jobs are listed (a waiting job: status=accepted)
+    statuses = set(status) if status else set(LISTED_BY_DEFAULT)
     if process_id is not None and PROCESS_ID not in process_id:
         statuses = set()
     if job_type is not None and "process" not in job_type:
