@@ -7,7 +7,8 @@ job spec and the job's choice of outputs.
                 "test": {"value": {...}},         a qualified value (mediaType etc. beside it)
                 "region": {"href": "r.json"}},    a reference: a JSON/YAML file in the data roots
      "outputs": {"summary": {}},                  which outputs the results show (default: all)
-     "response": "document" | "raw",              results as a document, or one output as is
+     "response": "document" | "raw",              a results document, or one output as is
+                                                  (summary: the document; results: 204 + Link)
      "subscriber": {...}}                         refused: callbacks are not offered
 
 ``spec_inputs`` unwraps the inputs (a reference is read from a file inside the data roots; remote
@@ -96,11 +97,11 @@ class Execution:
             wanted = (outputs or {}).get(name)
             _check_output(name, {} if wanted is None else wanted)
         kind: ResponseType = "raw" if response == "raw" else "document"
-        if kind == "raw" and chosen != ("summary",):
+        if kind == "raw" and len(chosen) != 1:
             raise NotSupportedError(
-                "response: 'raw' is offered for the one output 'summary' "
-                '(send "outputs": {"summary": {}}); results.zarr is a folder, transmitted by '
-                "reference in a results document"
+                "response: 'raw' is offered for one output at a time (no multipart): send "
+                '"outputs": {"summary": {}} for the summary document itself, or '
+                '{"results": {}} for a Link header naming results.zarr'
             )
         return cls(outputs=chosen, response=kind)
 

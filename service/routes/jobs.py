@@ -246,15 +246,15 @@ def job_results(
     store: StoreDep,
     dispatcher: DispatcherDep,
     principal: PrincipalDep,
-) -> dict[str, Any]:
+) -> Any:
     """The results of a successful job: a results document with the outputs asked for at
     execution (summary as a qualified value, results.zarr by reference), or, when the
-    execution asked for ``response: raw``, the summary document itself."""
+    execution asked for ``response: raw``, the one output asked for as is."""
     record = _record(store, job_id, principal)
     summary = _summary_of(dispatcher, record)
     execution = load_execution(dispatcher.results_dir, job_id)
-    if execution.response == "raw":
-        return summary
+    if execution.response == "raw":  # one output (OGC 18-062r2, job-results-async-raw-*)
+        return summary if execution.outputs == ("summary",) else _results_by_link(request, job_id)
     outputs = {
         "summary": {"value": summary, "mediaType": JSON},
         "results": _results_link(request, job_id),
@@ -298,6 +298,12 @@ def job_output(
     summary = _summary_of(dispatcher, _record(store, job_id, principal))
     if output_id == "summary":
         return summary
+    return _results_by_link(request, job_id)
+
+
+def _results_by_link(request: Request, job_id: str) -> Response:
+    """results.zarr by reference, raw: 204 with a Link header (OGC 18-062r2,
+    /req/core/process-execute-sync-raw-ref)."""
     link = _results_link(request, job_id)
     return Response(
         status_code=204,

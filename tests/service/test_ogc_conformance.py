@@ -366,7 +366,7 @@ def test_the_results_document_shows_the_outputs_asked_for(api, spec, runner, wai
 
 def test_raw_response_gives_the_summary_itself(api, spec, runner, wait_for):
     refused = _execute(api, {"inputs": spec, "response": "raw"})
-    assert refused.status_code == 400  # both outputs raw would need multipart
+    assert refused.status_code == 400  # both outputs raw would need multipart (not offered)
     assert "raw" in refused.json()["detail"]
     response = _execute(api, {"inputs": spec, "response": "raw", "outputs": {"summary": {}}})
     assert response.status_code == 201, response.text
@@ -376,6 +376,18 @@ def test_raw_response_gives_the_summary_itself(api, spec, runner, wait_for):
     raw = api.get(f"/jobs/{job_id}/results")
     assert raw.headers["content-type"] == "application/json"
     assert raw.json()["job"]["name"] == spec["name"]  # the document itself, not wrapped
+
+
+def test_raw_response_of_results_is_a_link_header(api, spec, runner, wait_for):
+    """OGC 18-062r2, /req/core/process-execute-sync-raw-ref: 204 and a Link header."""
+    response = _execute(api, {"inputs": spec, "response": "raw", "outputs": {"results": {}}})
+    assert response.status_code == 201, response.text
+    job_id = response.json()["jobID"]
+    runner.gate.set()
+    wait_for(api, job_id, lambda d: d["status"] == "successful")
+    raw = api.get(f"/jobs/{job_id}/results")
+    assert raw.status_code == 204 and raw.content == b""
+    assert raw.headers["link"].startswith(f"<http://testserver/jobs/{job_id}/results.zarr>;")
 
 
 def test_one_output_of_a_job(api, runner, submit, wait_for):
