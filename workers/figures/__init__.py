@@ -30,6 +30,7 @@ from shapely.geometry.base import BaseGeometry
 from workers import summary as dhs
 from workers.difference import block_mean
 from workers.figures import compute, draw
+from workers.figures.error_model import ERROR_MODEL_NAME, build_error_model
 from workers.merge import ALL
 from workers.summary_store import ALL_PART, read_job_totals
 from workers.writers import ZARR_NAME
@@ -292,6 +293,7 @@ BUILDERS: list[tuple[str, Callable[[FigureContext], Drawn | None]]] = [
     (RECHECK_MAP_NAME, build_recheck_map),
     (RECHECK_REGIONS_NAME, build_recheck_regions),
     (SHIFTS_NAME, build_tile_shifts),
+    (ERROR_MODEL_NAME, build_error_model),
 ]
 
 
