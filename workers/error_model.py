@@ -227,12 +227,19 @@ class ErrorModelAccumulator:
             self._trim()
 
     def _trim(self) -> None:
-        """Keep the max_points rows of smallest priority (order-independent)."""
-        every = np.concatenate([p[:, 0] for p in self.points.values()])
-        if every.size <= self.max_points:
+        """Keep the max_points rows of smallest priority (ties broken by x, y: the same rows
+        whatever the order the tiles came in)."""
+        if sum(len(p) for p in self.points.values()) <= self.max_points:
             return
-        cut = np.partition(every, self.max_points - 1)[self.max_points - 1]
-        self.points = {c: p[p[:, 0] <= cut] for c, p in self.points.items()}
+        tagged = [
+            np.column_stack([p, np.full(len(p), i)]) for i, p in enumerate(self.points.values())
+        ]
+        every = np.vstack(tagged)
+        order = np.lexsort((every[:, 2], every[:, 1], every[:, 0]))[: self.max_points]
+        kept = every[order]
+        self.points = {
+            crs: kept[kept[:, 5] == i, :5] for i, crs in enumerate(list(self.points))
+        }
 
     def samples(self) -> NDArray[np.float64]:
         """(x, y, dh, slope) of the kept samples in one metric CRS (see common_metric)."""
