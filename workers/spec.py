@@ -15,8 +15,10 @@ to their data root (workers/confine.py: shown); without data roots as resolved.
 
 from __future__ import annotations
 
+import fnmatch
 import glob
 import json
+import os
 from collections.abc import Callable, Iterable, Iterator, Sequence
 from dataclasses import dataclass
 from pathlib import Path
@@ -517,12 +519,13 @@ def _expand_tiles(
     patterns = [tiles] if isinstance(tiles, str) else list(tiles)
     found: list[Path] = []
     budget = [MAX_FILES_PER_FIELD]
+    listings: dict[Path, list[str]] = {}  # a folder many patterns look into is listed once
     for pattern in patterns:
         path = _resolve_path(pattern, base_dir, field, roots)
         if _is(path.is_dir):
             matches = sorted(_listed(_folder_tiles(path), budget, field))
         elif glob.has_magic(str(path)):
-            matches = sorted(_listed(map(Path, glob.iglob(str(path))), budget, field))
+            matches = sorted(_listed(_globbed(path, listings), budget, field))
         elif _is(path.is_file):
             matches = [path]
         else:
@@ -540,6 +543,24 @@ def _expand_tiles(
         found.extend(matches)
     unique = tuple(dict.fromkeys(found))
     return unique
+
+
+def _globbed(pattern: Path, listings: dict[Path, list[str]]) -> Iterator[Path]:
+    """What glob.glob gives for pattern; with magic in the file name only, from one listing of
+    its folder per resolve (names starting with '.' only for a pattern starting with '.')."""
+    folder, name = pattern.parent, pattern.name
+    if glob.has_magic(str(folder)):
+        yield from map(Path, glob.iglob(str(pattern)))
+        return
+    if folder not in listings:
+        try:
+            listings[folder] = sorted(os.listdir(folder))
+        except OSError:
+            listings[folder] = []
+    hidden = name.startswith(".")
+    for entry in fnmatch.filter(listings[folder], name):
+        if hidden or not entry.startswith("."):
+            yield folder / entry
 
 
 def _folder_tiles(folder: Path) -> Iterator[Path]:

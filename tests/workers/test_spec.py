@@ -107,3 +107,51 @@ def test_symlinked_tile_leading_outside_the_roots_is_refused(tree: Path, tmp_pat
     (tree / "test" / "link.tif").symlink_to(outside)
     with pytest.raises(DataRootError, match="link.tif leads outside"):
         resolve(parse_spec(minimal()), base_dir=tree, data_roots=[tree])
+
+
+# --- bounds and unusable paths (issue 17) ------------------------------------------------------
+
+
+@pytest.mark.parametrize(
+    ("tiles", "why"),
+    [
+        ("test/a\x00.tif", "control characters"),
+        ("test/" + "a" * 2000, "2,005 characters"),
+        (["test/a.tif"] * 1001, "1 to 1,000 paths"),
+        ([f"test/{i}*.tif" for i in range(101)], "at most 100 glob patterns"),
+    ],
+)
+def test_path_bounds_are_spec_errors_naming_the_field(tiles, why):
+    with pytest.raises(SpecError, match=r"test\.tiles: ") as refused:
+        parse_spec(minimal(test={"tiles": tiles}))
+    assert why in str(refused.value)
+
+
+def test_an_unknown_user_and_an_over_long_name_are_spec_errors(tree: Path):
+    with pytest.raises(SpecError, match=r"test\.tiles: cannot expand '~nosuchuser'"):
+        resolve(parse_spec(minimal(test={"tiles": "~nosuchuser/a.tif"})), base_dir=tree)
+    with pytest.raises(SpecError, match=r"region\.file: "):
+        resolve(parse_spec(minimal(region={"file": "x" * 300 + ".geojson"})), base_dir=tree)
+
+
+def test_globs_expand_as_glob_does_and_the_file_budget_stops_listing(tree: Path, monkeypatch):
+    import glob
+
+    import workers.spec as spec_module
+
+    (tree / "test" / ".hidden.tif").write_bytes(b"")
+    patterns = ["test/*.tif", "test/.*.tif", "test/[ab].tif", "*/a.tif"]
+    for pattern in patterns:
+        job = resolve(parse_spec(minimal(test={"tiles": pattern})), base_dir=tree)
+        # glob.glob is the reference for what a pattern matches
+        assert list(job.test_tiles) == sorted(Path(p) for p in glob.glob(str(tree / pattern)))
+    monkeypatch.setattr(spec_module, "MAX_FILES_PER_FIELD", 1)
+    with pytest.raises(SpecError, match=r"test\.tiles: the patterns and folders list more than 1"):
+        resolve(parse_spec(minimal(test={"tiles": ["test/a.tif", "test/*.tif"]})), base_dir=tree)
+
+
+def test_a_resolved_job_keeps_its_roots_and_shows_paths_relative_to_them(tree: Path):
+    job = resolve(parse_spec(minimal()), base_dir=tree, data_roots=[tree])
+    assert job.data_roots == (str(tree.resolve()),)
+    assert job.shown(job.test_tiles[0]) == "test/a.tif"
+    assert resolve(parse_spec(minimal()), base_dir=tree).data_roots is None
