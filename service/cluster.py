@@ -244,7 +244,10 @@ class JobClient:
         cancels all when it loses the scheduler)."""
         if self.cancelled_by_us:
             return False
-        return any(getattr(f, "status", None) == "cancelled" for f in self._live())
+        return any(
+            getattr(f, "status", None) == "cancelled" and not getattr(f, "_cleared", False)
+            for f in self._live()
+        )  # a future the job released (Future.release) also reads "cancelled": not lost
 
     def stalled_for(self) -> float:
         """Seconds since a task of the job last finished, while some are waiting (0 when none
