@@ -8,6 +8,8 @@
   const JOB_POLL_MS = 1000;
   const LIST_POLL_MS = 3000;
   const FINISHED = ["successful", "failed", "dismissed"];
+  // every status, waiting jobs included (without a status parameter /jobs leaves them out)
+  const LISTED = ["accepted", "running", ...FINISHED].map((s) => "status=" + s).join("&");
   const body = document.body;
   const base = body.dataset.base || "";
   const $ = (id) => document.getElementById(id);
@@ -79,7 +81,7 @@
   async function showList() {
     let response;
     try {
-      response = await api("/jobs?limit=100");
+      response = await api("/jobs?limit=100&" + LISTED);
     } catch (e) {
       if (!(e instanceof Unauthorized)) $("list-state").textContent = "cannot reach the server";
       return e instanceof Unauthorized ? null : LIST_POLL_MS;
