@@ -397,9 +397,9 @@ class ResolvedJob:
     checkpoint_file: Path | None = None
     data_roots: Roots = None
 
-    def shown(self, path: str | Path) -> str:
+    def shown(self, path: str | Path | None) -> str:
         """path as messages and summary.json show it (relative to its data root)."""
-        return shown(path, self.data_roots)
+        return "(none)" if path is None else shown(path, self.data_roots)
 
 
 def parse_spec(data: dict[str, Any]) -> JobSpec:
