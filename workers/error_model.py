@@ -104,6 +104,23 @@ def laplacian(heights: NDArray[np.floating], *, px: float, py: float) -> NDArray
     return out
 
 
+def laplacian_at(
+    heights: NDArray[np.floating], flat: NDArray[np.intp], *, px: float, py: float
+) -> NDArray[np.float64]:
+    """laplacian(heights) at the flat indices only (NaN on the outer ring)."""
+    z = np.asarray(heights).ravel()
+    rows, cols = heights.shape
+    r, c = np.divmod(flat, cols)
+    inner = (r > 0) & (r < rows - 1) & (c > 0) & (c < cols - 1)
+    i = flat[inner]
+    centre = 2.0 * z[i].astype(np.float64)
+    out = np.full(flat.shape, np.nan)
+    out[inner] = (z[i + 1] - centre + z[i - 1]) / (px * px) + (
+        z[i + cols] - centre + z[i - cols]
+    ) / (py * py)
+    return out
+
+
 def tile_error_sample(
     dh: NDArray[np.floating],
     *,
@@ -136,7 +153,9 @@ def tile_error_sample(
     if landcover is not None:
         kept = [c for c in classes if c.group != "excluded"]
         open_codes = [k for k, c in enumerate(kept) if c.group == NON_VEGETATED]
-        stable &= np.isin(codes, open_codes)
+        is_open = np.zeros(256, dtype=bool)
+        is_open[open_codes] = True
+        stable &= is_open[codes]
     (flat,) = np.nonzero(stable.ravel())
     values = np.asarray(dh, np.float64).ravel()[flat]
     inside = _within_limits(values, rule=options.outlier_rule, factor=options.outlier_factor)
@@ -145,7 +164,7 @@ def tile_error_sample(
     slope_key = np.clip(
         np.searchsorted(SLOPE_EDGES_DEG, slope_flat, side="right") - 1, 0, len(SLOPE_EDGES_DEG) - 2
     )
-    curv = np.abs(laplacian(reference, px=px, py=py).ravel()[flat]) * 100
+    curv = np.abs(laplacian_at(reference, flat, px=px, py=py)) * 100
     curv_key = np.where(
         np.isfinite(curv), np.searchsorted(CURVATURE_EDGES, curv, side="right") - 1, -1
     )

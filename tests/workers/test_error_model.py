@@ -234,3 +234,16 @@ def test_a_change_within_the_combined_uncertainty_is_noise():
         compare(before, before, limits, uncertainty_before=wide, uncertainty_after=wide)["verdict"]
         == "unchanged"
     )
+
+
+def test_laplacian_at_matches_the_full_grid():
+    rng = np.random.default_rng(2)
+    z = rng.random((30, 40)) * 10
+    flat = np.arange(z.size)
+    full = em.laplacian(z, px=5.0, py=4.0).ravel()
+    assert np.allclose(em.laplacian_at(z, flat, px=5.0, py=4.0), full, equal_nan=True)
+    # a paraboloid z = x^2 + 2 y^2 has Laplacian 2 + 4 = 6 everywhere inside (exact)
+    y, x = np.indices((20, 20)) * 1.0
+    para = x**2 + 2 * y**2
+    inside = em.laplacian(para, px=1.0, py=1.0)[1:-1, 1:-1]
+    assert np.allclose(inside, 6.0)
