@@ -10,7 +10,9 @@ short bins, fewer for the long ones), and at most ``4 x target_pairs`` pairs are
 
 Model: gamma(h) = nugget + sum_k sill_k * sph(h / range_k), sph(u) = 1.5 u - 0.5 u^3 for u < 1,
 1 beyond (a spherical covariance, valid in two and three dimensions). Fitted with
-scipy.optimize.curve_fit, each bin weighted by its pair count; nugget only, one and two spherical
+scipy.optimize.curve_fit, each bin weighted by its pair count, ranges bounded by the longest
+distance sampled (a longer one cannot be estimated: the standard error of areas wider than
+``max_distance_m`` may be understated); nugget only, one and two spherical
 components are fitted and the one with the smallest Akaike information criterion (on the weighted
 residual sum of squares) is kept; a component whose range is below the first bin's distance is
 indistinguishable from the nugget and joins it, and one with less than 5 % of the total sill is
@@ -205,9 +207,9 @@ def _fit_spherical(
     low: list[float] = [0.0]
     high: list[float] = [2 * top]
     for a in guesses:
-        p0 += [top / n_comp, float(np.clip(a, h[0], 2 * h_max))]
+        p0 += [top / n_comp, float(np.clip(a, h[0], h_max))]
         low += [0.0, float(h[0]) * 0.1]
-        high += [2 * top, 4 * h_max]
+        high += [2 * top, h_max]
     p0 = list(np.clip(p0, np.array(low) + 1e-12, np.array(high) - 1e-12))
     try:
         p, _ = curve_fit(
