@@ -74,7 +74,8 @@ class TileOptions:
     def from_spec(
         cls, spec: JobSpec, *, grid_dirs: Sequence[str] = DEFAULT_GRID_DIRS
     ) -> TileOptions:
-        reference = spec.reference or TileSource(tiles=[])
+        # no reference (checkpoints only): the defaults of a source (metre, ellipsoidal)
+        reference = spec.reference or TileSource.model_construct(tiles=[])
         return cls(
             test_units=spec.test.units,
             test_vertical_crs=spec.test.vertical_crs,
