@@ -18,10 +18,11 @@ A scheduled run (``service.scheduler``) carries its schedule's id and may name a
 ``on_end`` hears of every job's end (``service.notify`` sends the schedules' webhooks).
 
 Faults: a failed job records its ``cause`` (``CAUSES``, from :func:`failure_of`). A watchdog
-thread fails a job none of whose waiting tasks finished for ``stall_timeout_s`` ("no tile
-finished for N s; workers: W"); a job whose futures the lost scheduler cancelled fails as
-``cluster-unavailable``; a job whose record cannot be written fails with the store's error
-(retried until written; logged, and ``store_problem`` tells the readiness probe).
+thread fails a job none of whose waiting tasks finished for ``stall_timeout_s`` while no worker
+runs any of them ("no tile finished for N s; workers: W": every worker gone, or none takes
+them; a task that runs for ever is not caught); a job whose futures the lost scheduler
+cancelled fails as ``cluster-unavailable``; a job whose record cannot be written fails with the
+store's error (retried until written; logged, and ``store_problem`` tells the readiness probe).
 
 Ownership: each dispatcher is one runner instance (``host:pid:random``), written into every job
 it takes; it renews a lease in the store every ``watch_interval_s``. :func:`recover_orphans`
@@ -318,7 +319,8 @@ class JobDispatcher:
     """Runs jobs on a thread pool against one Dask client and keeps the store up to date.
 
     client is a ClusterConnection (or a bare client, kept as it is). stall_timeout_s: a job
-    none of whose waiting tasks finished for that long fails (None: never). lease_s: how long
+    none of whose waiting tasks finished for that long, and none of which a worker runs now,
+    fails (None: never). lease_s: how long
     this instance's lease lasts without renewal; watch_interval_s: the watchdog's tick (lease
     renewal, stall checks, orphan sweep, retry of unrecorded ends). Call :meth:`start` to run
     the watchdog.
@@ -530,8 +532,8 @@ class JobDispatcher:
             if active.client.lost():
                 active.failure = (CLUSTER, LOST_MESSAGE)
                 continue
-            if active.client.stalled_for() < limit:
-                continue
+            if active.client.stalled_for() < limit or active.client.busy():
+                continue  # progress, or a slow task still running on a worker
             workers = _workers(self._cluster)
             active.failure = (CLUSTER, f"no tile finished for {limit:g} s; workers: {workers}")
             log.warning("job stalled: %s", active.failure[1], extra={"job_id": job_id})

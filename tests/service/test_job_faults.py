@@ -130,6 +130,11 @@ class StuckClient:
     def nthreads(self) -> dict[str, int]:
         return {f"tcp://127.0.0.1:{n}": 1 for n in range(self.workers)}
 
+    def processing(self) -> dict[str, list[str]]:
+        """What each worker runs: the pending tasks, shared out, when there are workers."""
+        pending = [f.key for f in self.futures if f.status == "pending"]
+        return {w: pending[int(w.rsplit(":", 1)[1]) :: self.workers] for w in self.nthreads()}
+
 
 @pytest.fixture
 def job() -> ResolvedJob:
@@ -213,6 +218,29 @@ def test_a_job_whose_tasks_never_finish_fails_after_the_stall_time(make_dispatch
     assert ended is not None and ended.status == FAILED and ended.cause == CLUSTER
     assert ended.message == "no tile finished for 0.2 s; workers: 0"
     assert client.cancelled == [f"audit-tile-t0-{record.job_id}"]  # its task was cancelled
+
+
+def test_a_slow_task_still_running_on_a_worker_is_not_a_stall(make_dispatcher, job):
+    client, runner = StuckClient(workers=1), StepRunner()
+    runner.submit_task = True
+    dispatcher = make_dispatcher(
+        MemoryJobStore(), runner, client=client, stall_timeout_s=0.05, watch_interval_s=10
+    )
+    record = dispatcher.submit(job, {})
+    deadline = time.monotonic() + 10
+    while not client.futures:
+        assert time.monotonic() < deadline
+        time.sleep(0.01)
+    for _ in range(5):
+        time.sleep(0.06)
+        dispatcher.watch_once()
+    assert dispatcher.active() == 1 and client.cancelled == []  # still waiting for it
+    client.workers = 0  # its worker is gone: now it is a stall
+    time.sleep(0.06)
+    dispatcher.watch_once()
+    wait_ended(dispatcher)
+    ended = dispatcher.store.get(record.job_id)
+    assert ended is not None and ended.message == "no tile finished for 0.05 s; workers: 0"
 
 
 def test_without_a_stall_time_a_waiting_job_is_left_waiting(make_dispatcher, job):
