@@ -247,3 +247,22 @@ def test_laplacian_at_matches_the_full_grid():
     para = x**2 + 2 * y**2
     inside = em.laplacian(para, px=1.0, py=1.0)[1:-1, 1:-1]
     assert np.allclose(inside, 6.0)
+
+
+def test_the_spec_section_is_opt_in_with_defaults_and_checked():
+    from workers.errors import SpecError
+    from workers.spec import parse_spec
+    from workers.tile_task import TileOptions
+
+    base = {"name": "j", "test": {"tiles": "t/*.tif"}, "reference": {"tiles": "r/*.tif"}}
+    assert parse_spec(base).error_model is None
+    assert TileOptions.from_spec(parse_spec(base)).error_model is None
+    spec = parse_spec(base | {"error_model": {"seed": 3}})
+    assert spec.error_model is not None
+    assert (spec.error_model.max_distance_m, spec.error_model.samples_per_tile) == (5000.0, 2000)
+    options = TileOptions.from_spec(spec).error_model
+    assert options == em.ErrorModelOptions(seed=3, samples_per_tile=2000)
+    with pytest.raises(SpecError, match="error_model.max_distance_m"):
+        parse_spec(base | {"error_model": {"max_distance_m": -1}})
+    with pytest.raises(SpecError, match="error_model.ranges"):
+        parse_spec(base | {"error_model": {"ranges": 2}})
