@@ -4,7 +4,9 @@ from __future__ import annotations
 
 import os
 
-from service.cluster import WORKER_ENV
+import pytest
+
+from service.cluster import PRE_SPAWN_ENV, WORKER_ENV
 
 
 def _worker_env() -> dict[str, str | None]:
@@ -16,3 +18,17 @@ def test_every_worker_has_the_worker_env(dask_client) -> None:
     assert len(seen) == 2
     for env in seen.values():
         assert env == WORKER_ENV
+
+
+def _start_env() -> dict[str, str]:
+    """The environment the process was started with (what glibc's malloc read)."""
+    with open("/proc/self/environ", "rb") as f:
+        pairs = [p.split(b"=", 1) for p in f.read().split(b"\0") if b"=" in p]
+    return {k.decode(): v.decode() for k, v in pairs}
+
+
+def test_malloc_settings_are_there_when_the_worker_process_starts(dask_client) -> None:
+    if not os.path.exists("/proc/self/environ"):
+        pytest.skip("needs /proc (Linux)")
+    for env in dask_client.run(_start_env).values():
+        assert {k: env.get(k) for k in PRE_SPAWN_ENV} == {k: WORKER_ENV[k] for k in PRE_SPAWN_ENV}
