@@ -214,23 +214,31 @@ def _summarise_compiled(
 def _tail_runs(
     tail_key: NDArray[np.intp], tail_bin: NDArray[np.int64], n_cells: int
 ) -> tuple[tuple[NDArray[np.int64], NDArray[np.int64]], ...]:
-    """Per cell, the distinct tail bins of its values and how many fall in each."""
-    tail = tail_key
-    order = np.lexsort((tail_bin, tail_key))
-    tail_key, tail_bin = tail_key[order], tail_bin[order]
-    starts = (
-        np.flatnonzero(
-            np.r_[True, (tail_key[1:] != tail_key[:-1]) | (tail_bin[1:] != tail_bin[:-1])]
-        )
-        if tail.size
-        else np.zeros(0, dtype=np.intp)
-    )
-    run_counts = np.diff(np.r_[starts, tail.size]).astype(np.int64)
-    run_keys, run_bins = tail_key[starts], tail_bin[starts]
+    """Per cell, the distinct tail bins of its values and how many fall in each (ascending).
+
+    The (cell, bin) pairs are counted as one integer code: with one bincount when the bins span
+    a range small enough to hold a counter per (cell, bin) (a tile's tails usually do), else by
+    sorting the codes. Either way the runs come out ordered by cell, then bin.
+    """
+    if tail_key.size == 0:
+        empty = np.zeros(0, dtype=np.int64)
+        return tuple((empty, empty) for _ in range(n_cells))
+    low = int(tail_bin.min())
+    span = int(tail_bin.max()) - low + 1
+    code = tail_key.astype(np.int64) * span
+    code += tail_bin
+    code -= low
+    if n_cells * span <= MAX_COUNTERS:
+        counted = np.bincount(code, minlength=n_cells * span)
+        codes = np.flatnonzero(counted)
+        run_counts = counted[codes].astype(np.int64)
+    else:
+        codes, run_counts = np.unique(code, return_counts=True)
+        run_counts = run_counts.astype(np.int64)
+    run_keys, run_bins = np.divmod(codes, span)
+    run_bins += low
     bounds = np.searchsorted(run_keys, np.arange(n_cells + 1))
-    run_bins = run_bins.astype(np.int64)
-    tails = tuple(
+    return tuple(
         (run_bins[bounds[c] : bounds[c + 1]], run_counts[bounds[c] : bounds[c + 1]])
         for c in range(n_cells)
     )
-    return tails
