@@ -151,9 +151,16 @@ def new_job_id() -> str:
     return uuid.uuid4().hex
 
 
+_HERE: set[str] = set()
+"""Runner instances made in this process (several apps in one process, as in tests, are alive
+together although they share host and pid)."""
+
+
 def new_instance_id() -> str:
-    """This process's runner instance: ``host:pid:8 random hex digits``."""
-    return f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
+    """A new runner instance of this process: ``host:pid:8 random hex digits``."""
+    instance = f"{socket.gethostname()}:{os.getpid()}:{uuid.uuid4().hex[:8]}"
+    _HERE.add(instance)
+    return instance
 
 
 def remove_outputs(results_dir: Path, job_id: str) -> None:
@@ -254,8 +261,10 @@ def orphan_reason(
     lease = leases.get(owner)
     if lease is None:
         return "its server process holds no lease"
-    if lease.host == host and (lease.pid == pid or not pid_alive(lease.pid)):
+    if lease.host == host and not pid_alive(lease.pid):
         return "its server process no longer runs"
+    if lease.host == host and lease.pid == pid and owner not in _HERE:
+        return "its server process no longer runs (this process has its id now)"
     if lease.expires < now:
         return "its server process stopped renewing its lease"
     return None

@@ -14,6 +14,7 @@ from hypothesis import strategies as st
 from service.jobs import (
     RESTART_MESSAGE,
     RESTART_QUEUED_MESSAGE,
+    new_instance_id,
     orphan_reason,
     recover_orphans,
 )
@@ -264,3 +265,12 @@ def test_recovery_fails_orphans_removes_their_partial_outputs_and_spares_a_live_
     assert store.get(live.job_id) == live and store.get(mine.job_id) == mine
     left = sorted(p.name for p in results.iterdir())
     assert left == sorted(f"{j.job_id}.partial-{j.job_id}" for j in (live, mine))
+
+
+def test_another_runner_of_this_same_process_is_alive():
+    sibling = new_instance_id()  # e.g. a second app in one test process
+    leases = {sibling: lease(sibling, host=HOST, pid=PID)}
+    job = record(1, RUNNING, runner_instance=sibling)
+    alive = {PID}.__contains__  # this process
+    reason = orphan_reason(job, leases, instance="me", now=T0, host=HOST, pid=PID, pid_alive=alive)
+    assert reason is None
