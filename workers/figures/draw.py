@@ -248,15 +248,26 @@ def tile_map(
     for rank, tile_id in enumerate(worst, 1):
         left, bottom, right, top = by_id[tile_id].bounds
         ax.annotate(
-            f"{rank}. {tile_id}",
+            str(rank),
             ((left + right) / 2, (bottom + top) / 2),
             ha="center",
             va="center",
-            fontsize=6,
+            fontsize=7,
+            fontweight="bold",
             zorder=5,
             gid=f"worst:{tile_id}",
-            bbox={"boxstyle": "round,pad=0.15", "fc": "white", "ec": "#c2185b", "alpha": 0.85},
+            bbox={"boxstyle": "circle,pad=0.2", "fc": "white", "ec": "#c2185b", "alpha": 0.9},
         )
+    if worst:  # the ranks on the map, the ids below it
+        fig.text(
+            MAP_AXES[0],
+            0.012,
+            "worst: " + ", ".join(f"{rank} {t}" for rank, t in enumerate(worst, 1)),
+            fontsize=7,
+        )
+    if len(known) < len(values):
+        hatch = Patch(facecolor="white", edgecolor="#333333", hatch="xxx")
+        ax.legend([hatch], ["no statistics (failed or not audited)"], loc="lower left", fontsize=7)
     bar = fig.colorbar(collection, cax=fig.add_axes(BAR_AXES))
     if statistic == "grade":
         bar.set_ticks(list(range(len(labels))), labels=labels)
