@@ -7,6 +7,8 @@ import json
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from matplotlib.collections import PatchCollection
 from matplotlib.image import AxesImage
 from shapely.geometry import Polygon, box
@@ -319,3 +321,23 @@ def test_extra_figures_can_be_registered(tmp_path, monkeypatch):
     monkeypatch.setattr(figures, "BUILDERS", [*figures.BUILDERS, ("extra.png", build)])
     meta = figures.write_figures(tmp_path, {"job": {"name": "t"}, "overall": {}})
     assert meta == {"extra.png": {"shows": "a line"}}
+
+
+@settings(max_examples=40, deadline=None)
+@given(
+    st.lists(
+        st.lists(st.floats(-50, 50, allow_nan=False), min_size=1, max_size=60),
+        min_size=1,
+        max_size=6,
+    )
+)
+def test_limits_and_histogram_of_merged_tiles_equal_those_of_all_pixels(parts):
+    # invariant: what the figures draw depends on the pixels, not on how tiles split them
+    merged = dhs.merge_all(dhs.summarise(np.array(p)) for p in parts)
+    whole = dhs.summarise(np.concatenate([np.array(p) for p in parts]))
+    a, b = compute.limits_of_summary(merged), compute.limits_of_summary(whole)
+    assert a is not None and b is not None
+    assert (a.low, a.high) == pytest.approx((b.low, b.high), abs=1e-9)
+    ha, hb = compute.display_histogram(merged), compute.display_histogram(whole)
+    assert np.array_equal(ha.counts, hb.counts) and (ha.below, ha.above) == (hb.below, hb.above)
+    assert ha.counts.sum() + ha.below + ha.above == whole.count
