@@ -266,3 +266,26 @@ def test_the_spec_section_is_opt_in_with_defaults_and_checked():
         parse_spec(base | {"error_model": {"max_distance_m": -1}})
     with pytest.raises(SpecError, match="error_model.ranges"):
         parse_spec(base | {"error_model": {"ranges": 2}})
+
+
+def test_the_change_report_judges_regions_against_their_uncertainty(tmp_path):
+    from service.recheck import Baseline, change_report
+    from workers.recheck import ChangePlan, Thresholds
+
+    def region(median: float, se: float | None) -> dict:
+        entry = {"region": "HF", "stats": {"count": 185_759, "median": median, "nmad": 0.31}}
+        if se is not None:
+            entry["uncertainty"] = {"median_se_m": se, "nmad_se_m": 0.03}
+        return entry
+
+    def report(se: float | None) -> dict:
+        baseline = Baseline(tmp_path, {"tiles": [], "regions": [region(0.24, se)]})
+        document = {"tiles": [], "regions": [region(0.33, se)]}  # moved 0.09 m > 0.05 m
+        return change_report(baseline, ChangePlan(), document, Thresholds())
+
+    assert report(None)["regions"][0]["verdict"] == "regressed"
+    assert report(None)["regressions"] == 1
+    # 1.96 x sqrt(2) x 0.113 m (the demo's Harrow Fen) = 0.31 m: a 0.09 m move is noise
+    noisy = report(0.113)
+    assert noisy["regions"][0]["verdict"] == "within_noise" and noisy["regressions"] == 0
+    assert report(0.01)["regions"][0]["verdict"] == "regressed"
