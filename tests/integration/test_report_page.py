@@ -12,6 +12,7 @@ import tempfile
 
 import numpy as np
 import pytest
+import rasterio
 from PIL import Image
 
 from service.runner import run_job
@@ -96,3 +97,23 @@ def test_report_page_renders_in_chromium(make_archive, dask_client, tmp_path):
     chromium("--window-size=1100,1400", f"--screenshot={shot}", page)
     pixels = np.asarray(Image.open(shot).convert("L"), dtype=float)
     assert pixels.std() > 10  # text, tables and the map, not a blank page
+
+
+def test_recheck_report_shows_the_changes_and_their_figures(make_archive, dask_client, tmp_path):
+    root = make_archive(tiles=2, pixels=40, noise=0.3)
+    spec = job_spec.parse_spec(job_spec.load_spec_file(root / "job.yaml"))
+    job = job_spec.resolve(spec, base_dir=root)
+    run_job(job, tmp_path / "night1", client=dask_client)
+    with rasterio.open(root / "test" / "t_0_0.tif", "r+") as dst:  # one tile 2 m higher
+        data = dst.read(1)
+        dst.write(np.where(np.isfinite(data), data + 2.0, data).astype(data.dtype), 1)
+    out = tmp_path / "night2"
+    doc = run_job(job, out, client=dask_client, baseline=tmp_path / "night1")
+    assert doc["recheck"]["tiles_recomputed"] == ["t_0_0"]
+    assert {"recheck_tiles.png", "recheck_regions.png"} <= set(doc["figures"])
+    verdicts = doc["figures"]["recheck_tiles.png"]["verdicts"]
+    assert verdicts["regressed"] == 1 and verdicts["reused"] == 3
+    dom = chromium("--dump-dom", (out / "report.html").as_uri()).stdout
+    assert '<section id="recheck">' in dom and "regressed" in dom and "t_0_0" in dom
+    decoded = _decoded_images(page_file=out / "report.html", tmp_path=tmp_path)
+    assert set(decoded) == set(doc["figures"]) and min(decoded.values()) > 100
