@@ -289,3 +289,34 @@ def test_the_change_report_judges_regions_against_their_uncertainty(tmp_path):
     noisy = report(0.113)
     assert noisy["regions"][0]["verdict"] == "within_noise" and noisy["regressions"] == 0
     assert report(0.01)["regions"][0]["verdict"] == "regressed"
+
+
+def test_the_figure_is_drawn_from_the_summary_section_only_when_there_is_one():
+    from types import SimpleNamespace
+
+    from workers.figures.error_model import build_error_model
+
+    assert build_error_model(SimpleNamespace(document={"job": {"name": "j"}})) is None
+    rng = np.random.default_rng(4)
+    n = 300
+    reference = np.tile(np.sin(np.arange(n) / 20.0) * 40, (n, 1))
+    acc = em.ErrorModelAccumulator(max_points=20_000)
+    for i in range(3):
+        acc.add(
+            em.tile_error_sample(
+                rng.standard_normal((n, n)) * 0.3,
+                reference=reference,
+                landcover=None,
+                classes=(),
+                region_masks={},
+                pixel_centres=lambda r, c, i=i: ((c + 0.5) * PIXEL + i * n * PIXEL, r * PIXEL),
+                crs="EPSG:32632",
+                pixel_size_m=(PIXEL, PIXEL),
+                tile_id=f"t{i}",
+                options=em.ErrorModelOptions(),
+            )
+        )
+    section = em.fit_error_model(acc, max_distance_m=2000.0, seed=0).document()
+    assert section["components"] == [] and section["nugget"] > 0  # white noise
+    fig, meta = build_error_model(SimpleNamespace(document={"error_model": section}))
+    assert len(fig.axes) == 2 and meta["models"] == ["dh"]
