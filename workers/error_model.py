@@ -488,7 +488,9 @@ def area_uncertainty(
 METHOD = (
     "Rolstad, Haug & Denby (2009): the fitted spherical components averaged over a disc of the "
     "area's size (L = sqrt(A/pi)) plus nugget/N, times the area's mean sigma_dh(slope)^2; a "
-    "scattered area or stratum is treated as one compact area (conservative). median_se_m = "
+    "scattered area or stratum is treated as one compact area (conservative). sigma_dh and the "
+    "correlation are those of stable terrain: where vegetation or roofs add spread (and their "
+    "own correlation) the true standard error is larger. median_se_m = "
     "sqrt(pi/2) x mean_se_m and nmad_se_m = 1.166 x sigma / sqrt(effective_pixels): "
     "approximations for normal errors."
 )
