@@ -161,6 +161,62 @@ def _block_sweep(dh, factor, total, count, row):  # type: ignore[no-untyped-def]
                 total[b, c] += pairwise_sum_compiled(row, factor)
 
 
+def _extremes_sweep(x, out):  # type: ignore[no-untyped-def]
+    """Over the non-NaN values of x (2-D, any strides): out = (count, lowest, highest, how many
+    hold the lowest, how many hold the highest); out[0] = 0 when every value is NaN."""
+    n = 0
+    low = np.inf
+    high = -np.inf
+    n_low = 0
+    n_high = 0
+    rows, cols = x.shape
+    for r in range(rows):
+        for c in range(cols):
+            v = x[r, c]
+            if v != v:
+                continue
+            n += 1
+            if v < low:  # starting from +inf, the first value (even +inf itself) counts
+                low = v
+                n_low = 1
+            elif v == low:
+                n_low += 1
+            if v > high:
+                high = v
+                n_high = 1
+            elif v == high:
+                n_high += 1
+    out[0] = n
+    out[1] = low
+    out[2] = high
+    out[3] = n_low
+    out[4] = n_high
+
+
+def _other_within(x, lower, upper, value):  # type: ignore[no-untyped-def]
+    """Whether any value of x (2-D, any strides) lies in [lower, upper] and differs from value
+    (stops at the first)."""
+    rows, cols = x.shape
+    for r in range(rows):
+        for c in range(cols):
+            v = x[r, c]
+            if lower <= v <= upper and v != value:
+                return True
+    return False
+
+
+def extremes_sweep(x: Any) -> tuple[int, float, float, int, int]:
+    """Compiled _extremes_sweep: (count, lowest, highest, count of lowest, count of highest)."""
+    out = np.zeros(5)
+    _compiled("extremes_sweep")(x, out)
+    return int(out[0]), float(out[1]), float(out[2]), int(out[3]), int(out[4])
+
+
+def other_within(x: Any, lower: float, upper: float, value: float) -> bool:
+    """Compiled _other_within (same arguments)."""
+    return bool(_compiled("other_within")(x, lower, upper, value))
+
+
 def cell_sweep(*args: Any) -> int:
     """Compiled _cell_sweep (same arguments)."""
     return int(_compiled("cell_sweep")(*args))

@@ -18,6 +18,7 @@ from numpy.typing import NDArray
 from rasterio.errors import RasterioError
 from rasterio.windows import Window
 
+from workers import kernels
 from workers.catalog import TileInfo
 from workers.confine import open_confined
 from workers.errors import DataRootError, ImplausibleHeightsError, TileReadError
@@ -90,10 +91,17 @@ def implausible_heights(
     and every other value lies more than VOID_GAP_M away. A tile of one value only (a flat lake)
     passes unless that value is a void code.
     """
-    valid = int(data.size - np.count_nonzero(np.isnan(data)))
+    fast = kernels.AVAILABLE and data.dtype == np.float64 and data.ndim <= 2
+    plane = data.reshape(1, -1) if fast and data.ndim < 2 else data  # the kernels take 2-D
+    if fast:  # one compiled sweep (count, extremes and how many hold them)
+        valid, low, high, n_low, n_high = kernels.extremes_sweep(plane)
+    else:
+        valid = int(data.size - np.count_nonzero(np.isnan(data)))
     if valid == 0:
         return None
-    low, high = float(np.nanmin(data)), float(np.nanmax(data))
+    if not fast:
+        low, high = float(np.nanmin(data)), float(np.nanmax(data))
+        n_low, n_high = (int(np.count_nonzero(data == v)) for v in (low, high))
     lowest, highest = (v / metres_per_unit for v in PLAUSIBLE_HEIGHT_M)
     if low < lowest or high > highest:
         with np.errstate(invalid="ignore"):
@@ -108,15 +116,14 @@ def implausible_heights(
         )
         return Implausible(value, int(np.count_nonzero(data == value)), valid, why)
     gap = VOID_GAP_M / metres_per_unit
-    for value, near in ((low, (low, low + gap)), (high, (high - gap, high))):
-        count = int(np.count_nonzero(data == value))
+    for value, count, near in ((low, n_low, (low, low + gap)), (high, n_high, (high - gap, high))):
         if value in VOID_CODES:
             return Implausible(value, count, valid, "a common code for voids")
         if count < 2 or low == high:
             continue
-        with np.errstate(invalid="ignore"):  # boolean masks only: the heights are not copied
-            if np.any((data >= near[0]) & (data <= near[1]) & (data != value)):
-                continue
+        if _other_within(plane, near, value, compiled=fast):
+            continue
+        with np.errstate(invalid="ignore"):
             others = data[data != value]
         nearest = float(np.nanmin(np.abs(others - value))) * metres_per_unit
         return Implausible(
@@ -126,6 +133,16 @@ def implausible_heights(
             f"{nearest:,.0f} m away from every other height of the tile (a void code, not terrain)",
         )
     return None
+
+
+def _other_within(
+    data: NDArray[np.float64], near: tuple[float, float], value: float, *, compiled: bool
+) -> bool:
+    """Whether a value of data other than ``value`` lies within ``near`` (inclusive)."""
+    if compiled:
+        return kernels.other_within(data, near[0], near[1], value)
+    with np.errstate(invalid="ignore"):  # boolean masks only: the heights are not copied
+        return bool(np.any((data >= near[0]) & (data <= near[1]) & (data != value)))
 
 
 def format_value(value: float) -> str:
