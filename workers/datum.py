@@ -65,11 +65,14 @@ SELF_CHECK_M = 1e-5
 def to_metres(heights: NDArray[np.floating], units: str) -> NDArray[np.float64]:
     """Convert heights in 'metre', 'foot' (international) or 'us_survey_foot' to metres.
 
-    NaN (nodata) stays NaN.
+    NaN (nodata) stays NaN. Float64 heights in metres come back as they are (not copied).
     """
     if units not in METRES_PER_UNIT:
         raise ValueError(f"unknown height unit {units!r}; expected one of {list(METRES_PER_UNIT)}")
-    return np.asarray(heights, dtype=np.float64) * METRES_PER_UNIT[units]
+    factor = METRES_PER_UNIT[units]
+    if factor == 1.0:
+        return np.asarray(heights, dtype=np.float64)
+    return np.asarray(heights, dtype=np.float64) * factor
 
 
 def register_grid_dirs(grid_dirs: Sequence[str]) -> None:

@@ -178,10 +178,12 @@ def read_mosaic(
     row0 = math.floor((top - f) / e) - margin_px
     row1 = math.ceil((bottom - f) / e) + margin_px
     out = np.full((row1 - row0, col1 - col0), np.nan)
+    empty = True  # nothing pasted yet: the first tile is written straight into out
     for tile in tiles:
-        block = _paste(tile, out, row0=row0, col0=col0, reference=first, nodata=nodata)
+        block = _paste(tile, out, row0=row0, col0=col0, reference=first, nodata=nodata, empty=empty)
         if block is not None and units is not None:
             check_heights(block, tile_id=tile.tile_id, units=units, role=role)
+        empty = empty and block is None
     grid = Grid(first.crs, (a, 0.0, c + col0 * a, 0.0, e, f + row0 * e), col1 - col0, row1 - row0)
     return out, grid
 
@@ -194,9 +196,11 @@ def _paste(
     col0: int,
     reference: Grid,
     nodata: float | None,
+    empty: bool = False,
 ) -> NDArray[np.float64] | None:
     """Copy the part of tile that falls inside out (whose pixel (0, 0) is (row0, col0) of the
-    reference grid); return that part (None when the tile does not reach into out)."""
+    reference grid) where out is still NaN; return that part (None when the tile does not reach
+    into out). ``empty``: out is all NaN, so the part is converted straight into it (no copy)."""
     a, _, c, _, e, f = reference.transform
     ta, tb, tc, td, te, tf = tile.grid.transform
     col_off = (tc - c) / a
@@ -214,8 +218,10 @@ def _paste(
         return None
     window = Window(c0 - tile_c0, r0 - tile_r0, c1 - c0, r1 - r0)  # type: ignore[call-arg]
     raw = _read_band(tile, "reference tile", window)
-    block = _voids_to_nan(raw, (tile.nodata, nodata))
     target = out[r0:r1, c0:c1]
+    if empty:
+        return _voids_to_nan(raw, (tile.nodata, nodata), out=target)
+    block = _voids_to_nan(raw, (tile.nodata, nodata))
     np.copyto(target, block, where=np.isnan(target))
     return block
 
@@ -243,10 +249,20 @@ def _is_whole(value: float, tol: float = 1e-6) -> bool:
     return abs(value - round(value)) < tol
 
 
-def _voids_to_nan(raw: NDArray[np.generic], nodata: Sequence[float | None]) -> NDArray[np.float64]:
-    """raw as float64 with every nodata value NaN. Each value is compared in raw's own type
-    (a spec's 0.1 matches a float32 file's 0.1; a fractional value never matches integers)."""
-    data = raw.astype(np.float64)
+def _voids_to_nan(
+    raw: NDArray[np.generic],
+    nodata: Sequence[float | None],
+    *,
+    out: NDArray[np.float64] | None = None,
+) -> NDArray[np.float64]:
+    """raw as float64 with every nodata value NaN (written into ``out`` when given, else a new
+    array). Each value is compared in raw's own type (a spec's 0.1 matches a float32 file's 0.1;
+    a fractional value never matches integers)."""
+    if out is None:
+        data = raw.astype(np.float64)
+    else:
+        data = out
+        np.copyto(data, raw, casting="unsafe")
     for value in dict.fromkeys(v for v in nodata if v is not None):
         if np.issubdtype(raw.dtype, np.integer):
             info = np.iinfo(str(raw.dtype))

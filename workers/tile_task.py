@@ -491,6 +491,9 @@ def read_mosaics(
 
 def mosaics_onto(mosaics: Sequence[Mosaic], grid: Grid, *, resampling: str) -> NDArray[np.float64]:
     """Mosaics resampled onto grid, the first covering a pixel winning; NaN where none."""
+    if len(mosaics) == 1:  # onto_grid gives a new array: nothing to combine
+        mosaic, mosaic_grid = mosaics[0]
+        return onto_grid(mosaic, mosaic_grid, grid, resampling=resampling)
     out = np.full(grid.shape, np.nan)
     for mosaic, mosaic_grid in mosaics:
         resampled = onto_grid(mosaic, mosaic_grid, grid, resampling=resampling)
