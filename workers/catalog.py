@@ -22,13 +22,12 @@ from numpy.typing import NDArray
 from pyproj import CRS, Transformer
 from rasterio.enums import ColorInterp
 from rasterio.errors import RasterioIOError
-from rasterio.features import rasterize
 from shapely import STRtree, box, segmentize
 from shapely.geometry.base import BaseGeometry
 
 from workers.confine import Roots, open_confined, shown
 from workers.errors import DataRootError, MissingCRSError, NotElevationError, TileReadError
-from workers.grid import Grid
+from workers.grid import Grid, centres_in
 
 
 @dataclass(frozen=True)
@@ -314,17 +313,7 @@ def tile_overlaps(tests: Sequence[TileInfo]) -> dict[str, Overlap]:
 
 def covered_mask(grid: Grid, covered: Sequence[Footprint]) -> NDArray[np.bool_]:
     """True for pixels of grid whose centre lies in one of the footprints (grid's CRS)."""
-    if not covered:
-        return np.zeros(grid.shape, dtype=bool)
-    burned = rasterize(
-        [(f.geometry, 1) for f in covered],
-        out_shape=grid.shape,
-        transform=grid.affine,
-        fill=0,
-        all_touched=False,
-        dtype="uint8",
-    )
-    return burned.astype(bool)
+    return centres_in([f.geometry for f in covered], grid)
 
 
 def superseded_reason(covered: Sequence[Footprint]) -> str:

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
 from functools import cached_property
 
@@ -9,6 +10,8 @@ import numpy as np
 from affine import Affine
 from numpy.typing import NDArray
 from pyproj import CRS
+from rasterio.features import rasterize
+from shapely.geometry.base import BaseGeometry
 
 
 @dataclass(frozen=True)
@@ -76,3 +79,18 @@ class Grid:
         a, b, c, d, e, f = self.transform
         cc, rr = cols + 0.5, rows + 0.5
         return a * cc + b * rr + c, d * cc + e * rr + f
+
+
+def centres_in(geometries: Sequence[BaseGeometry], grid: Grid) -> NDArray[np.bool_]:
+    """True for pixels of grid whose centre lies in one of the geometries (grid's CRS)."""
+    if not geometries:
+        return np.zeros(grid.shape, dtype=bool)
+    burned = rasterize(
+        [(g, 1) for g in geometries],
+        out_shape=grid.shape,
+        transform=grid.affine,
+        fill=0,
+        all_touched=False,
+        dtype="uint8",
+    )
+    return burned.astype(bool)

@@ -15,14 +15,13 @@ import numpy as np
 import shapely
 from numpy.typing import NDArray
 from pyproj import CRS, Transformer
-from rasterio.features import rasterize
 from shapely import box, segmentize
 from shapely.geometry import shape
 from shapely.geometry.base import BaseGeometry
 
 from workers.confine import Roots, open_confined
 from workers.errors import DataRootError, MissingCRSError, SpecError
-from workers.grid import Grid
+from workers.grid import Grid, centres_in
 
 DEFAULT_REGION_CRS = "EPSG:4326"
 
@@ -206,12 +205,4 @@ def clip_to(regions: Sequence[Region], bounds: tuple[float, float, float, float]
 
 def region_mask(region: Region, grid: Grid) -> NDArray[np.bool_]:
     """True for pixels of grid whose centre lies inside the region (same CRS as grid)."""
-    burned = rasterize(
-        [(region.geometry, 1)],
-        out_shape=grid.shape,
-        transform=grid.affine,
-        fill=0,
-        all_touched=False,
-        dtype="uint8",
-    )
-    return burned.astype(bool)
+    return centres_in([region.geometry], grid)
