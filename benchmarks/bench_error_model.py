@@ -22,9 +22,9 @@ from pathlib import Path
 
 import numpy as np
 
-from workers import error_model as em
-from workers.strata import ClassInfo
-from workers.tile_pass import summarise_pixels
+from demaudit.workers.tile.one_pass import summarise_pixels
+from demaudit.workers.tile.strata import ClassInfo
+from demaudit.workers.uncertainty import error_model as em
 
 ROOT = Path(__file__).resolve().parents[1]
 CLASSES = (ClassInfo(1, "open", "non_vegetated"), ClassInfo(2, "forest", "vegetated"))
@@ -108,9 +108,9 @@ def client_memory() -> None:
 
 
 def demo() -> None:
-    from service.cluster import dask_client
-    from service.runner import run_job
-    from workers import spec as job_spec
+    from demaudit.service.run.cluster import dask_client
+    from demaudit.service.run.runner import run_job
+    from demaudit.workers import spec as job_spec
 
     base = job_spec.load_spec_file(ROOT / "demo_tiles" / "demo.yaml")
     base.pop("checkpoints", None)

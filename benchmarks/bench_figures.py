@@ -22,13 +22,13 @@ from pathlib import Path
 
 import numpy as np
 
-from service.cluster import dask_client
-from service.runner import run_job
-from workers import figures
-from workers import regions as region_ops
-from workers import spec as job_spec
-from workers.demo_archive import DemoArchiveOptions, make_demo_archive
-from workers.report_html import write_report
+from demaudit.service.run.cluster import dask_client
+from demaudit.service.run.runner import run_job
+from demaudit.workers import spec as job_spec
+from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
+from demaudit.workers.inputs import regions as region_ops
+from demaudit.workers.outputs import figures
+from demaudit.workers.outputs.report_html import write_report
 
 
 def archive(cache: Path, tiles: int, pixels: int) -> Path:

@@ -4,7 +4,8 @@ Run:  .venv/bin/python benchmarks/bench_geoid.py [--pixels 1500] [--repeat 7]
 
 For tiles of 30 m and 90 m pixels over steep EGM96 (Puerto Rico trench, Himalaya) it times
   former  N from PROJ on a 64-pixel lattice, interpolated linearly (demaudit before issue 11),
-  grid    workers.datum.undulation_on_grid (the geoid grid's bilinear form at every pixel),
+  grid    demaudit.workers.tile.datum.undulation_on_grid (the geoid grid's bilinear form at every
+  pixel),
   proj    PROJ at every pixel centre (exact, the reference),
 and prints each one's best and median processor time (this process, all threads) and its
 largest |error| against the reference. Numbers vary with whatever else the machine runs; the
@@ -21,8 +22,8 @@ from collections.abc import Callable
 import numpy as np
 from pyproj import CRS, Transformer
 
-from workers.datum import LonLatLattice, geoid_undulation, undulation_on_grid
-from workers.grid import Grid
+from demaudit.workers.tile.datum import LonLatLattice, geoid_undulation, undulation_on_grid
+from demaudit.workers.tile.grid import Grid
 
 SITES = {
     "puerto_rico_trench": (32619, 760_000.0, 2_130_000.0),

@@ -22,10 +22,10 @@ import numpy as np
 import rasterio
 from distributed import get_task_stream
 
-from service.cluster import dask_client
-from service.runner import run_job
-from workers import spec as job_spec
-from workers.demo_archive import DemoArchiveOptions, make_demo_archive
+from demaudit.service.run.cluster import dask_client
+from demaudit.service.run.runner import run_job
+from demaudit.workers import spec as job_spec
+from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
 
 
 def archive(cache: Path, tiles: int, pixels: int) -> Path:

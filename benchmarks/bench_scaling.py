@@ -12,7 +12,8 @@ What one run does:
    4x4, 8x8, 16x16, each tile ``--pixels`` x ``--pixels``, seed 1, no update tiles. An archive in
    the cache is reused when its ``truth.json`` records exactly the wanted options. Generating takes
    about 1 CPU second per 1000 px tile (in worker processes), so timings are printed as it goes;
-2. runs the real pipeline (``service.runner.run_job``) on each archive on a FRESH local Dask
+2. runs the real pipeline (``demaudit.service.run.runner.run_job``) on each archive on a FRESH
+local Dask
    cluster (2 worker processes, 1 thread each, 6 GiB limit each), so each worker's peak resident
    memory belongs to that size alone; reports wall time and tiles/s. The peak is the worker's
    ``VmHWM`` (/proc/self/status, reset by exec). ``ru_maxrss`` is printed too but is NOT used:
@@ -52,18 +53,18 @@ import distributed
 import numpy as np
 from numpy.typing import NDArray
 
-from service.cluster import dask_client
-from service.runner import run_job
-from workers import regions as region_ops
-from workers import summary as dh_summary
-from workers.catalog import ScanFailure, TileIndex, TileInfo, scan_tile
-from workers.demo_archive import make_demo_archive
-from workers.demo_terrain import DemoArchiveOptions
-from workers.regions import Region
-from workers.spec import ResolvedJob, load_spec_file, parse_spec, resolve
-from workers.strata import excluded_mask
-from workers.summary import DhSummary
-from workers.tile_task import TileOptions, TileResult, audit_tile, tile_surfaces
+from demaudit.service.run.cluster import dask_client
+from demaudit.service.run.runner import run_job
+from demaudit.workers.demo.archive import make_demo_archive
+from demaudit.workers.demo.world import DemoArchiveOptions
+from demaudit.workers.inputs import regions as region_ops
+from demaudit.workers.inputs.catalog import ScanFailure, TileIndex, TileInfo, scan_tile
+from demaudit.workers.inputs.regions import Region
+from demaudit.workers.spec import ResolvedJob, load_spec_file, parse_spec, resolve
+from demaudit.workers.stats import summary as dh_summary
+from demaudit.workers.stats.summary import DhSummary
+from demaudit.workers.tile.strata import excluded_mask
+from demaudit.workers.tile.task import TileOptions, TileResult, audit_tile, tile_surfaces
 
 WORKERS = 2
 MEMORY_LIMIT = "6GiB"
@@ -363,7 +364,8 @@ def differences(a: dict[str, Any], b: dict[str, float]) -> dict[str, float]:
 
 
 def stated_bounds(b: dict[str, float]) -> dict[str, float]:
-    """The accuracy workers/summary.py states for each statistic (metres), at numpy's values."""
+    """The accuracy workers/stats/summary.py states for each statistic (metres), at numpy's
+    values."""
     bounds = {key: dh_summary.quantile_bound_m(b[key]) for key in ("median", "q683_abs", "q95_abs")}
     bounds["nmad"] = dh_summary.nmad_bound_m(b["median"], b["nmad"])
     return bounds
@@ -625,7 +627,7 @@ def final_table(
         "so not used); client = this process's RSS before / peak during / after the run.",
         *report_runs(runs, archives),
         "",
-        "Mergeable summaries (workers/summary.py) against numpy, in this process:",
+        "Mergeable summaries (workers/stats/summary.py) against numpy, in this process:",
         *(report_comparison(comparison) if comparison else ["  (skipped)"]),
         "=" * 100,
     ]

@@ -75,9 +75,8 @@ REPO = Path(__file__).resolve().parents[1]
 if str(REPO) not in sys.path:
     sys.path.insert(0, str(REPO))
 
-from workers.datum import DEFAULT_GRID_DIRS  # noqa: E402
-from workers.demo_archive import make_demo_archive  # noqa: E402
-from workers.demo_terrain import (  # noqa: E402
+from demaudit.workers.demo.archive import make_demo_archive  # noqa: E402
+from demaudit.workers.demo.world import (  # noqa: E402
     LIDAR_NOISE_M,
     NODATA,
     TEST_CRS,
@@ -87,6 +86,7 @@ from workers.demo_terrain import (  # noqa: E402
     release_tile,
     true_terrain,
 )
+from demaudit.workers.tile.datum import DEFAULT_GRID_DIRS  # noqa: E402
 
 WORKERS = 2
 SAMPLE_S = 0.05
@@ -517,13 +517,13 @@ def best_of(fn: Callable[[], Any]) -> tuple[float, Any]:
 
 def phases(spec_path: Path) -> list[tuple[str, float]]:
     """Seconds per phase of the first test tile, calling the worker functions directly."""
-    from workers import regions as region_ops
-    from workers import spec as job_spec
-    from workers import tile_task
-    from workers.catalog import TileIndex, TileInfo, scan_tile
-    from workers.datum import to_metres, vertical_offset_on_grid
-    from workers.difference import block_mean, difference
-    from workers.rasters import read_tile
+    from demaudit.workers import spec as job_spec
+    from demaudit.workers.inputs import regions as region_ops
+    from demaudit.workers.inputs.catalog import TileIndex, TileInfo, scan_tile
+    from demaudit.workers.inputs.rasters import read_tile
+    from demaudit.workers.tile import task as tile_task
+    from demaudit.workers.tile.datum import to_metres, vertical_offset_on_grid
+    from demaudit.workers.tile.difference import block_mean, difference
 
     job = job_spec.resolve(
         job_spec.parse_spec(job_spec.load_spec_file(spec_path)), base_dir=spec_path.parent

@@ -3,7 +3,7 @@
 List-valued settings (``DEMAUDIT_PRINCIPALS``, ``DEMAUDIT_API_TOKENS``, ``DEMAUDIT_DATA_ROOTS``,
 ``DEMAUDIT_GRID_DIRS``, ``DEMAUDIT_WEBHOOK_ALLOW_NETWORKS``) take either a JSON list or a
 comma-separated string. Tokens and principals are checked when the server starts
-(``service.app.check_serving``), so a bad one is a one-line error there, not here.
+(``demaudit.service.api.app.check_serving``), so a bad one is a one-line error there, not here.
 """
 
 from __future__ import annotations
@@ -18,7 +18,7 @@ from typing import Annotated, Any
 from pydantic import Field, field_validator, model_validator
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
-from workers.datum import DEFAULT_GRID_DIRS
+from demaudit.workers.tile.datum import DEFAULT_GRID_DIRS
 
 
 class Settings(BaseSettings):
@@ -75,7 +75,7 @@ class Settings(BaseSettings):
     public_base_url: str | None = None
     """The API's public base URL (``https://audit.example.org/api``): every link, Location
     header and webhook payload link is built on it, never on a request's Host header. Unset:
-    links are relative (``/jobs/<id>``). See ``service.public_base``."""
+    links are relative (``/jobs/<id>``). See ``demaudit.service.api.public_base``."""
     public_url: str | None = None
     """Former name of public_base_url (DEMAUDIT_PUBLIC_URL); either sets both."""
 
@@ -121,7 +121,7 @@ class Settings(BaseSettings):
     @field_validator("public_base_url", "public_url")
     @classmethod
     def _base_url(cls, value: str | None) -> str | None:
-        from service.public_base import check_base_url
+        from demaudit.service.api.public_base import check_base_url
 
         return None if value is None else check_base_url(value)
 

@@ -61,7 +61,7 @@ def make_archive(tmp_path: Path) -> Callable[..., Path]:
     def build(
         *, tiles: int = 2, pixels: int = 40, bias: float = 0.25, seed: int = 0, noise: float = 0.0
     ) -> Path:
-        from workers.datum import geoid_undulation
+        from demaudit.workers.tile.datum import geoid_undulation
 
         rng = np.random.default_rng(seed)
         root = tmp_path / "archive"
@@ -152,7 +152,7 @@ def _square_feature(code: str, to_lonlat, e0: float, e1: float, n0: float, n1: f
 @pytest.fixture(scope="session")
 def dask_client() -> Iterator[object]:
     """One embedded LocalCluster (2 worker processes) for the whole session."""
-    from service.cluster import dask_client as open_client
+    from demaudit.service.run.cluster import dask_client as open_client
 
     with open_client(None, workers=2, memory_limit="2GiB") as client:
         yield client

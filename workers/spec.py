@@ -3,14 +3,14 @@
 A spec names a test DEM (tiles), a reference (tiles), optional regions to aggregate over and
 processing options. It is read from YAML or JSON; relative paths resolve against the folder of the
 spec file (or a base folder given by the caller). Unknown keys and inconsistent values are rejected
-with a :class:`~workers.errors.SpecError` whose message names the field.
+with a :class:`~demaudit.workers.errors.SpecError` whose message names the field.
 
 Bounds (so a request cannot make the server list folders for minutes): a path is at most
 MAX_PATH_CHARS characters with no control character (NUL included); a tile list holds at most
 MAX_PATHS_PER_LIST entries, of which at most MAX_GLOBS_PER_LIST are glob patterns; the files
 a field's patterns and folders expand to are counted as they are listed, and more than
 MAX_FILES_PER_FIELD is refused without listing further. Paths in messages are shown relative
-to their data root (workers/confine.py: shown); without data roots as resolved.
+to their data root (workers/inputs/confine.py: shown); without data roots as resolved.
 """
 
 from __future__ import annotations
@@ -38,8 +38,8 @@ from pydantic.json_schema import WithJsonSchema
 from pyproj import CRS
 from pyproj.exceptions import CRSError
 
-from workers.confine import Roots, real_roots, shown
-from workers.errors import DataRootError, SpecError
+from demaudit.workers.errors import DataRootError, SpecError
+from demaudit.workers.inputs.confine import Roots, real_roots, shown
 
 Units = Literal["metre", "foot", "us_survey_foot"]
 Resampling = Literal["nearest", "bilinear", "cubic", "average"]
@@ -342,7 +342,8 @@ class Recheck(_Strict):
 
 class ErrorModel(_Strict):
     """Opt-in error model on stable terrain: spread by slope, spatial correlation, standard
-    errors of regional figures (workers/error_model.py). Costs more than the rest of the audit."""
+    errors of regional figures (workers/uncertainty/error_model.py). Costs more than the rest of
+    the audit."""
 
     max_distance_m: float = Field(
         default=5000.0, gt=0, description="Longest pair distance of the empirical variogram."
@@ -386,7 +387,8 @@ class JobSpec(_Strict):
 class ResolvedJob:
     """A validated spec with every path made absolute and every tile glob expanded.
 
-    ``data_roots`` (resolved) confine every read of the job's files (workers/confine.py); None
+    ``data_roots`` (resolved) confine every read of the job's files (workers/inputs/confine.py);
+    None
     when the job was resolved without roots."""
 
     spec: JobSpec

@@ -18,8 +18,8 @@ from typing import Any
 import pytest
 import yaml
 
-from service.scheduler import check_cron
-from workers.spec import parse_spec
+from demaudit.service.scheduling.scheduler import check_cron
+from demaudit.workers.spec import parse_spec
 
 DEPLOY = Path(__file__).resolve().parents[2] / "deploy"
 KUBERNETES = DEPLOY / "kubernetes"
@@ -282,7 +282,7 @@ def test_the_wrapper_keeps_dated_runs_and_points_latest_at_the_newest_success(tm
 
 
 def test_deployed_workers_get_the_thread_and_cache_settings_of_local_workers():
-    from service.cluster import WORKER_ENV
+    from demaudit.service.run.cluster import WORKER_ENV
 
     worker = only("Deployment", "dask-worker")
     assert {k: str(v) for k, v in env_of(worker).items() if k in WORKER_ENV} == WORKER_ENV

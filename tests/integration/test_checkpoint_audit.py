@@ -9,12 +9,12 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from service.runner import run_job
-from workers import spec as job_spec
-from workers.demo_archive import DemoArchiveOptions, make_demo_archive
-from workers.demo_terrain import build_world, terrain_slope
-from workers.errors import SpecError
-from workers.grading import ASPRS_CLASSES_CM
+from demaudit.service.run.runner import run_job
+from demaudit.workers import spec as job_spec
+from demaudit.workers.checkpoints.grading import ASPRS_CLASSES_CM
+from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
+from demaudit.workers.demo.world import build_world, terrain_slope
+from demaudit.workers.errors import SpecError
 
 
 def run(spec_path: Path, out: Path, client, **changes) -> dict:

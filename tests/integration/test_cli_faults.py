@@ -2,7 +2,7 @@
 clear message naming the file, field or option, the documented exit status, no traceback, and
 an output folder that is either the earlier result, untouched, or the complete new one.
 
-The commands run in-process (service.cli.main) against the session's Dask cluster
+The commands run in-process (demaudit.service.cli.main.main) against the session's Dask cluster
 (``--scheduler``), so no test starts a cluster of its own.
 """
 
@@ -20,7 +20,7 @@ import pytest
 import rasterio
 from rasterio.transform import from_origin
 
-from service import cli
+from demaudit.service.cli import main as cli
 from tests.conftest import UTM32, write_tif
 
 Run = Callable[..., tuple[int, str, str]]
@@ -124,7 +124,7 @@ def test_a_late_internal_error_leaves_the_earlier_result_whole(
     def broken(*args, **kwargs):
         raise RuntimeError("figure writer exploded")
 
-    monkeypatch.setattr("service.runner.write_figures", broken)
+    monkeypatch.setattr("demaudit.service.run.runner.write_figures", broken)
     code, _, err = demaudit("run", str(archive / "job.yaml"), "--out", str(out))
     assert code == 3
     assert "internal error" in err and "figure writer exploded" in err
@@ -142,7 +142,7 @@ def test_an_interrupted_run_leaves_the_earlier_result_whole(
     def interrupted(*args, **kwargs):
         raise KeyboardInterrupt
 
-    monkeypatch.setattr("service.runner.write_figures", interrupted)
+    monkeypatch.setattr("demaudit.service.run.runner.write_figures", interrupted)
     code, _, err = demaudit("run", str(archive / "job.yaml"), "--out", str(out))
     assert code == 130 and "interrupted" in err
     assert snapshot(out) == before and leftovers(out) == []
@@ -151,7 +151,7 @@ def test_an_interrupted_run_leaves_the_earlier_result_whole(
 def test_disk_full_while_writing_is_one_line_and_changes_nothing(
     archive, demaudit, tmp_path, monkeypatch
 ):
-    from workers import writers
+    from demaudit.workers.outputs import writers
 
     out = tmp_path / "out"
     assert demaudit("run", str(archive / "job.yaml"), "--out", str(out))[0] == 0
@@ -166,7 +166,7 @@ def test_disk_full_while_writing_is_one_line_and_changes_nothing(
             raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(target))
         return real(folder, document, name=name)
 
-    monkeypatch.setattr("service.runner.write_summary", full)
+    monkeypatch.setattr("demaudit.service.run.runner.write_summary", full)
     code, _, err = demaudit("run", str(archive / "job.yaml"), "--out", str(out))
     assert calls and code == 2
     assert "No space left on device" in err and "summary.json" in err
@@ -404,7 +404,7 @@ def test_an_unreachable_scheduler_is_named_at_once(archive, demaudit, tmp_path):
     ],
 )
 def test_a_followed_server_job_exits_as_a_local_run_would(status, message, expected):
-    from service.jobs import INTERNAL_FAILURE
+    from demaudit.service.run.dispatcher import INTERNAL_FAILURE
 
     assert INTERNAL_FAILURE.startswith("internal error")  # what _exit_status recognises
     assert cli._exit_status(status, message) == expected

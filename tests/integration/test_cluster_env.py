@@ -1,4 +1,5 @@
-"""The embedded cluster's workers run single-threaded numeric and GDAL code (service/cluster.py)."""
+"""The embedded cluster's workers run single-threaded numeric and GDAL code
+(service/run/cluster.py)."""
 
 from __future__ import annotations
 
@@ -6,7 +7,7 @@ import os
 
 import pytest
 
-from service.cluster import PRE_SPAWN_ENV, WORKER_ENV
+from demaudit.service.run.cluster import PRE_SPAWN_ENV, WORKER_ENV
 
 
 def _worker_env() -> dict[str, str | None]:

@@ -19,6 +19,7 @@ from typing import Any
 import httpx
 import pytest
 
+from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
 from tests.integration.test_rest_server import (
     EXECUTE,
     PRINCIPALS,
@@ -29,7 +30,6 @@ from tests.integration.test_rest_server import (
     wait_until,
 )
 from tests.support.processes import VENV_BIN, Process, free_port
-from workers.demo_archive import DemoArchiveOptions, make_demo_archive
 
 pytestmark = pytest.mark.slow
 

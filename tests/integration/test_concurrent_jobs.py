@@ -7,8 +7,8 @@ import json
 from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
-from service.runner import run_job
-from workers import spec as job_spec
+from demaudit.service.run.runner import run_job
+from demaudit.workers import spec as job_spec
 
 COPIES = 4
 #: Members that name a run rather than describe its results (ids, clock times, durations).

@@ -10,8 +10,8 @@ from typing import Any
 
 from fastapi.testclient import TestClient
 
-from service.app import create_app
-from service.settings import Settings
+from demaudit.service.api.app import create_app
+from demaudit.service.settings import Settings
 from tests.integration.test_concurrent_jobs import COPIES, SPEC, assert_same_results
 from tests.service.tokens import AUTH, PRINCIPALS
 

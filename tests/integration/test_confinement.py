@@ -9,9 +9,9 @@ from pathlib import Path
 
 import pytest
 
-from service.runner import run_job
-from workers import spec as job_spec
-from workers.errors import DataRootError
+from demaudit.service.run.runner import run_job
+from demaudit.workers import spec as job_spec
+from demaudit.workers.errors import DataRootError
 
 
 def accept(root: Path) -> job_spec.ResolvedJob:

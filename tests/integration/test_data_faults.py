@@ -15,7 +15,7 @@ from pyproj import Transformer
 from rasterio.enums import ColorInterp
 from rasterio.transform import from_origin
 
-from service.cli import main
+from demaudit.service.cli.main import main
 from tests.conftest import _grid_centres, terrain, write_tif
 
 UTM32 = "EPSG:32632"
@@ -170,7 +170,7 @@ def test_a_redelivered_copy_is_counted_once(make_archive, cli, tmp_path):
     assert copy["reason"].startswith("every pixel lies in earlier-listed test tile(s) t_0_0")
     (caution,) = [c for c in doc["cautions"] if "overlap earlier-listed" in c]
     assert "t_0_0_copy: 1,600 of 1,600 pixels in t_0_0 (status superseded)" in caution
-    # every ground pixel was audited once: a complete run (service/cli.py COMPLETE_STATUSES)
+    # every ground pixel was audited once: a complete run (service/cli/main.py COMPLETE_STATUSES)
     assert code == 0
 
 

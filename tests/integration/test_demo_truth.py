@@ -7,9 +7,9 @@ from pathlib import Path
 
 import pytest
 
-from service.runner import run_job
-from workers import spec as job_spec
-from workers.demo_archive import clean_options, make_demo_archive
+from demaudit.service.run.runner import run_job
+from demaudit.workers import spec as job_spec
+from demaudit.workers.demo.archive import clean_options, make_demo_archive
 
 DEMO = Path(__file__).resolve().parents[2] / "demo_tiles"
 

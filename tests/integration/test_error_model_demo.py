@@ -9,8 +9,8 @@ from pathlib import Path
 import numpy as np
 import pytest
 
-from service.runner import run_job
-from workers import spec as job_spec
+from demaudit.service.run.runner import run_job
+from demaudit.workers import spec as job_spec
 
 DEMO = Path(__file__).resolve().parents[2] / "demo_tiles"
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 
 import time
 
-from service.cluster import JobClient
+from demaudit.service.run.cluster import JobClient
 
 
 def _double(x: int) -> int:

@@ -7,8 +7,8 @@ from pathlib import Path
 
 import pytest
 
-from service.cli import main
-from workers import demo_archive
+from demaudit.service.cli.main import main
+from demaudit.workers.demo import archive as demo_archive
 
 SMALL = ["--tiles", "2x2", "--pixels", "24"]
 

@@ -12,13 +12,13 @@ import rioxarray  # noqa: F401
 import xarray as xr
 from scipy.stats import median_abs_deviation
 
-from service.runner import run_job
-from workers import spec as job_spec
-from workers.catalog import TileIndex, scan_tile
-from workers.errors import EmptyOverlapError, SpecError
-from workers.regions import read_regions, region_mask, to_crs
-from workers.summary import nmad_bound_m, quantile_bound_m
-from workers.tile_task import TileOptions, tile_dh
+from demaudit.service.run.runner import run_job
+from demaudit.workers import spec as job_spec
+from demaudit.workers.errors import EmptyOverlapError, SpecError
+from demaudit.workers.inputs.catalog import TileIndex, scan_tile
+from demaudit.workers.inputs.regions import read_regions, region_mask, to_crs
+from demaudit.workers.stats.summary import nmad_bound_m, quantile_bound_m
+from demaudit.workers.tile.task import TileOptions, tile_dh
 
 
 def load(root: Path):

@@ -17,8 +17,8 @@ from distributed import get_task_stream
 from rasterio.warp import transform_bounds
 from shapely.geometry import box
 
-from service.runner import run_job
-from workers import spec as job_spec
+from demaudit.service.run.runner import run_job
+from demaudit.workers import spec as job_spec
 
 DEMO = Path(__file__).resolve().parents[2] / "demo_tiles"
 

@@ -15,8 +15,8 @@ import pytest
 import rasterio
 from PIL import Image
 
-from service.runner import run_job
-from workers import spec as job_spec
+from demaudit.service.run.runner import run_job
+from demaudit.workers import spec as job_spec
 
 CHROMIUM = shutil.which("chromium")
 FLAGS = [

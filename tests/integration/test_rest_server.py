@@ -22,10 +22,10 @@ import httpx
 import pytest
 import yaml
 
-from service.runner import run_job
+from demaudit.service.run.runner import run_job
+from demaudit.workers import spec as job_spec
+from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
 from tests.support.processes import VENV_BIN, Process, free_port, start_dask
-from workers import spec as job_spec
-from workers.demo_archive import DemoArchiveOptions, make_demo_archive
 
 pytestmark = pytest.mark.slow
 

@@ -25,8 +25,8 @@ import httpx
 import pytest
 import yaml
 
+from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
 from tests.support.processes import VENV_BIN, Process, free_port, start_dask
-from workers.demo_archive import DemoArchiveOptions, make_demo_archive
 
 pytestmark = pytest.mark.slow
 

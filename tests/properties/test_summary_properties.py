@@ -8,8 +8,8 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
-from workers import summary as dhs
-from workers.difference import difference
+from demaudit.workers.stats import summary as dhs
+from demaudit.workers.tile.difference import difference
 
 finite_dh = st.floats(min_value=-200, max_value=200, allow_nan=False, width=64)
 dh_arrays = arrays(np.float64, st.integers(1, 400), elements=finite_dh)

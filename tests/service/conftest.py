@@ -15,12 +15,12 @@ from typing import Any
 import pytest
 from fastapi.testclient import TestClient
 
-from service.app import create_app
-from service.jobstore import JobStore, MemoryJobStore
-from service.runner import JobDismissedError
-from service.settings import Settings
+from demaudit.service.api.app import create_app
+from demaudit.service.run.runner import JobDismissedError
+from demaudit.service.settings import Settings
+from demaudit.service.store.jobs import JobStore, MemoryJobStore
+from demaudit.workers.spec import ResolvedJob
 from tests.service.tokens import AUTH, PRINCIPALS
-from workers.spec import ResolvedJob
 
 SPEC = {
     "name": "unit-job",

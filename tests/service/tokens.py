@@ -20,7 +20,8 @@ AUTH_ADMIN = {"Authorization": f"Bearer {ADMIN_TOKEN}"}
 
 
 def entry(name: str, role: str, token: str) -> str:
-    """A DEMAUDIT_PRINCIPALS entry (hashlib here, so the test does not trust service.auth)."""
+    """A DEMAUDIT_PRINCIPALS entry (hashlib here, so the test does not trust
+    demaudit.service.api.auth)."""
     return f"{name}:{role}:{hashlib.sha256(token.encode()).hexdigest()}"
 
 

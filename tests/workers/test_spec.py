@@ -6,8 +6,8 @@ from pathlib import Path
 
 import pytest
 
-from workers.errors import DataRootError, SpecError
-from workers.spec import load_spec_file, parse_spec, resolve
+from demaudit.workers.errors import DataRootError, SpecError
+from demaudit.workers.spec import load_spec_file, parse_spec, resolve
 
 
 def minimal(**overrides) -> dict:
@@ -137,7 +137,7 @@ def test_an_unknown_user_and_an_over_long_name_are_spec_errors(tree: Path):
 def test_globs_expand_as_glob_does_and_the_file_budget_stops_listing(tree: Path, monkeypatch):
     import glob
 
-    import workers.spec as spec_module
+    import demaudit.workers.spec as spec_module
 
     (tree / "test" / ".hidden.tif").write_bytes(b"")
     patterns = ["test/*.tif", "test/.*.tif", "test/[ab].tif", "*/a.tif"]

@@ -1,0 +1,1 @@
+"""The ``demaudit`` command line."""

@@ -1,0 +1,1 @@
+"""Scheduled runs (cron, time zones, leases) and their webhook notifications."""

@@ -1,0 +1,431 @@
+"""Scheduled runs: a pure decision (:func:`due_runs`, :func:`plan`) and a thin loop around it.
+
+::
+
+    Scheduler.tick (every schedule_tick_s, in each API process)
+      └─ acquire_lease("scheduler") ── not ours: do nothing
+         for each schedule:
+           plan(schedule, last run, now) ─► None          nothing due
+                                         ├► Skip(slot)    claim_slot ─► record 'skipped'
+                                         └► Run(slot)     claim_slot ─► resolve the spec
+                                                          ─► dispatcher.submit(baseline=...)
+                                                          ─► record 'submitted' (or 'failed')
+
+Cron expressions have five fields (or @daily and kin) and are evaluated on the wall clock of the
+schedule's IANA time zone (``timezone``, default UTC): "0 2 * * *" in Europe/Oslo runs at 02:00
+local time in winter and in summer. Slots are stored and compared as UTC times. Where the clocks
+change, slots follow cron's custom: a time the clocks skip in spring (02:30 on the night they jump
+from 02:00 to 03:00) runs when they jump, at 03:00; a time that comes twice in autumn runs once,
+at its first occurrence, when the minute and hour fields are fixed, while schedules with ``*`` in
+the minute or hour field (every 15 minutes, hourly) follow real time and run in both repeated
+hours.
+
+The slots of a schedule are its cron times after its creation. A tick runs the latest slot not
+yet handled, and only that one however many were missed while no server ran; a slot that comes
+while the previous run of its schedule is still going is skipped and recorded as skipped. With
+``baseline: latest`` a run re-checks against the results of the schedule's last successful run
+(a full run when there is none). Claims are compare-and-sets in the job store
+(``demaudit.service.store.schedules``), so API processes sharing a store run each slot once.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+import logging
+import os
+import socket
+import threading
+import uuid
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from dataclasses import dataclass
+from itertools import islice, takewhile
+from pathlib import Path
+from typing import Any, Protocol
+from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
+
+from croniter import CroniterBadDateError, croniter
+
+from demaudit.service.store.jobs import (
+    ACCEPTED,
+    RUNNING,
+    SUCCESSFUL,
+    JobRecord,
+    JobStore,
+    ScheduleRecord,
+)
+from demaudit.service.store.schedules import DEFAULT_TIMEZONE
+from demaudit.workers import spec as job_spec
+from demaudit.workers.errors import AuditError
+from demaudit.workers.spec import ResolvedJob
+
+__all__ = [
+    "LEASE",
+    "Clock",
+    "LastRun",
+    "Run",
+    "Scheduler",
+    "Skip",
+    "check_cron",
+    "check_timezone",
+    "due_runs",
+    "latest_slot",
+    "missed_slots",
+    "next_slot",
+    "plan",
+    "resolve_inputs",
+    "scaled_clock",
+]
+
+LEASE = "scheduler"
+"""Name of the lease whose holder runs the schedules."""
+CRON_ALIASES = frozenset(
+    {"@yearly", "@annually", "@monthly", "@weekly", "@daily", "@midnight", "@hourly"}
+)
+MISSED_COUNT_LIMIT = 1000
+REASON_LIMIT = 2000
+
+Clock = Callable[[], dt.datetime]
+"""The current time, UTC-aware."""
+
+log = logging.getLogger("demaudit.scheduler")
+
+
+# --- the pure part ------------------------------------------------------------------------------
+
+
+def check_cron(expression: str) -> str:
+    """The expression, stripped, if it is a five-field cron expression (or an alias such as
+    @daily) with a next time; else ValueError saying why."""
+    text = " ".join(expression.split())
+    if text.startswith("@"):
+        if text.lower() not in CRON_ALIASES:
+            raise ValueError(f"unknown cron alias; use one of {', '.join(sorted(CRON_ALIASES))}")
+    elif len(text.split()) != 5:
+        raise ValueError("a cron expression has five fields: minute hour day month weekday")
+    if not croniter.is_valid(text):
+        raise ValueError("not a valid cron expression")
+    if next_slot(text, dt.datetime(2000, 1, 1, tzinfo=dt.UTC)) is None:
+        raise ValueError("the cron expression never matches a date")
+    return text
+
+
+def check_timezone(name: str) -> str:
+    """The name, stripped, if it is an IANA time zone the tz database knows (Europe/Oslo, UTC);
+    else ValueError naming it. 'localtime' is refused: it means whatever zone the server happens
+    to be set to, so a schedule's times would move with the machine."""
+    text = name.strip()
+    if text == "localtime":
+        raise ValueError(
+            f"time zone {name!r} depends on the server's settings; name the zone, e.g. Europe/Oslo"
+        )
+    try:
+        ZoneInfo(text)
+    except (ZoneInfoNotFoundError, ValueError, OSError):  # unknown, malformed, a folder
+        raise ValueError(
+            f"unknown time zone {name!r}; use an IANA name such as Europe/Oslo or UTC"
+        ) from None
+    return text
+
+
+def latest_slot(
+    cron: str, now: dt.datetime, *, timezone: str = DEFAULT_TIMEZONE
+) -> dt.datetime | None:
+    """The latest slot at or before now (UTC), or None when there is none."""
+    try:
+        # croniter looks strictly before its start: one microsecond later includes now itself
+        return next(_slots(cron, now + dt.timedelta(microseconds=1), timezone, backward=True))
+    except CroniterBadDateError:
+        return None
+
+
+def next_slot(
+    cron: str, after: dt.datetime, *, timezone: str = DEFAULT_TIMEZONE
+) -> dt.datetime | None:
+    """The first slot strictly after after (UTC), or None when there is none."""
+    try:
+        return next(_slots(cron, after, timezone))
+    except CroniterBadDateError:
+        return None
+
+
+def due_runs(
+    schedule: ScheduleRecord, last_run: dt.datetime | None, now: dt.datetime
+) -> list[dt.datetime]:
+    """The slots of schedule to run at now, given the last slot handled (None: none yet).
+
+    A slot is due when it lies after the schedule's creation and after last_run, and not after
+    now. However many are due, only the latest is returned: a server that was down catches up
+    with one run, not one per missed slot.
+    """
+    after = last_run if last_run is not None else schedule.created
+    latest = latest_slot(schedule.cron, now, timezone=schedule.timezone)
+    if latest is None or latest <= _utc(after):
+        return []
+    return [latest]
+
+
+def missed_slots(
+    cron: str, after: dt.datetime, latest: dt.datetime, *, timezone: str = DEFAULT_TIMEZONE
+) -> int:
+    """How many slots lie strictly between after and latest (counted up to a limit)."""
+    slots = islice(_slots(cron, after, timezone), MISSED_COUNT_LIMIT)
+    return sum(1 for _ in takewhile(lambda slot: slot < latest, slots))
+
+
+def _slots(
+    cron: str, start: dt.datetime, timezone: str, *, backward: bool = False
+) -> Iterator[dt.datetime]:
+    """The slots of cron strictly after start (before it, backward), as UTC times: its times on
+    the wall clock of timezone, a fixed time of day once on the night it comes twice.
+
+    croniter gives both occurrences of a repeated wall-clock time (and CroniterBadDateError
+    when it runs out of times); the second is dropped here unless the schedule follows real
+    time (see _follows_real_time).
+    """
+    zone = ZoneInfo(timezone)
+    times = croniter(cron, _utc(start).astimezone(zone))
+    step = times.get_prev if backward else times.get_next
+    keep_repeats = _follows_real_time(cron)
+    while True:
+        slot = step(dt.datetime).astimezone(dt.UTC)
+        if keep_repeats or not _second_occurrence(slot, zone):
+            yield slot
+
+
+def _follows_real_time(cron: str) -> bool:
+    """Whether cron has * in its minute or hour field (every 15 minutes, hourly, @hourly): such
+    schedules run in both hours the clocks repeat, as cron runs them; fixed times run once."""
+    if cron.startswith("@"):
+        return cron.lower() == "@hourly"
+    minute, hour = cron.split()[:2]
+    return minute.startswith("*") or hour.startswith("*")
+
+
+def _second_occurrence(slot: dt.datetime, zone: ZoneInfo) -> bool:
+    """Whether slot's wall-clock time in zone came already an hour (the offset change) earlier:
+    the repeated hour after the clocks go back. (croniter's own fold flags are unreliable, so
+    the instant is converted afresh.)"""
+    return slot.astimezone(zone).fold == 1
+
+
+@dataclass(frozen=True)
+class LastRun:
+    """What the scheduler knows of a schedule's previous slot."""
+
+    slot: dt.datetime
+    """The last slot handled (run, skipped or failed)."""
+    job_id: str | None = None
+    """The job of the last run that started one."""
+    running: bool = False
+    """Whether that job is still waiting or running."""
+
+
+@dataclass(frozen=True)
+class Run:
+    """Start a job for slot."""
+
+    slot: dt.datetime
+    missed: int = 0
+    """Earlier slots that were due and are covered by this one run."""
+
+
+@dataclass(frozen=True)
+class Skip:
+    """Record slot as skipped, with the reason."""
+
+    slot: dt.datetime
+    reason: str
+
+
+def plan(schedule: ScheduleRecord, last: LastRun | None, now: dt.datetime) -> Run | Skip | None:
+    """What to do for schedule at now: start a run, skip a slot (the previous run is still
+    going: no overlap), or nothing."""
+    slots = due_runs(schedule, last.slot if last is not None else None, now)
+    if not slots:
+        return None
+    slot = slots[-1]
+    if last is not None and last.running:
+        return Skip(slot, f"the previous run (job {last.job_id}) was still running")
+    after = last.slot if last is not None else schedule.created
+    return Run(slot, missed=missed_slots(schedule.cron, after, slot, timezone=schedule.timezone))
+
+
+def scaled_clock(*, speed: float = 1.0, anchor: dt.datetime | None = None) -> Clock:
+    """The UTC clock; with speed > 1 (tests), a clock running speed times faster than real time
+    from anchor on, identical in every process given the same anchor and speed."""
+    if speed == 1.0 or anchor is None:
+        return lambda: dt.datetime.now(dt.UTC)
+    origin = _utc(anchor)
+    return lambda: origin + (dt.datetime.now(dt.UTC) - origin) * speed
+
+
+def _utc(moment: dt.datetime) -> dt.datetime:
+    if moment.tzinfo is None:
+        raise ValueError("scheduler times must be timezone-aware")
+    return moment.astimezone(dt.UTC)
+
+
+# --- the thin shell -----------------------------------------------------------------------------
+
+
+class Submitter(Protocol):
+    """What starts jobs: ``demaudit.service.run.dispatcher.JobDispatcher``."""
+
+    def submit(
+        self,
+        job: ResolvedJob,
+        inputs: dict[str, Any],
+        *,
+        schedule_id: str | None = None,
+        baseline: Path | None = None,
+        owner: str | None = None,
+    ) -> JobRecord: ...
+
+    def results_path(self, job_id: str) -> Path: ...
+
+
+def resolve_inputs(inputs: Mapping[str, Any], *, data_roots: Sequence[Path] | None) -> ResolvedJob:
+    """A stored spec (execute-request inputs) resolved as the REST service resolves specs:
+    relative paths against the first data root, every file inside the roots."""
+    return job_spec.resolve_in_roots(job_spec.parse_spec(dict(inputs)), data_roots=data_roots)
+
+
+class Scheduler:
+    """Starts the due runs of every schedule while it holds the scheduler lease."""
+
+    def __init__(
+        self,
+        store: JobStore,
+        submitter: Submitter,
+        *,
+        resolve: Callable[[Mapping[str, Any]], ResolvedJob],
+        clock: Clock,
+        lease_s: float = 60.0,
+        owner: str | None = None,
+    ) -> None:
+        self.store = store
+        self.owner = owner or f"{socket.gethostname()}-{os.getpid()}-{uuid.uuid4().hex[:8]}"
+        self._submitter = submitter
+        self._resolve = resolve
+        self._clock = clock
+        self._lease_s = lease_s
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    def tick(self) -> list[tuple[str, Run | Skip]]:
+        """Take or renew the lease; if held, handle every schedule's due slot. What was done."""
+        now = self._clock()
+        if not self.store.acquire_lease(LEASE, self.owner, now=now, ttl_s=self._lease_s):
+            return []
+        done: list[tuple[str, Run | Skip]] = []
+        for schedule in self.store.find_schedules(limit=1_000_000):
+            try:
+                action = self._handle(schedule, now)
+            except Exception:  # one schedule's trouble never stops the others
+                log.exception("schedule %s: tick failed", schedule.schedule_id)
+                continue
+            if action is not None:
+                done.append((schedule.schedule_id, action))
+        return done
+
+    def start(self, *, interval_s: float) -> None:
+        """Tick every interval_s seconds (the first after one interval) on a daemon thread
+        until stop()."""
+        self._thread = threading.Thread(
+            target=self._loop, args=(interval_s,), name="demaudit-scheduler", daemon=True
+        )
+        self._thread.start()
+
+    def stop(self, *, timeout: float = 10.0) -> None:
+        """Stop ticking and give up the lease (another process takes over at once)."""
+        self._stop.set()
+        if self._thread is not None:
+            self._thread.join(timeout)
+        try:
+            self.store.release_lease(LEASE, self.owner)
+        except Exception:  # noqa: BLE001 - the lease runs out by itself
+            log.warning("could not release the scheduler lease", exc_info=True)
+
+    def _loop(self, interval_s: float) -> None:
+        while not self._stop.wait(interval_s):
+            try:
+                self.tick()
+            except Exception:  # a store hiccup: try again at the next tick
+                log.exception("scheduler tick failed")
+
+    def _handle(self, schedule: ScheduleRecord, now: dt.datetime) -> Run | Skip | None:
+        action = plan(schedule, self._last_run(schedule), now)
+        if action is None:
+            return None
+        claimed = self.store.claim_slot(
+            schedule.schedule_id,
+            action.slot,
+            previous=schedule.last_slot,
+            owner=self.owner,
+            lease=LEASE,
+            now=now,
+        )
+        if claimed is None:
+            return None  # another scheduler claimed it, or the lease ran out meanwhile
+        if isinstance(action, Skip):
+            self.store.record_run(
+                schedule.schedule_id, action.slot, outcome="skipped", reason=action.reason
+            )
+            log.info("schedule %s: slot %s skipped: %s", schedule.name, action.slot, action.reason)
+            return action
+        self._start(schedule, action)
+        return action
+
+    def _start(self, schedule: ScheduleRecord, action: Run) -> None:
+        slot = action.slot
+        try:
+            job = self._resolve(schedule.inputs)
+            baseline = self._baseline(schedule) if schedule.baseline == "latest" else None
+            record = self._submitter.submit(
+                job,
+                schedule.inputs,
+                schedule_id=schedule.schedule_id,
+                baseline=baseline,
+                owner=schedule.owner,
+            )
+        except (AuditError, RuntimeError) as exc:  # the spec no longer resolves; shutting down
+            reason = _clip(f"no job started: {exc}")
+            self.store.record_run(schedule.schedule_id, slot, outcome="failed", reason=reason)
+            log.warning("schedule %s: slot %s: %s", schedule.name, slot, reason)
+            return
+        except Exception:
+            log.exception("schedule %s: slot %s: could not start a job", schedule.name, slot)
+            reason = "no job started: internal error (details are in the server log)"
+            self.store.record_run(schedule.schedule_id, slot, outcome="failed", reason=reason)
+            return
+        how = f"re-check against {baseline.name}" if baseline is not None else "full run"
+        if action.missed:
+            how += f"; caught up once for {action.missed} missed slot(s)"
+        self.store.record_run(
+            schedule.schedule_id, slot, outcome="submitted", job_id=record.job_id, reason=how
+        )
+        log.info(
+            "schedule %s: slot %s: %s", schedule.name, slot, how, extra={"job_id": record.job_id}
+        )
+
+    def _last_run(self, schedule: ScheduleRecord) -> LastRun | None:
+        if schedule.last_slot is None:
+            return None
+        job = self.store.get(schedule.last_job_id) if schedule.last_job_id else None
+        running = job is not None and job.status in (ACCEPTED, RUNNING)
+        return LastRun(schedule.last_slot, schedule.last_job_id, running)
+
+    def _baseline(self, schedule: ScheduleRecord) -> Path | None:
+        """The results folder of the schedule's newest successful run that still has them."""
+        for run in self.store.find_runs(schedule.schedule_id, limit=100):
+            job = self.store.get(run.job_id) if run.job_id else None
+            if job is None or job.status != SUCCESSFUL:
+                continue
+            folder = self._submitter.results_path(job.job_id)
+            if (folder / "summary.json").is_file() and (folder / "results.zarr").is_dir():
+                return folder
+        return None
+
+
+def _clip(message: str) -> str:
+    return message if len(message) <= REASON_LIMIT else message[: REASON_LIMIT - 3] + "..."

@@ -1,0 +1,1 @@
+"""Where jobs and schedules are kept (SQLite or memory), behind small contracts."""

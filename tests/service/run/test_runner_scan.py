@@ -1,0 +1,76 @@
+"""Tile scans in a re-check: what an older catalog accepted is checked again by today's header
+checks (an RGB image accepted before those checks existed is refused now)."""
+
+from __future__ import annotations
+
+from dataclasses import replace
+from pathlib import Path
+
+import numpy as np
+import rasterio
+from rasterio.transform import from_origin
+
+from demaudit.service.run.runner import _local_map, _scan
+from demaudit.workers.inputs.catalog import (
+    HEADER_CHECKS,
+    ScanFailure,
+    TileInfo,
+    catalog_document,
+    headers_checked,
+    scan_tile,
+)
+
+
+def _rgb(path: Path) -> Path:
+    profile = {
+        "driver": "GTiff", "width": 8, "height": 8, "count": 3, "dtype": "uint8",
+        "crs": "EPSG:32632", "transform": from_origin(480_000, 6_230_000, 5, 5),
+        "photometric": "RGB",
+    }  # fmt: skip
+    with rasterio.open(path, "w", **profile) as dst:
+        dst.write(np.full((3, 8, 8), 120, dtype="uint8"))
+    return path
+
+
+def _dem(path: Path) -> Path:
+    profile = {
+        "driver": "GTiff", "width": 8, "height": 8, "count": 1, "dtype": "float32",
+        "crs": "EPSG:32632", "transform": from_origin(480_000, 6_230_000, 5, 5),
+    }  # fmt: skip
+    with rasterio.open(path, "w", **profile) as dst:
+        dst.write(np.full((1, 8, 8), 50.0, dtype="float32"))
+    return path
+
+
+def _as_old_catalog_saw_it(image: Path, like: TileInfo) -> TileInfo:
+    """The record an older scan (without the band checks) kept of this file."""
+    stat = image.stat()
+    return replace(
+        like, path=str(image), size_bytes=stat.st_size, mtime_ns=stat.st_mtime_ns,
+        fingerprint="f" * 64,
+    )  # fmt: skip
+
+
+def test_an_image_an_older_catalog_accepted_is_refused_when_its_headers_were_not_checked(
+    tmp_path,
+):
+    image = _rgb(tmp_path / "ortho.tif")
+    dem = scan_tile(_dem(tmp_path / "dem.tif"))
+    assert isinstance(dem, TileInfo)
+    known = {str(image): _as_old_catalog_saw_it(image, dem)}
+    # an up-to-date catalog's unchanged tile is taken as it is, without opening the file ...
+    ok, failed = _scan(_local_map, [image], known, known)
+    assert [t.path for t in ok] == [str(image)] and not failed
+    # ... but one written before today's header checks is opened again and the image refused
+    ok, failed = _scan(_local_map, [image], known, {})
+    assert not ok
+    assert isinstance(failed[0], ScanFailure) and "3 bands" in failed[0].reason
+
+
+def test_catalog_documents_say_which_header_checks_they_passed(tmp_path):
+    dem = scan_tile(_dem(tmp_path / "dem.tif"))
+    assert isinstance(dem, TileInfo)
+    document = catalog_document([dem])
+    assert document["header_checks"] == HEADER_CHECKS and headers_checked(document)
+    del document["header_checks"]  # a catalog written before the checks existed
+    assert not headers_checked(document)

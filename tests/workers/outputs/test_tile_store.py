@@ -1,0 +1,59 @@
+"""audit_and_store: the worker writes a tile's summaries into the results store itself."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+from rasterio.transform import from_origin
+
+from demaudit.workers.inputs.catalog import scan_tile
+from demaudit.workers.outputs.summary_store import TileSummaryStore, entries_of
+from demaudit.workers.tile.task import OK, TileOptions, audit_and_store, audit_tile
+from tests.conftest import UTM32, terrain, write_tif
+
+
+def tile_pair(folder: Path):
+    transform = from_origin(480_000, 6_230_000, 5.0, 5.0)
+    rows, cols = np.mgrid[0:40, 0:50]
+    e, n = 480_000 + (cols + 0.5) * 5.0, 6_230_000 - (rows + 0.5) * 5.0
+    z = terrain(e, n)
+    rng = np.random.default_rng(0)
+    test = write_tif(
+        folder / "t.tif", z + rng.normal(0.2, 0.3, z.shape), crs=UTM32, transform=transform
+    )
+    ref = write_tif(folder / "r.tif", z, crs=UTM32, transform=transform)
+    return scan_tile(test), scan_tile(ref)
+
+
+def test_the_worker_stores_what_the_client_would(tmp_path: Path) -> None:
+    test, ref = tile_pair(tmp_path)
+    zarr_path = tmp_path / "results.zarr"
+    client_side = TileSummaryStore(zarr_path, mode="a")  # as the runner opens it
+    result = audit_and_store(test, [ref], [], TileOptions(), summaries_to=str(zarr_path))
+    assert result.status == OK and result.summaries_stored
+    assert client_side.has(test.tile_id)
+    stored, excluded = client_side.read(test.tile_id)
+    want = entries_of(audit_tile(test, [ref], [], TileOptions()))
+    assert excluded == result.excluded
+    assert set(stored) == set(want)
+    for key, summary in want.items():
+        assert stored[key].count == summary.count
+        np.testing.assert_array_equal(stored[key].bins, summary.bins)
+        np.testing.assert_array_equal(stored[key].counts, summary.counts)
+        assert stored[key].mean == summary.mean and stored[key].m2 == summary.m2
+
+
+def test_a_store_the_worker_cannot_write_leaves_it_to_the_client(tmp_path: Path) -> None:
+    test, ref = tile_pair(tmp_path)
+    blocked = tmp_path / "not_a_folder"
+    blocked.write_text("a file where the store should be")
+    result = audit_and_store(test, [ref], [], TileOptions(), summaries_to=str(blocked))
+    assert result.status == OK and not result.summaries_stored
+    assert result.summary.count == 40 * 50
+
+
+def test_without_a_store_nothing_is_written(tmp_path: Path) -> None:
+    test, ref = tile_pair(tmp_path)
+    result = audit_and_store(test, [ref], [], TileOptions())
+    assert result.status == OK and not result.summaries_stored

@@ -1,0 +1,104 @@
+"""results.zarr: overview blocks carried over from a baseline, consolidated metadata."""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+import xarray as xr
+import zarr
+from pyproj import CRS
+
+from demaudit.workers.inputs.catalog import TileInfo
+from demaudit.workers.outputs.summary_store import GROUP, TileSummaryStore
+from demaudit.workers.outputs.writers import (
+    ResultsStore,
+    overview_carries,
+    overview_layout,
+    statistics_table,
+)
+from demaudit.workers.stats.summary import summarise
+from demaudit.workers.tile.grid import Grid
+
+UTM = CRS.from_epsg(32632).to_wkt()
+PIXELS, SIZE = 40, 2.0
+
+
+def tiles(cols: int, rows: int) -> list[TileInfo]:
+    out = []
+    for row in range(rows):
+        for col in range(cols):
+            transform = (SIZE, 0.0, col * PIXELS * SIZE, 0.0, -SIZE, -row * PIXELS * SIZE)
+            grid = Grid(UTM, transform, PIXELS, PIXELS)  # type: ignore[arg-type]
+            out.append(TileInfo(f"t{col}{row}", "/dev/null", grid, None, "float32", 0, ""))
+    return out
+
+
+def build(path, layout_tiles, blocks, factor=4):
+    layout = overview_layout(layout_tiles, factor=factor)
+    store = ResultsStore(path, layout)
+    for tile_id, value in blocks.items():
+        store.write_overview(tile_id, np.full((PIXELS // 4, PIXELS // 4), value, np.float32))
+    return store
+
+
+def overview(path) -> np.ndarray:
+    return np.asarray(zarr.open_array(str(path / "results.zarr" / "dh_overview" / "dh"))[...])
+
+
+@pytest.mark.parametrize("same_grid", [True, False])
+def test_carried_overview_equals_writing_every_block(tmp_path, same_grid):
+    grid = tiles(3, 2)
+    values = {t.tile_id: float(i + 1) for i, t in enumerate(grid)}
+    build(tmp_path / "base", grid, values).finish()
+    bounds = {t.tile_id: list(t.bounds) for t in grid}
+    # the next run: t10 recomputed (new value); when not same_grid, a new column of tiles
+    now = grid if same_grid else tiles(4, 2)
+    new_values = dict(values) | {"t10": 42.0}
+    keep = {k: b for k, b in bounds.items() if k != "t10"}
+    store = build(tmp_path / "night", now, {})
+    store.carry_overview(tmp_path / "base" / "results.zarr", keep, [bounds["t10"]])
+    store.write_overview("t10", np.full((PIXELS // 4, PIXELS // 4), 42.0, np.float32))
+    store.finish()
+    build(tmp_path / "fresh", now, new_values).finish()
+    night, fresh = overview(tmp_path / "night"), overview(tmp_path / "fresh")
+    assert np.array_equal(night, fresh, equal_nan=True)
+    assert np.nanmax(overview(tmp_path / "base")) == 6.0  # the baseline is as it was
+
+
+def test_a_tile_gone_or_failed_is_blank_not_stale(tmp_path):
+    grid = tiles(2, 2)
+    build(tmp_path / "base", grid, {t.tile_id: 1.0 for t in grid}).finish()
+    store = build(tmp_path / "night", grid, {})
+    keep = {t.tile_id: list(t.bounds) for t in grid[1:]}
+    store.carry_overview(tmp_path / "base" / "results.zarr", keep, [list(grid[0].bounds)])
+    store.finish()
+    block = overview(tmp_path / "night")[: PIXELS // 4, : PIXELS // 4]
+    assert np.isnan(block).all() and np.nansum(overview(tmp_path / "night")) > 0
+
+
+def test_tables_open_consolidated_and_summaries_stay_out_of_it(tmp_path):
+    grid = tiles(2, 1)
+    store = build(tmp_path, grid, {"t00": 1.0})
+    TileSummaryStore(store.path, mode="a").write("t00", {("*", ""): summarise(np.arange(9.0))})
+    store.write_tables({"tiles": statistics_table("tile", ["t00"], [{"count": 9}], {})})
+    store.finish()
+    with warnings.catch_warnings():
+        warnings.simplefilter("error", RuntimeWarning)  # xarray warns when it falls back
+        assert int(xr.open_zarr(tmp_path / "results.zarr", group="tiles")["count"][0]) == 9
+    root = zarr.open_group(str(tmp_path / "results.zarr"), mode="r")
+    listed = root.metadata.consolidated_metadata.metadata
+    assert "tiles" in listed and "dh_overview" in listed and GROUP not in listed
+    assert TileSummaryStore(tmp_path / "results.zarr").read("t00")[0][("*", "")].count == 9
+
+
+def test_overview_carries_only_onto_the_same_cells(tmp_path):
+    grid = tiles(3, 2)
+    build(tmp_path / "base", grid, {}).finish()
+    base = tmp_path / "base" / "results.zarr"
+    assert overview_carries(overview_layout(grid, factor=4), base)
+    assert overview_carries(overview_layout(tiles(4, 3), factor=4), base)  # more tiles, same cells
+    assert not overview_carries(overview_layout(grid, factor=2), base)  # other cell size
+    assert overview_carries(None, base)  # nothing to fill
+    assert not overview_carries(overview_layout(grid, factor=4), tmp_path / "nowhere.zarr")

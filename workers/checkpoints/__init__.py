@@ -1,0 +1,1 @@
+"""Surveyed checkpoints: reading, sampling the test model, grading against standards."""

@@ -1,0 +1,1 @@
+"""The invented demo world (Valdmark Survey Office scenario) and its archive writer."""

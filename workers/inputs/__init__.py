@@ -1,0 +1,1 @@
+"""The input edge: confined reads, tile catalog, raster windows and mosaics, region files."""

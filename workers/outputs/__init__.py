@@ -1,0 +1,1 @@
+"""What a job writes: results.zarr, summary.json, report.html and figures."""

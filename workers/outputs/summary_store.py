@@ -1,0 +1,184 @@
+"""Persist summaries in results.zarr so later runs merge them without reading pixels.
+
+Layout: ``results.zarr/tile_summaries/<tile id>/`` holds two arrays, ``bins`` and ``counts`` (the
+histograms of all the tile's entries, concatenated), and an attribute ``entries``: one record per
+(area, stratum) with the exact moments and the slice of the arrays that is its histogram. Area is
+a region id or ``*`` (the whole tile); stratum is a stratum key or ``""`` (no stratum).
+
+``results.zarr/job_summaries/<part>/`` (part ``all``, or ``after`` for the statistics after
+co-registration) holds the job's merged totals in the same layout, plus each tile's minimum and
+maximum per entry it contributed (arrays ``extremes_tile``, ``extremes_key``, ``extremes_values``
+indexing the attributes ``extremes_tiles`` and ``extremes_keys``) and the total of excluded
+pixels: what a re-check needs to continue the merge (workers/stats/merge.py).
+"""
+
+from __future__ import annotations
+
+import math
+import shutil
+from pathlib import Path
+from typing import Any, Literal
+
+import numpy as np
+import zarr
+
+from demaudit.workers.outputs.writers import link_or_copy
+from demaudit.workers.stats.merge import JobAccumulator, TileExtremes, keyed_summaries
+from demaudit.workers.stats.summary import DhSummary
+from demaudit.workers.tile.task import TileResult
+
+GROUP = "tile_summaries"
+JOB_GROUP = "job_summaries"
+ALL_PART, AFTER_PART = "all", "after"  # job totals: all results / after co-registration
+Key = tuple[str, str]  # (area, stratum)
+
+
+AFTER = "after:"  # area prefix of the summaries after co-registration
+
+
+def entries_of(result: TileResult, *, prefix: str = "") -> dict[Key, DhSummary]:
+    """All summaries of a tile result, keyed (area, stratum); those after co-registration carry
+    the area prefix ``after:``."""
+    out = {(prefix + area, stratum): s for (area, stratum), s in keyed_summaries(result).items()}
+    if result.corrected is not None:
+        out.update(entries_of(result.corrected, prefix=AFTER))
+    return out
+
+
+def split_after(entries: dict[Key, DhSummary]) -> tuple[dict[Key, DhSummary], dict[Key, DhSummary]]:
+    """A tile's stored entries split into those of its result and those after co-registration
+    (prefix removed)."""
+    own = {k: s for k, s in entries.items() if not k[0].startswith(AFTER)}
+    after = {
+        (a.removeprefix(AFTER), st): s for (a, st), s in entries.items() if a.startswith(AFTER)
+    }
+    return own, after
+
+
+class TileSummaryStore:
+    """The ``tile_summaries`` group of one results.zarr, opened once (mode 'r' or 'a')."""
+
+    def __init__(self, zarr_path: Path, *, mode: Literal["r", "a"] = "r") -> None:
+        self.zarr_path = Path(zarr_path)
+        root: Any = zarr.open_group(
+            str(zarr_path),
+            mode=mode,
+            zarr_format=3 if mode == "a" else None,
+            use_consolidated=False,
+        )
+        self._parent: Any = root.require_group(GROUP) if mode == "a" else root[GROUP]
+
+    def write(self, tile_id: str, entries: dict[Key, DhSummary], *, excluded: int = 0) -> None:
+        """Write (replace) one tile's summaries."""
+        group = self._parent.create_group(tile_id, overwrite=True)
+        _write_entries(group, entries, {"excluded": int(excluded)})
+
+    def read(self, tile_id: str) -> tuple[dict[Key, DhSummary], int]:
+        """A tile's summaries and its excluded-pixel count (KeyError when not stored)."""
+        group = self._parent[tile_id]
+        entries, attrs = _read_entries(group)
+        return entries, int(attrs.get("excluded", 0))
+
+    def has(self, tile_id: str) -> bool:
+        """Whether the tile's summaries are stored (a file check, nothing is read)."""
+        return (self.zarr_path / GROUP / tile_id / "zarr.json").is_file()
+
+    def link_from(self, other: Path, tile_ids: list[str]) -> None:
+        """Bring tiles' stored summaries over from another results.zarr: hard links where the
+        file system allows (zarr replaces a file on write, never rewrites it in place, so the
+        other store stays as it was), copies elsewhere."""
+        for tile_id in tile_ids:
+            target = self.zarr_path / GROUP / tile_id
+            if target.exists():
+                shutil.rmtree(target)
+            shutil.copytree(Path(other) / GROUP / tile_id, target, copy_function=link_or_copy)
+
+
+def write_job_totals(zarr_path: Path, part: str, acc: JobAccumulator) -> None:
+    """Store a job's merged totals and per-tile extremes under job_summaries/<part>."""
+    root: Any = zarr.open_group(str(zarr_path), mode="a", zarr_format=3, use_consolidated=False)
+    group = root.require_group(JOB_GROUP).create_group(part, overwrite=True)
+    table = acc.extremes().to_arrays()
+    _write_entries(group, acc.totals(), {"excluded": int(acc.excluded)})
+    for name in ("tile", "key", "values"):
+        data = np.asarray(table[name])
+        group.create_array(
+            f"extremes_{name}", data=data, chunks=tuple(max(n, 1) for n in data.shape)
+        )
+    group.attrs.update(
+        {"extremes_tiles": table["tiles"], "extremes_keys": [list(k) for k in table["keys"]]}  # type: ignore[attr-defined]
+    )
+
+
+def read_job_totals(zarr_path: Path, part: str, region_ids: list[str]) -> JobAccumulator | None:
+    """A job accumulator resumed from job_summaries/<part> (None when the store has none);
+    ValueError when a stored histogram does not add up to its count."""
+    try:
+        root: Any = zarr.open_group(str(zarr_path), mode="r", use_consolidated=False)
+        group = root[JOB_GROUP][part]
+    except (KeyError, FileNotFoundError):
+        return None
+    totals, attrs = _read_entries(group)
+    for key, s in totals.items():
+        if int(s.counts.sum()) != s.count:
+            raise ValueError(f"stored job totals of {key} do not add up")
+    extremes = TileExtremes.from_arrays(
+        attrs["extremes_tiles"],
+        [(a, st) for a, st in attrs["extremes_keys"]],
+        np.asarray(group["extremes_tile"][...], dtype=np.int64),
+        np.asarray(group["extremes_key"][...], dtype=np.int64),
+        np.asarray(group["extremes_values"][...], dtype=np.float64),
+    )
+    return JobAccumulator.resume(
+        totals, extremes, excluded=int(attrs.get("excluded", 0)), region_ids=region_ids
+    )
+
+
+def _write_entries(group: Any, entries: dict[Key, DhSummary], attrs: dict[str, Any]) -> None:
+    """Histograms concatenated in two arrays; moments and slices in the attribute entries."""
+    records: list[dict[str, Any]] = []
+    offset = 0
+    for (area, stratum), s in entries.items():
+        records.append(
+            {
+                "area": area,
+                "stratum": stratum,
+                "count": s.count,
+                "mean": s.mean,
+                "m2": s.m2,
+                "min": _finite_or_none(s.minimum),
+                "max": _finite_or_none(s.maximum),
+                "offset": offset,
+                "length": int(s.bins.size),
+            }
+        )
+        offset += int(s.bins.size)
+    empty = np.zeros(0, np.int64)
+    bins = np.concatenate([s.bins for s in entries.values()]) if entries else empty
+    counts = np.concatenate([s.counts for s in entries.values()]) if entries else empty
+    group.create_array("bins", data=bins.astype(np.int32), chunks=(max(bins.size, 1),))
+    group.create_array("counts", data=counts.astype(np.int64), chunks=(max(counts.size, 1),))
+    group.attrs.update({"entries": records, **attrs})
+
+
+def _read_entries(group: Any) -> tuple[dict[Key, DhSummary], dict[str, Any]]:
+    bins = np.asarray(group["bins"][:], dtype=np.int64)
+    counts = np.asarray(group["counts"][:], dtype=np.int64)
+    out: dict[Key, DhSummary] = {}
+    attrs = group.attrs.asdict()
+    for r in attrs["entries"]:
+        part = slice(r["offset"], r["offset"] + r["length"])
+        out[(r["area"], r["stratum"])] = DhSummary(
+            int(r["count"]),
+            float(r["mean"]),
+            float(r["m2"]),
+            math.inf if r["min"] is None else float(r["min"]),
+            -math.inf if r["max"] is None else float(r["max"]),
+            bins[part].copy(),
+            counts[part].copy(),
+        )
+    return out, attrs
+
+
+def _finite_or_none(value: float) -> float | None:
+    return value if math.isfinite(value) else None

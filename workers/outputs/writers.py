@@ -1,0 +1,440 @@
+"""Write results: ``results.zarr`` (tile and region tables, georeferenced dh overview) and
+``summary.json``. The I/O edge at the end of the pipeline.
+
+Zarr layout (Zarr format 3, consolidated metadata at the root except for the summaries)::
+
+    results.zarr/
+      tiles/        dim tile:   one variable per statistic;
+                    coords tile, left/bottom/right/top, status, reason
+      regions/      dim region: one variable per statistic; coords region, name
+      strata/       dims area, stratum: one variable per statistic
+      after_coregistration/  dim region (when co-registration was applied)
+      dh_overview/  dims y, x:  block mean of dh (1:factor), CF grid_mapping ``spatial_ref``
+      tile_summaries/, job_summaries/: mergeable summaries (workers/outputs/summary_store.py), not
+      in the
+                    consolidated metadata: open them with use_consolidated=False
+
+A run's output folder is built whole beside its target (:func:`staged_folder`) and swapped in
+only when complete, so a failed run leaves an earlier result as it was.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import shutil
+import warnings
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any, Literal
+
+import dask.array as da
+import numpy as np
+import rioxarray  # noqa: F401 - registers the .rio accessor
+import xarray as xr
+import zarr
+from numpy.typing import NDArray
+
+from demaudit.workers.errors import AuditError, OutputError
+from demaudit.workers.inputs.catalog import TileInfo
+from demaudit.workers.stats.summary import STAT_KEYS
+
+ZARR_NAME = "results.zarr"
+#: Groups read with the zarr API, left out of the root's consolidated metadata.
+UNCONSOLIDATED_GROUPS = frozenset({"tile_summaries", "job_summaries"})
+SUMMARY_NAME = "summary.json"
+#: A folder holding one of these is taken for an earlier result, replaced as a whole by a new run.
+RESULT_MARKERS = (SUMMARY_NAME, ZARR_NAME)
+
+
+def check_output_folder(target: Path) -> Path:
+    """The absolute output folder; OutputError when it is a file, or a non-empty folder that
+    holds no earlier result (its files would be replaced)."""
+    target = Path(target).expanduser().resolve()
+    if target.exists() and not target.is_dir():
+        raise OutputError(f"--out: {target} is a file, not a folder")
+    if target.is_dir():
+        try:
+            entries = sorted(p.name for p in target.iterdir())
+        except OSError as exc:
+            raise OutputError(f"--out: cannot read the folder {target}: {exc.strerror}") from None
+        if entries and not any(name in entries for name in RESULT_MARKERS):
+            shown = ", ".join(entries[:3]) + (", ..." if len(entries) > 3 else "")
+            raise OutputError(
+                f"--out: {target} holds files that are not demaudit results ({shown}); a run "
+                "replaces its output folder as a whole, so name a new or empty folder"
+            )
+    return target
+
+
+@contextmanager
+def staged_folder(target: Path, run_id: str) -> Iterator[Path]:
+    """Yield a new folder ``<target>.partial-<run_id>`` beside target to build a result in; when
+    the block ends without error, swap it in place of target (an earlier result there is
+    replaced as a whole), else remove it. The target appears complete or not at all.
+
+    Errors of the file system (read-only, disk full, a file in the way) become OutputError with
+    one line naming the file; target is then left as it was.
+    """
+    target = check_output_folder(target)
+    partial = target.with_name(f"{target.name}.partial-{run_id}")
+    try:
+        target.parent.mkdir(parents=True, exist_ok=True)
+        partial.mkdir()
+    except OSError as exc:
+        raise OutputError(
+            f"--out: cannot create {_failed_path(exc, partial)} (results are built beside the "
+            f"output folder, then swapped in): {exc.strerror or exc}"
+        ) from None
+    try:
+        yield partial
+        _swap_in(partial, target, run_id)
+    except OSError as exc:
+        shutil.rmtree(partial, ignore_errors=True)
+        if isinstance(exc, AuditError):
+            raise
+        raise OutputError(
+            f"the run stopped on a file error and left {target} as it was: "
+            f"{exc.strerror or exc}: {_failed_path(exc, partial)}"
+        ) from None
+    except BaseException:
+        shutil.rmtree(partial, ignore_errors=True)
+        raise
+
+
+def _swap_in(partial: Path, target: Path, run_id: str) -> None:
+    """Put partial in place of target: the old folder aside, the new one in, the old removed
+    (moved back when the new one cannot go in)."""
+    aside = target.with_name(f"{target.name}.replaced-{run_id}")
+    had = target.exists()
+    if had:
+        target.rename(aside)
+    try:
+        partial.rename(target)
+    except OSError:
+        if had:
+            aside.rename(target)
+        raise
+    if had:
+        shutil.rmtree(aside, ignore_errors=True)
+
+
+def _failed_path(exc: OSError, fallback: Path) -> str:
+    return str(exc.filename) if exc.filename else str(fallback)
+
+
+@dataclass(frozen=True)
+class OverviewLayout:
+    """Where each test tile's overview block goes in the mosaic of all tiles."""
+
+    crs: str
+    transform: tuple[float, float, float, float, float, float]
+    width: int
+    height: int
+    factor: int
+    tile_block: int
+    offsets: Mapping[str, tuple[int, int]]  # tile id -> (row, col) of its block in the mosaic
+
+
+def overview_layout(tiles: Sequence[TileInfo], *, factor: int) -> OverviewLayout | None:
+    """A mosaic grid for the overview, decimated by the largest divisor of the tiling <= factor.
+
+    None when the test tiles do not share one CRS and one north-up pixel grid.
+    """
+    if not tiles:
+        return None
+    first = tiles[0].grid
+    a, b, _, d, e, _ = first.transform
+    if b != 0 or d != 0 or any(t.grid.crs != first.crs for t in tiles):
+        return None
+    if any(t.grid.transform[0] != a or t.grid.transform[4] != e for t in tiles):
+        return None
+    left = min(t.grid.transform[2] for t in tiles)
+    top = max(t.grid.transform[5] for t in tiles)
+    pixel_offsets = {}
+    for t in tiles:
+        col, row = (t.grid.transform[2] - left) / a, (t.grid.transform[5] - top) / e
+        if abs(col - round(col)) > 1e-6 or abs(row - round(row)) > 1e-6:
+            return None
+        pixel_offsets[t.tile_id] = (round(row), round(col))
+    sizes = [t.grid.width for t in tiles] + [t.grid.height for t in tiles]
+    common = math.gcd(*sizes, *[v for rc in pixel_offsets.values() for v in rc])
+    factor = max(f for f in range(1, factor + 1) if common % f == 0)
+    width = max(c + t.grid.width for t, (_, c) in zip(tiles, pixel_offsets.values(), strict=True))
+    height = max(r + t.grid.height for t, (r, _) in zip(tiles, pixel_offsets.values(), strict=True))
+    return OverviewLayout(
+        crs=first.crs,
+        transform=(a * factor, 0.0, left, 0.0, e * factor, top),
+        width=width // factor,
+        height=height // factor,
+        factor=factor,
+        tile_block=max(min(sizes) // factor, 1),
+        offsets={k: (r // factor, c // factor) for k, (r, c) in pixel_offsets.items()},
+    )
+
+
+@contextmanager
+def _quiet_zarr() -> Iterator[None]:
+    with warnings.catch_warnings():
+        warnings.filterwarnings("ignore", message=".*Consolidated metadata.*")
+        yield
+
+
+class ResultsStore:
+    """Writes one job's ``results.zarr``; overview blocks are written as tiles finish.
+
+    The store is built as ``results.zarr.partial`` and replaces an earlier ``results.zarr`` only
+    in :meth:`finish`. The runner writes it inside a staged output folder (:func:`staged_folder`),
+    which keeps the whole earlier result, not only its store, intact when a job fails.
+    """
+
+    def __init__(self, out_dir: Path, layout: OverviewLayout | None) -> None:
+        self.final_path = Path(out_dir) / ZARR_NAME
+        self.path = self.final_path.with_name(ZARR_NAME + ".partial")
+        if self.path.exists():
+            shutil.rmtree(self.path)
+        self.layout = layout
+        self._overview_array: Any = None
+        if layout is not None:
+            self._create_overview(layout)
+
+    def _create_overview(self, layout: OverviewLayout) -> None:
+        x, y = self._overview_coords()
+        blank = da.full(
+            (layout.height, layout.width),
+            np.nan,
+            dtype=np.float32,
+            chunks=(layout.tile_block, layout.tile_block),
+        )
+        dh = xr.DataArray(blank, dims=("y", "x"), coords={"y": y, "x": x}, name="dh")
+        dh.attrs.update(long_name="dh, test minus reference (block mean)", units="m")
+        dh = dh.rio.write_crs(layout.crs).rio.write_transform(_affine(layout.transform))
+        dh.encoding["_FillValue"] = np.float32(np.nan)
+        with _quiet_zarr():
+            dh.to_dataset().to_zarr(  # type: ignore[call-overload]
+                self.path,
+                group="dh_overview",
+                mode="w",
+                compute=False,
+                zarr_format=3,
+                consolidated=False,
+            )
+
+    def write_overview(self, tile_id: str, block: NDArray[np.float32] | None) -> None:
+        """Write one tile's overview block in place (no other block is read)."""
+        if self.layout is None or block is None or tile_id not in self.layout.offsets:
+            return
+        row, col = self.layout.offsets[tile_id]
+        rows = slice(row, min(row + block.shape[0], self.layout.height))
+        cols = slice(col, min(col + block.shape[1], self.layout.width))
+        part = block[: rows.stop - rows.start, : cols.stop - cols.start]
+        self._overview()[rows, cols] = part
+
+    def carry_overview(
+        self,
+        baseline: Path,
+        keep: Mapping[str, Sequence[float]],
+        blank: Sequence[Sequence[float]],
+    ) -> None:
+        """Bring over the overview blocks of the tiles in keep (tile id -> bounds) from an
+        earlier results.zarr; blank the footprints in blank (tiles recomputed or gone).
+
+        When both overviews share one grid, the chunk files are linked (or copied) wholesale and
+        only the blanked footprints are written: the cost does not grow with the tiles kept.
+        Otherwise each kept tile's block is read and written.
+        """
+        if self.layout is None or not keep:
+            return
+        try:
+            source: Any = zarr.open_group(str(baseline / "dh_overview"), mode="r")
+            old, old_x, old_y = source["dh"], source["x"][:], source["y"][:]
+        except (KeyError, FileNotFoundError, OSError):
+            return
+        new = self._overview()
+        x, y = self._overview_coords()
+        if (
+            old.shape == new.shape
+            and old.chunks == new.chunks
+            and np.array_equal(old_x, x)
+            and np.array_equal(old_y, y)
+        ):
+            chunks = baseline / "dh_overview" / "dh" / "c"
+            if chunks.is_dir():
+                shutil.copytree(
+                    chunks,
+                    self.path / "dh_overview" / "dh" / "c",
+                    dirs_exist_ok=True,
+                    copy_function=link_or_copy,
+                )
+            for bounds in blank:
+                rows, cols = _window(x, y, bounds)
+                if rows.stop > rows.start and cols.stop > cols.start:
+                    new[rows, cols] = np.nan
+            return
+        for bounds in keep.values():
+            old_rows, old_cols = _window(old_x, old_y, bounds)
+            rows, cols = _window(x, y, bounds)
+            if rows.stop > rows.start and cols.stop > cols.start:
+                new[rows, cols] = old[old_rows, old_cols]
+
+    def _overview(self) -> Any:
+        if self._overview_array is None:
+            self._overview_array = zarr.open_array(
+                str(self.path / "dh_overview" / "dh"), mode="r+", use_consolidated=False
+            )
+        return self._overview_array
+
+    def _overview_coords(self) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        assert self.layout is not None
+        a, _, c, _, e, f = self.layout.transform
+        x = c + a * (np.arange(self.layout.width, dtype=np.float64) + 0.5)
+        y = f + e * (np.arange(self.layout.height, dtype=np.float64) + 0.5)
+        return x.astype(np.float64), y.astype(np.float64)
+
+    def finish(self) -> None:
+        """Consolidate the metadata and put the store in place of any earlier results.zarr.
+
+        The stored summaries (a group per tile, with large attributes) are moved aside while the
+        root is consolidated: gathering them would cost every run time in proportion to the
+        archive and make the root's metadata grow with it. Open them directly, without
+        consolidated metadata (see workers/outputs/summary_store.py).
+        """
+        aside = self.path.with_name(self.path.name + ".aside")
+        if aside.exists():
+            shutil.rmtree(aside)
+        moved = [name for name in UNCONSOLIDATED_GROUPS if (self.path / name).is_dir()]
+        for name in moved:
+            aside.mkdir(exist_ok=True)
+            (self.path / name).rename(aside / name)
+        with _quiet_zarr():
+            zarr.consolidate_metadata(str(self.path))
+        for name in moved:
+            (aside / name).rename(self.path / name)
+        if aside.exists():
+            aside.rmdir()
+        if self.final_path.exists():
+            shutil.rmtree(self.final_path)
+        self.path.rename(self.final_path)
+        self.path = self.final_path
+
+    def write_tables(self, tables: Mapping[str, xr.Dataset]) -> None:
+        """Write tables (group name -> dataset), e.g. tiles, regions, strata."""
+        for group, table in tables.items():
+            mode: Literal["a", "w"] = "a" if self.path.exists() else "w"
+            with _quiet_zarr():
+                table.to_zarr(self.path, group=group, mode=mode, zarr_format=3, consolidated=False)
+
+
+def overview_carries(layout: OverviewLayout | None, baseline: Path) -> bool:
+    """Whether an earlier results.zarr's dh overview can be carried into one on layout: same
+    cell size, cell edges on the same lines (True when there is no overview to fill)."""
+    if layout is None:
+        return True
+    try:
+        group: Any = zarr.open_group(str(Path(baseline) / "dh_overview"), mode="r")
+        x, y = np.asarray(group["x"][:]), np.asarray(group["y"][:])
+    except (KeyError, FileNotFoundError, OSError):
+        return False
+    a, _, c, _, e, f = layout.transform
+    if x.size < 2 or y.size < 2 or not (np.isclose(x[1] - x[0], a) and np.isclose(y[1] - y[0], e)):
+        return False
+    cols, rows = (x[0] - (c + a / 2)) / a, (y[0] - (f + e / 2)) / e
+    return bool(np.isclose(cols, round(cols)) and np.isclose(rows, round(rows)))
+
+
+def _window(
+    x: NDArray[np.float64], y: NDArray[np.float64], bounds: Sequence[float]
+) -> tuple[slice, slice]:
+    """Rows and columns of the overview cells whose centres lie inside bounds."""
+    left, bottom, right, top = bounds
+    cols = np.flatnonzero((x > left) & (x < right))
+    rows = np.flatnonzero((y > bottom) & (y < top))
+    if cols.size == 0 or rows.size == 0:
+        return slice(0, 0), slice(0, 0)
+    return slice(int(rows[0]), int(rows[-1]) + 1), slice(int(cols[0]), int(cols[-1]) + 1)
+
+
+def link_or_copy(source: str, target: str) -> None:
+    """Hard-link a file where the file system allows, else copy it. Safe for zarr stores: zarr
+    writes a new file and renames it over the old, never rewriting a file in place."""
+    Path(target).unlink(missing_ok=True)  # never write through a link into the other store
+    try:
+        os.link(source, target)
+    except OSError:  # another file system, or links not allowed
+        shutil.copy2(source, target)
+
+
+def _affine(t: tuple[float, ...]):  # type: ignore[no-untyped-def]
+    from affine import Affine
+
+    return Affine(*t[:6])
+
+
+def statistics_table(
+    dim: str,
+    ids: Sequence[str],
+    stats: Sequence[Mapping[str, Any]],
+    coords: Mapping[str, Any],
+) -> xr.Dataset:
+    """One variable per statistic along dim; None becomes NaN (count stays an integer)."""
+    data: dict[str, Any] = {}
+    for key in STAT_KEYS:
+        values = [s.get(key) for s in stats]
+        if key == "count":
+            data[key] = (dim, np.array([v or 0 for v in values], dtype=np.int64))
+        else:
+            data[key] = (
+                dim,
+                np.array([np.nan if v is None else v for v in values], dtype=np.float64),
+            )
+    all_coords: dict[str, Any] = {dim: np.array(list(ids), dtype=object)}
+    for name, column in coords.items():
+        arr = np.array(list(column))
+        all_coords[name] = (dim, arr.astype(object) if arr.dtype.kind in "UO" else arr)
+    ds = xr.Dataset(data, coords=all_coords)
+    for key in STAT_KEYS:
+        if key != "count":
+            ds[key].attrs["units"] = "m"
+    return ds
+
+
+def strata_table(
+    areas: Sequence[str], strata: Sequence[str], stats: Mapping[tuple[str, str], Mapping[str, Any]]
+) -> xr.Dataset:
+    """Statistics on dims (area, stratum); NaN (count 0) where a combination holds no pixel."""
+    data: dict[str, Any] = {}
+    for key in STAT_KEYS:
+        grid = np.full((len(areas), len(strata)), 0 if key == "count" else np.nan)
+        for i, area in enumerate(areas):
+            for j, stratum in enumerate(strata):
+                value = stats.get((area, stratum), {}).get(key)
+                if value is not None:
+                    grid[i, j] = value
+        data[key] = (("area", "stratum"), grid.astype(np.int64 if key == "count" else np.float64))
+    coords = {
+        "area": np.array(list(areas), dtype=object),
+        "stratum": np.array(list(strata), dtype=object),
+    }
+    return xr.Dataset(data, coords=coords)
+
+
+def write_summary(out_dir: Path, document: Mapping[str, Any], *, name: str = SUMMARY_NAME) -> Path:
+    """Write a JSON document (summary.json by default; NaN and infinities as null)."""
+    path = Path(out_dir) / name
+    path.write_text(json.dumps(_json_safe(document), indent=2) + "\n", encoding="utf-8")
+    return path
+
+
+def _json_safe(value: Any) -> Any:
+    if isinstance(value, Mapping):
+        return {str(k): _json_safe(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_json_safe(v) for v in value]
+    if isinstance(value, float | np.floating):
+        return float(value) if math.isfinite(value) else None
+    if isinstance(value, np.integer):
+        return int(value)
+    return value

@@ -1,0 +1,1 @@
+"""Nightly re-check: which tiles to recompute against a baseline run, and the verdicts."""

@@ -1,0 +1,1 @@
+"""Mergeable dh summaries, their merge and robust inference; exact accuracy of residuals."""

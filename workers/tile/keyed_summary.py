@@ -1,0 +1,245 @@
+"""Many dh summaries from one pass: every value carries a small integer key (its cell), and any
+union of cells is summarised without touching the values again (pure).
+
+A tile's summaries (whole tile, each region, each region x stratum) are unions of cells of
+(region membership x land-cover class x slope band). :func:`summarise_cells` bins each value once
+and counts (cell, bin) pairs with one bincount; moments per cell come from bincounts with weights
+(two passes, so the sum of squared deviations does not cancel); extremes from ``minimum.at``.
+:meth:`CellSummaries.union` then adds the cells' histograms and merges their moments. The result
+is the :class:`~demaudit.workers.stats.summary.DhSummary` that ``summarise`` gives on the same
+values: the same
+bins and counts (the same dtypes) and extremes, the moments equal to rounding (about 1e-13
+relative).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+
+from demaudit.workers.stats import summary as dh_summary
+from demaudit.workers.stats.summary import DhSummary
+from demaudit.workers.tile import kernels
+
+_K = dh_summary._K_LIMIT  # linear bins are -_K .. _K - 1
+_WIDTH = 2 * _K + 1  # one column per linear bin, plus one (the last) for values in the tails
+#: Most (cell, bin) counters held at once (int64): larger tiles' cells are counted in groups.
+MAX_COUNTERS = 4_000_000
+
+
+@dataclass(frozen=True, eq=False)
+class CellSummaries:
+    """Per cell: count, mean, m2, extremes and the sparse histogram (linear bins and tails)."""
+
+    count: NDArray[np.int64]
+    mean: NDArray[np.float64]
+    m2: NDArray[np.float64]
+    minimum: NDArray[np.float64]
+    maximum: NDArray[np.float64]
+    linear: tuple[NDArray[np.int64], ...]  # per cell, the counts of the linear bins (dense)
+    tails: tuple[tuple[NDArray[np.int64], NDArray[np.int64]], ...]  # (bin, count) per cell
+
+    def union(self, cells: Iterable[int]) -> DhSummary:
+        """The summary of the values of all the given cells together."""
+        chosen = [c for c in cells if self.count[c]]
+        if not chosen:
+            return dh_summary.empty()
+        idx = np.asarray(chosen, dtype=np.intp)
+        n = self.count[idx]
+        total = int(n.sum())
+        mean = float((self.mean[idx] * n).sum() / total)
+        delta = self.mean[idx] - mean
+        m2 = float(self.m2[idx].sum() + (n * delta * delta).sum())
+        bins, counts = self._histogram(chosen)
+        counts = counts.astype(np.int32 if total < 2**31 else np.int64)
+        return DhSummary(
+            total,
+            mean,
+            m2,
+            float(self.minimum[idx].min()),
+            float(self.maximum[idx].max()),
+            bins,
+            counts,
+        )
+
+    def grouped(self, groups: Sequence[Iterable[int]]) -> CellSummaries:
+        """Summaries per group of cells: cell j of the result is the union of groups[j]
+        (so that unions over many groups add each group's histograms once)."""
+        parts = [[c for c in group if self.count[c]] for group in groups]
+        count = np.array([int(self.count[p].sum()) for p in parts], dtype=np.int64)
+        mean, m2 = np.zeros(len(parts)), np.zeros(len(parts))
+        minimum, maximum = np.full(len(parts), np.inf), np.full(len(parts), -np.inf)
+        linear, tails = [], []
+        for j, p in enumerate(parts):
+            if p:
+                n = self.count[p]
+                mean[j] = (self.mean[p] * n).sum() / count[j]
+                delta = self.mean[p] - mean[j]
+                m2[j] = self.m2[p].sum() + (n * delta * delta).sum()
+                minimum[j], maximum[j] = self.minimum[p].min(), self.maximum[p].max()
+            linear.append(self._linear(p))
+            tails.append(self._tails(p))
+        return CellSummaries(count, mean, m2, minimum, maximum, tuple(linear), tuple(tails))
+
+    def _linear(self, cells: list[int]) -> NDArray[np.int64]:
+        if not cells:
+            return np.zeros(_WIDTH - 1, dtype=np.int64)
+        dense = self.linear[cells[0]]
+        if len(cells) > 1:
+            dense = dense.copy()
+            for c in cells[1:]:
+                dense += self.linear[c]
+        return dense
+
+    def _tails(self, cells: list[int]) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+        if not cells:
+            return np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64)
+        tail_bins = np.concatenate([self.tails[c][0] for c in cells])
+        tail_counts = np.concatenate([self.tails[c][1] for c in cells])
+        if len(cells) > 1 and tail_bins.size:
+            tail_bins, where = np.unique(tail_bins, return_inverse=True)
+            tail_counts = np.bincount(where, weights=tail_counts).astype(np.int64)
+        return tail_bins.astype(np.int64), tail_counts.astype(np.int64)
+
+    def _histogram(self, cells: list[int]) -> tuple[NDArray[np.int32], NDArray[np.int64]]:
+        dense = self._linear(cells)
+        (columns,) = np.nonzero(dense)
+        linear_counts = dense[columns]
+        tail_bins, tail_counts = self._tails(cells)
+        bins = np.concatenate([columns - _K, tail_bins]).astype(np.int32)
+        counts = np.concatenate([linear_counts, tail_counts]).astype(np.int64)
+        order = np.argsort(bins, kind="stable")
+        return bins[order], counts[order]
+
+
+def summarise_cells(
+    values: NDArray[np.floating], cells: NDArray[np.integer], n_cells: int
+) -> CellSummaries:
+    """Summaries of values (1-D, metres) per cell (1-D, same length, 0..n_cells-1).
+
+    NaN and infinite values, and values whose cell is negative, are left out.
+    """
+    x = np.asarray(values, dtype=np.float64)
+    key = np.asarray(cells)
+    if x.shape != key.shape or x.ndim != 1:
+        raise ValueError(f"values {x.shape} and cells {key.shape} must be 1-D of one length")
+    if kernels.AVAILABLE and n_cells * _WIDTH <= MAX_COUNTERS:
+        return _summarise_compiled(x, key, n_cells)
+    keep = np.isfinite(x) & (key >= 0)
+    if not keep.all():
+        x, key = x[keep], key[keep]
+    key = key.astype(np.intp, copy=False)
+    count = np.bincount(key, minlength=n_cells)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.bincount(key, weights=x, minlength=n_cells) / count
+        deviation = x - mean[key]
+        residual = np.bincount(key, weights=deviation, minlength=n_cells)
+        np.multiply(deviation, deviation, out=deviation)
+        squares = np.bincount(key, weights=deviation, minlength=n_cells)
+        correction = np.where(count > 0, residual / count, 0.0)
+        mean += correction  # the residual of the first estimate, as in a second pass
+        m2 = np.maximum(squares - residual * correction, 0.0)
+    del deviation
+    minimum = np.full(n_cells, np.inf)
+    maximum = np.full(n_cells, -np.inf)
+    np.minimum.at(minimum, key, x)
+    np.maximum.at(maximum, key, x)
+    linear, tails = _cell_histograms(x, key, n_cells)
+    return CellSummaries(count, np.nan_to_num(mean), m2, minimum, maximum, linear, tails)
+
+
+def _cell_histograms(
+    x: NDArray[np.float64], key: NDArray[np.intp], n_cells: int
+) -> tuple[tuple[NDArray[np.int64], ...], tuple[tuple[NDArray[np.int64], NDArray[np.int64]], ...]]:
+    """Per cell, the counts of the linear bins (dense, column = bin + _K) and the tail bins."""
+    k = dh_summary.bin_index(x)
+    column = k + _K
+    in_tail = column.view(np.uint64) >= _WIDTH - 1  # negative columns wrap to huge
+    (tail,) = np.nonzero(in_tail)
+    column[tail] = _WIDTH - 1
+    linear: list[NDArray[np.int64]] = []
+    group = max(1, MAX_COUNTERS // _WIDTH)
+    for first in range(0, n_cells, group):
+        last = min(first + group, n_cells)
+        if first == 0 and last == n_cells:
+            code = key * _WIDTH
+            code += column
+        else:
+            inside = (key >= first) & (key < last)
+            code = (key[inside] - first) * _WIDTH + column[inside]
+        dense = np.bincount(code, minlength=(last - first) * _WIDTH).reshape(-1, _WIDTH)
+        del code
+        linear.extend(dense[:, :-1])
+    return tuple(linear), _tail_runs(key[tail], k[tail], n_cells)
+
+
+def _summarise_compiled(
+    x: NDArray[np.float64], key: NDArray[np.intp], n_cells: int
+) -> CellSummaries:
+    """summarise_cells in two compiled sweeps (sums, extremes and linear bins; deviations)."""
+    dense = np.zeros((n_cells, _WIDTH - 1), dtype=np.int64)
+    sums = np.zeros(n_cells)
+    minimum = np.full(n_cells, np.inf)
+    maximum = np.full(n_cells, -np.inf)
+    tail = np.empty(x.size, dtype=np.intp)
+    n_tail = kernels.cell_sweep(
+        x,
+        key,
+        dh_summary.LINEAR_WIDTH_M,
+        dh_summary.LINEAR_LIMIT_M,
+        _K,
+        dense,
+        sums,
+        minimum,
+        maximum,
+        tail,
+    )
+    tail = tail[:n_tail]
+    tail_key = key[tail].astype(np.intp)
+    count = dense.sum(axis=1) + np.bincount(tail_key, minlength=n_cells)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(count > 0, sums / count, 0.0)
+    residual = np.zeros(n_cells)
+    squares = np.zeros(n_cells)
+    kernels.deviation_sweep(x, key, mean, residual, squares)
+    correction = np.where(count > 0, residual / np.maximum(count, 1), 0.0)
+    mean += correction  # the residual of the first estimate, as in a second pass
+    m2 = np.maximum(squares - residual * correction, 0.0)
+    tails = _tail_runs(tail_key, dh_summary.bin_index(x[tail]), n_cells)
+    return CellSummaries(count, mean, m2, minimum, maximum, tuple(dense), tails)
+
+
+def _tail_runs(
+    tail_key: NDArray[np.intp], tail_bin: NDArray[np.int64], n_cells: int
+) -> tuple[tuple[NDArray[np.int64], NDArray[np.int64]], ...]:
+    """Per cell, the distinct tail bins of its values and how many fall in each (ascending).
+
+    The (cell, bin) pairs are counted as one integer code: with one bincount when the bins span
+    a range small enough to hold a counter per (cell, bin) (a tile's tails usually do), else by
+    sorting the codes. Either way the runs come out ordered by cell, then bin.
+    """
+    if tail_key.size == 0:
+        empty = np.zeros(0, dtype=np.int64)
+        return tuple((empty, empty) for _ in range(n_cells))
+    low = int(tail_bin.min())
+    span = int(tail_bin.max()) - low + 1
+    code = tail_key.astype(np.int64) * span
+    code += tail_bin
+    code -= low
+    if n_cells * span <= MAX_COUNTERS:
+        counted = np.bincount(code, minlength=n_cells * span)
+        codes = np.flatnonzero(counted)
+        run_counts = counted[codes].astype(np.int64)
+    else:
+        codes, run_counts = np.unique(code, return_counts=True)
+        run_counts = run_counts.astype(np.int64)
+    run_keys, run_bins = np.divmod(codes, span)
+    run_bins += low
+    bounds = np.searchsorted(run_keys, np.arange(n_cells + 1))
+    return tuple(
+        (run_bins[bounds[c] : bounds[c + 1]], run_counts[bounds[c] : bounds[c + 1]])
+        for c in range(n_cells)
+    )

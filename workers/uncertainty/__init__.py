@@ -1,0 +1,1 @@
+"""Error model of dh on stable terrain: spread by slope, spatial correlation, standard errors."""
