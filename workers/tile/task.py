@@ -106,6 +106,7 @@ class TileOptions:
                 samples_per_tile=spec.error_model.samples_per_tile,
                 outlier_rule=spec.outliers.rule,
                 outlier_factor=spec.outliers.factor,
+                overview_factor=spec.options.overview_factor,
             ),
         )
 
@@ -471,13 +472,6 @@ def reference_heights(
     if offset is not None:
         reference += offset
     return reference
-
-
-def tile_dh(
-    test: TileInfo, references: Sequence[TileInfo], options: TileOptions
-) -> NDArray[np.float64]:
-    """dh = test - reference in metres on the test tile's grid (see tile_surfaces)."""
-    return tile_surfaces(test, references, options).dh
 
 
 def resampled_onto(
