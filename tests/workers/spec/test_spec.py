@@ -137,7 +137,7 @@ def test_an_unknown_user_and_an_over_long_name_are_spec_errors(tree: Path):
 def test_globs_expand_as_glob_does_and_the_file_budget_stops_listing(tree: Path, monkeypatch):
     import glob
 
-    import demaudit.workers.spec as spec_module
+    from demaudit.workers.spec import resolution
 
     (tree / "test" / ".hidden.tif").write_bytes(b"")
     patterns = ["test/*.tif", "test/.*.tif", "test/[ab].tif", "*/a.tif"]
@@ -145,7 +145,7 @@ def test_globs_expand_as_glob_does_and_the_file_budget_stops_listing(tree: Path,
         job = resolve(parse_spec(minimal(test={"tiles": pattern})), base_dir=tree)
         # glob.glob is the reference for what a pattern matches
         assert list(job.test_tiles) == sorted(Path(p) for p in glob.glob(str(tree / pattern)))
-    monkeypatch.setattr(spec_module, "MAX_FILES_PER_FIELD", 1)
+    monkeypatch.setattr(resolution, "MAX_FILES_PER_FIELD", 1)
     with pytest.raises(SpecError, match=r"test\.tiles: the patterns and folders list more than 1"):
         resolve(parse_spec(minimal(test={"tiles": ["test/a.tif", "test/*.tif"]})), base_dir=tree)
 
