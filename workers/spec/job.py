@@ -14,6 +14,7 @@ from demaudit.workers.errors import SpecError
 from demaudit.workers.spec.sections import (
     CheckpointSource,
     Coregistration,
+    Derivatives,
     ErrorModel,
     Grading,
     LandCoverSource,
@@ -42,6 +43,7 @@ class JobSpec(Section):
     grading: Grading = Grading()
     recheck: Recheck = Recheck()
     error_model: ErrorModel | None = None
+    derivatives: Derivatives | None = None
     options: Options = Options()
 
     @model_validator(mode="after")

@@ -261,3 +261,34 @@ class ErrorModel(Section):
     max_samples: int = Field(
         default=100_000, ge=100, le=2_000_000, description="Samples kept for the variogram."
     )
+
+
+DerivedParameter = Literal[
+    "slope", "aspect", "plan_curvature", "profile_curvature", "flow_direction"
+]
+
+
+class Derivatives(Section):
+    """Opt-in comparison of derived terrain parameters of test and reference: slope, aspect,
+    plan and profile curvature differences, D8 flow-direction agreement
+    (workers/tile/derivatives.py). Costs more than the rest of the audit."""
+
+    parameters: list[DerivedParameter] = Field(
+        default=["slope", "aspect", "plan_curvature", "profile_curvature", "flow_direction"],
+        min_length=1,
+        description="Derived parameters to compare (flow_direction: D8 agreement).",
+    )
+    min_slope_deg: float = Field(
+        default=5.0,
+        ge=0,
+        lt=90,
+        description="Aspect and plan curvature are compared only where the reference slope "
+        "exceeds this (degrees).",
+    )
+
+    @field_validator("parameters")
+    @classmethod
+    def _once_each(cls, value: list[str]) -> list[str]:
+        if len(set(value)) != len(value):
+            raise ValueError("name each derived parameter once")
+        return value
