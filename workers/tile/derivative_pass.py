@@ -19,6 +19,7 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from demaudit.workers.spec import Derivatives
 from demaudit.workers.tile.derivatives import (
     PARAMETERS,
     d8_compared,
@@ -45,6 +46,13 @@ class DerivativeOptions:
 
     parameters: tuple[str, ...] = (*PARAMETERS, FLOW_DIRECTION)
     min_slope_deg: float = 5.0
+
+    @classmethod
+    def from_section(cls, section: Derivatives | None) -> DerivativeOptions | None:
+        """The options of the spec's ``derivatives`` section; None without one."""
+        if section is None:
+            return None
+        return cls(tuple(section.parameters), section.min_slope_deg)
 
     @property
     def compared(self) -> tuple[str, ...]:

@@ -44,6 +44,11 @@ from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.tile.align import onto_grid
 from demaudit.workers.tile.datum import DEFAULT_GRID_DIRS, to_metres, vertical_offset_on_grid
+from demaudit.workers.tile.derivative_pass import (
+    DerivativeOptions,
+    TileDerivatives,
+    tile_derivatives,
+)
 from demaudit.workers.tile.difference import block_mean, difference
 from demaudit.workers.tile.grid import Grid
 from demaudit.workers.tile.one_pass import summarise_pixels
@@ -79,6 +84,7 @@ class TileOptions:
     coregistration: Coregistration | None = None
     correction: Correction | None = None  # the job-wide correction, set for the main pass
     error_model: ErrorModelOptions | None = None  # sample the error model (workers/error_model)
+    derivatives: DerivativeOptions | None = None  # compare derived parameters (derivative_pass)
 
     @classmethod
     def from_spec(
@@ -108,6 +114,7 @@ class TileOptions:
                 outlier_factor=spec.outliers.factor,
                 overview_factor=spec.options.overview_factor,
             ),
+            derivatives=DerivativeOptions.from_section(spec.derivatives),
         )
 
 
@@ -133,6 +140,7 @@ class TileResult:
     summaries_stored: bool = False  # the worker wrote them to the results store (audit_and_store)
     # with an error model (workers/uncertainty/error_model.py)
     error_sample: TileErrorSample | None = None
+    derivatives: TileDerivatives | None = None  # with derivatives (workers/tile/derivative_pass)
 
 
 #: With co-registration the reference is read this many test pixels beyond the tile, so that
@@ -262,7 +270,8 @@ def with_coregistration(
         reason = f"the reference could not be read again for the correction: {exc}"
         return replace(result, coregistration=record | {"applied": False, "reason": reason})
     dh = corrected_dh(layers.test, moved, test.grid, correction)
-    corrected = summarise_tile(test, replace(layers, dh=dh, reference=moved), regions, options)
+    moved_layers = replace(layers, dh=dh, reference=moved)
+    corrected = summarise_tile(test, moved_layers, regions, options, derived=False)
     return replace(
         result,
         coregistration=record | {"applied": True},
@@ -373,9 +382,11 @@ def summarise_tile(
     options: TileOptions,
     *,
     reference_tiles: tuple[str, ...] = (),
+    derived: bool = True,
 ) -> TileResult:
     """Summaries of dh for the tile, each region, and each region x stratum (one pass over the
-    valid pixels: workers/tile/one_pass.py)."""
+    valid pixels: workers/tile/one_pass.py); with options.derivatives and ``derived``, the
+    comparison of derived parameters (workers/tile/derivative_pass.py)."""
     dh = layers.dh
     px, py = test.grid.pixel_size_m()
     masks = {r.region_id: region_mask(r, test.grid) for r in regions}
@@ -409,6 +420,14 @@ def summarise_tile(
         error_sample=grid_error_sample(
             test.grid, test.tile_id, dh, layers.reference, layers.landcover, masks,
             options.landcover_classes, options.error_model,
+        ),
+        derivatives=None
+        if options.derivatives is None or layers.test is None or not derived
+        else tile_derivatives(
+            layers.test, layers.reference, landcover=layers.landcover, region_masks=masks,
+            classes=options.landcover_classes, slope_edges=options.slope_edges_deg,
+            pixel_size_m=(px, py), options=options.derivatives,
+            overview_factor=options.overview_factor,
         ),
     )
 
