@@ -65,6 +65,7 @@ SECTIONS = (
     ("strata", "By land cover and slope"),
     ("checkpoints", "Checkpoints"),
     ("coregistration", "Co-registration"),
+    ("derivatives", "Derived parameters"),
     ("recheck", "Re-check"),
     ("other-figures", "Other figures"),
     ("sources", "Sources"),
@@ -100,6 +101,7 @@ def render(document: Mapping[str, Any], *, images: Mapping[str, bytes] | None = 
             _coregistration(document["coregistration"]) if document.get("coregistration") else []
         )
         + figures.of("coregistration"),
+        "derivatives": _derivatives(document.get("derivatives") or {}),
         "recheck": _recheck(document["recheck"]) + figures.of("recheck")
         if document.get("recheck")
         else [],
@@ -347,6 +349,14 @@ def _strata(document: Mapping[str, Any]) -> list[str]:
     if not strata:
         return []
     return [_stats_table([(s["stratum"], s["stats"]) for s in strata])]
+
+
+def _derivatives(d: Mapping[str, Any]) -> list[str]:
+    """Whole-job test - reference of each derived parameter, and the D8 agreement."""
+    rows = [(f"{k} ({u})", d[k]["overall"]["stats"]) for k, u in d.get("units", {}).items()]
+    share = (d.get("d8_agreement") or {}).get("overall", {}).get("share")
+    d8 = [] if share is None else [f"<p>D8 flow directions agree at {100 * share:.1f} %.</p>"]
+    return ([_stats_table(rows)] if rows else []) + d8
 
 
 def _recheck(r: Mapping[str, Any]) -> list[str]:
