@@ -29,6 +29,7 @@ import yaml
 
 from demaudit.service.api.problems import ProblemError
 from demaudit.workers.errors import DataRootError, SpecError
+from demaudit.workers.outputs.layout import execution_record
 
 __all__ = [
     "MAX_REFERENCED_BYTES",
@@ -188,7 +189,7 @@ def _referenced(name: str, href: str, data_roots: Sequence[Path] | None) -> Any:
 
 
 def _path(results_dir: Path, job_id: str) -> Path:
-    return Path(results_dir) / ".execution" / f"{job_id}.json"
+    return execution_record(results_dir, job_id)
 
 
 def save(results_dir: Path, job_id: str, execution: Execution) -> None:

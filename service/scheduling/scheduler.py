@@ -56,6 +56,7 @@ from demaudit.service.store.jobs import (
 from demaudit.service.store.schedules import DEFAULT_TIMEZONE
 from demaudit.workers import spec as job_spec
 from demaudit.workers.errors import AuditError
+from demaudit.workers.outputs.layout import is_result
 from demaudit.workers.spec import ResolvedJob
 
 __all__ = [
@@ -422,7 +423,7 @@ class Scheduler:
             if job is None or job.status != SUCCESSFUL:
                 continue
             folder = self._submitter.results_path(job.job_id)
-            if (folder / "summary.json").is_file() and (folder / "results.zarr").is_dir():
+            if is_result(folder):
                 return folder
         return None
 

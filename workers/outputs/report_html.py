@@ -14,7 +14,8 @@ from collections.abc import Iterable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
-REPORT_NAME = "report.html"
+from demaudit.workers.outputs.layout import REPORT_NAME
+
 _COLUMNS = ("count", "median", "nmad", "q683_abs", "q95_abs", "rmse", "mean", "std")
 
 _STYLE = """

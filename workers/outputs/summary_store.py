@@ -22,14 +22,19 @@ from typing import Any, Literal
 import numpy as np
 import zarr
 
-from demaudit.workers.outputs.writers import link_or_copy
+from demaudit.workers.outputs.folder import link_or_copy
+from demaudit.workers.outputs.layout import (
+    AFTER_PART,  # noqa: F401 - imported from here by service/run (to switch to layout)
+    ALL_PART,  # noqa: F401 - imported from here by service/run (to switch to layout)
+    JOB_SUMMARIES_GROUP,
+    TILE_SUMMARIES_GROUP,
+)
 from demaudit.workers.stats.merge import JobAccumulator, TileExtremes, keyed_summaries
 from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.tile.task import TileResult
 
-GROUP = "tile_summaries"
-JOB_GROUP = "job_summaries"
-ALL_PART, AFTER_PART = "all", "after"  # job totals: all results / after co-registration
+#: The name service/run/recheck.py imports (until it imports layout.JOB_SUMMARIES_GROUP).
+JOB_GROUP = JOB_SUMMARIES_GROUP
 Key = tuple[str, str]  # (area, stratum)
 
 
@@ -66,7 +71,9 @@ class TileSummaryStore:
             zarr_format=3 if mode == "a" else None,
             use_consolidated=False,
         )
-        self._parent: Any = root.require_group(GROUP) if mode == "a" else root[GROUP]
+        self._parent: Any = (
+            root.require_group(TILE_SUMMARIES_GROUP) if mode == "a" else root[TILE_SUMMARIES_GROUP]
+        )
 
     def write(self, tile_id: str, entries: dict[Key, DhSummary], *, excluded: int = 0) -> None:
         """Write (replace) one tile's summaries."""
@@ -81,23 +88,25 @@ class TileSummaryStore:
 
     def has(self, tile_id: str) -> bool:
         """Whether the tile's summaries are stored (a file check, nothing is read)."""
-        return (self.zarr_path / GROUP / tile_id / "zarr.json").is_file()
+        return (self.zarr_path / TILE_SUMMARIES_GROUP / tile_id / "zarr.json").is_file()
 
     def link_from(self, other: Path, tile_ids: list[str]) -> None:
         """Bring tiles' stored summaries over from another results.zarr: hard links where the
         file system allows (zarr replaces a file on write, never rewrites it in place, so the
         other store stays as it was), copies elsewhere."""
         for tile_id in tile_ids:
-            target = self.zarr_path / GROUP / tile_id
+            target = self.zarr_path / TILE_SUMMARIES_GROUP / tile_id
             if target.exists():
                 shutil.rmtree(target)
-            shutil.copytree(Path(other) / GROUP / tile_id, target, copy_function=link_or_copy)
+            shutil.copytree(
+                Path(other) / TILE_SUMMARIES_GROUP / tile_id, target, copy_function=link_or_copy
+            )
 
 
 def write_job_totals(zarr_path: Path, part: str, acc: JobAccumulator) -> None:
     """Store a job's merged totals and per-tile extremes under job_summaries/<part>."""
     root: Any = zarr.open_group(str(zarr_path), mode="a", zarr_format=3, use_consolidated=False)
-    group = root.require_group(JOB_GROUP).create_group(part, overwrite=True)
+    group = root.require_group(JOB_SUMMARIES_GROUP).create_group(part, overwrite=True)
     table = acc.extremes().to_arrays()
     _write_entries(group, acc.totals(), {"excluded": int(acc.excluded)})
     for name in ("tile", "key", "values"):
@@ -115,7 +124,7 @@ def read_job_totals(zarr_path: Path, part: str, region_ids: list[str]) -> JobAcc
     ValueError when a stored histogram does not add up to its count."""
     try:
         root: Any = zarr.open_group(str(zarr_path), mode="r", use_consolidated=False)
-        group = root[JOB_GROUP][part]
+        group = root[JOB_SUMMARIES_GROUP][part]
     except (KeyError, FileNotFoundError):
         return None
     totals, attrs = _read_entries(group)

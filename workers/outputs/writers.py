@@ -1,28 +1,11 @@
-"""Write results: ``results.zarr`` (tile and region tables, georeferenced dh overview) and
-``summary.json``. The I/O edge at the end of the pipeline.
-
-Zarr layout (Zarr format 3, consolidated metadata at the root except for the summaries)::
-
-    results.zarr/
-      tiles/        dim tile:   one variable per statistic;
-                    coords tile, left/bottom/right/top, status, reason
-      regions/      dim region: one variable per statistic; coords region, name
-      strata/       dims area, stratum: one variable per statistic
-      after_coregistration/  dim region (when co-registration was applied)
-      dh_overview/  dims y, x:  block mean of dh (1:factor), CF grid_mapping ``spatial_ref``
-      tile_summaries/, job_summaries/: mergeable summaries (workers/outputs/summary_store.py), not
-      in the
-                    consolidated metadata: open them with use_consolidated=False
-
-A run's output folder is built whole beside its target (:func:`staged_folder`) and swapped in
-only when complete, so a failed run leaves an earlier result as it was.
+"""Write ``results.zarr``: the tile, region and strata tables and the georeferenced dh
+overview (its layout: workers/outputs/layout.py). The I/O edge at the end of the pipeline; the
+output folder around it is workers/outputs/folder.py.
 """
 
 from __future__ import annotations
 
-import json
 import math
-import os
 import shutil
 import warnings
 from collections.abc import Iterator, Mapping, Sequence
@@ -38,92 +21,26 @@ import xarray as xr
 import zarr
 from numpy.typing import NDArray
 
-from demaudit.workers.errors import AuditError, OutputError
+# OutputError, check_output_folder, staged_folder, write_summary and SUMMARY_NAME are imported
+# from here by service/run/runner.py and recheck.py, until they import them from errors.py,
+# folder.py and layout.py; then these re-exports (noqa: F401) go.
+from demaudit.workers.errors import OutputError  # noqa: F401
 from demaudit.workers.inputs.catalog import TileInfo
+from demaudit.workers.outputs.folder import (
+    check_output_folder,  # noqa: F401
+    link_or_copy,
+    staged_folder,  # noqa: F401
+    write_summary,  # noqa: F401
+)
+from demaudit.workers.outputs.layout import (
+    OVERVIEW_ARRAY,
+    OVERVIEW_GROUP,
+    SUMMARY_NAME,  # noqa: F401
+    UNCONSOLIDATED_GROUPS,
+    ZARR_NAME,
+    partial_store,
+)
 from demaudit.workers.stats.summary import STAT_KEYS
-
-ZARR_NAME = "results.zarr"
-#: Groups read with the zarr API, left out of the root's consolidated metadata.
-UNCONSOLIDATED_GROUPS = frozenset({"tile_summaries", "job_summaries"})
-SUMMARY_NAME = "summary.json"
-#: A folder holding one of these is taken for an earlier result, replaced as a whole by a new run.
-RESULT_MARKERS = (SUMMARY_NAME, ZARR_NAME)
-
-
-def check_output_folder(target: Path) -> Path:
-    """The absolute output folder; OutputError when it is a file, or a non-empty folder that
-    holds no earlier result (its files would be replaced)."""
-    target = Path(target).expanduser().resolve()
-    if target.exists() and not target.is_dir():
-        raise OutputError(f"--out: {target} is a file, not a folder")
-    if target.is_dir():
-        try:
-            entries = sorted(p.name for p in target.iterdir())
-        except OSError as exc:
-            raise OutputError(f"--out: cannot read the folder {target}: {exc.strerror}") from None
-        if entries and not any(name in entries for name in RESULT_MARKERS):
-            shown = ", ".join(entries[:3]) + (", ..." if len(entries) > 3 else "")
-            raise OutputError(
-                f"--out: {target} holds files that are not demaudit results ({shown}); a run "
-                "replaces its output folder as a whole, so name a new or empty folder"
-            )
-    return target
-
-
-@contextmanager
-def staged_folder(target: Path, run_id: str) -> Iterator[Path]:
-    """Yield a new folder ``<target>.partial-<run_id>`` beside target to build a result in; when
-    the block ends without error, swap it in place of target (an earlier result there is
-    replaced as a whole), else remove it. The target appears complete or not at all.
-
-    Errors of the file system (read-only, disk full, a file in the way) become OutputError with
-    one line naming the file; target is then left as it was.
-    """
-    target = check_output_folder(target)
-    partial = target.with_name(f"{target.name}.partial-{run_id}")
-    try:
-        target.parent.mkdir(parents=True, exist_ok=True)
-        partial.mkdir()
-    except OSError as exc:
-        raise OutputError(
-            f"--out: cannot create {_failed_path(exc, partial)} (results are built beside the "
-            f"output folder, then swapped in): {exc.strerror or exc}"
-        ) from None
-    try:
-        yield partial
-        _swap_in(partial, target, run_id)
-    except OSError as exc:
-        shutil.rmtree(partial, ignore_errors=True)
-        if isinstance(exc, AuditError):
-            raise
-        raise OutputError(
-            f"the run stopped on a file error and left {target} as it was: "
-            f"{exc.strerror or exc}: {_failed_path(exc, partial)}"
-        ) from None
-    except BaseException:
-        shutil.rmtree(partial, ignore_errors=True)
-        raise
-
-
-def _swap_in(partial: Path, target: Path, run_id: str) -> None:
-    """Put partial in place of target: the old folder aside, the new one in, the old removed
-    (moved back when the new one cannot go in)."""
-    aside = target.with_name(f"{target.name}.replaced-{run_id}")
-    had = target.exists()
-    if had:
-        target.rename(aside)
-    try:
-        partial.rename(target)
-    except OSError:
-        if had:
-            aside.rename(target)
-        raise
-    if had:
-        shutil.rmtree(aside, ignore_errors=True)
-
-
-def _failed_path(exc: OSError, fallback: Path) -> str:
-    return str(exc.filename) if exc.filename else str(fallback)
 
 
 @dataclass(frozen=True)
@@ -193,7 +110,7 @@ class ResultsStore:
 
     def __init__(self, out_dir: Path, layout: OverviewLayout | None) -> None:
         self.final_path = Path(out_dir) / ZARR_NAME
-        self.path = self.final_path.with_name(ZARR_NAME + ".partial")
+        self.path = partial_store(self.final_path)
         if self.path.exists():
             shutil.rmtree(self.path)
         self.layout = layout
@@ -209,14 +126,14 @@ class ResultsStore:
             dtype=np.float32,
             chunks=(layout.tile_block, layout.tile_block),
         )
-        dh = xr.DataArray(blank, dims=("y", "x"), coords={"y": y, "x": x}, name="dh")
+        dh = xr.DataArray(blank, dims=("y", "x"), coords={"y": y, "x": x}, name=OVERVIEW_ARRAY)
         dh.attrs.update(long_name="dh, test minus reference (block mean)", units="m")
         dh = dh.rio.write_crs(layout.crs).rio.write_transform(_affine(layout.transform))
         dh.encoding["_FillValue"] = np.float32(np.nan)
         with _quiet_zarr():
             dh.to_dataset().to_zarr(  # type: ignore[call-overload]
                 self.path,
-                group="dh_overview",
+                group=OVERVIEW_GROUP,
                 mode="w",
                 compute=False,
                 zarr_format=3,
@@ -249,8 +166,8 @@ class ResultsStore:
         if self.layout is None or not keep:
             return
         try:
-            source: Any = zarr.open_group(str(baseline / "dh_overview"), mode="r")
-            old, old_x, old_y = source["dh"], source["x"][:], source["y"][:]
+            source: Any = zarr.open_group(str(baseline / OVERVIEW_GROUP), mode="r")
+            old, old_x, old_y = source[OVERVIEW_ARRAY], source["x"][:], source["y"][:]
         except (KeyError, FileNotFoundError, OSError):
             return
         new = self._overview()
@@ -261,11 +178,11 @@ class ResultsStore:
             and np.array_equal(old_x, x)
             and np.array_equal(old_y, y)
         ):
-            chunks = baseline / "dh_overview" / "dh" / "c"
+            chunks = baseline / OVERVIEW_GROUP / OVERVIEW_ARRAY / "c"
             if chunks.is_dir():
                 shutil.copytree(
                     chunks,
-                    self.path / "dh_overview" / "dh" / "c",
+                    self.path / OVERVIEW_GROUP / OVERVIEW_ARRAY / "c",
                     dirs_exist_ok=True,
                     copy_function=link_or_copy,
                 )
@@ -283,7 +200,7 @@ class ResultsStore:
     def _overview(self) -> Any:
         if self._overview_array is None:
             self._overview_array = zarr.open_array(
-                str(self.path / "dh_overview" / "dh"), mode="r+", use_consolidated=False
+                str(self.path / OVERVIEW_GROUP / OVERVIEW_ARRAY), mode="r+", use_consolidated=False
             )
         return self._overview_array
 
@@ -334,7 +251,7 @@ def overview_carries(layout: OverviewLayout | None, baseline: Path) -> bool:
     if layout is None:
         return True
     try:
-        group: Any = zarr.open_group(str(Path(baseline) / "dh_overview"), mode="r")
+        group: Any = zarr.open_group(str(Path(baseline) / OVERVIEW_GROUP), mode="r")
         x, y = np.asarray(group["x"][:]), np.asarray(group["y"][:])
     except (KeyError, FileNotFoundError, OSError):
         return False
@@ -355,16 +272,6 @@ def _window(
     if cols.size == 0 or rows.size == 0:
         return slice(0, 0), slice(0, 0)
     return slice(int(rows[0]), int(rows[-1]) + 1), slice(int(cols[0]), int(cols[-1]) + 1)
-
-
-def link_or_copy(source: str, target: str) -> None:
-    """Hard-link a file where the file system allows, else copy it. Safe for zarr stores: zarr
-    writes a new file and renames it over the old, never rewriting a file in place."""
-    Path(target).unlink(missing_ok=True)  # never write through a link into the other store
-    try:
-        os.link(source, target)
-    except OSError:  # another file system, or links not allowed
-        shutil.copy2(source, target)
 
 
 def _affine(t: tuple[float, ...]):  # type: ignore[no-untyped-def]
@@ -419,22 +326,3 @@ def strata_table(
         "stratum": np.array(list(strata), dtype=object),
     }
     return xr.Dataset(data, coords=coords)
-
-
-def write_summary(out_dir: Path, document: Mapping[str, Any], *, name: str = SUMMARY_NAME) -> Path:
-    """Write a JSON document (summary.json by default; NaN and infinities as null)."""
-    path = Path(out_dir) / name
-    path.write_text(json.dumps(_json_safe(document), indent=2) + "\n", encoding="utf-8")
-    return path
-
-
-def _json_safe(value: Any) -> Any:
-    if isinstance(value, Mapping):
-        return {str(k): _json_safe(v) for k, v in value.items()}
-    if isinstance(value, list | tuple):
-        return [_json_safe(v) for v in value]
-    if isinstance(value, float | np.floating):
-        return float(value) if math.isfinite(value) else None
-    if isinstance(value, np.integer):
-        return int(value)
-    return value

@@ -31,6 +31,7 @@ from demaudit.service.api.deps import DispatcherDep, PrincipalDep, StoreDep
 from demaudit.service.api.negotiation import HTML, JSON, choose
 from demaudit.service.api.problems import NoSuchItemError, responses
 from demaudit.service.api.routes.jobs import JobId, _finished_output, _record, _summary_of
+from demaudit.workers.outputs.layout import REPORT_NAME
 
 __all__ = ["PAGE_CSP", "REPORT_CSP", "STATIC_DIR", "PageRoute", "pages", "reports", "wants_page"]
 
@@ -117,14 +118,14 @@ def job_page(job_id: JobId, request: Request) -> HTMLResponse:
     "/{jobID}/report",
     name="job_report",
     response_class=FileResponse,
-    responses=_file_responses(HTML, "report.html"),
+    responses=_file_responses(HTML, REPORT_NAME),
 )
 def job_report(
     job_id: JobId, store: StoreDep, dispatcher: DispatcherDep, principal: PrincipalDep
 ) -> FileResponse:
     """The report of a successful job (report.html; its figures at ``figures/{name}``)."""
     out = _finished_output(dispatcher, _record(store, job_id, principal))
-    path = out / "report.html"
+    path = out / REPORT_NAME
     if not path.is_file():
         raise NoSuchItemError(f"job {job_id} has no report.html (see the cautions of its results)")
     return FileResponse(path, media_type=HTML, headers=_file_headers(REPORT_CSP))

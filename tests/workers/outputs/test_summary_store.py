@@ -8,9 +8,8 @@ import numpy as np
 import pytest
 import zarr
 
+from demaudit.workers.outputs.layout import ALL_PART, TILE_SUMMARIES_GROUP
 from demaudit.workers.outputs.summary_store import (
-    ALL_PART,
-    GROUP,
     TileSummaryStore,
     read_job_totals,
     split_after,
@@ -66,12 +65,13 @@ def test_linked_tiles_read_back_and_the_source_stays_untouched(tmp_path):
     source = TileSummaryStore(first, mode="a")
     for i in range(3):
         source.write(f"t{i}", keyed_summaries(result(f"t{i}", rng)), excluded=i)
-    before = {p: p.read_bytes() for p in (first / GROUP).rglob("*") if p.is_file()}
+    stored = first / TILE_SUMMARIES_GROUP
+    before = {p: p.read_bytes() for p in stored.rglob("*") if p.is_file()}
     target = TileSummaryStore(second, mode="a")
     target.link_from(first, ["t0", "t2"])
     # rewriting a linked tile in the new store must not change the old store's files
     target.write("t2", keyed_summaries(result("t2", rng)), excluded=9)
-    assert {p: p.read_bytes() for p in (first / GROUP).rglob("*") if p.is_file()} == before
+    assert {p: p.read_bytes() for p in stored.rglob("*") if p.is_file()} == before
     entries, excluded = target.read("t0")
     want, _ = source.read("t0")
     assert excluded == 0 and entries.keys() == want.keys()

@@ -11,7 +11,8 @@ import zarr
 from pyproj import CRS
 
 from demaudit.workers.inputs.catalog import TileInfo
-from demaudit.workers.outputs.summary_store import GROUP, TileSummaryStore
+from demaudit.workers.outputs.layout import TILE_SUMMARIES_GROUP
+from demaudit.workers.outputs.summary_store import TileSummaryStore
 from demaudit.workers.outputs.writers import (
     ResultsStore,
     overview_carries,
@@ -89,7 +90,7 @@ def test_tables_open_consolidated_and_summaries_stay_out_of_it(tmp_path):
         assert int(xr.open_zarr(tmp_path / "results.zarr", group="tiles")["count"][0]) == 9
     root = zarr.open_group(str(tmp_path / "results.zarr"), mode="r")
     listed = root.metadata.consolidated_metadata.metadata
-    assert "tiles" in listed and "dh_overview" in listed and GROUP not in listed
+    assert "tiles" in listed and "dh_overview" in listed and TILE_SUMMARIES_GROUP not in listed
     assert TileSummaryStore(tmp_path / "results.zarr").read("t00")[0][("*", "")].count == 9
 
 

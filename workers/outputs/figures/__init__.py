@@ -31,8 +31,8 @@ from shapely.geometry.base import BaseGeometry
 
 from demaudit.workers.outputs.figures import compute, draw
 from demaudit.workers.outputs.figures.error_model import ERROR_MODEL_NAME, build_error_model
+from demaudit.workers.outputs.layout import OVERVIEW_GROUP, ZARR_NAME
 from demaudit.workers.outputs.summary_store import ALL_PART, read_job_totals
-from demaudit.workers.outputs.writers import ZARR_NAME
 from demaudit.workers.stats import summary as dhs
 from demaudit.workers.stats.merge import ALL
 from demaudit.workers.tile.difference import block_mean
@@ -76,7 +76,7 @@ def read_overview(out_dir: Path) -> tuple[NDArray[np.float64], compute.Bounds] |
     try:
         # read with zarr into this process: through xarray and Dask, the blocks would be
         # computed on whatever cluster the caller has open and shipped back
-        group: Any = zarr.open_group(str(Path(out_dir) / ZARR_NAME / "dh_overview"), mode="r")
+        group: Any = zarr.open_group(str(Path(out_dir) / ZARR_NAME / OVERVIEW_GROUP), mode="r")
         dh, x, y = group["dh"][...], group["x"][...], group["y"][...]
     except (KeyError, FileNotFoundError, OSError):
         return None
@@ -111,7 +111,7 @@ def stored_totals(
 
 def overview_crs(out_dir: Path) -> str | None:
     try:
-        group: Any = zarr.open_group(str(Path(out_dir) / ZARR_NAME / "dh_overview"), mode="r")
+        group: Any = zarr.open_group(str(Path(out_dir) / ZARR_NAME / OVERVIEW_GROUP), mode="r")
         return str(group["spatial_ref"].attrs["crs_wkt"])
     except (KeyError, FileNotFoundError, OSError):
         return None

@@ -1,5 +1,5 @@
 """The output folder appears complete or not at all
-(demaudit.workers.outputs.writers.staged_folder)."""
+(demaudit.workers.outputs.folder.staged_folder)."""
 
 from __future__ import annotations
 
@@ -9,9 +9,9 @@ from pathlib import Path
 
 import pytest
 
-from demaudit.workers.errors import AuditError, SpecError
-from demaudit.workers.outputs import writers
-from demaudit.workers.outputs.writers import OutputError, staged_folder
+from demaudit.workers.errors import AuditError, OutputError, SpecError
+from demaudit.workers.outputs.folder import staged_folder
+from demaudit.workers.outputs.layout import SUMMARY_NAME
 
 
 def files(folder: Path) -> dict[str, str]:
@@ -91,5 +91,5 @@ def test_a_file_or_a_folder_of_other_files_is_refused_before_anything(tmp_path):
 def test_an_empty_folder_is_used(tmp_path):
     (tmp_path / "out").mkdir()
     with staged_folder(tmp_path / "out", "r7") as stage:
-        (stage / writers.SUMMARY_NAME).write_text("{}")
+        (stage / SUMMARY_NAME).write_text("{}")
     assert files(tmp_path / "out") == {"summary.json": "{}"}
