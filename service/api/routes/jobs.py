@@ -50,6 +50,7 @@ from demaudit.service.store.jobs import (
     JobStore,
     utc_now,
 )
+from demaudit.workers.outputs.layout import SUMMARY_NAME, ZARR_NAME
 
 router = APIRouter(prefix="/jobs", tags=["Jobs"], responses=responses(401, 406))
 
@@ -89,7 +90,7 @@ def _finished_output(dispatcher: JobDispatcher, record: JobRecord) -> pathlib.Pa
 
 
 def _summary_of(dispatcher: JobDispatcher, record: JobRecord) -> dict[str, Any]:
-    path = _finished_output(dispatcher, record) / "summary.json"
+    path = _finished_output(dispatcher, record) / SUMMARY_NAME
     try:
         stamp = path.stat().st_mtime_ns
     except OSError:
@@ -366,7 +367,7 @@ def job_results_file(
     principal: PrincipalDep,
 ) -> FileResponse:
     """A file of the job's results.zarr (read-only), so Zarr readers can open it over HTTP."""
-    zarr_dir = _finished_output(dispatcher, _record(store, job_id, principal)) / "results.zarr"
+    zarr_dir = _finished_output(dispatcher, _record(store, job_id, principal)) / ZARR_NAME
     try:
         root = zarr_dir.resolve(strict=True)
         target = (root / path).resolve(strict=True)
