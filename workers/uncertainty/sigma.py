@@ -24,6 +24,7 @@ from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.uncertainty.sample import CURVATURE_EDGES, N_CURVATURE, SLOPE_EDGES_DEG
 
 MIN_BIN_COUNT = 100  # bins with fewer stable pixels are not fitted
+ROUND = 9  # decimals kept of the cells' mean slope (degrees) and |curvature|
 SLOPE_TABLE_EDGES = SLOPE_EDGES_DEG
 CURVATURE_TABLE_EDGES = (*CURVATURE_EDGES, float("inf"))
 
@@ -84,6 +85,13 @@ def fit_sigma(
     return SigmaModel(float(p[0]), float(p[1]), float(p[2]))
 
 
+def cell_means(sums: NDArray[np.float64], key: int, n: float) -> tuple[float, float]:
+    """Mean slope and |curvature| of a joint cell, rounded to ROUND decimals: sums taken in
+    another tile order differ in their last bits, and the rounded means do not (so a re-check
+    that carries tiles over fits the same model as a fresh run)."""
+    return round(float(sums[0, key]) / n, ROUND), round(float(sums[1, key]) / n, ROUND)
+
+
 def joint_cells(
     bins: Mapping[int, DhSummary], sums: NDArray[np.float64]
 ) -> dict[str, NDArray[np.float64]]:
@@ -94,7 +102,7 @@ def joint_cells(
         stats = dh_summary.statistics(bins[key])
         n = int(stats["count"] or 0)
         if n >= MIN_BIN_COUNT and stats["nmad"] is not None:
-            rows.append((sums[0, key] / n, sums[1, key] / n, float(stats["nmad"]), float(n)))
+            rows.append((*cell_means(sums, key, n), float(stats["nmad"]), float(n)))
     table = np.array(rows, dtype=np.float64).reshape(-1, 4)
     return {
         "slope": table[:, 0],
@@ -124,7 +132,7 @@ def curvature_levels(
     edges = np.asarray(CURVATURE_EDGES, dtype=np.float64)
     fallback = np.r_[0.5 * (edges[:-1] + edges[1:]), 1.5 * edges[-1]]
     with np.errstate(invalid="ignore", divide="ignore"):
-        mean = np.where(counts > 0, total / np.maximum(counts, 1), fallback)
+        mean = np.where(counts > 0, np.round(total / np.maximum(counts, 1), ROUND), fallback)
     return np.r_[mean, 0.0]
 
 
@@ -169,7 +177,7 @@ def marginal_model(
     weight: dict[int, float] = {}
     for key, s in joint.items():
         n = float(s.count)
-        value = float(sigma(sums[0, key] / n, sums[1, key] / n))
+        value = float(sigma(*cell_means(sums, key, n)))
         own = key // N_CURVATURE if by == "slope" else key % N_CURVATURE
         total[own] = total.get(own, 0.0) + n * value
         weight[own] = weight.get(own, 0.0) + n
