@@ -108,7 +108,8 @@ def tile_derivatives(
     d8: dict[str, tuple[int, int]] = {}
     if FLOW_DIRECTION in options.parameters:
         excluded = excluded_mask(landcover, classes)
-        d8 = d8_counts(*d8_compared(of_test, of_reference), region_masks, excluded)
+        compared, agree = d8_compared(of_test, of_reference)
+        d8 = d8_counts(compared, agree, region_masks, excluded)
     return TileDerivatives(summaries, d8, overviews)
 
 
