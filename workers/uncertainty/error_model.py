@@ -36,7 +36,6 @@ from demaudit.workers.uncertainty.sample import (
     TileErrorSample,
     abs_curvature,
     grid_error_sample,
-    laplacian,
     tile_error_sample,
 )
 from demaudit.workers.uncertainty.sigma import SigmaModel, fit_sigma
@@ -59,7 +58,6 @@ __all__ = [
     "fit_error_model",
     "fit_sigma",
     "grid_error_sample",
-    "laplacian",
     "mean_sigma2",
     "stratum_counts",
     "tile_error_sample",

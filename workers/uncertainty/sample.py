@@ -12,9 +12,10 @@ area x land-cover class x 1-degree slope bin x curvature bin (to weight sigma^2 
 strata later); and the slope and |curvature| of the valid pixels are block-averaged like the dh
 overview (for the standardised dh overview).
 
-Curvature is that of the reference: |z_xx + z_yy| x 100 (1/m x 100) by second central
-differences on the 3 x 3 stencil, i.e. the magnitude of Zevenbergen & Thorne's (1987) total
-curvature -2 (D + E) x 100 (from memory); the tile's outer ring takes its inner neighbour's value.
+Curvature is that of the reference: |z_xx + z_yy| x 100 (1/m x 100), z_xx and z_yy being r and
+t of Zevenbergen & Thorne (1987) on the 3 x 3 window (workers/tile/derivatives.py), i.e. the
+magnitude of their total curvature -2 (D + E) x 100 (from memory); the tile's outer ring takes
+its inner neighbour's value.
 """
 
 from __future__ import annotations
@@ -29,6 +30,7 @@ from numpy.typing import NDArray
 
 from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.stats.summary import DhSummary
+from demaudit.workers.tile.derivatives import second_derivatives
 from demaudit.workers.tile.difference import block_mean
 from demaudit.workers.tile.grid import Grid
 from demaudit.workers.tile.keyed_summary import summarise_cells
@@ -80,24 +82,17 @@ class TileErrorSample:
     terrain_overview: NDArray[np.float32] | None = None  # (2, rows, cols): slope, |curvature|
 
 
-def laplacian(heights: NDArray[np.floating], *, px: float, py: float) -> NDArray[np.float64]:
-    """z_xx + z_yy by second central differences (1/m); NaN on the outer ring."""
+def abs_curvature(heights: NDArray[np.floating], *, px: float, py: float) -> NDArray[np.float64]:
+    """|z_xx + z_yy| x 100 (see module; r + t of workers/tile/derivatives.py), the outer ring
+    copied from its inner neighbours; NaN where the 3 x 3 window holds a NaN."""
     z = np.asarray(heights, dtype=np.float64)
     out = np.full(z.shape, np.nan)
     if min(z.shape) < 3:
         return out
-    out[1:-1, 1:-1] = (z[1:-1, 2:] - 2 * z[1:-1, 1:-1] + z[1:-1, :-2]) / (px * px) + (
-        z[2:, 1:-1] - 2 * z[1:-1, 1:-1] + z[:-2, 1:-1]
-    ) / (py * py)
-    return out
-
-
-def abs_curvature(heights: NDArray[np.floating], *, px: float, py: float) -> NDArray[np.float64]:
-    """|laplacian| x 100 (see module), the outer ring copied from its inner neighbours."""
-    out = np.abs(laplacian(heights, px=px, py=py)) * 100.0
-    if min(out.shape) >= 3:
-        out[0, :], out[-1, :] = out[1, :], out[-2, :]
-        out[:, 0], out[:, -1] = out[:, 1], out[:, -2]
+    _, _, r, _, t = second_derivatives(z, pixel_size_x_m=px, pixel_size_y_m=py)
+    out[1:-1, 1:-1] = np.abs(r + t) * 100.0
+    out[0, :], out[-1, :] = out[1, :], out[-2, :]
+    out[:, 0], out[:, -1] = out[:, 1], out[:, -2]
     return out
 
 

@@ -46,9 +46,13 @@ def test_tile_sample_bins_stable_pixels_by_slope_and_samples_reproducibly():
     assert not np.array_equal(s.x, sample("t2").x)
 
 
-def test_laplacian_of_a_paraboloid():
-    # a paraboloid z = x^2 + 2 y^2 has Laplacian 2 + 4 = 6 everywhere inside (exact)
+def test_curvature_of_a_paraboloid():
+    # z = x^2 + 2 y^2 has z_xx + z_yy = 2 + 4 = 6 everywhere (exact for the 3 x 3 stencil), so
+    # |curvature| x 100 = 600, the outer ring included (copied from inside)
     y, x = np.indices((20, 20)) * 1.0
     para = x**2 + 2 * y**2
-    inside = em.laplacian(para, px=1.0, py=1.0)[1:-1, 1:-1]
-    assert np.allclose(inside, 6.0)
+    assert np.allclose(em.abs_curvature(para, px=1.0, py=1.0), 600.0)
+    # a NaN height leaves its 3 x 3 neighbourhood without curvature
+    para[10, 10] = np.nan
+    curvature = em.abs_curvature(para, px=1.0, py=1.0)
+    assert np.isnan(curvature[9:12, 10]).all() and np.isnan(curvature[10, 9:12]).all()
