@@ -27,13 +27,13 @@ fi
 python3 -c 'import sys; sys.exit(sys.version_info < (3, 11))' \
   || { echo "setup: demaudit needs Python 3.11 or newer as python3" >&2; exit 1; }
 [ -x .venv/bin/python ] || python3 -m venv .venv
-if ! .venv/bin/python -c 'import workers, service, pytest, hypothesis' 2>/dev/null \
+if ! .venv/bin/python -c 'import demaudit.workers, demaudit.service, pytest, hypothesis' 2>/dev/null \
    || [ pyproject.toml -nt .venv/.demaudit-installed ]; then
   echo "setup: installing Python packages into .venv" >&2
   log=.venv/pip-install.log
   { .venv/bin/python -m pip install --disable-pip-version-check --upgrade pip \
     && .venv/bin/python -m pip install --disable-pip-version-check -e ".[dev]"; } >"$log" 2>&1 \
     || { tail -40 "$log" >&2; echo "setup: pip install failed (full log: $log)" >&2; exit 1; }
-  .venv/bin/python -c 'import workers, service, pytest, hypothesis'
+  .venv/bin/python -c 'import demaudit.workers, demaudit.service, pytest, hypothesis'
   touch .venv/.demaudit-installed
 fi

@@ -15,6 +15,16 @@ UTM32 = "EPSG:32632"
 LAEA = "EPSG:3035"
 
 
+INTEGRATION = Path(__file__).resolve().parent / "integration"
+
+
+def pytest_collection_modifyitems(config: pytest.Config, items: list[pytest.Item]) -> None:
+    """Every test under tests/integration is marked ``integration`` (real processes)."""
+    for item in items:
+        if INTEGRATION in Path(item.path).resolve().parents:
+            item.add_marker(pytest.mark.integration)
+
+
 def terrain(e: np.ndarray, n: np.ndarray) -> np.ndarray:
     """Smooth synthetic terrain (metres, orthometric) as a function of UTM 32N coordinates."""
     return (
