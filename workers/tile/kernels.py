@@ -68,6 +68,75 @@ def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, 
     return n_tail
 
 
+def _key_sweep(  # type: ignore[no-untyped-def]
+    dh, bits, bands, codes, patterns, sizes, binning, table,
+    dense, sums, mins, maxs, tails, keys, tail_key, tail_bin, unsure, out,
+):  # fmt: skip
+    """_cell_sweep with each pixel's key made on the way and the tails binned here too.
+
+    key = pattern * n_cells + class code * n_band_codes + band (``codes``, ``patterns`` may be
+    empty: all 0); sizes = (n_band_codes, n_cells, tail columns per sign). Pixels of class code
+    255 (excluded) and non-finite dh get key -1. A tail value (|v| >= linear limit) is binned
+    from ``bits`` (dh viewed as int64): its slot (exponent and 12 leading mantissa bits) gives
+    the first bin that slot can hold (table[0]), then the exact lower edges (table[1]) move it
+    up; its count goes to ``tails`` (columns j, then n + j for negative values) or, beyond,
+    to the list tail_key / tail_bin. Values the slots do not cover go to ``unsure`` (binned
+    by summary.bin_index). out = (listed tail entries, unsure entries, finite excluded)."""
+    linear_width, linear_limit, k_limit = binning[0], binning[1], int(binning[2])
+    first_bin, edges = table
+    n_band_codes, n_cells, width = sizes[0], sizes[1], sizes[2]
+    columns = 2 * k_limit
+    with_codes = codes.size > 0
+    with_patterns = patterns.size > 0
+    base = 0x4000000000000000 >> 40  # the slot of 2.0
+    n_tail = 0
+    n_unsure = 0
+    dropped = 0
+    for i in range(dh.size):
+        v = dh[i]
+        code = codes[i] if with_codes else 0
+        finite = math.isfinite(v)
+        if code == 255 or not finite:
+            keys[i] = -1
+            if finite:
+                dropped += 1
+            continue
+        c = code * n_band_codes + bands[i]
+        if with_patterns:
+            c += patterns[i] * n_cells
+        keys[i] = c
+        sums[c] += v
+        if v < mins[c]:
+            mins[c] = v
+        if v > maxs[c]:
+            maxs[c] = v
+        if abs(v) < linear_limit:
+            column = int(math.floor(v / linear_width)) + k_limit
+            if 0 <= column < columns:
+                dense[c, column] += 1
+            else:
+                unsure[n_unsure] = i
+                n_unsure += 1
+            continue
+        slot = ((bits[i] & 0x7FFFFFFFFFFFFFFF) >> 40) - base
+        if slot >= first_bin.size:
+            unsure[n_unsure] = i
+            n_unsure += 1
+            continue
+        a = abs(v)
+        j = first_bin[slot]  # a slot holds at most three edges beyond its first bin's
+        j += (a >= edges[j + 1]) + (a >= edges[j + 2]) + (a >= edges[j + 3])
+        if j < width:
+            tails[c, j if v > 0 else width + j] += 1
+        else:
+            tail_key[n_tail] = c
+            tail_bin[n_tail] = k_limit + j if v > 0 else -k_limit - 1 - j
+            n_tail += 1
+    out[0] = n_tail
+    out[1] = n_unsure
+    out[2] = dropped
+
+
 def _deviation_sweep(x, key, mean, residual, squares):  # type: ignore[no-untyped-def]
     """Per cell: the sum of deviations from mean and of their squares (same values skipped)."""
     for i in range(x.size):
@@ -220,6 +289,11 @@ def other_within(x: Any, lower: float, upper: float, value: float) -> bool:
 def cell_sweep(*args: Any) -> int:
     """Compiled _cell_sweep (same arguments)."""
     return int(_compiled("cell_sweep")(*args))
+
+
+def key_sweep(*args: Any) -> None:
+    """Compiled _key_sweep (same arguments)."""
+    _compiled("key_sweep")(*args)
 
 
 def deviation_sweep(*args: Any) -> None:

@@ -16,6 +16,7 @@ from __future__ import annotations
 
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
+from functools import lru_cache
 
 import numpy as np
 from numpy.typing import NDArray
@@ -199,7 +200,126 @@ def _summarise_compiled(
     )
     tail = tail[:n_tail]
     tail_key = key[tail].astype(np.intp)
+    tail_bin = dh_summary.bin_index(x[tail])
+    return _finish(x, key, (dense, sums, minimum, maximum), tail_key, tail_bin)
+
+
+def summarise_keyed(
+    dh: NDArray[np.float64],
+    *,
+    bands: NDArray[np.uint8],
+    codes: NDArray[np.uint8] | None,
+    patterns: NDArray[np.int32] | None,
+    n_band_codes: int,
+    n_cells: int,
+    n_patterns: int,
+) -> tuple[CellSummaries, int] | None:
+    """summarise_cells of dh (metres, NaN = none) with each pixel's cell made on the way, in two
+    compiled sweeps: cell = pattern * n_cells + class code * n_band_codes + band (``codes`` and
+    ``patterns`` on dh's grid, None: all 0); pixels of class code 255 (excluded) are left out and
+    counted (the int returned, finite dh only). None when the compiled loops are not available or
+    the counters would not fit at once (the caller then builds the cells itself)."""
+    total = n_patterns * n_cells
+    if not kernels.AVAILABLE or total * _WIDTH > MAX_COUNTERS:
+        return None
+    x = np.ascontiguousarray(dh, dtype=np.float64).reshape(-1)
+    width = min(TAIL_COLUMNS, MAX_TAIL_COUNTERS // (2 * total))
+    counters = (
+        np.zeros((total, _WIDTH - 1), dtype=np.int64),
+        np.zeros(total),
+        np.full(total, np.inf),
+        np.full(total, -np.inf),
+        np.zeros((total, 2 * width), dtype=np.int32),
+    )
+    key = np.empty(x.size, dtype=np.int32)
+    listed = (np.empty(x.size, dtype=np.int32), np.empty(x.size, dtype=np.int64))
+    unsure = np.empty(x.size, dtype=np.intp)
+    found = np.zeros(3, dtype=np.int64)
+    kernels.key_sweep(
+        x, x.view(np.int64), _flat(bands, np.uint8), _flat(codes, np.uint8),
+        _flat(patterns, np.int32), np.array([n_band_codes, n_cells, width]), _BINNING,
+        tail_table(), *counters, key, *listed, unsure, found,
+    )  # fmt: skip
+    n_tail, n_unsure, dropped = (int(v) for v in found)
+    keys_at, bins_at = listed[0][:n_tail].astype(np.intp), listed[1][:n_tail]
+    if n_unsure:  # beyond the slots (or rounding at +-2 m): binned as summary.bin_index bins them
+        unsure = unsure[:n_unsure]
+        keys_at = np.concatenate([keys_at, key[unsure].astype(np.intp)])
+        bins_at = np.concatenate([bins_at, dh_summary.bin_index(x[unsure])])
+    summaries = _finish(x, key, counters[:4], keys_at, bins_at, tail_counts=counters[4])
+    return summaries, dropped
+
+
+def _flat(values: NDArray[np.generic] | None, dtype: type) -> NDArray[np.generic]:
+    """values as a contiguous 1-D array of dtype (an empty one for None)."""
+    if values is None:
+        return np.zeros(0, dtype=dtype)
+    return np.ascontiguousarray(values, dtype=dtype).reshape(-1)
+
+
+_BINNING = np.array(
+    [dh_summary.LINEAR_WIDTH_M, dh_summary.LINEAR_LIMIT_M, _K, dh_summary._LOG_RATIO]
+)
+#: Tail bins counted on dense counters per cell and sign (the first this many beyond +-2 m,
+#: i.e. up to about 53 m), as long as all cells' counters stay within MAX_TAIL_COUNTERS.
+TAIL_COLUMNS = 32_768
+MAX_TAIL_COUNTERS = 2_000_000
+_SLOT_EXPONENTS = 14  # slots cover 2 m <= |dh| < 2^15 m
+_SLOT_BITS = 12  # leading mantissa bits of a slot: 2.4e-4 relative, about 2.4 tail bins
+_SEARCH_ULPS = (6, 64)
+
+
+@lru_cache(maxsize=1)
+def tail_table() -> tuple[NDArray[np.int64], NDArray[np.float64]]:
+    """For the compiled tail binning: the tail bin j (bin - _K of a positive value) of each
+    slot's lowest value, and each bin's exact lower edge in |dh| (then +inf): the smallest
+    float64 that summary.bin_index puts in it, found among the floats next to 2 exp(j r)."""
+    top = np.array([2.0 ** (1 + _SLOT_EXPONENTS)])
+    n_bins = int(_tail_j(top)[0]) + 2
+    j = np.arange(n_bins)
+    near = (dh_summary.LINEAR_LIMIT_M * np.exp(j * dh_summary._LOG_RATIO)).view(np.int64)
+    edges = np.full(n_bins + 3, np.inf)  # + inf after the last: j + 3 stays inside
+    todo = j
+    for ulps in _SEARCH_ULPS:  # most edges lie within a few floats of 2 exp(j r)
+        candidates = (near[todo, None] + np.arange(-ulps, ulps + 1)).view(np.float64)
+        reached = _tail_j(candidates) >= todo[:, None]
+        found = reached[:, -1] & ~reached[:, 0] & (np.diff(reached, axis=1) >= 0).all(axis=1)
+        edges[todo[found]] = candidates[found, reached[found].argmax(axis=1)]
+        todo = todo[~found]
+    if todo.size:
+        raise RuntimeError("tail bin edges are not where expected")  # pragma: no cover
+    slots = np.arange(_SLOT_EXPONENTS << _SLOT_BITS, dtype=np.int64)
+    lowest = ((slots + (0x4000000000000000 >> 40)) << 40).view(np.float64)
+    return _tail_j(lowest).astype(np.int32), edges
+
+
+def _tail_j(a: NDArray[np.float64]) -> NDArray[np.int64]:
+    """floor(log(a / 2 m) / log ratio) for a >= 2 m, as summary.bin_index computes it."""
+    with np.errstate(divide="ignore", invalid="ignore"):
+        q = np.floor(np.log(a / dh_summary.LINEAR_LIMIT_M) / dh_summary._LOG_RATIO)
+    return np.where(np.isfinite(q), q, -1).astype(np.int64)
+
+
+#: The first sweep's counters: dense linear bins per cell, sums, minima, maxima.
+Counters = tuple[NDArray[np.int64], NDArray[np.float64], NDArray[np.float64], NDArray[np.float64]]
+
+
+def _finish(
+    x: NDArray[np.float64],
+    key: NDArray[np.integer],
+    counters: Counters,
+    tail_key: NDArray[np.intp],
+    tail_bin: NDArray[np.int64],
+    *,
+    tail_counts: NDArray[np.int64] | None = None,
+) -> CellSummaries:
+    """The cells' summaries from the first sweep's counters (dense linear bins, sums, extremes)
+    and tail entries: counts, then the deviations' sweep for the moments, then the tail runs."""
+    dense, sums, minimum, maximum = counters
+    n_cells = sums.size
     count = dense.sum(axis=1) + np.bincount(tail_key, minlength=n_cells)
+    if tail_counts is not None:
+        count += tail_counts.sum(axis=1)
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.where(count > 0, sums / count, 0.0)
     residual = np.zeros(n_cells)
@@ -208,8 +328,27 @@ def _summarise_compiled(
     correction = np.where(count > 0, residual / np.maximum(count, 1), 0.0)
     mean += correction  # the residual of the first estimate, as in a second pass
     m2 = np.maximum(squares - residual * correction, 0.0)
-    tails = _tail_runs(tail_key, dh_summary.bin_index(x[tail]), n_cells)
+    tails = _tail_runs(tail_key, tail_bin, n_cells)
+    if tail_counts is not None:
+        tails = tuple(_with_dense_tails(t, row) for t, row in zip(tails, tail_counts, strict=True))
     return CellSummaries(count, mean, m2, minimum, maximum, tuple(dense), tails)
+
+
+def _with_dense_tails(
+    listed: tuple[NDArray[np.int64], NDArray[np.int64]], row: NDArray[np.int64]
+) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+    """A cell's tail runs (bins ascending) from its dense tail counters (columns j for bin
+    _K + j, then width + j for bin -_K - 1 - j) and its listed runs."""
+    width = row.size // 2
+    (neg,) = np.nonzero(row[width:])
+    (pos,) = np.nonzero(row[:width])
+    neg = neg[::-1]
+    bins = np.concatenate([-_K - 1 - neg, listed[0], _K + pos]).astype(np.int64)
+    counts = np.concatenate([row[width + neg], listed[1], row[pos]]).astype(np.int64)
+    if listed[0].size and (neg.size or pos.size):  # listed bins may be any: add and sort
+        bins, where = np.unique(bins, return_inverse=True)
+        counts = np.bincount(where, weights=counts).astype(np.int64)
+    return bins, counts
 
 
 def _tail_runs(

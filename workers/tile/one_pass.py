@@ -16,8 +16,15 @@ import numpy as np
 from numpy.typing import NDArray
 
 from demaudit.workers.stats.summary import DhSummary
-from demaudit.workers.tile.keyed_summary import summarise_cells
-from demaudit.workers.tile.strata import EXCLUDED_CODE, ClassInfo, class_codes, stratum_cells
+from demaudit.workers.tile import kernels
+from demaudit.workers.tile.keyed_summary import CellSummaries, summarise_cells, summarise_keyed
+from demaudit.workers.tile.strata import (
+    EXCLUDED_CODE,
+    ClassInfo,
+    StratumCells,
+    class_codes,
+    stratum_cells,
+)
 from demaudit.workers.tile.terrain import slope_bands
 
 ALL = "*"  # key of the whole tile among area keys
@@ -51,32 +58,26 @@ def summarise_pixels(
         with_landcover=landcover is not None, classes=classes, slope_edges=slope_edges
     )
     px, py = pixel_size_m
-    cells: NDArray[np.integer] = slope_bands(
-        reference, slope_edges, pixel_size_x_m=px, pixel_size_y_m=py
+    bands = slope_bands(reference, slope_edges, pixel_size_x_m=px, pixel_size_y_m=py)
+    codes = None if landcover is None else class_codes(landcover, classes, size=dh.size)
+    patterns, members = grid_patterns(region_masks) if kernels.AVAILABLE else (None, [])
+    fused = (
+        None
+        if not members
+        else summarise_keyed(
+            dh,
+            bands=bands,
+            codes=codes,
+            patterns=patterns,
+            n_band_codes=layout.n_bands + 1,
+            n_cells=layout.n_cells,
+            n_patterns=len(members),
+        )
     )
-    keys: NDArray[np.integer]
-    excluded = None
-    if landcover is not None:
-        codes = class_codes(landcover, classes, size=dh.size)
-        excluded = codes == EXCLUDED_CODE
-        cells = codes.astype(np.int32) * (layout.n_bands + 1) + cells
-        del codes
-    dropped = 0 if excluded is None else int(np.count_nonzero(excluded & np.isfinite(dh)))
-    if len(region_masks) <= _DIRECT_REGIONS:
-        # keys on the grid, -1 for excluded pixels; NaN dh and those are left out by the sweep
-        keys, members = _keys_on_grid(cells, region_masks, layout.n_cells, excluded)
-        per_key = summarise_cells(dh.ravel(), keys.ravel(), len(members) * layout.n_cells)
+    if fused is not None:
+        per_key, dropped = fused
     else:
-        valid = np.isfinite(dh)
-        if excluded is not None:
-            valid &= ~excluded
-        (flat,) = np.nonzero(valid.ravel())
-        del valid
-        keys, members = membership_patterns(flat, region_masks)
-        keys *= layout.n_cells
-        keys += cells.ravel()[flat]
-        per_key = summarise_cells(dh.ravel()[flat], keys, len(members) * layout.n_cells)
-    del keys, cells, excluded
+        per_key, members, dropped = _summarise_in_numpy(dh, bands, codes, region_masks, layout)
     areas: dict[str, DhSummary] = {}
     strata: dict[str, dict[str, DhSummary]] = {}
     n_cells = layout.n_cells
@@ -86,6 +87,62 @@ def summarise_pixels(
         areas[area] = of_area.union(range(n_cells))
         strata[area] = {name: of_area.union(cells) for name, cells in layout.strata.items()}
     return TileSummaries(areas, strata, dropped)
+
+
+def _summarise_in_numpy(
+    dh: NDArray[np.floating],
+    bands: NDArray[np.uint8],
+    codes: NDArray[np.uint8] | None,
+    region_masks: Mapping[str, NDArray[np.bool_]],
+    layout: StratumCells,
+) -> tuple[CellSummaries, list[frozenset[str]], int]:
+    """The cells' summaries with the keys built in numpy (no compiled loops, or more counters
+    than fit at once): per-key summaries, the membership patterns and the excluded count."""
+    cells: NDArray[np.integer] = bands
+    excluded = None
+    if codes is not None:
+        excluded = codes == EXCLUDED_CODE
+        cells = codes.astype(np.int32) * (layout.n_bands + 1) + bands
+    dropped = 0 if excluded is None else int(np.count_nonzero(excluded & np.isfinite(dh)))
+    if len(region_masks) <= _DIRECT_REGIONS:
+        # keys on the grid, -1 for excluded pixels; NaN dh and those are left out by the sweep
+        keys, members = _keys_on_grid(cells, region_masks, layout.n_cells, excluded)
+        per_key = summarise_cells(dh.ravel(), keys.ravel(), len(members) * layout.n_cells)
+        return per_key, members, dropped
+    valid = np.isfinite(dh)
+    if excluded is not None:
+        valid &= ~excluded
+    (flat,) = np.nonzero(valid.ravel())
+    del valid
+    keys, members = membership_patterns(flat, region_masks)
+    keys *= layout.n_cells
+    keys += cells.ravel()[flat]
+    per_key = summarise_cells(dh.ravel()[flat], keys, len(members) * layout.n_cells)
+    return per_key, members, dropped
+
+
+def grid_patterns(
+    region_masks: Mapping[str, NDArray[np.bool_]],
+) -> tuple[NDArray[np.int32] | None, list[frozenset[str]]]:
+    """Each pixel's membership pattern on the grid (None without regions) and the regions of
+    each pattern: up to _DIRECT_REGIONS regions their bits (every pattern numbered), more
+    regions numbered as membership_patterns numbers them (those that occur on the grid)."""
+    ids = list(region_masks)
+    if not ids:
+        return None, [frozenset()]
+    if len(ids) <= _DIRECT_REGIONS:
+        pattern = np.zeros(next(iter(region_masks.values())).shape, dtype=np.int32)
+        for bit, region_id in enumerate(ids):
+            np.add(pattern, 1 << bit, out=pattern, where=region_masks[region_id])
+        members = [
+            frozenset(r for bit, r in enumerate(ids) if (p >> bit) & 1)
+            for p in range(1 << len(ids))
+        ]
+        return pattern, members
+    shape = next(iter(region_masks.values())).shape
+    every = np.arange(int(np.prod(shape)), dtype=np.intp)
+    numbered, members = membership_patterns(every, region_masks)
+    return numbered.astype(np.int32).reshape(shape), members
 
 
 def membership_patterns(
