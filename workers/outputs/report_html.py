@@ -15,6 +15,7 @@ from pathlib import Path
 from typing import Any
 
 from demaudit.workers.outputs.layout import REPORT_NAME
+from demaudit.workers.uncertainty.report import uncertainty_section
 
 _COLUMNS = ("count", "median", "nmad", "q683_abs", "q95_abs", "rmse", "mean", "std")
 
@@ -67,6 +68,7 @@ SECTIONS = (
     ("checkpoints", "Checkpoints"),
     ("coregistration", "Co-registration"),
     ("derivatives", "Derived parameters"),
+    ("uncertainty", "Uncertainty (error model)"),
     ("recheck", "Re-check"),
     ("other-figures", "Other figures"),
     ("sources", "Sources"),
@@ -82,6 +84,7 @@ FIGURE_SECTIONS = {
     "tile_shifts.png": "coregistration",
     "recheck_tiles.png": "recheck",
     "recheck_regions.png": "recheck",
+    "error_model.png": "uncertainty",
 }
 
 
@@ -103,6 +106,7 @@ def render(document: Mapping[str, Any], *, images: Mapping[str, bytes] | None = 
         )
         + figures.of("coregistration"),
         "derivatives": _derivatives(document.get("derivatives") or {}),
+        "uncertainty": uncertainty_section(document) + figures.of("uncertainty"),
         "recheck": _recheck(document["recheck"]) + figures.of("recheck")
         if document.get("recheck")
         else [],
