@@ -8,6 +8,7 @@ from typing import Any
 from demaudit.workers.checkpoints.grading import QUALITY_LEVELS_CM
 from demaudit.workers.spec import Grading
 from demaudit.workers.stats import summary as dh_summary
+from demaudit.workers.stats.bins import LINEAR_WIDTH_M, RELATIVE_WIDTH
 from demaudit.workers.stats.robust import confidence_intervals, without_outliers
 from demaudit.workers.stats.summary import DhSummary
 
@@ -33,8 +34,8 @@ def quantile_resolution(overall: Mapping[str, Any] | None = None) -> dict[str, A
         "interpolates: (1 - g) x width_j + g x width_(j+1); nmad adds the median's bound "
         "(see workers/stats/summary.py)",
         "overall": dict(overall) if overall is not None else None,
-        "bin_width_m": dh_summary.LINEAR_WIDTH_M,
-        "relative_bin_width_beyond_2m": dh_summary.RELATIVE_WIDTH,
+        "bin_width_m": LINEAR_WIDTH_M,
+        "relative_bin_width_beyond_2m": RELATIVE_WIDTH,
         "count_mean_std_rmse_min_max": "exact",
     }
 

@@ -8,6 +8,8 @@ from typing import Any
 import numpy as np
 
 from demaudit.workers.stats import summary as dhs
+from demaudit.workers.stats.bins import bin_edges
+from demaudit.workers.stats.quantiles import abs_order_statistics, order_statistics
 from demaudit.workers.stats.summary import DhSummary
 
 Z95 = 1.959963984540054  # standard normal quantile 0.975
@@ -31,7 +33,7 @@ def within(s: DhSummary, low: float, high: float) -> DhSummary:
     Moments are recomputed from bin centres, so they carry the histogram's resolution (0.2 mm,
     or 0.01 % beyond 2 m) instead of being exact.
     """
-    lo, hi = dhs.bin_edges(s.bins)
+    lo, hi = bin_edges(s.bins)
     centre = 0.5 * (lo + hi)
     keep = (centre >= low) & (centre <= high)
     if not keep.any():
@@ -106,9 +108,9 @@ def confidence_intervals(s: DhSummary) -> dict[str, Any]:
         low, high = order_statistic_ranks(s.count, p)
         ranks = np.array([r for r in (low, high) if r is not None], dtype=np.int64)
         if key == "median":
-            values = dhs.order_statistics(s, ranks)
+            values = order_statistics(s, ranks)
         else:
-            values = dhs.abs_order_statistics(s, ranks, 0.0)
+            values = abs_order_statistics(s, ranks, 0.0)
         it = iter(float(v) for v in values)
         out[key] = [None if low is None else next(it), None if high is None else next(it)]
         notes += _open_notes(key, s.count, p, low is None, high is None)

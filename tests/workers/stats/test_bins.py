@@ -1,0 +1,40 @@
+"""The fixed histogram bins (demaudit.workers.stats.bins)."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from demaudit.workers.stats import bins
+
+
+def test_bins_are_ordered_and_contain_their_values() -> None:
+    x = np.concatenate([np.linspace(-60, 60, 100_001), [-2.0, 2.0, -1e-9, 0.0]])
+    k = bins.bin_index(x)
+    lo, hi = bins.bin_edges(k)
+    assert np.all(np.diff(k[np.argsort(x)]) >= 0)
+    assert np.all((lo - 1e-12 <= x) & (x <= hi + 1e-12))
+
+
+def test_a_sparse_histogram_counts_every_value_in_its_bin() -> None:
+    rng = np.random.default_rng(5)
+    x = np.concatenate([rng.normal(0, 0.5, 20_000), rng.uniform(-80, 80, 500)])
+    k, counts = bins.sparse_histogram(x)
+    # numpy.unique is the reference for distinct values and their counts
+    want_k, want_counts = np.unique(bins.bin_index(x), return_counts=True)
+    np.testing.assert_array_equal(k, want_k)
+    np.testing.assert_array_equal(counts, want_counts)
+    assert counts.dtype == np.int32
+
+
+@pytest.mark.parametrize("entries", [50, 20_000])  # below and above the dense counter's limit
+def test_added_histograms_sum_the_counts_of_equal_bins(entries: int) -> None:
+    rng = np.random.default_rng(entries)
+    values = np.concatenate([rng.normal(0, 1, entries), rng.uniform(-60, 60, entries // 10)])
+    k = bins.bin_index(values)
+    counts = rng.integers(1, 5, k.size).astype(np.int64)
+    got_k, got_counts = bins.added_histograms(k, counts)
+    want_k = np.unique(k)
+    want_counts = np.array([counts[k == b].sum() for b in want_k])
+    np.testing.assert_array_equal(got_k, want_k)
+    np.testing.assert_array_equal(got_counts, want_counts)

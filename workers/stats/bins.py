@@ -1,0 +1,110 @@
+"""The fixed bins of the dh histograms: the same for every tile, so histograms merge by adding
+counts.
+
+Width ``LINEAR_WIDTH_M`` (0.2 mm) for |dh| < ``LINEAR_LIMIT_M`` (2 m); beyond that, geometric
+bins whose width is ``RELATIVE_WIDTH`` (0.01 %) of their distance from zero, so a blunder of 50 m
+lands in a 5 mm bin. A histogram is sparse: the sorted indices of its non-empty bins and their
+counts. Units: metres.
+"""
+
+from __future__ import annotations
+
+import numpy as np
+from numpy.typing import NDArray
+
+LINEAR_WIDTH_M = 2.0e-4
+LINEAR_LIMIT_M = 2.0
+RELATIVE_WIDTH = 1.0e-4
+K_LIMIT = round(LINEAR_LIMIT_M / LINEAR_WIDTH_M)  # index of the first geometric bin
+LOG_RATIO = float(np.log1p(RELATIVE_WIDTH))  # log of a geometric bin's upper / lower edge
+
+
+def bin_index(x: NDArray[np.float64]) -> NDArray[np.int64]:
+    """Index of the bin holding each value (finite values only).
+
+    Linear bins: floor(x / LINEAR_WIDTH_M) for |x| < LINEAR_LIMIT_M; the few values beyond
+    (the tails) are binned on their own, geometrically.
+    """
+    x = np.asarray(x, dtype=np.float64)
+    (tail,) = np.nonzero((np.abs(x) >= LINEAR_LIMIT_M).ravel())
+    q = x / LINEAR_WIDTH_M
+    flat_q = q.reshape(-1)
+    flat_q[tail] = 0.0  # decided below; keeps huge values out of the integer cast
+    k = np.floor(q, out=q).astype(np.int64)
+    if tail.size:
+        t = x.reshape(-1)[tail]
+        pos = t >= LINEAR_LIMIT_M
+        t_k = np.empty(t.shape, dtype=np.int64)
+        t_k[pos] = K_LIMIT + np.floor(np.log(t[pos] / LINEAR_LIMIT_M) / LOG_RATIO)
+        neg = ~pos
+        t_k[neg] = -K_LIMIT - 1 - np.floor(np.log(-t[neg] / LINEAR_LIMIT_M) / LOG_RATIO)
+        k.reshape(-1)[tail] = t_k
+    return k
+
+
+def bin_edges(k: NDArray[np.integer]) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Lower and upper edge of each bin index."""
+    k = np.asarray(k, dtype=np.int64)
+    lo = k * LINEAR_WIDTH_M
+    hi = (k + 1) * LINEAR_WIDTH_M
+    pos = k >= K_LIMIT
+    j = (k[pos] - K_LIMIT).astype(np.float64)
+    lo[pos] = LINEAR_LIMIT_M * np.exp(j * LOG_RATIO)
+    hi[pos] = LINEAR_LIMIT_M * np.exp((j + 1) * LOG_RATIO)
+    neg = k < -K_LIMIT
+    j = (-K_LIMIT - 1 - k[neg]).astype(np.float64)
+    lo[neg] = -LINEAR_LIMIT_M * np.exp((j + 1) * LOG_RATIO)
+    hi[neg] = -LINEAR_LIMIT_M * np.exp(j * LOG_RATIO)
+    return lo.astype(np.float64), hi.astype(np.float64)
+
+
+def sparse_histogram(x: NDArray[np.float64]) -> tuple[NDArray[np.int32], NDArray[np.integer]]:
+    """Sparse histogram: sorted bin indices (int32) and counts (int32 while they fit: a tile's
+    summaries travel from the workers, so they are kept compact; merges widen to int64)."""
+    column = bin_index(x) + K_LIMIT
+    outside = column.view(np.uint64) >= 2 * K_LIMIT  # negative columns wrap to huge
+    (tail,) = np.nonzero(outside)
+    tail_bins, tail_counts = np.unique(column[tail] - K_LIMIT, return_counts=True)
+    column[tail] = 2 * K_LIMIT  # one extra counter for the tails, dropped below
+    dense = np.bincount(column, minlength=2 * K_LIMIT + 1)[:-1]
+    (nonzero,) = np.nonzero(dense)
+    bins = np.concatenate([nonzero - K_LIMIT, tail_bins]).astype(np.int32)
+    counts = np.concatenate([dense[nonzero], tail_counts])
+    counts = counts.astype(np.int32 if x.size < 2**31 else np.int64)
+    order = np.argsort(bins, kind="stable")
+    return bins[order], counts[order]
+
+
+def added_histograms(
+    bins: NDArray[np.int64], counts: NDArray[np.int64]
+) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+    """Sorted distinct bins and their summed counts. Large inputs (a batch of tile histograms)
+    add their linear bins on one dense counter instead of sorting; the result is the same."""
+    if bins.size < _DENSE_ADD_FROM:
+        return _sorted_sums(bins, counts)
+    column = bins + K_LIMIT
+    tail = column.view(np.uint64) >= 2 * K_LIMIT  # negative columns wrap to huge
+    linear = ~tail
+    dense = np.bincount(column[linear], weights=counts[linear], minlength=2 * K_LIMIT)
+    (nonzero,) = np.nonzero(dense)
+    tail_bins, tail_counts = _sorted_sums(bins[tail], counts[tail])
+    low = np.searchsorted(tail_bins, 0)  # tails below the linear bins, then above
+    return (
+        np.concatenate([tail_bins[:low], nonzero - K_LIMIT, tail_bins[low:]]).astype(np.int64),
+        np.concatenate([tail_counts[:low], dense[nonzero].astype(np.int64), tail_counts[low:]]),
+    )
+
+
+def _sorted_sums(
+    bins: NDArray[np.int64], counts: NDArray[np.int64]
+) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+    if bins.size == 0:
+        return bins.astype(np.int64), counts.astype(np.int64)
+    order = np.argsort(bins, kind="stable")
+    sorted_bins = bins[order]
+    starts = np.flatnonzero(np.r_[True, sorted_bins[1:] != sorted_bins[:-1]])
+    summed = np.add.reduceat(counts[order], starts)
+    return sorted_bins[starts].astype(np.int64), summed.astype(np.int64)
+
+
+_DENSE_ADD_FROM = 4096  # entries; below this one sort is cheaper than the dense counter
