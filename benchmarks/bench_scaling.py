@@ -56,7 +56,7 @@ from numpy.typing import NDArray
 from demaudit.service.run.cluster import dask_client
 from demaudit.service.run.runner import run_job
 from demaudit.workers.demo.archive import make_demo_archive
-from demaudit.workers.demo.world import DemoArchiveOptions
+from demaudit.workers.demo.options import DemoArchiveOptions
 from demaudit.workers.inputs import regions as region_ops
 from demaudit.workers.inputs.catalog import ScanFailure, TileIndex, TileInfo, scan_tile
 from demaudit.workers.inputs.regions import Region

@@ -76,16 +76,16 @@ if str(REPO) not in sys.path:
     sys.path.insert(0, str(REPO))
 
 from demaudit.workers.demo.archive import make_demo_archive  # noqa: E402
-from demaudit.workers.demo.world import (  # noqa: E402
+from demaudit.workers.demo.options import (  # noqa: E402
     LIDAR_NOISE_M,
     NODATA,
     TEST_CRS,
     DemoArchiveOptions,
     RandomStream,
-    build_world,
-    release_tile,
-    true_terrain,
 )
+from demaudit.workers.demo.release import release_tile  # noqa: E402
+from demaudit.workers.demo.surface import true_terrain  # noqa: E402
+from demaudit.workers.demo.world import build_world  # noqa: E402
 from demaudit.workers.tile.datum import DEFAULT_GRID_DIRS  # noqa: E402
 
 WORKERS = 2

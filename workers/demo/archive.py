@@ -35,7 +35,7 @@ import rasterio
 import shapely
 from rasterio.transform import Affine
 
-from demaudit.workers.demo.world import (
+from demaudit.workers.demo.options import (
     BLUNDER_RANGE_M,
     CANOPY_RANGE_M,
     LIDAR_NOISE_M,
@@ -46,21 +46,15 @@ from demaudit.workers.demo.world import (
     SURVEY_RMSE_M,
     TEST_CRS,
     DemoArchiveOptions,
-    DemoWorld,
     LandCover,
     RandomStream,
     TileGrid,
-    VoidDisc,
-    build_world,
-    land_cover,
-    province_geometries,
-    reference_heights,
-    release_tile,
     tile_layout,
     tilted_tiles,
-    true_terrain,
-    void_discs,
 )
+from demaudit.workers.demo.release import VoidDisc, reference_heights, release_tile, void_discs
+from demaudit.workers.demo.surface import land_cover, true_terrain
+from demaudit.workers.demo.world import DemoWorld, build_world, province_geometries
 from demaudit.workers.tile.datum import DEFAULT_GRID_DIRS, geoid_undulation
 
 __all__ = [
@@ -389,7 +383,7 @@ _THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS
 @contextmanager
 def _one_thread_per_worker() -> Iterator[None]:
     """Workers started inside get one BLAS thread each (they run one per core already; the
-    small products of _Waves are faster on one thread). Variables already set are kept."""
+    small products of Waves are faster on one thread). Variables already set are kept."""
     added = [name for name in _THREAD_VARIABLES if name not in os.environ]
     for name in added:
         os.environ[name] = "1"

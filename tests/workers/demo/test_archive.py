@@ -35,25 +35,17 @@ from demaudit.workers.demo.archive import (
     size_problem,
     tile_layout,
 )
-from demaudit.workers.demo.world import (
-    NODATA,
-    PROVINCES,
-    DemoWorld,
-    LandCover,
+from demaudit.workers.demo.options import NODATA, PROVINCES, LandCover, tilted_tiles
+from demaudit.workers.demo.release import (
     VoidDisc,
     blunder_error,
-    build_world,
-    land_cover,
-    province_index,
-    province_weights,
     random_error,
     release_tile,
-    terrain_slope,
     tilt_ramp,
-    tilted_tiles,
-    true_terrain,
     void_mask,
 )
+from demaudit.workers.demo.surface import land_cover, terrain_slope, true_terrain
+from demaudit.workers.demo.world import DemoWorld, build_world, province_index, province_weights
 from demaudit.workers.spec import parse_spec, resolve
 
 TINY: dict[str, Any] = {"tiles_x": 2, "tiles_y": 2, "pixels": 40}
