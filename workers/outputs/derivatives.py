@@ -71,9 +71,14 @@ class JobDerivatives:
         entry = tile_entry(result.derivatives)
         return {} if entry is None else {"derivatives": entry}
 
+    def section(self, names: Mapping[str, str]) -> dict[str, Any]:
+        """summary.json's ``derivatives`` (names: region id -> name); its cautions are
+        derivative_cautions(section)."""
+        return self.merged.section(names)
+
     def attach(self, document: dict[str, Any], names: Mapping[str, str]) -> None:
         """Put the ``derivatives`` section and its cautions into summary.json's document."""
-        document["derivatives"] = self.merged.section(names)
+        document["derivatives"] = self.section(names)
         document["cautions"] += derivative_cautions(document["derivatives"])
 
 

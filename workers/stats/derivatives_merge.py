@@ -18,6 +18,7 @@ from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.tile.derivative_pass import (
     EDGE_CAUTION,
     FLOW_DIRECTION,
+    SUMMARY_SCALE,
     DerivativeOptions,
     TileDerivatives,
 )
@@ -74,12 +75,14 @@ class DerivativesAccumulator:
             "tiles": self.tiles,
         }
         for name, acc in self.merged.items():
+            scale = SUMMARY_SCALE[name]
             out[name] = {
                 "unit": UNITS[name],
-                "overall": _area(acc.overall, acc.strata_of(ALL)),
+                "bin_width": dh_summary.LINEAR_WIDTH_M * scale,
+                "overall": _area(acc.overall, acc.strata_of(ALL), scale),
                 "regions": [
                     {"region": r, "name": names.get(r, r)}
-                    | _area(acc.summary((r, "")), acc.strata_of(r))
+                    | _area(acc.summary((r, "")), acc.strata_of(r), scale)
                     for r in self.region_ids
                 ],
             }
@@ -94,10 +97,19 @@ class DerivativesAccumulator:
         return out
 
 
-def _area(s: DhSummary, strata: Mapping[str, DhSummary]) -> dict[str, Any]:
+def _area(s: DhSummary, strata: Mapping[str, DhSummary], scale: float) -> dict[str, Any]:
     return {
-        "stats": dh_summary.statistics(s),
-        "strata": [{"stratum": k, "stats": dh_summary.statistics(v)} for k, v in strata.items()],
+        "stats": statistics(s, scale),
+        "strata": [{"stratum": k, "stats": statistics(v, scale)} for k, v in strata.items()],
+    }
+
+
+def statistics(s: DhSummary, scale: float) -> dict[str, Any]:
+    """dh's statistics of a summary held in units of ``scale`` (SUMMARY_SCALE), in the
+    parameter's own units: every statistic but the count is linear in the unit."""
+    return {
+        key: value * scale if key != "count" and value is not None else value
+        for key, value in dh_summary.statistics(s).items()
     }
 
 
@@ -112,7 +124,7 @@ def tile_entry(found: TileDerivatives | None) -> dict[str, Any] | None:
     if found is None:
         return None
     entry: dict[str, Any] = {
-        name: dh_summary.statistics(s.areas[ALL]) for name, s in found.summaries.items()
+        name: statistics(s.areas[ALL], SUMMARY_SCALE[name]) for name, s in found.summaries.items()
     }
     if ALL in found.d8:
         entry["d8_agreement"] = agreement(*found.d8[ALL])

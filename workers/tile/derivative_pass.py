@@ -6,6 +6,12 @@ The differences are summarised by the same keyed pass as dh (workers/tile/one_pa
 carry the same mergeable summaries and the same area and stratum keys (slope band of the
 reference). Pixels of an excluded land-cover class leave every statistic, as for dh.
 
+Scale: the summaries' bins are made for dh in metres (0.2 mm wide within +-2, then 0.01 %
+relative), so each difference is summarised in units of SUMMARY_SCALE[name] of its UNITS, which
+puts its usual range in the fine linear bins (and keeps the pass as fast as dh's): bins of
+0.002 degrees of slope within +-20, 0.02 degrees of aspect within +-200, 0.02 1/km of curvature
+within +-200. Statistics read from them are multiplied back (workers/stats/derivatives_merge.py).
+
 Edges: the tile pass reads no halo around a test tile, so the outermost row and column of each
 tile (and every pixel whose 3 x 3 window holds a missing height) have no derived value and are
 left out; summary.json says so in its cautions (EDGE_CAUTION).
@@ -21,7 +27,11 @@ from numpy.typing import NDArray
 
 from demaudit.workers.spec import Derivatives
 from demaudit.workers.tile.derivatives import (
+    ASPECT,
     PARAMETERS,
+    PLAN_CURVATURE,
+    PROFILE_CURVATURE,
+    SLOPE,
     d8_compared,
     derived_differences,
     surface_derivatives,
@@ -31,6 +41,8 @@ from demaudit.workers.tile.one_pass import ALL, TileSummaries, summarise_pixels
 from demaudit.workers.tile.strata import ClassInfo, excluded_mask
 
 FLOW_DIRECTION = "flow_direction"
+#: Each difference is summarised in units of this many of its UNITS (see the module docstring).
+SUMMARY_SCALE = {SLOPE: 10.0, ASPECT: 100.0, PLAN_CURVATURE: 100.0, PROFILE_CURVATURE: 100.0}
 EDGE_CAUTION = (
     "derived parameters (slope, aspect, curvature, D8) need a full 3 x 3 window: the outermost "
     "row and column of each test tile (no halo is read across tile edges) and pixels next to "
@@ -63,8 +75,9 @@ class DerivativeOptions:
 @dataclass(frozen=True, eq=False)
 class TileDerivatives:
     """One tile's derived comparison: per parameter, its TileSummaries (areas: ALL and each
-    region); per area, D8 (agreeing, compared) pixel counts (empty without flow direction);
-    per parameter, the block mean of the differences (the dh overview's grid)."""
+    region; values in units of SUMMARY_SCALE[name]); per area, D8 (agreeing, compared) pixel
+    counts (empty without flow direction); per parameter, the block mean of the differences
+    (in UNITS, on the dh overview's grid)."""
 
     summaries: dict[str, TileSummaries]
     d8: dict[str, tuple[int, int]]
@@ -96,7 +109,7 @@ def tile_derivatives(
     overviews: dict[str, NDArray[np.float32]] = {}
     for name, values in differences.items():
         summaries[name] = summarise_pixels(
-            values,
+            values / SUMMARY_SCALE[name],
             reference=reference,
             landcover=landcover,
             region_masks=region_masks,

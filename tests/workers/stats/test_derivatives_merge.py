@@ -2,9 +2,11 @@
 
 from __future__ import annotations
 
+import pytest
+
 from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.stats.derivatives_merge import DerivativesAccumulator, tile_entry
-from demaudit.workers.tile.derivative_pass import DerivativeOptions
+from demaudit.workers.tile.derivative_pass import SUMMARY_SCALE, DerivativeOptions
 from demaudit.workers.tile.derivatives import PARAMETERS, SLOPE
 from demaudit.workers.tile.one_pass import ALL
 from tests.workers.tile.test_derivative_pass import compare, terrain
@@ -23,7 +25,9 @@ def test_merged_section_adds_tiles_exactly() -> None:
         region = section[name]["regions"][0]
         assert (region["region"], region["name"]) == ("north", "North")
         assert region["stats"]["count"] == merged.count
-        assert region["stats"]["median"] == dh_summary.statistics(merged)["median"]
+        scale = SUMMARY_SCALE[name]  # summarised in units of scale, reported in UNITS
+        assert region["stats"]["median"] == dh_summary.statistics(merged)["median"] * scale
+        assert section[name]["bin_width"] == pytest.approx(2e-4 * scale)
         assert set(region["stats"]) == set(dh_summary.STAT_KEYS)
         strata = {s["stratum"] for s in section[name]["overall"]["strata"]}
         assert "landcover:open" in strata and "slope_deg:5-15" in strata
