@@ -1,15 +1,16 @@
 """What the opt-in error model (spec section ``error_model:``) costs, and whether its client
 memory stays flat as the archive grows. Prints measured figures; never run in CI.
 
-1. ``--demo``: the demo job (demo_tiles/demo.yaml, no checkpoints) run twice on one local
-   cluster, without and with ``error_model``; wall times and the runs' phases
-   (summary.json job.timings_s), the error model's share of the run.
+1. ``--demo`` (``--demo-only``): the demo job (demo_tiles/demo.yaml, no checkpoints) run
+   without and with ``error_model``, alternating, ``--rounds`` times each on one local cluster;
+   median wall time, tile-task seconds summed over the workers (Dask task stream) and the
+   client's fit (summary.json job.timings_s), and the error model's share of the run with it.
 2. per tile (in process): summarise_pixels (the audit's own summaries) against
    tile_error_sample on synthetic tiles of 1 and 4 Mpx (processor time, best of 3).
 3. client memory: tracemalloc peak of merging N synthetic tile samples (the sizes a 2,000 px
    square tile sends) and fitting the model, for N = 50, 200, 800.
 
-    .venv/bin/python benchmarks/bench_error_model.py [--demo]
+    .venv/bin/python benchmarks/bench_error_model.py [--demo | --demo-only] [--rounds 3]
 """
 
 from __future__ import annotations
@@ -107,38 +108,72 @@ def client_memory() -> None:
         )
 
 
-def demo() -> None:
-    from demaudit.service.run.cluster import dask_client
+def _one_run(client, spec, out: Path) -> dict[str, float]:  # type: ignore[no-untyped-def]
+    """Wall seconds, summed task seconds on the workers and the client phases of one run."""
+    from distributed import get_task_stream
+
     from demaudit.service.run.runner import run_job
+    from demaudit.workers import spec as job_spec
+
+    start = time.perf_counter()
+    with get_task_stream(client) as stream:
+        doc = run_job(job_spec.resolve(spec, base_dir=ROOT / "demo_tiles"), out, client=client)
+    wall = time.perf_counter() - start
+    tasks = sum(
+        s["stop"] - s["start"]
+        for t in stream.data
+        for s in t.get("startstops", ())
+        if s.get("action") == "compute"
+    )
+    phases = doc["job"]["timings_s"]
+    return {"wall": wall, "tasks": tasks, "fit": phases.get("error_model", 0.0)}
+
+
+def demo(rounds: int) -> None:
+    """The demo job without and with ``error_model``, alternating (rounds times each, on one
+    cluster); the medians and the error model's share of the run with it."""
+    from demaudit.service.run.cluster import dask_client
     from demaudit.workers import spec as job_spec
 
     base = job_spec.load_spec_file(ROOT / "demo_tiles" / "demo.yaml")
     base.pop("checkpoints", None)
-    print("demo job, wall seconds (2 local workers)")
+    runs: dict[str, list[dict[str, float]]] = {"without": [], "with": []}
+    print(f"demo job, {rounds} alternating rounds (2 local workers)")
     with dask_client(None, workers=2, memory_limit="2GiB") as client:
-        for label, extra in (("without", {}), ("with", {"error_model": {}})):
-            spec = job_spec.parse_spec(base | extra)
-            out = Path("/tmp") / f"bench_error_model_{label}"
-            start = time.perf_counter()
-            doc = run_job(
-                job_spec.resolve(spec, base_dir=ROOT / "demo_tiles"), out, client=client
-            )
-            wall = time.perf_counter() - start
-            phases = doc["job"]["timings_s"]
-            print(f"  {label} error model: {wall:.1f} s; phases {phases}")
-            if label == "with":
-                fit = phases.get("error_model", 0.0)
-                print(f"  client fit: {fit:.1f} s = {fit / wall:.0%} of the run")
+        for _ in range(rounds):
+            for label, extra in (("without", {}), ("with", {"error_model": {}})):
+                spec = job_spec.parse_spec(base | extra)
+                out = Path("/tmp") / f"bench_error_model_{label}"
+                runs[label].append(_one_run(client, spec, out))
+    median = {
+        label: {k: float(np.median([r[k] for r in rs])) for k in ("wall", "tasks", "fit")}
+        for label, rs in runs.items()
+    }
+    for label, m in median.items():
+        print(
+            f"  {label:7s} error model: wall {m['wall']:6.1f} s, tile tasks {m['tasks']:6.1f} s "
+            f"(summed over workers), client fit {m['fit']:5.1f} s   [medians]"
+        )
+    w, wo = median["with"], median["without"]
+    wall_share = (w["wall"] - wo["wall"]) / w["wall"]
+    print(
+        f"  error model share of a full run with it: wall {wall_share:.0%}"
+        f", tile tasks {(w['tasks'] - wo['tasks']) / w['tasks']:.0%}, client fit "
+        f"{w['fit'] / w['wall']:.0%} of the wall time"
+    )
 
 
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
-    parser.add_argument("--demo", action="store_true", help="also run the demo job twice")
+    parser.add_argument("--demo", action="store_true", help="also run the demo job")
+    parser.add_argument("--rounds", type=int, default=3, help="demo runs without and with")
+    parser.add_argument("--demo-only", action="store_true", help="only the demo job")
     args = parser.parse_args()
-    per_tile()
-    client_memory()
-    if args.demo:
-        demo()
+    if not args.demo_only:
+        per_tile()
+        client_memory()
+    if args.demo or args.demo_only:
+        demo(args.rounds)
 
 
 if __name__ == "__main__":
