@@ -1,4 +1,5 @@
-"""Tests of the demo archive: its invented world (demo_terrain) and its writer (demo_archive)."""
+"""Tests of the demo archive: its invented world (workers/demo: options, world, surface,
+release) and its writer (archive, grids, tile_files, survey_points, documents)."""
 
 from __future__ import annotations
 
@@ -25,17 +26,13 @@ from demaudit.workers.demo import archive as demo_archive
 from demaudit.workers.demo.archive import (
     TASK_BYTES_PER_PIXEL,
     DemoArchiveOptions,
-    Egm96Geoid,
     archive_size,
-    checkpoint_count,
-    checkpoints,
     clean_options,
     make_demo_archive,
-    reference_layout,
     size_problem,
-    tile_layout,
 )
-from demaudit.workers.demo.options import NODATA, PROVINCES, LandCover, tilted_tiles
+from demaudit.workers.demo.grids import Egm96Geoid, reference_layout
+from demaudit.workers.demo.options import NODATA, PROVINCES, LandCover, tile_layout, tilted_tiles
 from demaudit.workers.demo.release import (
     VoidDisc,
     blunder_error,
@@ -45,6 +42,7 @@ from demaudit.workers.demo.release import (
     void_mask,
 )
 from demaudit.workers.demo.surface import land_cover, terrain_slope, true_terrain
+from demaudit.workers.demo.survey_points import checkpoint_count, checkpoints
 from demaudit.workers.demo.world import DemoWorld, build_world, province_index, province_weights
 from demaudit.workers.spec import parse_spec, resolve
 
@@ -340,7 +338,7 @@ def test_missing_geoid_grid_is_an_error() -> None:
     # PROJ's data folders are process-wide, so look for the grid in a fresh process that knows
     # no folder holding egm96_15.gtx.
     code = (
-        "from demaudit.workers.demo.archive import Egm96Geoid\n"
+        "from demaudit.workers.demo.grids import Egm96Geoid\n"
         "Egm96Geoid(grid_dirs=('/nonexistent-grid-folder',))\n"
     )
     env = {k: v for k, v in os.environ.items() if k not in {"PROJ_DATA", "PROJ_LIB"}}
