@@ -9,15 +9,14 @@ on their pages). :func:`render` is pure (the document and the figures' bytes in,
 from __future__ import annotations
 
 import base64
-import html
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Mapping
 from pathlib import Path
 from typing import Any
 
+from demaudit.workers.outputs import report_sections as sec
 from demaudit.workers.outputs.layout import REPORT_NAME
+from demaudit.workers.outputs.report_format import cautions_box, esc, number
 from demaudit.workers.uncertainty.report import uncertainty_section
-
-_COLUMNS = ("count", "median", "nmad", "q683_abs", "q95_abs", "rmse", "mean", "std")
 
 _STYLE = """
 body { font-family: sans-serif; margin: 2em; max-width: 72em; color: #222; }
@@ -80,6 +79,8 @@ FIGURE_SECTIONS = {
     "tile_median.png": "tiles",
     "tile_nmad.png": "tiles",
     "tile_grade.png": "tiles",
+    "tile_q95_abs.png": "tiles",
+    "tile_rmse.png": "tiles",
     "dh_by_stratum.png": "strata",
     "tile_shifts.png": "coregistration",
     "recheck_tiles.png": "recheck",
@@ -90,49 +91,51 @@ FIGURE_SECTIONS = {
 
 def render(document: Mapping[str, Any], *, images: Mapping[str, bytes] | None = None) -> str:
     """The page as a string; figures whose bytes are given are embedded, others left out."""
-    images = images or {}
     job = document["job"]
-    figures = _Figures(document, images)
-    sections = {
-        "overall": _overall(document)
-        + figures.of("overall")
-        + _indicative(document.get("grading_indicative") or []),
-        "regions": _regions(document.get("regions") or []),
-        "tiles": figures.of("tiles") + _tile_problems(document.get("tiles", [])),
-        "strata": _strata(document) + figures.of("strata"),
-        "checkpoints": _checkpoints(document["checkpoints"]) if document.get("checkpoints") else [],
-        "coregistration": (
-            _coregistration(document["coregistration"]) if document.get("coregistration") else []
-        )
-        + figures.of("coregistration"),
-        "derivatives": _derivatives(document.get("derivatives") or {}),
-        "uncertainty": uncertainty_section(document) + figures.of("uncertainty"),
-        "recheck": _recheck(document["recheck"]) + figures.of("recheck")
-        if document.get("recheck")
-        else [],
-        "other-figures": figures.rest(),
-        "sources": _sources(document),
-    }
+    sections = section_parts(document, _Figures(document, images or {}))
     present = [(anchor, title) for anchor, title in SECTIONS if sections[anchor]]
-    nav = " ".join(f'<a href="#{a}">{_e(t)}</a>' for a, t in present)
+    nav = " ".join(f'<a href="#{a}">{esc(t)}</a>' for a, t in present)
     parts = [
-        f"<h1>DEM audit: {_e(job['name'])}</h1>",
-        f"<p>dh = {_e(document['sign'])}, in {_e(document['units'])}s. "
-        f"Started {_e(job.get('started'))}, finished {_e(job.get('finished'))}, "
-        f"{_e(job.get('software'))}.</p>",
+        f"<h1>DEM audit: {esc(job['name'])}</h1>",
+        f"<p>dh = {esc(document['sign'])}, in {esc(document['units'])}s. "
+        f"Started {esc(job.get('started'))}, finished {esc(job.get('finished'))}, "
+        f"{esc(job.get('software'))}.</p>",
         f"<nav>{nav}</nav>",
-        _cautions(document.get("cautions", [])),
+        cautions_box(document.get("cautions", [])),
     ]
     for anchor, title in present:
-        parts.append(f'<section id="{anchor}"><h2>{_e(title)}</h2>')
+        parts.append(f'<section id="{anchor}"><h2>{esc(title)}</h2>')
         parts += sections[anchor]
         parts.append("</section>")
     body = "\n".join(p for p in parts if p)
     return (
         "<!DOCTYPE html>\n<html lang='en'><head><meta charset='utf-8'>"
-        f"<title>DEM audit {_e(job['name'])}</title><style>{_STYLE}</style></head>"
+        f"<title>DEM audit {esc(job['name'])}</title><style>{_STYLE}</style></head>"
         f"<body>\n{body}\n</body></html>\n"
     )
+
+
+def section_parts(document: Mapping[str, Any], figures: _Figures) -> dict[str, list[str]]:
+    """Each section's HTML fragments (empty: the section is left out), figures placed."""
+    d = document
+    return {
+        "overall": sec.overall(d)
+        + figures.of("overall")
+        + sec.indicative(d.get("grading_indicative") or []),
+        "regions": sec.regions(d.get("regions") or []),
+        "tiles": figures.of("tiles") + sec.tile_problems(d.get("tiles", [])),
+        "strata": sec.strata(d) + figures.of("strata"),
+        "checkpoints": sec.checkpoints(d["checkpoints"]) if d.get("checkpoints") else [],
+        "coregistration": (
+            sec.coregistration(d["coregistration"]) if d.get("coregistration") else []
+        )
+        + figures.of("coregistration"),
+        "derivatives": sec.derivatives(d.get("derivatives") or {}),
+        "uncertainty": uncertainty_section(d) + figures.of("uncertainty"),
+        "recheck": sec.recheck(d["recheck"]) + figures.of("recheck") if d.get("recheck") else [],
+        "other-figures": figures.rest(),
+        "sources": sec.sources(d),
+    }
 
 
 class _Figures:
@@ -156,307 +159,14 @@ class _Figures:
         self._placed.add(name)
         data = base64.b64encode(self._images[name]).decode("ascii")
         meta = self._meta.get(name) or {}
-        caption = _e(meta.get("shows") or name)
+        caption = esc(meta.get("shows") or name)
         if meta.get("colour_limits_m"):
             low, high = meta["colour_limits_m"]
             caption += (
-                f". Colour limits {_number(float(low))} to {_number(float(high))} m "
-                f"({_e(meta.get('limit_rule'))})"
+                f". Colour limits {number(float(low))} to {number(float(high))} m "
+                f"({esc(meta.get('limit_rule'))})"
             )
         return (
-            f'<figure><img src="data:image/png;base64,{data}" alt="{_e(name)}" '
-            f'data-name="{_e(name)}"><figcaption>{caption}</figcaption></figure>'
+            f'<figure><img src="data:image/png;base64,{data}" alt="{esc(name)}" '
+            f'data-name="{esc(name)}"><figcaption>{caption}</figcaption></figure>'
         )
-
-
-def _e(value: object) -> str:
-    return html.escape("" if value is None else str(value))
-
-
-def _number(value: object) -> str:
-    if value is None:
-        return "–"
-    if isinstance(value, int):
-        return f"{value:,}"
-    if isinstance(value, float):
-        return f"{value:.3f}"
-    return _e(value)
-
-
-def _stats_table(rows: Iterable[tuple[str, Mapping[str, Any]]]) -> str:
-    head = "".join(f"<th>{c}</th>" for c in ("", *_COLUMNS))
-    lines = [
-        "<tr><td>"
-        + _e(name)
-        + "</td>"
-        + "".join(f"<td>{_number(stats.get(c))}</td>" for c in _COLUMNS)
-        + "</tr>"
-        for name, stats in rows
-    ]
-    return f"<table><tr>{head}</tr>{''.join(lines)}</table>"
-
-
-def _cautions(cautions: Sequence[str]) -> str:
-    items = "".join(f"<li>{_e(c)}</li>" for c in cautions)
-    return f'<div class="caution"><strong>Cautions</strong><ul>{items}</ul></div>'
-
-
-def _met(value: object) -> str:
-    if value is True:
-        return '<span class="met">met</span>'
-    if value is False:
-        return '<span class="not-met">not met</span>'
-    return "not decided"
-
-
-def _verdict(grade: Mapping[str, Any]) -> str:
-    """met / not met; a standard that states a figure instead (NSSDA without a required
-    accuracy) shows its sentence; the Edition 2 VVA as found."""
-    if grade.get("met") is None and grade.get("statement"):
-        return _e(grade["statement"])
-    parts = [_met(grade.get("met"))]
-    if grade.get("statement"):
-        parts.append(_e(grade["statement"]))
-    if "vva_rmse_v_as_found_m" in grade:
-        parts.append(f"VVA (RMSE_V, as found): {_number(grade['vva_rmse_v_as_found_m'])} m")
-    return "<br>".join(parts)
-
-
-def _grading_table(grades: Sequence[Mapping[str, Any]]) -> str:
-    """One row per standard: its verdict or sentence, the checks, best class met, warnings."""
-    rows = []
-    for grade in grades:
-        checks = "; ".join(
-            f"{c['measure']} {_number(c['value'])} ≤ {_number(c['threshold'])}: "
-            + (_e(c["note"]) if c.get("note") else _met(c["met"]))
-            for c in grade.get("checks", [])
-        )
-        warnings = "<br>".join(_e(w) for w in grade.get("warnings", []))
-        rows.append(
-            f"<tr><td>{_e(grade['standard'])} {_e(grade.get('class', ''))}</td>"
-            f"<td>{_verdict(grade)}</td><td>{checks}</td>"
-            f"<td>{_e(grade.get('best_class_met') or '')}</td><td>{warnings}</td></tr>"
-        )
-    return (
-        "<table><tr><th>standard</th><th>grade</th><th>checks</th><th>best class met</th>"
-        f"<th>warnings</th></tr>{''.join(rows)}</table>"
-    )
-
-
-def _checkpoints(cp: Mapping[str, Any]) -> list[str]:
-    counts = cp["counts"]
-    assumptions = "".join(f"<li>{_e(a)}</li>" for a in cp.get("cautions", []))
-    by_region = cp.get("by_region") or {}
-    return [
-        f"<p>Cover groups of the checkpoints:</p><ul>{assumptions}</ul>" if assumptions else "",
-        f"<p>{counts['used']} of {counts['read']} checkpoints used, {counts['rejected']} "
-        f"rejected (reasons in {_e(cp.get('residuals_file'))}).</p>",
-        _stats_table(
-            [("checkpoints", cp["stats"])]
-            + [(k, v) for k, v in cp.get("by_cover_group", {}).items()]
-            + [(f"region {k}", v) for k, v in by_region.items()]
-        ),
-        _grading_table(cp.get("grading", [])),
-    ]
-
-
-def _indicative(grades: Sequence[Mapping[str, Any]]) -> list[str]:
-    if not grades:
-        return []
-    note = next((g.get("note") for g in grades if g.get("note")), "")
-    return [f"<h3>Indicative grades</h3><p>{_e(note)}</p>", _grading_table(grades)]
-
-
-def _coregistration(c: Mapping[str, Any]) -> list[str]:
-    if c.get("status") != "ok":
-        return [f"<p>Not estimated: {_e(c.get('reason'))}</p>"]
-    outliers = ", ".join(c.get("outlier_tiles", {}) or []) or "none"
-    parts = [
-        f"<p>{_e(c.get('method'))}: shift east {_number(c['east_m'])} m, north "
-        f"{_number(c['north_m'])} m, vertical {_number(c['vertical_m'])} m. "
-        f"Outlier tiles: {_e(outliers)}.</p>",
-    ]
-    after = c.get("after") or {}
-    if after.get("overall"):
-        parts.append("<p>After applying the shift:</p>")
-        parts.append(
-            _stats_table(
-                [("(all)", after["overall"]["stats"])]
-                + [(r["region"], r["stats"]) for r in after.get("regions", [])]
-            )
-        )
-    return parts
-
-
-def _tile_problems(tiles: Sequence[Mapping[str, Any]]) -> list[str]:
-    bad = [t for t in tiles if t.get("status") not in ("ok", "not_audited")]
-    if not bad:
-        return [f"<p>All {len(tiles)} tiles audited.</p>"] if tiles else []
-    rows = "".join(
-        f"<tr><td>{_e(t['tile'])}</td><td>{_e(t['status'])}</td><td>{_e(t.get('reason'))}</td></tr>"
-        for t in bad
-    )
-    return [
-        "<h3>Tiles not audited</h3>",
-        f"<table><tr><th>tile</th><th>status</th><th>reason</th></tr>{rows}</table>",
-    ]
-
-
-def _interval(ci: object) -> str:
-    if not isinstance(ci, Sequence) or len(ci) != 2:
-        return "–"
-    return f"[{_number(ci[0])}, {_number(ci[1])}]"
-
-
-def _overall(document: Mapping[str, Any]) -> list[str]:
-    detail = document.get("overall_detail") or {}
-    parts = [_stats_table([("(all)", document["overall"])])]
-    ci = detail.get("confidence_95") or {}
-    if ci:
-        parts.append(
-            f"<p>95 % intervals: median {_interval(ci.get('median'))} m, |dh| 68.3 % quantile "
-            f"{_interval(ci.get('q683_abs'))} m, |dh| 95 % quantile {_interval(ci.get('q95_abs'))}"
-            f" m; {_e(ci.get('assumes'))}.</p>"
-        )
-    trimmed = detail.get("without_outliers") or {}
-    if trimmed.get("stats"):
-        parts.append(
-            f"<p>Without outliers ({_e(trimmed.get('rule'))}): {_number(trimmed.get('removed'))} "
-            "pixels removed.</p>"
-        )
-        parts.append(_stats_table([("without outliers", trimmed["stats"])]))
-    if document.get("excluded_pixels") or (document["overall"] or {}).get("excluded_pixels"):
-        parts.append(
-            f"<p>Pixels excluded: {_number(document['overall'].get('excluded_pixels'))}.</p>"
-        )
-    return parts
-
-
-def _regions(regions: Sequence[Mapping[str, Any]]) -> list[str]:
-    if not regions:
-        return []
-    rows = "".join(
-        f"<tr><td>{_e(r['region'])} {_e(r.get('name', ''))}</td>"
-        f"<td>{_interval((r.get('confidence_95') or {}).get('median'))}</td>"
-        f"<td>{_number((r.get('without_outliers') or {}).get('removed'))}</td>"
-        f"<td>{_e(r.get('note', ''))}</td></tr>"
-        for r in regions
-    )
-    return [
-        _stats_table([(f"{r['region']} {r.get('name', '')}", r["stats"]) for r in regions]),
-        "<table><tr><th>region</th><th>median 95 % interval (m)</th><th>outliers removed</th>"
-        f"<th>note</th></tr>{rows}</table>",
-    ]
-
-
-def _strata(document: Mapping[str, Any]) -> list[str]:
-    strata = (document.get("overall_detail") or {}).get("strata") or []
-    if not strata:
-        return []
-    return [_stats_table([(s["stratum"], s["stats"]) for s in strata])]
-
-
-def _derivatives(d: Mapping[str, Any]) -> list[str]:
-    """Whole-job test - reference of each derived parameter, and the D8 agreement."""
-    rows = [(f"{k} ({u})", d[k]["overall"]["stats"]) for k, u in d.get("units", {}).items()]
-    share = (d.get("d8_agreement") or {}).get("overall", {}).get("share")
-    d8 = [] if share is None else [f"<p>D8 flow directions agree at {100 * share:.1f} %.</p>"]
-    return ([_stats_table(rows)] if rows else []) + d8
-
-
-def _recheck(r: Mapping[str, Any]) -> list[str]:
-    regressions = int(r.get("regressions") or 0)
-    summary = (
-        f"<p>Compared with the run finished {_e(r.get('baseline_finished'))} "
-        f"({_e(r.get('baseline'))}): {len(r.get('tiles_recomputed', []))} tiles recomputed, "
-        f"{_number(r.get('tiles_reused'))} reused, {len(r.get('tiles_added', []))} added, "
-        f"{len(r.get('tiles_removed', []))} removed. "
-        f'<span class="{"regressed" if regressions else "improved"}">{regressions} '
-        f"regression{'s' if regressions != 1 else ''}</span>.</p>"
-    )
-    limits = r.get("thresholds") or {}
-    rule = (
-        "<p>A tile or region regresses when its NMAD grows by more than "
-        f"{_number(limits.get('nmad_worse_fraction'))} of itself or "
-        f"{_number(limits.get('nmad_worse_m'))} m, or its median moves more than "
-        f"{_number(limits.get('median_moved_m'))} m away from zero.</p>"
-        if limits
-        else ""
-    )
-    order = {"regressed": 0, "improved": 1, "new": 2, "removed": 3, "unchanged": 4}
-    tiles = sorted(r.get("tiles", []), key=lambda t: (order.get(t["verdict"], 9), t["tile"]))
-    lost = "".join(
-        f"<li class='regressed'>{_e(g['standard'])}: {_e(g['flag'])}</li>"
-        for g in r.get("grades_lost", [])
-    )
-    return [
-        summary,
-        rule,
-        _change_table("region", r.get("regions", []), "region"),
-        _change_table("tile", tiles, "tile", why=True),
-        f"<p>Grades lost:</p><ul>{lost}</ul>" if lost else "<p>No grade lost.</p>",
-    ]
-
-
-def _change_table(
-    what: str, rows: Sequence[Mapping[str, Any]], key: str, *, why: bool = False
-) -> str:
-    if not rows:
-        return ""
-    head = (
-        f"<tr><th>{what}</th><th>verdict</th><th>median before</th><th>median after</th>"
-        "<th>NMAD before</th><th>NMAD after</th><th>flags</th>"
-        + ("<th>why recomputed</th>" if why else "")
-        + "</tr>"
-    )
-    lines = []
-    for row in rows:
-        before, after = row.get("before") or {}, row.get("after") or {}
-        lines.append(
-            f"<tr><td>{_e(row[key])}</td><td class='{_e(row['verdict'])}'>{_e(row['verdict'])}</td>"
-            f"<td>{_number(before.get('median'))}</td><td>{_number(after.get('median'))}</td>"
-            f"<td>{_number(before.get('nmad'))}</td><td>{_number(after.get('nmad'))}</td>"
-            f"<td>{_e('; '.join(row.get('flags') or []))}</td>"
-            + (f"<td>{_e(row.get('why'))}</td>" if why else "")
-            + "</tr>"
-        )
-    return f"<table>{head}{''.join(lines)}</table>"
-
-
-def _sources(document: Mapping[str, Any]) -> list[str]:
-    sources = document.get("sources") or {}
-    transforms = sources.get("vertical_transformations") or []
-    rows = "".join(
-        f"<tr><td>{_e(t.get('role'))}</td><td>{_e(t.get('from'))} → {_e(t.get('to'))}</td>"
-        f"<td>{_e('; '.join(str(o) for o in t.get('operations') or []))}</td>"
-        f"<td>{_number(t.get('accuracy_m'))}</td></tr>"
-        for t in transforms
-    )
-    files = {k: v for k, v in sources.items() if k != "vertical_transformations"}
-    listing = "".join(
-        f"<tr><td>{_e(k)}</td><td><code>{_e(v)}</code></td></tr>" for k, v in sorted(files.items())
-    )
-    job = document.get("job") or {}
-    parts = [
-        f"<p>Software: {_e(job.get('software'))}. Tiles: "
-        f"{_e((job.get('tiles') or {}).get('test'))} test, "
-        f"{_e((job.get('tiles') or {}).get('reference'))} reference.</p>"
-    ]
-    if rows:
-        parts.append(
-            "<table><tr><th>heights</th><th>conversion</th><th>operations</th>"
-            f"<th>stated accuracy (m)</th></tr>{rows}</table>"
-        )
-    if listing:
-        parts.append(
-            f"<details><summary>{len(files)} input files and their fingerprints</summary>"
-            f"<table><tr><th>file</th><th>SHA-256</th></tr>{listing}</table></details>"
-        )
-    failures = document.get("reference_failures") or []
-    if failures:
-        parts.append(
-            "<p>Reference tiles that could not be read:</p><ul>"
-            + "".join(f"<li>{_e(f)}</li>" for f in failures)
-            + "</ul>"
-        )
-    return parts

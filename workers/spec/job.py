@@ -16,6 +16,7 @@ from demaudit.workers.spec.sections import (
     Coregistration,
     Derivatives,
     ErrorModel,
+    FigureOptions,
     Grading,
     LandCoverSource,
     Options,
@@ -44,6 +45,7 @@ class JobSpec(Section):
     recheck: Recheck = Recheck()
     error_model: ErrorModel | None = None
     derivatives: Derivatives | None = None
+    figures: FigureOptions = FigureOptions()
     options: Options = Options()
 
     @model_validator(mode="after")

@@ -292,3 +292,23 @@ class Derivatives(Section):
         if len(set(value)) != len(value):
             raise ValueError("name each derived parameter once")
         return value
+
+
+TileStatistic = Literal["median", "nmad", "q95_abs", "rmse", "grade"]
+
+
+class FigureOptions(Section):
+    """Which figures to draw (workers/outputs/figures); changes no statistic."""
+
+    tile_statistics: list[TileStatistic] = Field(
+        default=["median", "nmad", "grade"],
+        description="One tile map per statistic (grade: the finest ASPRS class "
+        "each tile's RMSE meets, indicative); an empty list draws no tile map.",
+    )
+
+    @field_validator("tile_statistics")
+    @classmethod
+    def _once_each(cls, value: list[str]) -> list[str]:
+        if len(set(value)) != len(value):
+            raise ValueError("name each tile statistic once")
+        return value

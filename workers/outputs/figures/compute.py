@@ -1,6 +1,7 @@
 """What the figures draw, computed without matplotlib (pure): colour limits, histogram bars and
 the two Gaussian curves, tile values and grades, the worst tiles, strata rows with their
-intervals, the scale bar, the job's outline in longitude/latitude, re-check verdicts.
+intervals (median and NMAD), re-check verdicts. Map placement (scale bar, inset outline) is in
+:mod:`demaudit.workers.outputs.figures.geometry`.
 
 Everything here takes the job's own numbers (summary.json entries or a mergeable
 :class:`~demaudit.workers.stats.summary.DhSummary`) and returns plain numbers and arrays, so the
@@ -29,6 +30,13 @@ MIN_HALF_WIDTH_M = 0.05
 #: the histogram shows median +- HIST_NMADS x NMAD, widened to the 1st and 99th percentiles
 HIST_NMADS = 6.0
 TILE_STATISTICS = ("median", "nmad", "q95_abs", "rmse", "grade")
+#: the tile maps drawn when the spec does not say (figures.tile_statistics)
+DEFAULT_TILE_STATISTICS = ("median", "nmad", "grade")
+#: asymptotic standard error of the NMAD at the Gaussian, in units of sigma / sqrt(n): the MAD's
+#: asymptotic efficiency there is 36.75 % of the standard deviation's (Rousseeuw & Croux 1993,
+#: JASA 88:1273, section 1), whose variance is sigma^2 / 2n, so Var(NMAD) = sigma^2 / (2 x
+#: 0.3675 n); equivalently 1.4826^2 / (16 phi(0.6745)^2 n) from the sample median of |x|.
+NMAD_SE_FACTOR = math.sqrt(1.0 / (2.0 * 0.3675))
 Bounds = tuple[float, float, float, float]
 VERDICT_ORDER = ("regressed", "improved", "unchanged", "new", "removed", "reused")
 
@@ -232,6 +240,29 @@ class StratumRow:
     nmad: float
     count: int
     median_ci: tuple[float | None, float | None] | None
+    nmad_ci: tuple[float, float] | None = None
+
+
+def nmad_interval(nmad: float, count: int, *, z: float = 1.959964) -> tuple[float, float] | None:
+    """95 % interval of the NMAD from its asymptotic standard error at the Gaussian,
+    NMAD_SE_FACTOR x NMAD / sqrt(n) (assumes independent values and a Gaussian core; heavier
+    tails widen the true interval). None for fewer than 2 values; the low end is at least 0."""
+    if count < 2 or not math.isfinite(nmad):
+        return None
+    se = NMAD_SE_FACTOR * nmad / math.sqrt(count)
+    return max(nmad - z * se, 0.0), nmad + z * se
+
+
+def tile_statistics(spec: Mapping[str, Any] | None) -> tuple[str, ...]:
+    """The statistics of the tile maps the job spec asks for (figures.tile_statistics), or
+    DEFAULT_TILE_STATISTICS; unknown names are refused."""
+    asked = ((spec or {}).get("figures") or {}).get("tile_statistics")
+    if asked is None:
+        return DEFAULT_TILE_STATISTICS
+    unknown = [s for s in asked if s not in TILE_STATISTICS]
+    if unknown:
+        raise ValueError(f"figures.tile_statistics: {unknown} not among {TILE_STATISTICS}")
+    return tuple(asked)
 
 
 def strata_rows(
@@ -241,7 +272,8 @@ def strata_rows(
 ) -> list[StratumRow]:
     """The strata whose key starts with prefix (e.g. 'slope_deg:' or 'landcover:'), in order,
     with a 95 % interval of the median: the entry's own ``confidence_95`` when summary.json has
-    it, else computed from the stratum's merged summary when given, else none."""
+    it, else computed from the stratum's merged summary when given, else none; and a 95 %
+    interval of the NMAD (nmad_interval)."""
     rows = []
     for entry in entries:
         key = entry["stratum"]
@@ -251,72 +283,19 @@ def strata_rows(
         ci = (entry.get("confidence_95") or {}).get("median")
         if ci is None and summaries is not None and key in summaries:
             ci = confidence_intervals(summaries[key])["median"]
+        nmad, count = float(stats["nmad"]), int(stats["count"])
+        median_ci = (ci[0], ci[1]) if ci is not None else None
         rows.append(
             StratumRow(
                 key[len(prefix) :],
                 float(stats["median"]),
-                float(stats["nmad"]),
-                int(stats["count"]),
-                (ci[0], ci[1]) if ci is not None else None,
+                nmad,
+                count,
+                median_ci,
+                nmad_interval(nmad, count),
             )
         )
     return rows
-
-
-def nice_length(span: float) -> float:
-    """A scale-bar length: 1, 2 or 5 x 10^k, at most a quarter of span (span > 0)."""
-    if span <= 0 or not math.isfinite(span):
-        raise ValueError(f"span must be positive, not {span}")
-    target = span / 4
-    power = 10 ** math.floor(math.log10(target))
-    for step in (5, 2, 1):
-        if step * power <= target:
-            return step * power
-    return power  # pragma: no cover - target >= power always
-
-
-def outline_lonlat(
-    bounds: tuple[float, float, float, float], crs: str, *, points: int = 20
-) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-    """The rectangle bounds (in crs) as a closed ring of longitudes and latitudes, each edge
-    densified to `points` points (PROJ via pyproj)."""
-    from pyproj import CRS, Transformer
-
-    left, bottom, right, top = bounds
-    t = np.linspace(0.0, 1.0, points, endpoint=False)
-    xs = np.concatenate(
-        [
-            left + (right - left) * t,
-            np.full_like(t, right),
-            right - (right - left) * t,
-            np.full_like(t, left),
-            [left],
-        ]
-    )
-    ys = np.concatenate(
-        [
-            np.full_like(t, bottom),
-            bottom + (top - bottom) * t,
-            np.full_like(t, top),
-            top - (top - bottom) * t,
-            [bottom],
-        ]
-    )
-    source = CRS.from_user_input(crs)
-    if source.is_geographic:
-        return xs, ys
-    lon, lat = Transformer.from_crs(source, "EPSG:4326", always_xy=True).transform(xs, ys)
-    return np.asarray(lon, dtype=float), np.asarray(lat, dtype=float)
-
-
-def metre_units(crs: str) -> bool:
-    """True when crs is projected with axes in metres (a scale bar in data units is right)."""
-    from pyproj import CRS
-
-    c = CRS.from_user_input(crs)
-    return bool(c.is_projected) and all(
-        (a.unit_name or "").lower() in ("metre", "meter") for a in c.axis_info[:2]
-    )
 
 
 def recheck_tiles(

@@ -1,24 +1,30 @@
-"""Drawing of the figures (matplotlib, Agg, no pyplot state): each function takes what
-:mod:`demaudit.workers.outputs.figures.compute` worked out and returns a Figure; nothing here
-computes a
-statistic.
+"""Drawing of the map figures (matplotlib, Agg, no pyplot state): the dh map, the tile maps,
+the re-check verdict map and the shift vectors. Each function takes what
+:mod:`~demaudit.workers.outputs.figures.compute` and
+:mod:`~demaudit.workers.outputs.figures.geometry` worked out and returns a Figure; nothing here
+computes a statistic. The charts (histogram, strata, before/after) are in
+:mod:`~demaudit.workers.outputs.figures.charts`.
 
 Artists the tests look for carry a ``gid``: ``region:<id>`` for each region outline,
-``tile:<id>`` for tile rectangles, ``gauss:moments`` / ``gauss:robust`` for the two curves,
-``scale-bar``, ``inset``, ``failed:<id>`` / ``not-audited:<id>`` for tiles without results.
+``tiles`` for the tile map's collection, ``tile:<id>:<verdict>``, ``worst:<id>``, ``scale-bar``,
+``inset``, ``failed:<id>`` / ``not-audited:<id>`` / ``no-value:<id>`` for tiles without results.
+
+Speed: no layout engine, titles placed at a fixed height (matplotlib otherwise measures every
+tick label to place them), tiles drawn as one polygon collection.
 """
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
-from typing import Any
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Literal
 
 import matplotlib
 
 matplotlib.use("Agg")
 import numpy as np  # noqa: E402
 from matplotlib.axes import Axes  # noqa: E402
-from matplotlib.collections import PatchCollection  # noqa: E402
+from matplotlib.collections import PolyCollection  # noqa: E402
 from matplotlib.colors import BoundaryNorm, Colormap, ListedColormap, Normalize  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.patches import Patch, PathPatch, Rectangle  # noqa: E402
@@ -28,6 +34,12 @@ from shapely.geometry.base import BaseGeometry  # noqa: E402
 
 from demaudit.workers.checkpoints.grading import ASPRS_CLASSES_CM  # noqa: E402
 from demaudit.workers.outputs.figures import compute  # noqa: E402
+from demaudit.workers.outputs.figures.geometry import (  # noqa: E402
+    Bounds,
+    MapFrame,
+    ScaleBar,
+    tile_corners,
+)
 
 # our palette: a blue-to-ochre diverging scale for dh, grey voids, hatched failures
 DH_CMAP = "PuOr_r"
@@ -35,6 +47,7 @@ SPREAD_CMAP = "YlOrBr"
 VOID_COLOUR = "#c8c8c8"
 UNDER_COLOUR = "#241a4d"
 OVER_COLOUR = "#4d2600"
+MISSING_EDGE = "#333333"
 VERDICT_COLOURS = {
     "regressed": "#c2185b",
     "improved": "#2e7d32",
@@ -43,7 +56,10 @@ VERDICT_COLOURS = {
     "removed": "#5d4037",
     "reused": "#eceff1",
 }
-Bounds = compute.Bounds
+
+Region = tuple[str, str, BaseGeometry]
+MAP_AXES = (0.12, 0.08, 0.64, 0.85)
+BAR_AXES = (0.80, 0.14, 0.025, 0.72)
 
 
 def new_figure(width: float, height: float) -> Figure:
@@ -52,16 +68,27 @@ def new_figure(width: float, height: float) -> Figure:
     return Figure(figsize=(width, height))
 
 
-MAP_AXES = (0.12, 0.08, 0.64, 0.85)
-BAR_AXES = (0.80, 0.14, 0.025, 0.72)
+def set_title(
+    ax: Axes, text: str, *, fontsize: float = 10, loc: Literal["left", "center"] = "center"
+) -> None:
+    """A title at a fixed height above the axes (no automatic placement, which measures every
+    tick label of the figure)."""
+    ax.set_title(text, fontsize=fontsize, loc=loc, y=1.0, pad=5)
 
 
-def _projected_axes(ax: Axes) -> None:
-    ax.set_aspect("equal")
-    ax.set_xlabel("easting (m)")
-    ax.set_ylabel("northing (m)")
+def map_axes(ax: Axes, frame: MapFrame) -> None:
+    ax.set_aspect(frame.aspect)
+    ax.set_xlabel(frame.x_label)
+    ax.set_ylabel(frame.y_label)
     ax.ticklabel_format(useOffset=False, style="plain")
     ax.tick_params(labelsize=7)
+
+
+def fit_to(ax: Axes, bounds: Sequence[Bounds]) -> None:
+    """Axis limits around every rectangle."""
+    b = np.asarray(bounds, dtype=float).reshape(-1, 4)
+    ax.set_xlim(float(b[:, 0].min()), float(b[:, 2].max()))
+    ax.set_ylim(float(b[:, 1].min()), float(b[:, 3].max()))
 
 
 def geometry_path(geometry: BaseGeometry) -> MplPath:
@@ -79,8 +106,9 @@ def geometry_path(geometry: BaseGeometry) -> MplPath:
     return MplPath(np.concatenate(vertices), np.concatenate(codes))
 
 
-def draw_regions(ax: Axes, regions: Sequence[tuple[str, str, BaseGeometry]]) -> int:
+def draw_regions(ax: Axes, regions: Sequence[Region]) -> int:
     """Each region's outline (one patch each) and its id at a point inside it."""
+    label_box = {"boxstyle": "round,pad=0.15", "fc": "white", "alpha": 0.7}
     for region_id, _name, geometry in regions:
         patch = PathPatch(
             geometry_path(geometry), fill=False, edgecolor="black", linewidth=1.1, zorder=4
@@ -96,49 +124,41 @@ def draw_regions(ax: Axes, regions: Sequence[tuple[str, str, BaseGeometry]]) -> 
             fontsize=8,
             zorder=5,
             fontweight="bold",
-            bbox={"boxstyle": "round,pad=0.15", "fc": "white", "alpha": 0.7},
+            bbox=label_box,
         )
     return len(regions)
 
 
-def draw_missing_tiles(
-    ax: Axes, failed: Sequence[tuple[str, Bounds]], not_audited: Sequence[tuple[str, Bounds]]
-) -> None:
-    for kind, tiles, hatch in (("failed", failed, "xxx"), ("not-audited", not_audited, "///")):
-        for tile_id, (left, bottom, right, top) in tiles:
-            rect = Rectangle(
-                (left, bottom),
-                right - left,
-                top - bottom,
-                facecolor="white",
-                edgecolor="#333333",
-                hatch=hatch,
-                linewidth=0.6,
-                zorder=3,
-            )
-            rect.set_gid(f"{kind}:{tile_id}")
-            ax.add_patch(rect)
+def hatched_tile(bounds: Bounds, hatch: str, gid: str, *, zorder: float = 3) -> Rectangle:
+    left, bottom, right, top = bounds
+    rect = Rectangle(
+        (left, bottom),
+        right - left,
+        top - bottom,
+        facecolor="white",
+        edgecolor=MISSING_EDGE,
+        hatch=hatch,
+        linewidth=0.6,
+        zorder=zorder,
+    )
+    rect.set_gid(gid)
+    return rect
 
 
-def draw_scale_bar(ax: Axes, extent: Bounds, length_m: float) -> None:
+def draw_scale_bar(ax: Axes, extent: Bounds, bar: ScaleBar) -> None:
+    """Two halves, dark and light, bar.length_units long, in the lower left corner."""
     left, bottom, right, top = extent
     x0 = left + 0.04 * (right - left)
     y0 = bottom + 0.04 * (top - bottom)
     h = 0.012 * (top - bottom)
-    for i in range(2):  # two halves, dark and light
+    half = bar.length_units / 2
+    for i, colour in enumerate(("black", "white")):
         part = Rectangle(
-            (x0 + i * length_m / 2, y0),
-            length_m / 2,
-            h,
-            facecolor="black" if i == 0 else "white",
-            edgecolor="black",
-            linewidth=0.8,
-            zorder=6,
+            (x0 + i * half, y0), half, h, facecolor=colour, edgecolor="black", linewidth=0.8
         )
-        part.set_gid("scale-bar" if i == 0 else "scale-bar-half")
+        part.set(zorder=6, gid="scale-bar" if i == 0 else "scale-bar-half")
         ax.add_patch(part)
-    label = f"{length_m / 1000:g} km" if length_m >= 1000 else f"{length_m:g} m"
-    ax.text(x0 + length_m / 2, y0 + 1.6 * h, label, ha="center", va="bottom", fontsize=8, zorder=6)
+    ax.text(x0 + half, y0 + 1.6 * h, bar.label, ha="center", va="bottom", fontsize=8, zorder=6)
 
 
 def draw_inset(ax: Axes, lon: NDArray[np.float64], lat: NDArray[np.float64]) -> Axes:
@@ -154,21 +174,29 @@ def draw_inset(ax: Axes, lon: NDArray[np.float64], lat: NDArray[np.float64]) -> 
     inset.grid(True, linewidth=0.4, color="#999999")
     inset.tick_params(labelsize=5, length=2)
     inset.set_facecolor("#f7f4ec")
-    inset.set_title(f"lon {clon:.2f}°, lat {clat:.2f}°", fontsize=6)
+    set_title(inset, f"lon {clon:.2f}°, lat {clat:.2f}°", fontsize=6)
     return inset
+
+
+@dataclass(frozen=True)
+class MapLayers:
+    """What the dh map shows over the dh values."""
+
+    frame: MapFrame
+    regions: Sequence[Region] = ()
+    failed: Sequence[tuple[str, Bounds]] = ()
+    not_audited: Sequence[tuple[str, Bounds]] = ()
+    scale_bar: ScaleBar | None = None
+    lonlat: tuple[NDArray[np.float64], NDArray[np.float64]] | None = None
 
 
 def dh_map(
     values: NDArray[np.float64],
     extent: Bounds,
     limits: compute.Limits,
+    layers: MapLayers,
     *,
     title: str,
-    regions: Sequence[tuple[str, str, BaseGeometry]],
-    failed: Sequence[tuple[str, Bounds]],
-    not_audited: Sequence[tuple[str, Bounds]],
-    scale_bar_m: float | None,
-    lonlat: tuple[NDArray[np.float64], NDArray[np.float64]] | None,
 ) -> Figure:
     fig = new_figure(7.5, 6.6)
     ax = fig.add_axes(MAP_AXES)
@@ -184,35 +212,61 @@ def dh_map(
         interpolation="nearest",
         zorder=1,
     )
-    draw_missing_tiles(ax, failed, not_audited)
-    draw_regions(ax, regions)
-    if scale_bar_m:
-        draw_scale_bar(ax, extent, scale_bar_m)
-    if lonlat is not None:
-        draw_inset(ax, *lonlat)
+    _map_overlays(ax, extent, layers)
     bar = fig.colorbar(image, cax=fig.add_axes(BAR_AXES), extend="both")
     bar.set_label(
         f"dh = test - reference (m); colours clipped at {limits.low:.3f} and {limits.high:.3f} m\n"
         f"({limits.rule}); darker ends: beyond",
         fontsize=7,
     )
-    handles = [Patch(facecolor=VOID_COLOUR, label="void: no valid dh")]
-    if failed:
-        handles.append(
-            Patch(facecolor="white", edgecolor="#333333", hatch="xxx", label="failed tile")
-        )
-    if not_audited:
-        handles.append(
-            Patch(facecolor="white", edgecolor="#333333", hatch="///", label="tile not audited")
-        )
-    if regions:
-        handles.append(Patch(facecolor="none", edgecolor="black", label="region outline"))
-    ax.legend(handles=handles, loc="upper left", fontsize=7, framealpha=0.85)
-    ax.set_title(title, fontsize=10)
+    ax.legend(handles=_map_legend(layers), loc="upper left", fontsize=7, framealpha=0.85)
+    set_title(ax, title)
     ax.set_xlim(left, right)
     ax.set_ylim(bottom, top)
-    _projected_axes(ax)
+    map_axes(ax, layers.frame)
     return fig
+
+
+def _map_overlays(ax: Axes, extent: Bounds, layers: MapLayers) -> None:
+    for tile_id, bounds in layers.failed:
+        ax.add_patch(hatched_tile(bounds, "xxx", f"failed:{tile_id}"))
+    for tile_id, bounds in layers.not_audited:
+        ax.add_patch(hatched_tile(bounds, "///", f"not-audited:{tile_id}"))
+    draw_regions(ax, layers.regions)
+    if layers.scale_bar is not None:
+        draw_scale_bar(ax, extent, layers.scale_bar)
+    if layers.lonlat is not None:
+        draw_inset(ax, *layers.lonlat)
+
+
+def _map_legend(layers: MapLayers) -> list[Patch]:
+    handles = [Patch(facecolor=VOID_COLOUR, label="void: no valid dh")]
+    for present, hatch, label in (
+        (layers.failed, "xxx", "failed tile"),
+        (layers.not_audited, "///", "tile not audited"),
+    ):
+        if present:
+            handles.append(
+                Patch(facecolor="white", edgecolor=MISSING_EDGE, hatch=hatch, label=label)
+            )
+    if layers.regions:
+        handles.append(Patch(facecolor="none", edgecolor="black", label="region outline"))
+    return handles
+
+
+def _tile_colours(statistic: str, value_range: tuple[float, float]) -> tuple[Colormap, Normalize]:
+    if statistic == "grade":
+        labels = grade_labels()
+        cmap: Colormap = ListedColormap(
+            matplotlib.colormaps["viridis"](np.linspace(0, 1, len(labels)))
+        )
+        return cmap, BoundaryNorm(np.arange(len(labels) + 1) - 0.5, cmap.N)
+    cmap = matplotlib.colormaps[DH_CMAP if statistic == "median" else SPREAD_CMAP]
+    return cmap, Normalize(*value_range)
+
+
+def grade_labels() -> list[str]:
+    return [f"{cm:g} cm" for cm in ASPRS_CLASSES_CM] + [f">{ASPRS_CLASSES_CM[-1]:g} cm"]
 
 
 def tile_map(
@@ -222,30 +276,46 @@ def tile_map(
     worst: Sequence[str],
     *,
     title: str,
+    frame: MapFrame,
 ) -> Figure:
     fig = new_figure(7.0, 6.2)
     ax = fig.add_axes(MAP_AXES)
     known = [v for v in values if v.value is not None]
-    cmap: Colormap
-    if statistic == "grade":
-        labels = [f"{cm:g} cm" for cm in ASPRS_CLASSES_CM] + [f">{ASPRS_CLASSES_CM[-1]:g} cm"]
-        cmap = ListedColormap(matplotlib.colormaps["viridis"](np.linspace(0, 1, len(labels))))
-        norm: Normalize = BoundaryNorm(np.arange(len(labels) + 1) - 0.5, cmap.N)
-    else:
-        cmap = matplotlib.colormaps[DH_CMAP if statistic == "median" else SPREAD_CMAP]
-        norm = Normalize(*value_range)
-    patches = [_tile_rect(v.bounds) for v in known]
-    collection = PatchCollection(patches, cmap=cmap, norm=norm, edgecolor="white", linewidth=0.4)
+    cmap, norm = _tile_colours(statistic, value_range)
+    collection = PolyCollection(
+        tile_corners([v.bounds for v in known]),
+        cmap=cmap,
+        norm=norm,
+        edgecolor="white",
+        linewidth=0.4,
+    )
     collection.set_array(np.array([v.value for v in known], dtype=float))
     collection.set_gid("tiles")
     ax.add_collection(collection)
-    for v in values:
-        if v.value is None:
-            rect = _tile_rect(v.bounds)
-            rect.set(facecolor="white", edgecolor="#333333", hatch="xxx", linewidth=0.5)
-            rect.set_gid(f"no-value:{v.tile}")
-            ax.add_patch(rect)
+    _mark_unknown_tiles(ax, values)
+    _label_worst(fig, ax, values, worst)
+    _tile_bar(fig, collection, statistic)
+    fit_to(ax, [v.bounds for v in values])
+    set_title(ax, title)
+    map_axes(ax, frame)
+    return fig
+
+
+def _mark_unknown_tiles(ax: Axes, values: Sequence[compute.TileValue]) -> None:
+    unknown = [v for v in values if v.value is None]
+    for v in unknown:
+        ax.add_patch(hatched_tile(v.bounds, "xxx", f"no-value:{v.tile}"))
+    if unknown:
+        hatch = Patch(facecolor="white", edgecolor=MISSING_EDGE, hatch="xxx")
+        ax.legend([hatch], ["no statistics (failed or not audited)"], loc="lower left", fontsize=7)
+
+
+def _label_worst(
+    fig: Figure, ax: Axes, values: Sequence[compute.TileValue], worst: Sequence[str]
+) -> None:
+    """The worst tiles' ranks on the map, their ids below it."""
     by_id = {v.tile: v for v in values}
+    badge = {"boxstyle": "circle,pad=0.2", "fc": "white", "ec": "#c2185b", "alpha": 0.9}
     for rank, tile_id in enumerate(worst, 1):
         left, bottom, right, top = by_id[tile_id].bounds
         ax.annotate(
@@ -257,190 +327,41 @@ def tile_map(
             fontweight="bold",
             zorder=5,
             gid=f"worst:{tile_id}",
-            bbox={"boxstyle": "circle,pad=0.2", "fc": "white", "ec": "#c2185b", "alpha": 0.9},
+            bbox=badge,
         )
-    if worst:  # the ranks on the map, the ids below it
-        fig.text(
-            MAP_AXES[0],
-            0.012,
-            "worst: " + ", ".join(f"{rank} {t}" for rank, t in enumerate(worst, 1)),
-            fontsize=7,
-        )
-    if len(known) < len(values):
-        hatch = Patch(facecolor="white", edgecolor="#333333", hatch="xxx")
-        ax.legend([hatch], ["no statistics (failed or not audited)"], loc="lower left", fontsize=7)
+    if worst:
+        ids = ", ".join(f"{rank} {t}" for rank, t in enumerate(worst, 1))
+        fig.text(MAP_AXES[0], 0.012, f"worst: {ids}", fontsize=7)
+
+
+def _tile_bar(fig: Figure, collection: PolyCollection, statistic: str) -> None:
     bar = fig.colorbar(collection, cax=fig.add_axes(BAR_AXES))
     if statistic == "grade":
+        labels = grade_labels()
         bar.set_ticks(list(range(len(labels))), labels=labels)
         bar.set_label("finest ASPRS class met by the tile's RMSE (indicative)", fontsize=7)
     else:
         bar.set_label(f"{statistic} of the tile's dh (m)", fontsize=7)
-    every = [v.bounds for v in values]
-    ax.set_xlim(min(b[0] for b in every), max(b[2] for b in every))
-    ax.set_ylim(min(b[1] for b in every), max(b[3] for b in every))
-    ax.set_title(title, fontsize=10)
-    _projected_axes(ax)
-    return fig
 
 
-def _tile_rect(bounds: Bounds) -> Rectangle:
-    left, bottom, right, top = bounds
-    return Rectangle((left, bottom), right - left, top - bottom)
-
-
-def histogram(h: compute.Histogram, *, log_counts: bool, title: str) -> Figure:
-    fig = new_figure(7.5, 4.6)
-    fig.subplots_adjust(left=0.1, right=0.97, bottom=0.12, top=0.92)
-    ax = fig.add_subplot()
-    ax.stairs(h.counts, h.edges, fill=True, color="#b0bec5", label="pixels (merged histogram)")
-    ax.plot(
-        h.x,
-        h.gauss_moments,
-        color="#6a1b9a",
-        linewidth=1.4,
-        gid="gauss:moments",
-        label=f"Gaussian, mean {h.mean:.3f} m, std {h.std:.3f} m",
-    )
-    ax.plot(
-        h.x,
-        h.gauss_robust,
-        color="#e65100",
-        linewidth=1.4,
-        linestyle="--",
-        gid="gauss:robust",
-        label=f"Gaussian, median {h.median:.3f} m, NMAD {h.nmad:.3f} m",
-    )
-    if log_counts:
-        ax.set_yscale("log")
-        positive = h.counts[h.counts > 0]
-        if positive.size:
-            ax.set_ylim(max(0.5, float(positive.min()) / 2), float(positive.max()) * 3)
-    ax.set_xlabel("dh = test - reference (m)")
-    ax.set_ylabel("pixels per bar" + (" (log scale)" if log_counts else ""))
-    ax.legend(fontsize=7, loc="upper right")
-    ax.set_title(title, fontsize=10)
-    ax.text(
-        0.01,
-        0.98,
-        f"beyond the window: {h.below:,} below, {h.above:,} above",
-        transform=ax.transAxes,
-        fontsize=7,
-        va="top",
-    )
-    return fig
-
-
-def strata_panels(
-    panels: Sequence[tuple[str, Sequence[compute.StratumRow]]], *, title: str
-) -> Figure:
-    height = 1.4 + sum(0.3 * len(rows) + 0.8 for _, rows in panels)
-    fig = new_figure(8.0, height)
-    grid = fig.add_gridspec(
-        len(panels),
-        2,
-        height_ratios=[max(len(r), 1) + 1 for _, r in panels],
-        left=0.22,
-        right=0.97,
-        bottom=0.9 / height,
-        top=1 - 0.7 / height,
-        hspace=0.6,
-        wspace=0.08,
-    )
-    for i, (name, rows) in enumerate(panels):
-        y = np.arange(len(rows))
-        ax_m, ax_n = fig.add_subplot(grid[i, 0]), fig.add_subplot(grid[i, 1])
-        medians = np.array([r.median for r in rows])
-        low = np.array(
-            [
-                r.median - r.median_ci[0] if r.median_ci and r.median_ci[0] is not None else 0.0
-                for r in rows
-            ]
-        )
-        high = np.array(
-            [
-                r.median_ci[1] - r.median if r.median_ci and r.median_ci[1] is not None else 0.0
-                for r in rows
-            ]
-        )
-        ax_m.errorbar(
-            medians,
-            y,
-            xerr=np.vstack([low, high]),
-            fmt="D",
-            color="#4527a0",
-            ecolor="#4527a0",
-            capsize=4,
-            markersize=4,
-            gid=f"median:{name}",
-        )
-        ax_m.axvline(0.0, color="#999999", linewidth=0.8)
-        ax_m.set_yticks(y, [f"{r.label} ({r.count:,})" for r in rows], fontsize=7)
-        ax_m.invert_yaxis()
-        ax_m.set_xlabel("median dh (m), bars: 95 % interval", fontsize=7)
-        ax_m.set_title(f"by {name}", fontsize=9, loc="left")
-        ax_n.barh(y, [r.nmad for r in rows], color="#ffb74d", gid=f"nmad:{name}")
-        ax_n.set_yticks(y, [])
-        ax_n.invert_yaxis()
-        ax_n.set_xlabel("NMAD (m)", fontsize=7)
-        for a in (ax_m, ax_n):
-            a.tick_params(labelsize=7)
-    fig.suptitle(title, fontsize=10)
-    return fig
-
-
-def verdict_map(tiles: Sequence[tuple[str, Bounds, str]], *, title: str) -> Figure:
+def verdict_map(tiles: Sequence[tuple[str, Bounds, str]], *, title: str, frame: MapFrame) -> Figure:
     fig = new_figure(7.0, 6.2)
     ax = fig.add_axes(MAP_AXES)
-    for tile_id, bounds, verdict in tiles:
-        rect = _tile_rect(bounds)
+    for tile_id, (left, bottom, right, top), verdict in tiles:
+        rect = Rectangle((left, bottom), right - left, top - bottom)
         rect.set(facecolor=VERDICT_COLOURS.get(verdict, "white"), edgecolor="white", linewidth=0.4)
         rect.set_gid(f"tile:{tile_id}:{verdict}")
         ax.add_patch(rect)
-    present = [v for v in compute.VERDICT_ORDER if any(t[2] == v for t in tiles)]
-    counts = {v: sum(t[2] == v for t in tiles) for v in present}
-    ax.legend(
-        handles=[
-            Patch(facecolor=VERDICT_COLOURS[v], edgecolor="#666666", label=f"{v} ({counts[v]})")
-            for v in present
-        ],
-        loc="upper left",
-        bbox_to_anchor=(1.01, 1.0),
-        fontsize=7,
-    )
-    ax.set_xlim(min(t[1][0] for t in tiles), max(t[1][2] for t in tiles))
-    ax.set_ylim(min(t[1][1] for t in tiles), max(t[1][3] for t in tiles))
-    ax.set_title(title, fontsize=10)
-    _projected_axes(ax)
-    return fig
-
-
-def before_after(changes: Sequence[Mapping[str, Any]], *, title: str) -> Figure:
-    height = 1.6 + 0.35 * len(changes)
-    fig = new_figure(8.0, height)
-    fig.subplots_adjust(left=0.25, right=0.97, bottom=0.6 / height, top=1 - 0.5 / height)
-    axes = fig.subplots(1, 2, sharey=True)
-    y = np.arange(len(changes))
-    for ax, key in zip(axes, ("median", "nmad"), strict=True):
-        before = np.array([c[key][0] for c in changes])
-        after = np.array([c[key][1] for c in changes])
-        ax.hlines(y, before, after, color="#888888", linewidth=1)
-        ax.plot(
-            before,
-            y,
-            "o",
-            markerfacecolor="white",
-            color="#37474f",
-            label="before",
-            gid=f"before:{key}",
-        )
-        colours = [VERDICT_COLOURS.get(c["verdict"], "black") for c in changes]
-        ax.scatter(after, y, c=colours, zorder=3, label="after", gid=f"after:{key}")
-        ax.set_xlabel(f"{key} dh (m)" if key == "median" else "NMAD (m)", fontsize=7)
-        ax.tick_params(labelsize=7)
-    axes[0].set_yticks(y, [f"{c['region']} ({c['verdict']})" for c in changes])
-    axes[0].invert_yaxis()
-    axes[0].legend(fontsize=7)
-    fig.suptitle(title, fontsize=10)
+    counts = {v: sum(t[2] == v for t in tiles) for v in compute.VERDICT_ORDER}
+    handles = [
+        Patch(facecolor=VERDICT_COLOURS[v], edgecolor="#666666", label=f"{v} ({n})")
+        for v, n in counts.items()
+        if n
+    ]
+    ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.01, 1.0), fontsize=7)
+    fit_to(ax, [t[1] for t in tiles])
+    set_title(ax, title)
+    map_axes(ax, frame)
     return fig
 
 
@@ -452,11 +373,12 @@ def tile_shifts(
     outlier: Sequence[bool],
     *,
     title: str,
+    frame: MapFrame,
 ) -> Figure:
     fig = new_figure(7.0, 6.0)
     ax = fig.add_axes(MAP_AXES)
     colour = ["#c2185b" if o else "#263238" for o in outlier]
     ax.quiver(x, y, u, v, color=colour, angles="xy")
-    ax.set_title(title, fontsize=10)
-    _projected_axes(ax)
+    set_title(ax, title)
+    map_axes(ax, frame)
     return fig

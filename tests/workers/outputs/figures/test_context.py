@@ -1,0 +1,32 @@
+"""Reading a results folder for the figures (figures/context.py): the overview's display blocks
+equal the dh overview's own block means."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+from demaudit.workers.outputs.figures import FigureContext
+from demaudit.workers.outputs.figures.context import display_blocks
+from demaudit.workers.tile.difference import block_mean
+
+
+@pytest.mark.parametrize("factor", [1, 2, 3, 7])
+def test_display_blocks_equal_the_tile_block_means(factor):
+    rng = np.random.default_rng(4)
+    values = rng.normal(0, 1, (103, 97))
+    values[rng.random(values.shape) < 0.2] = np.nan
+    values[:14, :14] = np.nan  # whole blocks without a value
+    expected = values if factor == 1 else block_mean(values, factor)
+    assert np.allclose(display_blocks(values, factor), expected, equal_nan=True, atol=1e-6)
+
+
+def test_context_reads_the_tile_statistics_from_the_spec(tmp_path):
+    spec = {"figures": {"tile_statistics": ["rmse", "grade"]}}
+    ctx = FigureContext(tmp_path, {"job": {"name": "t", "spec": spec}})
+    assert ctx.tile_statistics == ("rmse", "grade")
+    assert FigureContext(tmp_path, {"job": {"name": "t"}}).tile_statistics == (
+        "median",
+        "nmad",
+        "grade",
+    )

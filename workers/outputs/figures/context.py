@@ -1,0 +1,121 @@
+"""What the figure builders draw from (:class:`FigureContext`), and the readers of a results
+folder that fill it: the dh overview (block means down to the figure's size), its CRS, and the
+stored job totals."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from functools import cached_property
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import zarr
+from numpy.typing import NDArray
+from shapely.geometry.base import BaseGeometry
+
+from demaudit.workers.outputs.figures import compute
+from demaudit.workers.outputs.figures.geometry import MapFrame, map_frame
+from demaudit.workers.outputs.layout import OVERVIEW_GROUP, ZARR_NAME
+from demaudit.workers.outputs.summary_store import ALL_PART, read_job_totals
+from demaudit.workers.stats import summary as dhs
+from demaudit.workers.stats.merge import ALL
+
+#: the dh map shows at most this many overview pixels a side (block means beyond)
+MAP_PIXELS = 700
+
+
+@dataclass
+class FigureContext:
+    """What the builders draw from. ``regions``: (id, name, polygon in ``crs``)."""
+
+    out_dir: Path
+    document: Mapping[str, Any]
+    overall: dhs.DhSummary | None = None
+    strata: Mapping[str, dhs.DhSummary] = field(default_factory=dict)
+    regions: Sequence[tuple[str, str, BaseGeometry]] = ()
+    crs: str | None = None
+    log_counts: bool = True
+
+    @cached_property
+    def overview(self) -> tuple[NDArray[np.float64], compute.Bounds] | None:
+        """The dh overview (block means down to at most MAP_PIXELS a side) and its extent."""
+        return read_overview(self.out_dir)
+
+    @cached_property
+    def tile_statistics(self) -> tuple[str, ...]:
+        """The tile maps the job's spec asks for (figures.tile_statistics)."""
+        return compute.tile_statistics((self.document.get("job") or {}).get("spec"))
+
+    def frame(self, extent: compute.Bounds) -> MapFrame:
+        """Units, labels and scale of a map of this extent in the job's CRS."""
+        return map_frame(self.crs, extent)
+
+    @property
+    def title(self) -> str:
+        return str(self.document["job"]["name"])
+
+
+def _overview_group(out_dir: Path) -> Any:
+    return zarr.open_group(str(Path(out_dir) / ZARR_NAME / OVERVIEW_GROUP), mode="r")
+
+
+def read_overview(out_dir: Path) -> tuple[NDArray[np.float64], compute.Bounds] | None:
+    try:
+        # read with zarr into this process: through xarray and Dask, the blocks would be
+        # computed on whatever cluster the caller has open and shipped back
+        group = _overview_group(out_dir)
+        dh, x, y = group["dh"][...], group["x"][...], group["y"][...]
+    except (KeyError, FileNotFoundError, OSError):
+        return None
+    if dh.size == 0:
+        return None
+    dx = abs(float(x[1] - x[0])) if x.size > 1 else 1.0
+    dy = abs(float(y[1] - y[0])) if y.size > 1 else dx
+    extent = (
+        float(x.min()) - dx / 2,
+        float(y.min()) - dy / 2,
+        float(x.max()) + dx / 2,
+        float(y.max()) + dy / 2,
+    )
+    factor = max(-(-max(dh.shape) // MAP_PIXELS), 1)  # no more map pixels than the figure shows
+    return display_blocks(np.asarray(dh, dtype=np.float64), factor), extent
+
+
+def display_blocks(values: NDArray[np.float64], factor: int) -> NDArray[np.float64]:
+    """Mean of the finite values of each factor x factor block, NaN where a block has none
+    (edge blocks average what they hold). numpy: a few milliseconds for a map, where the
+    compiled block kernel would first have to be loaded into this process (~0.5 s)."""
+    if factor <= 1:
+        return values
+    rows, cols = -(-values.shape[0] // factor), -(-values.shape[1] // factor)
+    padded = np.full((rows * factor, cols * factor), np.nan)
+    padded[: values.shape[0], : values.shape[1]] = values
+    blocks = padded.reshape(rows, factor, cols, factor)
+    finite = np.isfinite(blocks)
+    count = finite.sum(axis=(1, 3))
+    total = np.where(finite, blocks, 0.0).sum(axis=(1, 3))
+    with np.errstate(invalid="ignore", divide="ignore"):
+        return np.where(count > 0, total / np.maximum(count, 1), np.nan)
+
+
+def stored_totals(
+    out_dir: Path, document: Mapping[str, Any]
+) -> tuple[dhs.DhSummary | None, dict[str, dhs.DhSummary]]:
+    """The merged summary and strata of the whole job from results.zarr (None, {} without)."""
+    region_ids = [r["region"] for r in document.get("regions", [])]
+    try:
+        acc = read_job_totals(Path(out_dir) / ZARR_NAME, ALL_PART, region_ids)
+    except (KeyError, ValueError, OSError):
+        return None, {}
+    if acc is None:
+        return None, {}
+    return acc.overall, acc.strata_of(ALL)
+
+
+def overview_crs(out_dir: Path) -> str | None:
+    try:
+        return str(_overview_group(out_dir)["spatial_ref"].attrs["crs_wkt"])
+    except (KeyError, FileNotFoundError, OSError):
+        return None
