@@ -3,8 +3,8 @@ reference tiles overlap a test tile.
 
 ``scan_tile`` is the only function here that touches files; the index is pure. It opens each
 file once through workers/inputs/confine.py: the header, the size and the fingerprint all come from
-that
-one open file, checked against the data roots; a tile that leads outside them fails its scan.
+that one open file, checked against the data roots; a tile that leads outside them fails its scan.
+The spatial index is workers/inputs/tile_index.py.
 """
 
 from __future__ import annotations
@@ -13,21 +13,20 @@ import hashlib
 from collections import Counter
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, replace
-from functools import lru_cache
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 import shapely
 from numpy.typing import NDArray
-from pyproj import CRS, Transformer
 from rasterio.enums import ColorInterp
 from rasterio.errors import RasterioIOError
-from shapely import STRtree, box, segmentize
+from shapely import box, segmentize
 from shapely.geometry.base import BaseGeometry
 
 from demaudit.workers.errors import DataRootError, MissingCRSError, NotElevationError, TileReadError
 from demaudit.workers.inputs.confine import Roots, open_confined, shown
+from demaudit.workers.inputs.tile_index import TileIndex, same_crs, transformer_between
 from demaudit.workers.tile.grid import Grid, centres_in
 
 
@@ -212,50 +211,6 @@ def file_fingerprint(path: Path, *, roots: Roots = None) -> str:
         return opened.sha256()
 
 
-@lru_cache(maxsize=64)
-def _crs(wkt: str) -> CRS:
-    return CRS.from_wkt(wkt)
-
-
-@lru_cache(maxsize=64)
-def _transformer(source: str, target: str) -> Transformer:
-    return Transformer.from_crs(_crs(source), _crs(target), always_xy=True)
-
-
-@lru_cache(maxsize=256)
-def _same_crs(a: str, b: str) -> bool:
-    return _crs(a).equals(_crs(b))
-
-
-class TileIndex:
-    """Spatial index of tiles, grouped by CRS, answering 'which tiles overlap these bounds'."""
-
-    def __init__(self, tiles: Sequence[TileInfo]) -> None:
-        self._groups: dict[str, tuple[list[TileInfo], STRtree]] = {}
-        by_crs: dict[str, list[TileInfo]] = {}
-        for tile in tiles:
-            by_crs.setdefault(tile.grid.crs, []).append(tile)
-        for crs, members in by_crs.items():
-            tree = STRtree([box(*t.bounds) for t in members])
-            self._groups[crs] = (members, tree)
-
-    def __len__(self) -> int:
-        return sum(len(members) for members, _ in self._groups.values())
-
-    def overlapping(self, grid: Grid) -> list[TileInfo]:
-        """Tiles whose footprint overlaps the footprint of grid (any CRS)."""
-        found: list[TileInfo] = []
-        for crs, (members, tree) in self._groups.items():
-            bounds = grid.bounds
-            if crs != grid.crs and not _same_crs(crs, grid.crs):
-                bounds = _transformer(grid.crs, crs).transform_bounds(*bounds, densify_pts=21)
-            hits = tree.query(box(*bounds), predicate="intersects")
-            found.extend(
-                m for m in (members[i] for i in np.sort(hits)) if _overlap(m.bounds, bounds)
-            )
-        return found
-
-
 #: Status of a test tile whose every pixel lies in earlier-listed test tiles (not audited).
 SUPERSEDED = "superseded"
 
@@ -362,21 +317,16 @@ def overlap_sources_of(overlaps: Mapping[str, Overlap], tile_id: str) -> list[st
 def _footprint(tile: TileInfo, crs: str) -> BaseGeometry:
     """The tile's extent as a polygon in crs (edges densified when reprojected)."""
     frame = box(*tile.bounds)
-    if tile.grid.crs == crs or _same_crs(tile.grid.crs, crs):
+    if tile.grid.crs == crs or same_crs(tile.grid.crs, crs):
         return frame
     left, bottom, right, top = tile.bounds
     dense = segmentize(frame, max(right - left, top - bottom) / 64)
-    transformer = _transformer(tile.grid.crs, crs)
+    transformer = transformer_between(tile.grid.crs, crs)
 
     def to_target(xy: NDArray[np.float64]) -> NDArray[np.float64]:
         return np.column_stack(transformer.transform(xy[:, 0], xy[:, 1]))
 
     return shapely.transform(dense, to_target)
-
-
-def _overlap(a: Sequence[float], b: Sequence[float]) -> bool:
-    """Whether two (left, bottom, right, top) boxes share an area (touching is not enough)."""
-    return min(a[2], b[2]) > max(a[0], b[0]) and min(a[3], b[3]) > max(a[1], b[1])
 
 
 HEADER_CHECKS = 2
