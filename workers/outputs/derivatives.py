@@ -22,6 +22,7 @@ import rioxarray  # noqa: F401 - registers the .rio accessor
 import xarray as xr
 import zarr
 
+from demaudit.workers.outputs.layout import DERIVATIVES_OVERVIEW_GROUP
 from demaudit.workers.outputs.writers import OverviewLayout
 from demaudit.workers.stats.derivatives_merge import (
     DerivativesAccumulator,
@@ -32,7 +33,7 @@ from demaudit.workers.tile.derivative_pass import DerivativeOptions, TileDerivat
 from demaudit.workers.tile.derivatives import UNITS
 from demaudit.workers.tile.task import TileResult
 
-GROUP = "derivatives_overview"
+GROUP = DERIVATIVES_OVERVIEW_GROUP
 
 
 class JobDerivatives:

@@ -18,6 +18,9 @@ A job's result folder (``--out`` for the CLI, ``<results dir>/<job id>/`` for th
       dh_overview/dh           block mean of dh (1:factor), CF grid_mapping ``spatial_ref``
       tile_summaries/<tile>/   each tile's mergeable summaries (workers/outputs/summary_store.py)
       job_summaries/<part>/    the job totals: part ``all``, or ``after`` co-registration
+      error_samples/<tile>/<part>/  error-model samples per tile (workers/uncertainty)
+      standardised_dh_overview/     dh over its modelled sigma, on the overview grid
+      derivatives_overview/    derived-parameter differences on the overview grid
 
 While a run builds it, the folder is ``<folder>.partial-<run id>`` beside its target (and the
 store inside it ``results.zarr.partial``); an earlier result is moved to
@@ -49,6 +52,10 @@ OVERVIEW_ARRAY = "dh"
 TILE_SUMMARIES_GROUP = "tile_summaries"
 JOB_SUMMARIES_GROUP = "job_summaries"
 ALL_PART, AFTER_PART = "all", "after"  # job totals: all results / after co-registration
+#: Opt-in sections: error-model samples per tile, and two more overviews.
+ERROR_SAMPLES_GROUP = "error_samples"
+STANDARDISED_OVERVIEW_GROUP = "standardised_dh_overview"
+DERIVATIVES_OVERVIEW_GROUP = "derivatives_overview"
 #: Groups read with the zarr API, left out of the root's consolidated metadata.
 UNCONSOLIDATED_GROUPS = frozenset({TILE_SUMMARIES_GROUP, JOB_SUMMARIES_GROUP})
 

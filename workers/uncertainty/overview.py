@@ -22,11 +22,12 @@ import xarray as xr
 import zarr
 from numpy.typing import NDArray
 
+from demaudit.workers.outputs.layout import OVERVIEW_GROUP, STANDARDISED_OVERVIEW_GROUP
 from demaudit.workers.uncertainty.sample_store import ErrorSampleStore
 from demaudit.workers.uncertainty.sigma import SigmaModel
 
-GROUP = "standardised_dh_overview"
-DH_GROUP = "dh_overview"  # see workers/outputs/writers.py
+GROUP = STANDARDISED_OVERVIEW_GROUP
+DH_GROUP = OVERVIEW_GROUP
 LONG_NAME = (
     "standardised dh: (block mean dh - centre_m) / sigma_dh(block mean slope, block mean "
     "|curvature|) of summary.json error_model"

@@ -22,13 +22,14 @@ import numpy as np
 import zarr
 from numpy.typing import NDArray
 
+from demaudit.workers.outputs.folder import link_or_copy
+from demaudit.workers.outputs.layout import ERROR_SAMPLES_GROUP
 from demaudit.workers.outputs.summary_store import _read_entries, _write_entries
-from demaudit.workers.outputs.writers import link_or_copy
 from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.uncertainty.accumulate import ErrorModelAccumulator
 from demaudit.workers.uncertainty.sample import ErrorModelOptions, TileErrorSample
 
-GROUP = "error_samples"
+GROUP = ERROR_SAMPLES_GROUP
 ALL, AFTER = "all", "after"
 KINDS = ("slope", "curvature", "joint")
 
