@@ -28,6 +28,7 @@ from demaudit.workers import spec as job_spec
 from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
 from demaudit.workers.inputs import regions as region_ops
 from demaudit.workers.outputs import figures
+from demaudit.workers.outputs.layout import REPORT_NAME
 from demaudit.workers.outputs.report_html import write_report
 
 
@@ -115,7 +116,7 @@ def main() -> None:
     print("per figure (wall s, last redraw):")
     for name, seconds in runs[-1][2].items():
         print(f"  {name:<24}{seconds:>7.2f}")
-    size = (out / "report.html").stat().st_size
+    size = (out / REPORT_NAME).stat().st_size
     print(f"report.html: {size / 1e6:.2f} MB with {len(document['figures'])} figures embedded")
     load = os.getloadavg()
     print(f"machine: {os.cpu_count()} cores, load average {load[0]:.1f}, numpy {np.__version__}")
