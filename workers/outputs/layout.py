@@ -57,7 +57,7 @@ ERROR_SAMPLES_GROUP = "error_samples"
 STANDARDISED_OVERVIEW_GROUP = "standardised_dh_overview"
 DERIVATIVES_OVERVIEW_GROUP = "derivatives_overview"
 #: Groups read with the zarr API, left out of the root's consolidated metadata.
-UNCONSOLIDATED_GROUPS = frozenset({TILE_SUMMARIES_GROUP, JOB_SUMMARIES_GROUP})
+UNCONSOLIDATED_GROUPS = frozenset({TILE_SUMMARIES_GROUP, JOB_SUMMARIES_GROUP, ERROR_SAMPLES_GROUP})
 
 #: A folder holding one of these is taken for an earlier result, replaced as a whole by a new run.
 RESULT_MARKERS = (SUMMARY_NAME, ZARR_NAME)
