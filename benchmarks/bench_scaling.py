@@ -62,6 +62,7 @@ from demaudit.workers.inputs.catalog import ScanFailure, TileIndex, TileInfo, sc
 from demaudit.workers.inputs.regions import Region
 from demaudit.workers.spec import ResolvedJob, load_spec_file, parse_spec, resolve
 from demaudit.workers.stats import summary as dh_summary
+from demaudit.workers.stats.bins import LINEAR_LIMIT_M
 from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.tile.strata import excluded_mask
 from demaudit.workers.tile.task import TileOptions, TileResult, audit_tile, tile_surfaces
@@ -426,7 +427,7 @@ def compare_tile(tile_id: str, v: NDArray[np.float64]) -> tuple[TileComparison, 
         bins=int(s.bins.size),
         differences=differences(stats, reference),
         bound_use=bound_use(stats, reference),
-        tail_fraction=float(np.mean(np.abs(v) >= dh_summary.LINEAR_LIMIT_M)),
+        tail_fraction=float(np.mean(np.abs(v) >= LINEAR_LIMIT_M)),
     )
     return comparison, s
 

@@ -28,20 +28,12 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
-# workers/tile (keyed_summary.py, kernels.py) and its tests read the bins through this module
-# (bin_index, bin_edges, LINEAR_LIMIT_M, _K_LIMIT, _LOG_RATIO); once they import them from
-# workers/stats/bins.py, the names marked "re-export" go.
-from demaudit.workers.stats.bins import K_LIMIT as _K_LIMIT  # noqa: F401 - re-export
 from demaudit.workers.stats.bins import (
-    LINEAR_LIMIT_M,  # noqa: F401 - re-export
     LINEAR_WIDTH_M,
     RELATIVE_WIDTH,
     added_histograms,
-    bin_edges,  # noqa: F401 - re-export
-    bin_index,  # noqa: F401 - re-export
     sparse_histogram,
 )
-from demaudit.workers.stats.bins import LOG_RATIO as _LOG_RATIO  # noqa: F401 - re-export
 from demaudit.workers.stats.quantiles import (
     abs_quantile,
     abs_quantile_bounds,

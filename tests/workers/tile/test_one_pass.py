@@ -7,6 +7,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from demaudit.workers.stats import bins
 from demaudit.workers.stats import summary as dhs
 from demaudit.workers.tile import kernels, keyed_summary
 from demaudit.workers.tile import one_pass as tile_pass
@@ -184,18 +185,18 @@ def test_many_overlapping_regions_take_several_rounds() -> None:
 def former_bin_index(x: np.ndarray) -> np.ndarray:
     """The bin index as first written (the reference for the faster one)."""
     k = np.empty(x.shape, dtype=np.int64)
-    linear = np.abs(x) < dhs.LINEAR_LIMIT_M
-    k[linear] = np.floor(x[linear] / dhs.LINEAR_WIDTH_M)
-    pos = x >= dhs.LINEAR_LIMIT_M
-    k[pos] = dhs._K_LIMIT + np.floor(np.log(x[pos] / dhs.LINEAR_LIMIT_M) / dhs._LOG_RATIO)
-    neg = x <= -dhs.LINEAR_LIMIT_M
-    k[neg] = -dhs._K_LIMIT - 1 - np.floor(np.log(-x[neg] / dhs.LINEAR_LIMIT_M) / dhs._LOG_RATIO)
+    linear = np.abs(x) < bins.LINEAR_LIMIT_M
+    k[linear] = np.floor(x[linear] / bins.LINEAR_WIDTH_M)
+    pos = x >= bins.LINEAR_LIMIT_M
+    k[pos] = bins.K_LIMIT + np.floor(np.log(x[pos] / bins.LINEAR_LIMIT_M) / bins.LOG_RATIO)
+    neg = x <= -bins.LINEAR_LIMIT_M
+    k[neg] = -bins.K_LIMIT - 1 - np.floor(np.log(-x[neg] / bins.LINEAR_LIMIT_M) / bins.LOG_RATIO)
     return k
 
 
 def test_bin_index_is_the_former_one() -> None:
     rng = np.random.default_rng(4)
-    edges = np.arange(-10_005, 10_005) * dhs.LINEAR_WIDTH_M
+    edges = np.arange(-10_005, 10_005) * bins.LINEAR_WIDTH_M
     x = np.concatenate(
         [
             rng.normal(0, 1, 100_000),
@@ -206,9 +207,9 @@ def test_bin_index_is_the_former_one() -> None:
             [2.0, -2.0, np.nextafter(2.0, 0), np.nextafter(-2.0, 0), 1e300, -1e300, 0.0, -0.0],
         ]
     )
-    np.testing.assert_array_equal(dhs.bin_index(x), former_bin_index(x))
+    np.testing.assert_array_equal(bins.bin_index(x), former_bin_index(x))
     grid = x[:10_000].reshape(100, 100)
-    np.testing.assert_array_equal(dhs.bin_index(grid), former_bin_index(grid))
+    np.testing.assert_array_equal(bins.bin_index(grid), former_bin_index(grid))
 
 
 def test_tile_task_and_tile_pass_name_the_whole_tile_alike() -> None:

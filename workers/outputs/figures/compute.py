@@ -21,6 +21,8 @@ from numpy.typing import NDArray
 
 from demaudit.workers.checkpoints.grading import ASPRS_CLASSES_CM
 from demaudit.workers.stats import summary as dhs
+from demaudit.workers.stats.bins import bin_edges
+from demaudit.workers.stats.quantiles import quantile
 from demaudit.workers.stats.robust import confidence_intervals
 
 #: colour limits of the dh map: median +- LIMIT_NMADS x NMAD of all valid pixels
@@ -75,7 +77,7 @@ def clipped_share(s: dhs.DhSummary, limits: Limits) -> tuple[float, float]:
     """Fractions of the values below and above the colour limits (read from the bins)."""
     if s.count == 0:
         return 0.0, 0.0
-    low, high = dhs.bin_edges(s.bins)
+    low, high = bin_edges(s.bins)
     centres = (low + high) / 2
     below = int(s.counts[centres < limits.low].sum())
     above = int(s.counts[centres > limits.high].sum())
@@ -104,7 +106,7 @@ def histogram_window(s: dhs.DhSummary) -> tuple[float, float]:
     99th percentiles, never wider than the data."""
     stats = dhs.statistics(s)
     median, nmad = float(stats["median"]), float(stats["nmad"])  # type: ignore[arg-type]
-    q01, q99 = (float(v) for v in dhs.quantile(s, [0.01, 0.99]))
+    q01, q99 = (float(v) for v in quantile(s, [0.01, 0.99]))
     half = max(HIST_NMADS * nmad, MIN_HALF_WIDTH_M)
     low = max(min(median - half, q01), s.minimum)
     high = min(max(median + half, q99), s.maximum)
@@ -121,7 +123,7 @@ def display_histogram(s: dhs.DhSummary, *, bars: int = 120, points: int = 400) -
         raise ValueError("histogram of an empty summary")
     low, high = histogram_window(s)
     edges = np.linspace(low, high, bars + 1)
-    lo_k, hi_k = dhs.bin_edges(s.bins)
+    lo_k, hi_k = bin_edges(s.bins)
     centres = (lo_k + hi_k) / 2
     which = np.searchsorted(edges, centres, side="right") - 1
     inside = (which >= 0) & (which < bars)
