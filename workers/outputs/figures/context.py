@@ -17,8 +17,8 @@ from shapely.geometry.base import BaseGeometry
 
 from demaudit.workers.outputs.figures import compute
 from demaudit.workers.outputs.figures.geometry import MapFrame, map_frame
-from demaudit.workers.outputs.layout import OVERVIEW_GROUP, ZARR_NAME
-from demaudit.workers.outputs.summary_store import ALL_PART, read_job_totals
+from demaudit.workers.outputs.layout import ALL_PART, OVERVIEW_GROUP, ZARR_NAME
+from demaudit.workers.outputs.summary_store import read_job_totals
 from demaudit.workers.stats import summary as dhs
 from demaudit.workers.stats.merge import ALL
 
