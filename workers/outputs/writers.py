@@ -21,9 +21,9 @@ import xarray as xr
 import zarr
 from numpy.typing import NDArray
 
-# OutputError, check_output_folder, staged_folder, write_summary and SUMMARY_NAME are imported
-# from here by service/run/runner.py and recheck.py, until they import them from errors.py,
-# folder.py and layout.py; then these re-exports (noqa: F401) go.
+# Re-exported (noqa: F401) until their users import them from errors.py, folder.py and
+# layout.py: service/run/runner.py (staged_folder, write_summary), service/run/validate.py
+# (OutputError, check_output_folder), tests/integration/test_cli_faults.py (SUMMARY_NAME).
 from demaudit.workers.errors import OutputError  # noqa: F401
 from demaudit.workers.inputs.catalog import TileInfo
 from demaudit.workers.outputs.folder import (
