@@ -11,7 +11,6 @@ from __future__ import annotations
 import datetime as dt
 import ipaddress
 import json
-from functools import lru_cache
 from pathlib import Path
 from typing import Annotated, Any
 
@@ -156,9 +155,3 @@ class Settings(BaseSettings):
     def has_principals(self) -> bool:
         """Whether any principal or token is configured (not whether they are valid)."""
         return bool(self.principals or self.principals_file or self.api_tokens)
-
-
-@lru_cache
-def get_settings() -> Settings:
-    """The settings of this process (cached)."""
-    return Settings()

@@ -11,7 +11,10 @@ Hierarchy::
     ├── GeoidGridError (RuntimeError) the geoid grid needed for a datum change is missing
     ├── EmptyOverlapError (ValueError) test, reference or regions share no area
     ├── DataRootError (PermissionError) a path lies outside the allowed data roots
-    └── OutputError (OSError)       the output folder cannot be used or written
+    ├── OutputError (OSError)       the output folder cannot be used or written
+    ├── CannotEstimateError (ValueError) a co-registration fit has too few or uninformative
+    │                               stable pixels (caught: the tile or job goes uncorrected)
+    └── JobDismissedError           the job was dismissed while it ran (not a failure)
 
 Each error carries a message that names the file or field at fault. The service turns them into
 HTTP problem responses in one place; the CLI prints them and exits non-zero.
@@ -60,3 +63,11 @@ class DataRootError(AuditError, PermissionError):
 class OutputError(AuditError, OSError):
     """The output folder cannot be used or written (not a folder, read-only, disk full, a folder
     of other files); nothing was changed in it."""
+
+
+class CannotEstimateError(AuditError, ValueError):
+    """Too few or uninformative stable pixels for a co-registration fit; the message says why."""
+
+
+class JobDismissedError(AuditError):
+    """The job was dismissed while it ran; its remaining tile tasks were cancelled."""

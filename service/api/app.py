@@ -28,10 +28,9 @@ import ipaddress
 import json
 import logging
 from collections.abc import AsyncIterator, Callable
-from contextlib import AbstractContextManager, asynccontextmanager
+from contextlib import AbstractAsyncContextManager, AbstractContextManager, asynccontextmanager
 from typing import Any
 
-import httpx
 from fastapi import FastAPI
 from fastapi.staticfiles import StaticFiles
 from starlette.types import ASGIApp, Message, Receive, Scope, Send
@@ -44,12 +43,16 @@ from demaudit.service.api.openapi import serve_openapi30
 from demaudit.service.api.public_base import PublicBase
 from demaudit.service.api.routes import health, jobs, landing, pages, processes, schedules
 from demaudit.service.run.cluster import ClusterConnection, cluster_connection
-from demaudit.service.run.dispatcher import JobDispatcher, Runner, current_job_id
+from demaudit.service.run.dispatcher import JobDispatcher
+from demaudit.service.run.job_thread import Runner, current_job_id
 from demaudit.service.run.runner import run_job
-from demaudit.service.scheduling.notify import Notifier, Resolver, system_resolver
-from demaudit.service.scheduling.scheduler import Clock, Scheduler, resolve_inputs, scaled_clock
+from demaudit.service.scheduling.cron import Clock, scaled_clock
+from demaudit.service.scheduling.notify import Notifier
+from demaudit.service.scheduling.scheduler import Scheduler, resolve_inputs
+from demaudit.service.scheduling.webhook_address import Resolver, system_resolver
 from demaudit.service.settings import Settings
-from demaudit.service.store.jobs import JobStore, SqliteJobStore
+from demaudit.service.store.jobs import JobStore
+from demaudit.service.store.sqlite_jobs import SqliteJobStore
 
 __all__ = ["BodyLimit", "JsonFormatter", "check_serving", "create_app", "log_config"]
 
@@ -109,16 +112,48 @@ def create_app(
     runner: Runner = run_job,
     client_factory: ClientFactory = _default_client,
     clock: Clock | None = None,
-    webhook_transport: httpx.BaseTransport | None = None,
     webhook_resolver: Resolver = system_resolver,
 ) -> FastAPI:
-    """The app. store, runner, client_factory, clock, webhook_transport (an httpx transport)
-    and webhook_resolver replace the SQLite store, the real runner, the Dask client, the
-    scheduler's clock, the network of webhook calls and its name resolution (tests)."""
+    """The app. store, runner, client_factory, clock and webhook_resolver replace the SQLite
+    store, the real runner, the Dask client, the scheduler's clock and the name resolution of
+    webhook calls (tests)."""
     principals = check_serving(settings)
     schedule_clock = clock or scaled_clock(
         speed=settings.schedule_clock_speed, anchor=settings.schedule_clock_anchor
     )
+    lifespan = _lifespan(
+        settings,
+        store=store,
+        runner=runner,
+        client_factory=client_factory,
+        clock=schedule_clock,
+        webhook_resolver=webhook_resolver,
+    )
+    app = FastAPI(
+        title="demaudit",
+        version="0.1.0",
+        summary="Vertical accuracy audits of tiled DEMs (OGC API - Processes - Part 1: Core)",
+        lifespan=lifespan,
+    )
+    app.state.settings = settings
+    app.state.principals = principals
+    app.state.webhook_resolver = webhook_resolver
+    app.state.clock = schedule_clock
+    _install_routes(app, settings)
+    return app
+
+
+def _lifespan(
+    settings: Settings,
+    *,
+    store: JobStore | None,
+    runner: Runner,
+    client_factory: ClientFactory,
+    clock: Clock,
+    webhook_resolver: Resolver,
+) -> Callable[[FastAPI], AbstractAsyncContextManager[None]]:
+    """What the app starts and stops: job store, Dask client, webhook notifier, dispatcher and
+    scheduler (a store given by the caller is left open)."""
 
     @asynccontextmanager
     async def lifespan(app: FastAPI) -> AsyncIterator[None]:
@@ -130,35 +165,14 @@ def create_app(
         entered = await loop.run_in_executor(None, context.run, cluster.__enter__)
         # a ClusterConnection is made anew after a scheduler outage; a bare client is kept
         client = entered if isinstance(entered, ClusterConnection) else ClusterConnection(entered)
-        notifier = Notifier(
-            job_store,
-            attempts=settings.webhook_attempts,
-            backoff_s=settings.webhook_backoff_s,
-            timeout_s=settings.webhook_timeout_s,
-            public_url=settings.public_url,
-            allow=schedules.allowed_networks(settings.webhook_allow_networks),
-            resolve=webhook_resolver,
-            transport=webhook_transport,
-        )
-        dispatcher = JobDispatcher(
-            job_store,
-            client=client,
-            results_dir=settings.results_dir,
-            grid_dirs=settings.grid_dirs,
-            max_running_jobs=settings.max_running_jobs,
-            retries=settings.task_retries,
-            runner=runner,
-            on_end=notifier.after_job,
-            stall_timeout_s=settings.job_stall_timeout_s,
-            lease_s=settings.runner_lease_s,
-            watch_interval_s=min(2.0, settings.runner_lease_s / 4),
-        )
+        notifier = _notifier(job_store, settings, webhook_resolver)
+        dispatcher = _dispatcher(job_store, client, settings, runner=runner, notifier=notifier)
         dispatcher.start()  # takes the lease, fails the jobs of processes that are gone
         scheduler = Scheduler(
             job_store,
             dispatcher,
             resolve=lambda inputs: resolve_inputs(inputs, data_roots=settings.data_roots),
-            clock=schedule_clock,
+            clock=clock,
             lease_s=settings.schedule_lease_s,
         )
         app.state.store = job_store
@@ -178,16 +192,46 @@ def create_app(
             if store is None:
                 job_store.close()
 
-    app = FastAPI(
-        title="demaudit",
-        version="0.1.0",
-        summary="Vertical accuracy audits of tiled DEMs (OGC API - Processes - Part 1: Core)",
-        lifespan=lifespan,
+    return lifespan
+
+
+def _notifier(store: JobStore, settings: Settings, resolve: Resolver) -> Notifier:
+    return Notifier(
+        store,
+        attempts=settings.webhook_attempts,
+        backoff_s=settings.webhook_backoff_s,
+        timeout_s=settings.webhook_timeout_s,
+        public_url=settings.public_url,
+        allow=schedules.allowed_networks(settings.webhook_allow_networks),
+        resolve=resolve,
     )
-    app.state.settings = settings
-    app.state.principals = principals
-    app.state.webhook_resolver = webhook_resolver
-    app.state.clock = schedule_clock
+
+
+def _dispatcher(
+    store: JobStore,
+    client: ClusterConnection,
+    settings: Settings,
+    *,
+    runner: Runner,
+    notifier: Notifier,
+) -> JobDispatcher:
+    return JobDispatcher(
+        store,
+        client=client,
+        results_dir=settings.results_dir,
+        grid_dirs=settings.grid_dirs,
+        max_running_jobs=settings.max_running_jobs,
+        retries=settings.task_retries,
+        runner=runner,
+        on_end=notifier.after_job,
+        stall_timeout_s=settings.job_stall_timeout_s,
+        lease_s=settings.runner_lease_s,
+        watch_interval_s=min(2.0, settings.runner_lease_s / 4),
+    )
+
+
+def _install_routes(app: FastAPI, settings: Settings) -> None:
+    """Problem handlers, routers (in the order they match), static files and middleware."""
     problems.install(app)
     app.include_router(landing.router, dependencies=[Authorized])
     app.include_router(processes.router, dependencies=[Authorized])
@@ -201,7 +245,6 @@ def create_app(
     app.add_middleware(HeadAsGet)
     app.add_middleware(PublicBase, base_url=settings.public_base_url)  # links never from Host
     serve_openapi30(app)
-    return app
 
 
 class BodyLimit:

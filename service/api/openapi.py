@@ -58,20 +58,48 @@ def oas30_schema(schema: Any, *, ref_prefix: tuple[str, str] | None = None) -> A
             ref = ref_prefix[1] + ref.removeprefix(ref_prefix[0])
         rest = oas30_schema(schema, ref_prefix=ref_prefix)
         return {"$ref": ref} if not rest else {"allOf": [{"$ref": ref}], **rest}
+    out, nullable = _types(schema.pop("type", None))
+    nullable = _schema_lists(schema, out, ref_prefix) or nullable
+    if "const" in schema:
+        out["enum"] = [schema.pop("const")]
+    _bounds(schema, out)
+    examples = schema.pop("examples", None)
+    if isinstance(examples, list) and examples:
+        out.setdefault("example", examples[0])
+    prefix = schema.pop("prefixItems", None)
+    if prefix:
+        out["items"] = oas30_schema({"anyOf": prefix}, ref_prefix=ref_prefix)
+        out.setdefault("minItems", len(prefix))
+        out.setdefault("maxItems", len(prefix))
+    _other_keywords(schema, out, ref_prefix)
+    if nullable:
+        out["nullable"] = True
+    return out
+
+
+def _types(kind: Any) -> tuple[dict[str, Any], bool]:
+    """The 3.0 members for a ``type`` (one type, or anyOf of several) and whether null is one."""
     out: dict[str, Any] = {}
-    nullable = False
-    kind = schema.pop("type", None)
     if isinstance(kind, list):
-        nullable = "null" in kind
         kinds = [k for k in kind if k != "null"]
         if len(kinds) == 1:
             out["type"] = kinds[0]
         elif kinds:
             out["anyOf"] = [{"type": k} for k in kinds]
-    elif kind == "null":
-        nullable = True
-    elif kind is not None:
+        return out, "null" in kind
+    if kind == "null":
+        return out, True
+    if kind is not None:
         out["type"] = kind
+    return out, False
+
+
+def _schema_lists(
+    schema: dict[str, Any], out: dict[str, Any], ref_prefix: tuple[str, str] | None
+) -> bool:
+    """Move allOf/anyOf/oneOf from schema into out without their null members (a single member
+    is merged in, or kept under allOf); whether a null member was dropped."""
+    nullable = False
     for key in _SCHEMA_LISTS:
         members = schema.pop(key, None)
         if members is None:
@@ -87,8 +115,11 @@ def oas30_schema(schema: Any, *, ref_prefix: tuple[str, str] | None = None) -> A
                 out.update(only)
         elif converted:
             out[key] = converted
-    if "const" in schema:
-        out["enum"] = [schema.pop("const")]
+    return nullable
+
+
+def _bounds(schema: dict[str, Any], out: dict[str, Any]) -> None:
+    """exclusiveMinimum/Maximum as numbers become minimum/maximum with a boolean flag."""
     for bound, inclusive in (("exclusiveMinimum", "minimum"), ("exclusiveMaximum", "maximum")):
         value = schema.pop(bound, None)
         if isinstance(value, bool):
@@ -96,14 +127,12 @@ def oas30_schema(schema: Any, *, ref_prefix: tuple[str, str] | None = None) -> A
         elif value is not None:
             out[inclusive] = value
             out[bound] = True
-    examples = schema.pop("examples", None)
-    if isinstance(examples, list) and examples:
-        out.setdefault("example", examples[0])
-    prefix = schema.pop("prefixItems", None)
-    if prefix:
-        out["items"] = oas30_schema({"anyOf": prefix}, ref_prefix=ref_prefix)
-        out.setdefault("minItems", len(prefix))
-        out.setdefault("maxItems", len(prefix))
+
+
+def _other_keywords(
+    schema: dict[str, Any], out: dict[str, Any], ref_prefix: tuple[str, str] | None
+) -> None:
+    """The remaining keywords 3.0 allows (subschemas converted); the others are dropped."""
     for key, value in schema.items():
         if key not in OAS30_KEYWORDS or key in out:
             continue
@@ -115,9 +144,6 @@ def oas30_schema(schema: Any, *, ref_prefix: tuple[str, str] | None = None) -> A
             continue
         else:
             out[key] = copy.deepcopy(value)
-    if nullable:
-        out["nullable"] = True
-    return out
 
 
 _REFS = ("#/components/schemas/", "#/components/schemas/")

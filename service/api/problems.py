@@ -16,14 +16,15 @@ Hierarchy of the errors the routes raise::
     └── WebhookNotAllowedError 422  a schedule's webhook may not be called (scheme, address)
 
 A failed job's results are 409 ``job-failed`` whatever the cause; the problem's ``cause`` member
-(``failure_cause``) tells bad input (422-like) from exhausted resources, a cluster fault, an
+(``failure_cause``) tells bad input (422-like), an unreadable tile (422-like,
+``tile-unreadable``) from exhausted resources, a cluster fault, an
 interruption and an internal error. A submission while the Dask scheduler does not answer
 (demaudit.service.run.cluster.ClusterUnavailableError) is 503 ``cluster-unavailable`` with
 Retry-After.
 
 ``install(app)`` also maps the pipeline's own errors (``demaudit.workers.errors``): a path outside
-the data
-roots (DataRootError) is 403, any other invalid spec (SpecError and its kin) is 422, request
+the data roots (DataRootError) is 403, a tile that cannot be read (TileReadError) is 422
+``tile-unreadable``, any other invalid spec (SpecError and its kin) is 422, request
 validation errors are 400 (query, path, headers, malformed JSON) or 422 (the body's content),
 and anything unexpected is a 500 that says nothing of its cause (the log has it). Details name
 the field at fault and never echo file contents or submitted values.
@@ -42,7 +43,7 @@ from pydantic import BaseModel, ConfigDict, Field
 from starlette.exceptions import HTTPException as StarletteHTTPException
 
 from demaudit.service.run.cluster import ClusterUnavailableError
-from demaudit.workers.errors import AuditError, DataRootError
+from demaudit.workers.errors import AuditError, DataRootError, TileReadError
 
 __all__ = [
     "MEDIA_TYPE",
@@ -145,12 +146,13 @@ class WebhookNotAllowedError(ProblemError):
 
 FAILURE_CAUSES: dict[str, tuple[int, str]] = {
     "invalid-input": (422, "The job's input cannot be used"),
+    "tile-unreadable": (422, "A tile of the job cannot be read"),
     "resources-exhausted": (507, "The server ran out of disk or memory"),
     "cluster-unavailable": (503, "The Dask cluster could not run the job"),
     "interrupted": (503, "The server stopped while the job ran"),
     "internal": (500, "Internal error"),
 }
-"""A failed job's cause (demaudit.service.run.dispatcher.CAUSES) -> the status and title its
+"""A failed job's cause (demaudit.service.run.faults.CAUSES) -> the status and title its
 problem would have."""
 
 
@@ -163,6 +165,7 @@ def failure_cause(cause: str | None) -> dict[str, Any]:
 
 _FORBIDDEN = (403, _OWN + "outside-data-roots", "Path outside the data roots")
 _INVALID_SPEC = (422, _OWN + "invalid-spec", "Invalid job spec")
+_TILE_UNREADABLE = (422, _OWN + "tile-unreadable", "Tile cannot be read")
 _INVALID_REQUEST = (400, _OWN + "invalid-parameter", "Invalid request parameter")
 _INTERNAL = (500, "about:blank", "Internal Server Error")
 
@@ -284,7 +287,12 @@ async def _http(request: Request, exc: Exception) -> JSONResponse:
 
 
 async def _audit(request: Request, exc: Exception) -> JSONResponse:
-    status, type_, title = _FORBIDDEN if isinstance(exc, DataRootError) else _INVALID_SPEC
+    if isinstance(exc, DataRootError):
+        status, type_, title = _FORBIDDEN
+    elif isinstance(exc, TileReadError):
+        status, type_, title = _TILE_UNREADABLE
+    else:
+        status, type_, title = _INVALID_SPEC
     return problem_response(
         status, type=type_, title=title, detail=str(exc), instance=request.url.path
     )

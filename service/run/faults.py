@@ -35,7 +35,7 @@ from demaudit.service.store.jobs import (
     Lease,
     utc_now,
 )
-from demaudit.workers.errors import AuditError, OutputError
+from demaudit.workers.errors import AuditError, OutputError, TileReadError
 
 __all__ = [
     "CAUSES",
@@ -49,6 +49,7 @@ __all__ = [
     "RESTART_MESSAGE",
     "RESTART_QUEUED_MESSAGE",
     "SHUTDOWN_MESSAGE",
+    "TILE_UNREADABLE",
     "StoreWriteError",
     "failure_of",
     "new_instance_id",
@@ -71,6 +72,8 @@ MESSAGE_LIMIT = 2000
 # type.
 INPUT = "invalid-input"
 """The spec or a file it names cannot be used (bad input: fix the job, not the server)."""
+TILE_UNREADABLE = "tile-unreadable"
+"""A tile the job needs cannot be opened or decoded (corrupt, truncated, not heights)."""
 RESOURCES = "resources-exhausted"
 """Disk full, out of memory, a worker killed repeatedly by its task."""
 CLUSTER = "cluster-unavailable"
@@ -79,7 +82,7 @@ INTERRUPTED = "interrupted"
 """The server process running the job stopped (shut down, killed, restarted)."""
 INTERNAL = "internal"
 """Anything else (details in the server log)."""
-CAUSES = (INPUT, RESOURCES, CLUSTER, INTERRUPTED, INTERNAL)
+CAUSES = (INPUT, TILE_UNREADABLE, RESOURCES, CLUSTER, INTERRUPTED, INTERNAL)
 
 
 class StoreWriteError(RuntimeError):
@@ -150,6 +153,8 @@ def failure_of(exc: BaseException) -> tuple[str, str]:
         return INTERNAL, _clip(str(exc))
     if isinstance(exc, OutputError):
         return INTERNAL, _clip(str(exc))  # the server's results folder: not the caller's input
+    if isinstance(exc, TileReadError):
+        return TILE_UNREADABLE, _clip(str(exc))
     if isinstance(exc, AuditError):
         return INPUT, _clip(str(exc))
     if name == "KilledWorker":

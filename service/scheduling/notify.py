@@ -14,14 +14,7 @@ default) or after every run (``notify: always``). The payload is the run's chang
 and HTTP 408, 425, 429 and 5xx are retried; other answers are final. A notification never fails a
 job or the server: the outcome is written into the job's record (``notification``).
 
-Where a webhook may go (``check_webhook_url``): http or https only; every address the host
-resolves to must be public. Loopback, link-local (cloud metadata services), private, shared,
-multicast, unspecified and reserved addresses are refused unless a network of
-``DEMAUDIT_WEBHOOK_ALLOW_NETWORKS`` holds them. The check runs when a schedule is created and
-again before every try (DNS may have changed since), and the try connects to the address just
-checked (the Host header and the TLS server name stay the URL's host), so a name that resolves
-differently a moment later cannot slip past the check; redirects are never followed (a 3xx answer
-is final).
+Where a webhook may go: ``demaudit.service.scheduling.webhook_address``.
 
 Each delivery is signed (``signature_headers``) when the schedule has a secret (made at its
 creation and shown once)::
@@ -40,38 +33,29 @@ import contextlib
 import datetime as dt
 import hashlib
 import hmac
-import ipaddress
 import json
 import logging
-import socket
 import threading
 import time
-from collections.abc import Callable, Iterable, Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from concurrent.futures import Future, ThreadPoolExecutor
 from dataclasses import dataclass
 from typing import Any
 
 import httpx
 
+from demaudit.service.scheduling.webhook_address import (
+    IPNetwork,
+    Resolver,
+    WebhookRefusedError,
+    WebhookUnresolvedError,
+    check_webhook_url,
+    pinned,
+    system_resolver,
+)
 from demaudit.service.store.jobs import SUCCESSFUL, JobRecord, JobStore, ScheduleRecord
 
-__all__ = [
-    "Delivery",
-    "IPNetwork",
-    "Notifier",
-    "Resolver",
-    "WebhookAddressError",
-    "WebhookRefusedError",
-    "WebhookUnresolvedError",
-    "change_report",
-    "check_address",
-    "check_webhook_url",
-    "deliver",
-    "pinned",
-    "redact_url",
-    "should_notify",
-    "sign",
-]
+__all__ = ["Delivery", "Notifier", "change_report", "deliver", "should_notify", "sign"]
 
 RETRIED_STATUSES = frozenset({408, 425, 429})
 USER_AGENT = "demaudit/0.1.0 (webhook)"
@@ -81,127 +65,6 @@ SIGNATURE_HEADER = "X-Demaudit-Signature"
 TIMESTAMP_HEADER = "X-Demaudit-Timestamp"
 
 log = logging.getLogger("demaudit.notify")
-
-IPAddress = ipaddress.IPv4Address | ipaddress.IPv6Address
-IPNetwork = ipaddress.IPv4Network | ipaddress.IPv6Network
-Resolver = Callable[[str, int], Iterable[str]]
-"""host, port -> the addresses (text) it resolves to; raises OSError when it does not."""
-
-
-class WebhookAddressError(ValueError):
-    """A webhook URL that may not be called (the message never repeats the URL)."""
-
-
-class WebhookRefusedError(WebhookAddressError):
-    """The URL's scheme or one of its host's addresses is not allowed (final)."""
-
-
-class WebhookUnresolvedError(WebhookAddressError):
-    """The URL's host does not resolve (now; it may later)."""
-
-
-def system_resolver(host: str, port: int) -> list[str]:
-    """The addresses host resolves to (``socket.getaddrinfo``)."""
-    infos = socket.getaddrinfo(host, port, type=socket.SOCK_STREAM)
-    return [str(info[4][0]) for info in infos]
-
-
-def check_address(address: IPAddress, allow: Sequence[IPNetwork] = ()) -> None:
-    """WebhookRefusedError unless address is public or inside a network of allow. An IPv4
-    address mapped into IPv6 (::ffff:a.b.c.d) is judged as the IPv4 address."""
-    if isinstance(address, ipaddress.IPv6Address) and address.ipv4_mapped is not None:
-        address = address.ipv4_mapped
-    if any(address in network for network in allow):
-        return
-    kinds = [
-        ("loopback", address.is_loopback),
-        ("link-local", address.is_link_local),
-        ("multicast", address.is_multicast),
-        ("unspecified", address.is_unspecified),
-        ("reserved", address.is_reserved),
-        ("private", address.is_private),
-        ("not public", not address.is_global),
-    ]
-    for kind, hit in kinds:
-        if hit:
-            raise WebhookRefusedError(
-                f"the webhook's host resolves to a {kind} address ({address}); only public "
-                "addresses are called unless DEMAUDIT_WEBHOOK_ALLOW_NETWORKS names the network"
-            )
-
-
-def check_webhook_url(
-    url: str, *, allow: Sequence[IPNetwork] = (), resolve: Resolver = system_resolver
-) -> list[IPAddress]:
-    """The addresses url's host resolves to, all allowed (``check_address``); else
-    WebhookRefusedError (scheme, address) or WebhookUnresolvedError (no answer)."""
-    try:
-        parsed = httpx.URL(url)
-    except (httpx.InvalidURL, TypeError, ValueError):
-        raise WebhookRefusedError("the webhook is not a valid URL") from None
-    if parsed.scheme not in ("http", "https"):
-        raise WebhookRefusedError("the webhook must be an http or https URL")
-    host = parsed.host
-    if not host:
-        raise WebhookRefusedError("the webhook URL has no host")
-    port = parsed.port or (443 if parsed.scheme == "https" else 80)
-    addresses = _addresses(host, port, resolve)
-    for address in addresses:
-        check_address(address, allow)
-    return addresses
-
-
-def _addresses(host: str, port: int, resolve: Resolver) -> list[IPAddress]:
-    try:
-        return [ipaddress.ip_address(host)]
-    except ValueError:
-        pass
-    try:
-        found = list(resolve(host, port))
-    except (OSError, UnicodeError):
-        found = []
-    if not found:
-        raise WebhookUnresolvedError("the webhook's host does not resolve")
-    addresses: list[IPAddress] = []
-    for text in found:
-        try:
-            addresses.append(ipaddress.ip_address(text.split("%", 1)[0]))
-        except ValueError:
-            raise WebhookRefusedError("the webhook's host resolves to a non-IP") from None
-    return addresses
-
-
-def pinned(url: str, address: IPAddress) -> tuple[httpx.URL, dict[str, str], dict[str, Any]]:
-    """The request to url sent to address: the URL with the address for its host, the Host
-    header and (https) the TLS server name of the original host, which the certificate is
-    verified against. A URL whose host is an address is left as it is."""
-    parsed = httpx.URL(url)
-    try:
-        ipaddress.ip_address(parsed.host)
-    except ValueError:
-        pass
-    else:
-        return parsed, {}, {}
-    target = parsed.copy_with(host=str(address))
-    extensions: dict[str, Any] = {}
-    if parsed.scheme == "https":
-        extensions["sni_hostname"] = parsed.raw_host.decode("ascii")
-    return target, {"Host": parsed.netloc.decode("ascii")}, extensions
-
-
-def redact_url(url: str | None) -> str | None:
-    """What the API shows of a webhook URL: scheme, host and port; a path, query or user
-    part (which may carry credentials) becomes '***'."""
-    if url is None:
-        return None
-    try:
-        parsed = httpx.URL(url)
-    except (httpx.InvalidURL, TypeError, ValueError):
-        return "***"
-    port = f":{parsed.port}" if parsed.port is not None else ""
-    host = f"[{parsed.host}]" if ":" in parsed.host else parsed.host
-    hidden = parsed.userinfo or parsed.query or parsed.path not in ("", "/")
-    return f"{parsed.scheme}://{host}{port}/{'***' if hidden else ''}"
 
 
 def sign(secret: str, timestamp: str, body: bytes) -> str:
@@ -273,8 +136,7 @@ def deliver(
     pause = wait if wait is not None else threading.Event().wait
     body = json.dumps(dict(payload), separators=(",", ":"), sort_keys=True).encode("utf-8")
     delay = backoff_s
-    status: int | None = None
-    error: str | None = None
+    last = Delivery(False, 0)
     with httpx.Client(
         timeout=timeout_s,
         transport=transport,
@@ -285,32 +147,48 @@ def deliver(
         for attempt in range(1, attempts + 1):
             if attempt > 1:
                 if pause(delay):
-                    return Delivery(False, attempt - 1, status, f"{error}; then shut down")
+                    error = f"{last.error}; then shut down"
+                    return Delivery(False, attempt - 1, last.status_code, error)
                 delay *= 2
-            try:
-                addresses = check_webhook_url(url, allow=allow, resolve=resolve)
-            except WebhookRefusedError as exc:
-                return Delivery(False, attempt, None, f"refused: {exc}")
-            except WebhookUnresolvedError as exc:
-                status, error = None, str(exc)
-                continue
-            target, pinned_headers, extensions = pinned(url, addresses[0])
-            sent_headers = {"Content-Type": "application/json", **pinned_headers}
-            sent_headers |= signature_headers(secret, body)
-            try:
-                response = http.post(
-                    target, content=body, headers=sent_headers, extensions=extensions
-                )
-            except httpx.HTTPError as exc:
-                status, error = None, _describe(exc)
-                continue
-            status = response.status_code
-            if response.is_success:
-                return Delivery(True, attempt, status)
-            error = f"HTTP {status}"
-            if status < 500 and status not in RETRIED_STATUSES:
-                return Delivery(False, attempt, status, f"{error} (not retried)")
-    return Delivery(False, attempts, status, error)
+            last, final = _try(
+                http, url, body, attempt=attempt, secret=secret, allow=allow, resolve=resolve
+            )
+            if final:
+                return last
+    return Delivery(False, attempts, last.status_code, last.error)
+
+
+def _try(
+    http: httpx.Client,
+    url: str,
+    body: bytes,
+    *,
+    attempt: int,
+    secret: str | None,
+    allow: Sequence[IPNetwork],
+    resolve: Resolver,
+) -> tuple[Delivery, bool]:
+    """One try: check the URL's addresses, POST to the first; how it went and whether that is
+    final (delivered, refused, or an answer that is not retried)."""
+    try:
+        addresses = check_webhook_url(url, allow=allow, resolve=resolve)
+    except WebhookRefusedError as exc:
+        return Delivery(False, attempt, None, f"refused: {exc}"), True
+    except WebhookUnresolvedError as exc:
+        return Delivery(False, attempt, None, str(exc)), False
+    target, pinned_headers, extensions = pinned(url, addresses[0])
+    sent_headers = {"Content-Type": "application/json", **pinned_headers}
+    sent_headers |= signature_headers(secret, body)
+    try:
+        response = http.post(target, content=body, headers=sent_headers, extensions=extensions)
+    except httpx.HTTPError as exc:
+        return Delivery(False, attempt, None, _describe(exc)), False
+    status = response.status_code
+    if response.is_success:
+        return Delivery(True, attempt, status), True
+    if status < 500 and status not in RETRIED_STATUSES:
+        return Delivery(False, attempt, status, f"HTTP {status} (not retried)"), True
+    return Delivery(False, attempt, status, f"HTTP {status}"), False
 
 
 def should_notify(
@@ -386,7 +264,6 @@ class Notifier:
         public_url: str | None = None,
         allow: Sequence[IPNetwork] = (),
         resolve: Resolver = system_resolver,
-        transport: httpx.BaseTransport | None = None,
         max_workers: int = 2,
     ) -> None:
         self.store = store
@@ -396,7 +273,6 @@ class Notifier:
         self._public_url = public_url
         self._allow = tuple(allow)
         self._resolve = resolve
-        self._transport = transport
         self._pool = ThreadPoolExecutor(max_workers, thread_name_prefix="demaudit-webhook")
         self._stop = threading.Event()
         self._lock = threading.Lock()
@@ -451,7 +327,6 @@ class Notifier:
                 secret=secret,
                 allow=self._allow,
                 resolve=self._resolve,
-                transport=self._transport,
                 wait=self._stop.wait,
             )
         except Exception as exc:  # a malformed URL and the like: record, never raise

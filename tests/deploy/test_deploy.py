@@ -18,7 +18,7 @@ from typing import Any
 import pytest
 import yaml
 
-from demaudit.service.scheduling.scheduler import check_cron
+from demaudit.service.scheduling.cron import check_cron
 from demaudit.workers.spec import parse_spec
 
 DEPLOY = Path(__file__).resolve().parents[2] / "deploy"

@@ -391,25 +391,6 @@ def test_an_unreachable_scheduler_is_named_at_once(archive, demaudit, tmp_path):
     assert not (tmp_path / "o").exists()
 
 
-@pytest.mark.parametrize(
-    ("status", "message", "expected"),
-    [
-        ("successful", "finished: 4 test tiles, 0 failed", 0),
-        ("successful", "finished: 4 test tiles, 1 failed", 1),
-        ("successful", "finished: 4 test tiles, 0 failed, 2 not audited (see the cautions)", 1),
-        ("failed", "checkpoints.file: points.csv: no 'height' column", 2),
-        ("failed", "internal error while running the job (details are in the server log)", 3),
-        ("dismissed", "dismissed by request", 1),
-        ("running", "2 of 4 tiles done", 0),
-    ],
-)
-def test_a_followed_server_job_exits_as_a_local_run_would(status, message, expected):
-    from demaudit.service.run.dispatcher import INTERNAL_FAILURE
-
-    assert INTERNAL_FAILURE.startswith("internal error")  # what _exit_status recognises
-    assert cli._exit_status(status, message) == expected
-
-
 @pytest.mark.parametrize("value", ["-0.1", "0"])
 def test_user_thresholds_must_be_positive(archive, demaudit, tmp_path, value):
     spec = write_spec(archive, "user.yaml", f"grading: {{user: {{required_rmse_m: {value}}}}}\n")

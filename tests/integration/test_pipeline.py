@@ -18,7 +18,7 @@ from demaudit.workers.errors import EmptyOverlapError, SpecError
 from demaudit.workers.inputs.catalog import TileIndex, scan_tile
 from demaudit.workers.inputs.regions import read_regions, region_mask, to_crs
 from demaudit.workers.stats.summary import nmad_bound_m, quantile_bound_m
-from demaudit.workers.tile.task import TileOptions, tile_dh
+from demaudit.workers.tile.task import TileOptions, tile_surfaces
 
 
 def load(root: Path):
@@ -63,7 +63,7 @@ def test_statistics_agree_with_numpy_on_the_same_pixels(make_archive, dask_clien
     all_dh, per_region = [], {r.region_id: [] for r in regions}
     tiles_doc = {t["tile"]: t for t in doc["tiles"]}
     for tile in tests:
-        dh = tile_dh(tile, index.overlapping(tile.grid), options)
+        dh = tile_surfaces(tile, index.overlapping(tile.grid), options).dh
         valid = dh[np.isfinite(dh)]
         assert_agrees(tiles_doc[tile.tile_id]["stats"], valid)
         all_dh.append(valid)

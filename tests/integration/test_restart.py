@@ -12,7 +12,7 @@ from pathlib import Path
 
 import pytest
 
-from demaudit.service.run.dispatcher import RESTART_MESSAGE
+from demaudit.service.run.faults import RESTART_MESSAGE
 from tests.integration.test_rest_server import (
     EXECUTE,
     PRINCIPALS,

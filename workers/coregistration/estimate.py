@@ -25,6 +25,8 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.ndimage import map_coordinates
 
+from demaudit.workers.errors import CannotEstimateError
+
 #: Slopes outside this range say nothing about a horizontal shift (flat) or are unreliable.
 MIN_SLOPE_DEG = 3.0
 MAX_SLOPE_DEG = 70.0
@@ -71,10 +73,6 @@ class FitResult:
 
     def standard_error(self, i: int) -> float:
         return float(np.sqrt(max(self.covariance[i][i], 0.0)))
-
-
-class CannotEstimateError(ValueError):
-    """Too few or uninformative stable pixels; the message says why."""
 
 
 def solve(fit: LinearFit, *, what: str, condition_limit: float = 1e8) -> FitResult:

@@ -25,11 +25,6 @@ LE90_FACTOR = 1.6449  # normal quantile 0.95 (two-sided 90 %)
 NMAD_FACTOR = 1.4826
 
 
-def rmse_from_moments(n: int, mean: float, sample_std: float) -> float:
-    """RMSE from the count, mean and sample (n - 1) standard deviation of the residuals."""
-    return float(np.sqrt(mean**2 + sample_std**2 * (n - 1) / n))
-
-
 def residual_statistics(dh: ArrayLike) -> dict[str, Any]:
     """count, mean, std (n - 1), rmse, median, nmad, q683_abs, q95_abs, min, max, the Gaussian
     equivalents accuracy_z_95 (NSSDA) and le90_gaussian (le90: the same, kept for earlier

@@ -21,7 +21,7 @@ integers, added exactly in any order.
 from __future__ import annotations
 
 import math
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
 
 import numpy as np
@@ -288,11 +288,3 @@ class JobAccumulator:
     def strata(self) -> dict[str, dict[str, DhSummary]]:
         areas = dict.fromkeys(a for a, s in self._parts if s)
         return {area: self.strata_of(area) for area in areas}
-
-
-def accumulate(results: Iterable[TileResult], region_ids: Sequence[str] = ()) -> JobAccumulator:
-    """Merge many tile results at once."""
-    acc = JobAccumulator(region_ids=region_ids)
-    for result in results:
-        acc.add(result)
-    return acc

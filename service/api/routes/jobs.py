@@ -31,24 +31,21 @@ from demaudit.service.api.routes.documents import (
     JSON,
     REL_RESULTS,
     JobList,
-    Link,
     StatusInfo,
-    job_matches,
     job_url,
     parse_datetime_filter,
     status_document,
 )
+from demaudit.service.api.routes.job_list import filtered_records, listed_statuses, page_links
 from demaudit.service.run.dispatcher import PROCESS_ID, JobDispatcher
 from demaudit.service.store.jobs import (
     ACCEPTED,
     DISMISSED,
     FAILED,
     RUNNING,
-    SUCCESSFUL,
     JobRecord,
     JobStatus,
     JobStore,
-    utc_now,
 )
 from demaudit.workers.outputs.layout import SUMMARY_NAME, ZARR_NAME
 
@@ -57,9 +54,6 @@ router = APIRouter(prefix="/jobs", tags=["Jobs"], responses=responses(401, 406))
 ZARR = "application/vnd+zarr"
 MAX_OFFSET = 10**9
 MAX_LIMIT = 10_000
-LISTED_BY_DEFAULT = (RUNNING, SUCCESSFUL, FAILED, DISMISSED)
-"""The statuses /jobs lists when no status is asked for (not accepted: OGC 18-062r2,
-/req/job-list/status-response)."""
 """The largest page (OGC API - Processes 1.0, job-list: limit up to 10,000)."""
 JobId = Annotated[str, Path(alias="jobID", description="The job's id.")]
 
@@ -139,67 +133,30 @@ def list_jobs(
     type, creation time and duration, and page with limit and offset."""
     negotiate(request, (JSON,))
     limit = min(limit, MAX_LIMIT)
-    # OGC 18-062r2, /req/job-list/status-response: without a status parameter only running
-    # and finished jobs are listed (a waiting job: status=accepted)
-    statuses = set(status) if status else set(LISTED_BY_DEFAULT)
-    if process_id is not None and PROCESS_ID not in process_id:
-        statuses = set()
-    if job_type is not None and "process" not in job_type:
-        statuses = set()
     try:
         created = parse_datetime_filter(datetime) if datetime is not None else None
     except ValueError as exc:
         raise BadRequestError(f"query.datetime: {exc}") from None
+    statuses = listed_statuses(status, process_id, job_type)
     owner = principal.owner_filter
     if created is None and min_duration is None and max_duration is None:
         matched = store.count(statuses=statuses, owner=owner)
         records = store.find(statuses=statuses, limit=limit, offset=offset, owner=owner)
-    else:  # filters the store cannot apply: over every record of the caller, newest first
-        everything = store.find(
-            statuses=statuses,
-            limit=max(1, store.count(statuses=statuses, owner=owner)),
-            offset=0,
+    else:
+        kept = filtered_records(
+            store,
+            statuses,
             owner=owner,
+            created=created,
+            min_duration_s=min_duration,
+            max_duration_s=max_duration,
         )
-        now = utc_now()
-        kept = [
-            r
-            for r in everything
-            if job_matches(
-                r,
-                created=created,
-                min_duration_s=min_duration,
-                max_duration_s=max_duration,
-                now=now,
-            )
-        ]
         matched, records = len(kept), kept[offset : offset + limit]
-    links = [Link(href=str(request.url), rel="self", type=JSON, title="this page")]
-    if offset + len(records) < matched:
-        links.append(
-            Link(
-                href=str(request.url.include_query_params(offset=offset + limit, limit=limit)),
-                rel="next",
-                type=JSON,
-                title="the next page",
-            )
-        )
-    if offset > 0:
-        links.append(
-            Link(
-                href=str(
-                    request.url.include_query_params(offset=max(0, offset - limit), limit=limit)
-                ),
-                rel="prev",
-                type=JSON,
-                title="the previous page",
-            )
-        )
     return JobList(
         jobs=[status_document(request, r) for r in records],
         numberMatched=matched,
         numberReturned=len(records),
-        links=links,
+        links=page_links(request, offset=offset, limit=limit, shown=len(records), matched=matched),
     )
 
 

@@ -22,20 +22,14 @@ from demaudit.service.api.auth import Principal
 from demaudit.service.api.deps import PrincipalDep, SettingsDep, StoreDep
 from demaudit.service.api.problems import NoSuchScheduleError, WebhookNotAllowedError, responses
 from demaudit.service.api.routes.documents import JSON, Link
-from demaudit.service.scheduling.notify import (
+from demaudit.service.scheduling.cron import Clock, check_cron, check_timezone, due_runs, next_slot
+from demaudit.service.scheduling.scheduler import resolve_inputs
+from demaudit.service.scheduling.webhook_address import (
     IPNetwork,
     Resolver,
     WebhookAddressError,
     check_webhook_url,
     redact_url,
-)
-from demaudit.service.scheduling.scheduler import (
-    Clock,
-    check_cron,
-    check_timezone,
-    due_runs,
-    next_slot,
-    resolve_inputs,
 )
 from demaudit.service.store.jobs import (
     JobStatus,

@@ -9,8 +9,9 @@ import pytest
 from fastapi.testclient import TestClient
 
 from demaudit.service.api.app import create_app
-from demaudit.service.run.dispatcher import INTERNAL_FAILURE
+from demaudit.service.run.faults import INTERNAL_FAILURE
 from demaudit.service.store.jobs import MemoryJobStore
+from demaudit.service.store.sqlite_jobs import SqliteJobStore
 from demaudit.workers.errors import TileReadError
 from tests.service.tokens import AUTH, AUTH_ADMIN, TOKEN, UNKNOWN_TOKEN
 
@@ -319,8 +320,8 @@ def test_metrics_count_jobs_tiles_and_queue(api, runner, submit, wait_for):
 
 
 def test_restart_fails_jobs_left_unfinished(settings, runner, cluster_factory):
-    from demaudit.service.run.dispatcher import RESTART_MESSAGE, RESTART_QUEUED_MESSAGE
-    from demaudit.service.store.jobs import JobRecord, SqliteJobStore, utc_now
+    from demaudit.service.run.faults import RESTART_MESSAGE, RESTART_QUEUED_MESSAGE
+    from demaudit.service.store.jobs import JobRecord, utc_now
 
     left = SqliteJobStore(settings.job_store)  # what a killed server left behind
     now = utc_now()

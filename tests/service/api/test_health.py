@@ -13,7 +13,8 @@ import pytest
 from fastapi.testclient import TestClient
 
 from demaudit.service.api.app import create_app
-from demaudit.service.store.jobs import MemoryJobStore, SqliteJobStore
+from demaudit.service.store.jobs import MemoryJobStore
+from demaudit.service.store.sqlite_jobs import SqliteJobStore
 
 
 class Cluster:

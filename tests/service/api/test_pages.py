@@ -185,9 +185,9 @@ def test_no_report_while_the_job_runs_or_when_none_was_drawn(api, submit, runner
     ],
 )
 def test_the_cli_points_at_the_page_and_a_finished_report(capsys, server, status, report):
-    from demaudit.service.cli.main import _print_job_links
+    from demaudit.service.cli.remote import print_job_links
 
-    _print_job_links(server, "0123abcd", status)
+    print_job_links(server, "0123abcd", status)
     lines = capsys.readouterr().out.splitlines()
     page = server.rstrip("/") + "/jobs/0123abcd"
     assert lines[0].startswith(f"page: {page} ")

@@ -17,6 +17,7 @@ from fastapi.testclient import TestClient
 
 from demaudit.service.api.app import create_app
 from demaudit.service.cli import main as cli
+from demaudit.service.cli import remote
 from demaudit.service.settings import Settings
 from demaudit.service.store.jobs import MemoryJobStore
 from tests.service.tokens import AUTH, UNKNOWN_TOKEN
@@ -305,8 +306,10 @@ def test_the_api_description_lists_the_schedule_operations(frozen_api):
 @pytest.fixture
 def cli_on_api(frozen_api, settings, monkeypatch) -> TestClient:
     """``demaudit`` talking to the frozen app (no server process, no network)."""
-    monkeypatch.setattr(cli, "get_settings", lambda: settings)
-    monkeypatch.setattr(cli, "_http", lambda args, settings: contextlib.nullcontext(frozen_api))
+    monkeypatch.setattr(cli, "Settings", lambda: settings)
+    monkeypatch.setattr(
+        remote, "http_client", lambda args, settings: contextlib.nullcontext(frozen_api)
+    )
     return frozen_api
 
 
@@ -339,8 +342,8 @@ def test_schedule_add_sends_the_time_zone_and_list_shows_it(cli_on_api, spec, tm
 
 def test_schedule_add_parses_the_time_zone_with_utc_by_default():
     argv = ["schedule", "add", "spec.yaml", "--cron", "0 2 * * *", "--server", "http://h"]
-    assert cli._parser().parse_args(argv).timezone == "UTC"
-    zoned = cli._parser().parse_args([*argv, "--timezone", "America/New_York"])
+    assert cli.build_parser().parse_args(argv).timezone == "UTC"
+    zoned = cli.build_parser().parse_args([*argv, "--timezone", "America/New_York"])
     assert zoned.timezone == "America/New_York" and zoned.spec == Path("spec.yaml")
 
 

@@ -18,8 +18,8 @@ from demaudit.service.api.auth import (
     new_token,
 )
 from demaudit.service.cli import main as cli
-from demaudit.service.run.dispatcher import current_job_id
-from demaudit.service.settings import Settings, get_settings
+from demaudit.service.run.job_thread import current_job_id
+from demaudit.service.settings import Settings
 from tests.service.tokens import PRINCIPALS, TOKEN, TOKEN_B
 
 
@@ -34,9 +34,7 @@ def clean_env(monkeypatch):
     )
     for name in names:
         monkeypatch.delenv(name, raising=False)
-    get_settings.cache_clear()
-    yield monkeypatch
-    get_settings.cache_clear()
+    return monkeypatch
 
 
 @pytest.mark.parametrize(

@@ -21,19 +21,25 @@ from fastapi.testclient import TestClient
 
 from demaudit.service.api.app import create_app
 from demaudit.service.run.cluster import ClusterConnection, ClusterUnavailableError
-from demaudit.service.run.dispatcher import (
+from demaudit.service.run.dispatcher import JobDispatcher
+from demaudit.service.run.faults import (
     CLUSTER,
     INPUT,
     INTERNAL,
     INTERNAL_FAILURE,
     LOST_MESSAGE,
     RESOURCES,
-    JobDispatcher,
+    TILE_UNREADABLE,
     failure_of,
 )
 from demaudit.service.run.runner import JobDismissedError
 from demaudit.service.store.jobs import FAILED, RUNNING, JobRecord, MemoryJobStore
-from demaudit.workers.errors import OutputError, SpecError
+from demaudit.workers.errors import (
+    ImplausibleHeightsError,
+    OutputError,
+    SpecError,
+    TileReadError,
+)
 from demaudit.workers.spec import ResolvedJob
 from tests.service.tokens import AUTH
 
@@ -282,6 +288,8 @@ class Worker:
     ("exc", "cause", "says"),
     [
         (SpecError("region file 'r.gpkg' has no CRS"), INPUT, "r.gpkg"),
+        (TileReadError("test/t1.tif: not a raster"), TILE_UNREADABLE, "t1.tif"),
+        (ImplausibleHeightsError("test/t2.tif: -9999 in 4 %"), TILE_UNREADABLE, "t2.tif"),
         (OSError(errno.ENOSPC, "No space left on device"), RESOURCES, "disk full"),
         (OutputError("cannot write x: No space left on device: /r/x"), RESOURCES, "/r/x"),
         (OutputError("--out: cannot write in /r (permission denied)"), INTERNAL, "/r"),
@@ -374,9 +382,16 @@ def test_submissions_are_refused_while_the_scheduler_does_not_answer(app_with, s
     assert api.get("/health/ready").status_code == 503
 
 
-def test_results_of_a_failed_job_say_the_cause(app_with, spec, submit, wait_for):
+@pytest.mark.parametrize(
+    ("error", "cause"),
+    [
+        (SpecError("test.tiles: no file matches 'test/*.tif'"), "invalid-input"),
+        (TileReadError("test/t1.tif: cannot open (not a raster)"), "tile-unreadable"),
+    ],
+)
+def test_results_of_a_failed_job_say_the_cause(app_with, spec, submit, wait_for, error, cause):
     runner = StepRunner()
-    runner.fail = SpecError("test.tiles: no file matches 'test/*.tif'")
+    runner.fail = error
     runner.release.set()
     api = app_with(Reachable(), runner)
     job_id = submit(api, spec)
@@ -385,8 +400,8 @@ def test_results_of_a_failed_job_say_the_cause(app_with, spec, submit, wait_for)
     assert response.status_code == 409
     problem = response.json()
     assert problem["type"] == "urn:demaudit:problem:job-failed"
-    assert problem["cause"]["type"] == "urn:demaudit:problem:invalid-input"
-    assert problem["cause"]["status"] == 422
+    assert problem["cause"]["type"] == f"urn:demaudit:problem:{cause}"
+    assert problem["cause"]["status"] == 422 and str(error) in problem["detail"]
 
 
 def test_readiness_reports_a_job_store_write_that_failed(app_with, spec, submit, wait_for):

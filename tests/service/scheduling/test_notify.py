@@ -23,13 +23,13 @@ import pytest
 from fastapi.testclient import TestClient
 
 from demaudit.service.api.app import create_app
-from demaudit.service.scheduling.notify import (
+from demaudit.service.scheduling.notify import deliver as deliver_anywhere
+from demaudit.service.scheduling.webhook_address import (
     WebhookRefusedError,
     WebhookUnresolvedError,
     check_webhook_url,
     redact_url,
 )
-from demaudit.service.scheduling.notify import deliver as deliver_anywhere
 from demaudit.service.settings import Settings
 from demaudit.service.store.jobs import MemoryJobStore
 from tests.service.tokens import AUTH
@@ -201,9 +201,7 @@ def scheduled_app(
     reach 127.0.0.1/32 (the allow-list), names resolve through the stub resolver."""
     opened: list[TestClient] = []
 
-    def open_app(
-        runner: RecheckRunner, *, resolve: Any = resolver, transport: Any = None
-    ) -> TestClient:
+    def open_app(runner: RecheckRunner, *, resolve: Any = resolver) -> TestClient:
         quick = settings.model_copy(
             update={
                 "schedule_tick_s": 3600.0,
@@ -220,7 +218,6 @@ def scheduled_app(
             client_factory=cluster_factory,
             clock=clock,
             webhook_resolver=resolve,
-            webhook_transport=transport,
         )
         client = TestClient(app, headers=AUTH)
         client.__enter__()
@@ -443,12 +440,7 @@ def test_delivery_checks_again_and_refuses_a_loopback_answer():
 
 def test_a_scheduled_delivery_whose_host_moved_to_loopback_is_refused(scheduled_app, spec):
     answers = [["93.184.216.34"]]  # public at creation, loopback when the run ends
-    sent: list[httpx.Request] = []
-    api = scheduled_app(
-        RecheckRunner(regressions=1),
-        resolve=lambda host, port: answers[-1],
-        transport=httpx.MockTransport(lambda r: sent.append(r) or httpx.Response(200)),
-    )
+    api = scheduled_app(RecheckRunner(regressions=1), resolve=lambda host, port: answers[-1])
     body = {"name": "n", "cron": "0 2 * * *", "inputs": spec, "notify": "always"}
     response = api.post("/schedules", json=body | {"webhook": "http://hooks.example.org/x"})
     assert response.status_code == 201, response.text
@@ -458,7 +450,7 @@ def test_a_scheduled_delivery_whose_host_moved_to_loopback_is_refused(scheduled_
     job_id = api.get(f"/schedules/{response.json()['id']}").json()["lastRun"]["jobID"]
     note = wait_for_end(api, job_id)["notification"]
     assert note["status"] == "failed" and "link-local" in note["error"]
-    assert sent == []
+    assert note["attempts"] == 1  # refused before any connection, not retried
 
 
 def test_webhook_urls_are_shown_without_credentials_path_or_query():

@@ -17,19 +17,14 @@ from croniter import croniter
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from demaudit.service.scheduling.scheduler import (
-    LEASE,
-    LastRun,
-    Run,
-    Scheduler,
-    Skip,
+from demaudit.service.scheduling.cron import (
     check_cron,
     check_timezone,
     due_runs,
     latest_slot,
     next_slot,
-    plan,
 )
+from demaudit.service.scheduling.scheduler import LEASE, LastRun, Run, Scheduler, Skip, plan
 from demaudit.service.store.jobs import (
     ACCEPTED,
     RUNNING,
@@ -38,8 +33,8 @@ from demaudit.service.store.jobs import (
     JobStore,
     MemoryJobStore,
     ScheduleRecord,
-    SqliteJobStore,
 )
+from demaudit.service.store.sqlite_jobs import SqliteJobStore
 from demaudit.workers.errors import SpecError
 
 UTC = dt.UTC

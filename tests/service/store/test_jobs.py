@@ -11,7 +11,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from demaudit.service.run.dispatcher import (
+from demaudit.service.run.faults import (
     RESTART_MESSAGE,
     RESTART_QUEUED_MESSAGE,
     new_instance_id,
@@ -29,8 +29,8 @@ from demaudit.service.store.jobs import (
     JobStore,
     Lease,
     MemoryJobStore,
-    SqliteJobStore,
 )
+from demaudit.service.store.sqlite_jobs import SqliteJobStore
 
 T0 = dt.datetime(2026, 11, 2, 8, 0, tzinfo=dt.UTC)
 

@@ -15,8 +15,8 @@ from demaudit.service.store.jobs import (
     JobStore,
     MemoryJobStore,
     ScheduleRecord,
-    SqliteJobStore,
 )
+from demaudit.service.store.sqlite_jobs import SqliteJobStore
 
 T0 = dt.datetime(2026, 11, 2, 2, 0, tzinfo=dt.UTC)
 

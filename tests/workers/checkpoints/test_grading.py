@@ -15,7 +15,10 @@ def test_published_worked_example_rmse_and_accuracy():
     # USGS 3D Elevation Program vertical accuracy report of lidar project LA_Barataria_2013
     # (VA.txt, published): n = 51, mean = -0.00533333 m, sample std = 0.0577206 m gives
     # RMSE_z = 0.0574002 m and Accuracy_z = 0.1125044 m.
-    rmse = accuracy.rmse_from_moments(51, -0.00533333, 0.0577206)
+    # 51 residuals built to have exactly that mean and sample std (the report lists moments)
+    z = np.random.default_rng(51).normal(size=51)
+    residuals = -0.00533333 + 0.0577206 * (z - z.mean()) / z.std(ddof=1)
+    rmse = accuracy.residual_statistics(residuals)["rmse"]
     assert rmse == pytest.approx(0.0574002, abs=5e-7)
     assert accuracy.NSSDA_FACTOR * rmse == pytest.approx(0.1125044, abs=1e-6)
 

@@ -11,7 +11,7 @@ from shapely.geometry import MultiPolygon, Polygon, box
 
 from demaudit.workers.inputs.catalog import TileInfo
 from demaudit.workers.inputs.regions import Region
-from demaudit.workers.stats.merge import JobAccumulator, TileExtremes, accumulate, keyed_summaries
+from demaudit.workers.stats.merge import JobAccumulator, TileExtremes, keyed_summaries
 from demaudit.workers.stats.summary import (
     empty,
     nmad_bound_m,
@@ -28,6 +28,7 @@ from demaudit.workers.tile.task import (
     TileSurfaces,
     summarise_tile,
 )
+from tests.support.merging import accumulate
 
 UTM = CRS.from_epsg(32632).to_wkt()
 PIXELS, SIZE, ORIGIN_E, ORIGIN_N = 30, 2.0, 500_000.0, 6_000_000.0

@@ -5,9 +5,10 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from demaudit.workers.stats.merge import JobAccumulator, TileExtremes, accumulate, keyed_summaries
+from demaudit.workers.stats.merge import JobAccumulator, TileExtremes, keyed_summaries
 from demaudit.workers.stats.summary import merge_all, statistics, summarise
 from demaudit.workers.tile.task import ALL, OK, TileResult
+from tests.support.merging import accumulate
 
 TILES = 240
 
