@@ -26,8 +26,8 @@ from numpy.typing import NDArray
 from pyproj import CRS
 from pyproj.exceptions import CRSError
 
-from demaudit.workers.errors import DataRootError, SpecError
-from demaudit.workers.inputs.confine import Roots, open_confined
+from demaudit.workers.errors import SpecError
+from demaudit.workers.inputs.confine import Roots, read_spec_file
 from demaudit.workers.spec import CheckpointSource
 from demaudit.workers.tile.grid import Grid
 
@@ -102,13 +102,7 @@ def _decoded(path: Path, roots: Roots) -> tuple[str, str]:
     """The file's text: UTF-8 (a byte-order mark is dropped), else Latin-1; binary refused.
     Read from one open file checked against roots (workers/inputs/confine.py); with the SHA-256 of
     the bytes read."""
-    try:
-        with open_confined(path, roots) as opened:
-            raw = opened.read_bytes()
-    except DataRootError as exc:
-        raise DataRootError(f"checkpoints.file: {exc}") from None
-    except OSError as exc:
-        raise SpecError(f"checkpoints.file: cannot read {exc.strerror or exc}") from None
+    raw = read_spec_file(path, roots, field="checkpoints.file")
     if b"\x00" in raw:
         raise SpecError(
             f"checkpoints.file: {path.name} is not text (it holds binary data); expected CSV "

@@ -35,7 +35,7 @@ from contextlib import contextmanager
 from pathlib import Path
 from typing import Any
 
-from demaudit.workers.errors import DataRootError
+from demaudit.workers.errors import DataRootError, SpecError
 
 __all__ = ["ConfinedFile", "Roots", "open_confined", "real_roots", "shown"]
 
@@ -160,6 +160,19 @@ def open_confined(path: str | Path, roots: Roots) -> ConfinedFile:
         os.close(fd)
         raise
     return ConfinedFile(fd, name=name, real=real, info=info)
+
+
+def read_spec_file(path: str | Path, roots: Roots, *, field: str) -> bytes:
+    """The bytes of a file a spec field names (e.g. ``region.file``), read from one open file
+    checked against the roots: DataRootError when it leads outside them, SpecError when it
+    cannot be read, each message starting with the field."""
+    try:
+        with open_confined(path, roots) as opened:
+            return opened.read_bytes()
+    except DataRootError as exc:
+        raise DataRootError(f"{field}: {exc}") from None
+    except OSError as exc:
+        raise SpecError(f"{field}: cannot read {exc.strerror or exc}") from None
 
 
 def _where(fd: int, path: str | Path, info: os.stat_result) -> str | None:

@@ -19,8 +19,8 @@ from shapely import box, segmentize
 from shapely.geometry import shape
 from shapely.geometry.base import BaseGeometry
 
-from demaudit.workers.errors import DataRootError, MissingCRSError, SpecError
-from demaudit.workers.inputs.confine import Roots, open_confined
+from demaudit.workers.errors import MissingCRSError, SpecError
+from demaudit.workers.inputs.confine import Roots, read_spec_file
 from demaudit.workers.tile.grid import Grid, centres_in
 
 DEFAULT_REGION_CRS = "EPSG:4326"
@@ -83,13 +83,7 @@ def region_cautions(regions: Sequence[Region]) -> list[str]:
 
 def _feature_collection(path: Path, roots: Roots) -> dict:  # type: ignore[type-arg]
     expected = "expected a GeoJSON FeatureCollection (UTF-8 JSON text)"
-    try:
-        with open_confined(path, roots) as opened:
-            raw = opened.read_bytes()
-    except DataRootError as exc:
-        raise DataRootError(f"region.file: {exc}") from None
-    except OSError as exc:
-        raise SpecError(f"region.file: cannot read {exc.strerror or exc}") from None
+    raw = read_spec_file(path, roots, field="region.file")
     if raw.startswith(_SHAPEFILE_MAGIC) or path.suffix.lower() in {".shp", ".shx", ".dbf"}:
         raise SpecError(
             f"region.file: {path.name} is a shapefile; {expected}. Convert it first, e.g. "
