@@ -13,7 +13,7 @@ from rasterio.transform import from_origin
 from demaudit.workers.checkpoints.points import read_checkpoints
 from demaudit.workers.errors import DataRootError, SpecError, TileReadError
 from demaudit.workers.inputs.catalog import ScanFailure, TileInfo, file_fingerprint, scan_tile
-from demaudit.workers.inputs.confine import open_confined, real_roots, shown
+from demaudit.workers.inputs.confine import open_confined, read_spec_file, real_roots, shown
 from demaudit.workers.inputs.rasters import read_tile
 from demaudit.workers.inputs.regions import read_regions
 
@@ -155,3 +155,16 @@ def test_checkpoint_fingerprint_is_of_the_bytes_read(world):
     (root / "c.csv").write_bytes(text)
     data = read_checkpoints(root / "c.csv", roots=real_roots([root]))
     assert data.fingerprint == hashlib.sha256(text).hexdigest()  # hashlib: the reference
+
+
+def test_a_spec_file_is_read_inside_the_roots_and_refused_outside_naming_the_field(world):
+    root, outside = world
+    roots = real_roots([root])
+    assert read_spec_file(root / "inside.txt", roots, field="region.file") == b"inside"
+    (root / "escape.txt").symlink_to(outside / "secret.txt")
+    with pytest.raises(DataRootError, match=r"^region\.file: escape\.txt leads outside"):
+        read_spec_file(root / "escape.txt", roots, field="region.file")
+    with pytest.raises(SpecError, match=r"^checkpoints\.file: cannot read"):
+        read_spec_file(root / "missing.csv", roots, field="checkpoints.file")
+    with pytest.raises(SpecError, match=r"^checkpoints\.file: cannot read"):
+        read_spec_file(root, roots, field="checkpoints.file")  # a folder, not a file
