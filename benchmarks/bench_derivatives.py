@@ -5,7 +5,10 @@ measured figures; never run in CI.
    audit's own dh summaries (summarise_pixels) against the whole derived comparison
    (tile_derivatives: both surfaces' parameters, four keyed summaries, D8 counts, overviews),
    and one surface's parameters by the compiled sweep against the numpy functions.
-2. ``--demo``: the demo job (demo_tiles/demo.yaml, no checkpoints) run on one local cluster
+2. per demo tile (in process, processor seconds, best of 3): audit_tile on three test tiles of
+   the demo archive (read, align, datum, dh summaries; with land cover, no regions) without and
+   with the derived comparison: its share of a tile task's processor time.
+3. ``--demo``: the demo job (demo_tiles/demo.yaml, no checkpoints) run on one local cluster
    without and with ``derivatives: {}`` (each twice, alternating; the faster of each is kept):
    wall times, the tile phase (summary.json job.timings_s) and the derivatives' share of the run.
 
@@ -86,6 +89,33 @@ def measure(t: dict[str, Any]) -> tuple[float, float, float, float]:
     )
 
 
+def demo_tiles() -> None:
+    from dataclasses import replace
+
+    from demaudit.workers import spec as job_spec
+    from demaudit.workers.inputs.catalog import scan_landcover_tile, scan_tile
+    from demaudit.workers.inputs.tile_index import TileIndex
+    from demaudit.workers.tile.task import TileOptions, audit_tile
+
+    raw = job_spec.load_spec_file(ROOT / "demo_tiles" / "demo.yaml")
+    raw.pop("checkpoints", None)
+    job = job_spec.resolve(job_spec.parse_spec(raw), base_dir=ROOT / "demo_tiles")
+    options = replace(TileOptions.from_spec(job.spec), derivatives=None)
+    derived = replace(options, derivatives=DerivativeOptions())
+    references = TileIndex([scan_tile(p) for p in job.reference_tiles])  # type: ignore[misc]
+    cover = TileIndex([scan_landcover_tile(p) for p in job.landcover_tiles])  # type: ignore[misc]
+    print("per demo tile, processor seconds (best of 3): audit_tile without / with derivatives")
+    for path in job.test_tiles[:3]:
+        tile: Any = scan_tile(path)
+        refs, lc = references.overlapping(tile.grid), cover.overlapping(tile.grid)
+        without = best_of(lambda: audit_tile(tile, refs, [], options, lc))  # noqa: B023
+        with_ = best_of(lambda: audit_tile(tile, refs, [], derived, lc))  # noqa: B023
+        print(
+            f"  {tile.tile_id} ({tile.grid.width} x {tile.grid.height} px): {without:.3f} s / "
+            f"{with_:.3f} s: derivatives {(with_ - without) / with_:.0%} of the task with them"
+        )
+
+
 def demo() -> None:
     from demaudit.service.run.cluster import dask_client
     from demaudit.service.run.runner import run_job
@@ -119,6 +149,7 @@ def main() -> None:
     parser.add_argument("--demo", action="store_true", help="also run the demo job")
     args = parser.parse_args()
     per_tile()
+    demo_tiles()
     if args.demo:
         demo()
 
