@@ -70,10 +70,11 @@ class ErrorModelAccumulator:
         if sum(len(p) for p in self.points.values()) > 2 * self.max_points:
             self._trim()
 
-    def _trim(self) -> None:
-        """Keep the max_points rows of smallest priority (ties broken by x, y: the same rows
-        whatever the order the tiles came in)."""
-        if sum(len(p) for p in self.points.values()) <= self.max_points:
+    def _trim(self, *, always: bool = False) -> None:
+        """Keep the max_points rows of smallest priority, in the order of priority (ties broken
+        by x, y: the same rows in the same order whatever the order the tiles came in); with
+        always, order them even when there are no more than max_points."""
+        if not always and sum(len(p) for p in self.points.values()) <= self.max_points:
             return
         width = len(POINT_COLUMNS)
         tagged = [
@@ -87,8 +88,10 @@ class ErrorModelAccumulator:
         }
 
     def samples(self) -> NDArray[np.float64]:
-        """(x, y, dh, slope, curvature) of the kept samples in one metric CRS (common_metric)."""
-        self._trim()
+        """(x, y, dh, slope, curvature) of the kept samples in one metric CRS (common_metric), in
+        an order that does not depend on the order tiles finished in (the variogram takes
+        subsets in it)."""
+        self._trim(always=True)
         return common_metric(self.points)
 
     @property

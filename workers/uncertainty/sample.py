@@ -30,7 +30,7 @@ from numpy.typing import NDArray
 
 from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.stats.summary import DhSummary
-from demaudit.workers.tile.derivatives import second_derivatives
+from demaudit.workers.tile.derivatives import windows
 from demaudit.workers.tile.difference import block_mean
 from demaudit.workers.tile.grid import Grid
 from demaudit.workers.tile.keyed_summary import summarise_cells
@@ -83,17 +83,28 @@ class TileErrorSample:
 
 
 def abs_curvature(heights: NDArray[np.floating], *, px: float, py: float) -> NDArray[np.float64]:
-    """|z_xx + z_yy| x 100 (see module; r + t of workers/tile/derivatives.py), the outer ring
-    copied from its inner neighbours; NaN where the 3 x 3 window holds a NaN."""
+    """|z_xx + z_yy| x 100 (see module: r + t of Zevenbergen & Thorne on the 3 x 3 windows of
+    workers/tile/derivatives.py), the outer ring copied from its inner neighbours; NaN where the
+    window's cross holds a NaN."""
     z = np.asarray(heights, dtype=np.float64)
     out = np.full(z.shape, np.nan)
     if min(z.shape) < 3:
         return out
-    _, _, r, _, t = second_derivatives(z, pixel_size_x_m=px, pixel_size_y_m=py)
-    out[1:-1, 1:-1] = np.abs(r + t) * 100.0
+    _, z2, _, z4, z5, z6, _, z8, _ = windows(z)
+    twice = 2.0 * z5
+    out[1:-1, 1:-1] = np.abs((z4 - twice + z6) / (px * px) + (z2 - twice + z8) / (py * py)) * 100
     out[0, :], out[-1, :] = out[1, :], out[-2, :]
     out[:, 0], out[:, -1] = out[:, 1], out[:, -2]
     return out
+
+
+def _bin_of(values: NDArray[np.float64], edges: tuple[float, ...]) -> NDArray[np.intp]:
+    """The bin of each value among few sorted edges (0 below edges[1], len(edges) - 1 at or
+    above the last): a count of the edges reached, cheaper than a binary search per value."""
+    keys = np.zeros(values.shape, dtype=np.intp)
+    for edge in edges[1:]:
+        keys += values >= edge
+    return keys
 
 
 def slope_key(slope_deg: NDArray[np.float64]) -> NDArray[np.intp]:
@@ -104,8 +115,7 @@ def slope_key(slope_deg: NDArray[np.float64]) -> NDArray[np.intp]:
 
 def curvature_key(curvature: NDArray[np.float64]) -> NDArray[np.intp]:
     """The curvature bin (CURVATURE_EDGES) of each |curvature|; N_CURVATURE where NaN."""
-    keys = np.searchsorted(CURVATURE_EDGES, curvature, side="right") - 1
-    return np.where(np.isfinite(curvature), keys, N_CURVATURE).astype(np.intp)
+    return np.where(np.isnan(curvature), N_CURVATURE, _bin_of(curvature, CURVATURE_EDGES))
 
 
 def tile_error_sample(

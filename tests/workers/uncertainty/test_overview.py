@@ -29,9 +29,9 @@ def test_a_block_is_its_dh_less_the_centre_over_sigma_at_its_terrain():
 
 
 def sample_with(terrain: np.ndarray):
-    from tests.workers.uncertainty.test_sample_store import tile
-
     from dataclasses import replace
+
+    from tests.workers.uncertainty.test_sample_store import tile
 
     return replace(tile(0), terrain_overview=terrain)
 
