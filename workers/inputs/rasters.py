@@ -47,22 +47,30 @@ class Implausible:
 
 
 def read_tile(
-    tile: TileInfo, *, nodata: float | None = None, units: str | None = None
-) -> NDArray[np.float64]:
+    tile: TileInfo,
+    *,
+    nodata: float | None = None,
+    units: str | None = None,
+    keep_float32: bool = False,
+) -> NDArray[np.floating]:
     """The tile's first band as float64 (file units), nodata as NaN.
 
     With ``units`` (the unit of the heights; the tile task always gives it) the values are
     checked: ImplausibleHeightsError when they hold a void code or heights no terrain has (see
-    implausible_heights).
+    implausible_heights). With ``keep_float32`` a float32 band stays float32 (the same values,
+    half the bytes, no copy).
     """
     raw = _read_band(tile, "tile", None)
-    data = _voids_to_nan(raw, (tile.nodata, nodata))
+    if keep_float32 and raw.dtype == np.float32:
+        data = _voids_to_nan(raw, (tile.nodata, nodata), out=raw)
+    else:
+        data = _voids_to_nan(raw, (tile.nodata, nodata))
     if units is not None:
         check_heights(data, tile_id=tile.tile_id, units=units, role="test")
     return data
 
 
-def check_heights(data: NDArray[np.float64], *, tile_id: str, units: str, role: str) -> None:
+def check_heights(data: NDArray[np.floating], *, tile_id: str, units: str, role: str) -> None:
     """Raise ImplausibleHeightsError when data (file units, NaN = nodata) cannot be heights.
 
     ``role`` is 'test' or 'reference': the message names the tile and the spec field
@@ -81,7 +89,7 @@ def check_heights(data: NDArray[np.float64], *, tile_id: str, units: str, role: 
 
 
 def implausible_heights(
-    data: NDArray[np.float64], *, metres_per_unit: float = 1.0
+    data: NDArray[np.floating], *, metres_per_unit: float = 1.0
 ) -> Implausible | None:
     """The value of data (file units, NaN = nodata) that shows it is not all terrain, or None.
 
@@ -91,7 +99,9 @@ def implausible_heights(
     and every other value lies more than VOID_GAP_M away. A tile of one value only (a flat lake)
     passes unless that value is a void code.
     """
-    fast = kernels.AVAILABLE and data.dtype == np.float64 and data.ndim <= 2
+    fast = kernels.AVAILABLE and data.dtype in (np.float64, np.float32) and data.ndim <= 2
+    if not fast:  # numpy compares float32 with a Python float in float32: widen first
+        data = np.asarray(data, dtype=np.float64)
     plane = data.reshape(1, -1) if fast and data.ndim < 2 else data  # the kernels take 2-D
     if fast:  # one compiled sweep (count, extremes and how many hold them)
         valid, low, high, n_low, n_high = kernels.extremes_sweep(plane)
@@ -104,6 +114,7 @@ def implausible_heights(
         n_low, n_high = (int(np.count_nonzero(data == v)) for v in (low, high))
     lowest, highest = (v / metres_per_unit for v in PLAUSIBLE_HEIGHT_M)
     if low < lowest or high > highest:
+        data = np.asarray(data, dtype=np.float64)  # a refusal: what follows is numpy's
         with np.errstate(invalid="ignore"):
             outside = data[(data < lowest) | (data > highest)]
         values, counts = np.unique(outside, return_counts=True)
@@ -123,6 +134,7 @@ def implausible_heights(
             continue
         if _other_within(plane, near, value, compiled=fast):
             continue
+        data = np.asarray(data, dtype=np.float64)  # a refusal: what follows is numpy's
         with np.errstate(invalid="ignore"):
             others = data[data != value]
         nearest = float(np.nanmin(np.abs(others - value))) * metres_per_unit
@@ -160,13 +172,15 @@ def read_mosaic(
     units: str | None = None,
     margin_px: int = 3,
     role: str = "reference",
-) -> tuple[NDArray[np.float64], Grid]:
+    keep_float32: bool = False,
+) -> tuple[NDArray[np.floating], Grid]:
     """Mosaic the parts of tiles (all on one grid) that cover bounds (in their CRS), plus a margin.
 
     Returns the values (NaN where no tile or nodata) and the mosaic's grid, snapped to the tiles'
     own pixel grid so no resampling happens here. Raises TileReadError when a tile cannot be read
     or the tiles are not on one grid. With ``units`` (heights; None for land cover) the part read
     of each tile is checked as in read_tile: ImplausibleHeightsError names the ``role`` tile.
+    With ``keep_float32`` and every tile float32, the mosaic is float32 (the same values).
     """
     first = tiles[0].grid
     a, _, c, _, e, f = first.transform
@@ -177,7 +191,8 @@ def read_mosaic(
     col1 = math.ceil((right - c) / a) + margin_px
     row0 = math.floor((top - f) / e) - margin_px
     row1 = math.ceil((bottom - f) / e) + margin_px
-    out = np.full((row1 - row0, col1 - col0), np.nan)
+    as_read = keep_float32 and all(t.dtype == "float32" for t in tiles)
+    out = np.full((row1 - row0, col1 - col0), np.nan, dtype=np.float32 if as_read else np.float64)
     empty = True  # nothing pasted yet: the first tile is written straight into out
     for tile in tiles:
         block = _paste(tile, out, row0=row0, col0=col0, reference=first, nodata=nodata, empty=empty)
@@ -190,14 +205,14 @@ def read_mosaic(
 
 def _paste(
     tile: TileInfo,
-    out: NDArray[np.float64],
+    out: NDArray[np.floating],
     *,
     row0: int,
     col0: int,
     reference: Grid,
     nodata: float | None,
     empty: bool = False,
-) -> NDArray[np.float64] | None:
+) -> NDArray[np.floating] | None:
     """Copy the part of tile that falls inside out (whose pixel (0, 0) is (row0, col0) of the
     reference grid) where out is still NaN; return that part (None when the tile does not reach
     into out). ``empty``: out is all NaN, so the part is converted straight into it (no copy)."""
@@ -253,16 +268,17 @@ def _voids_to_nan(
     raw: NDArray[np.generic],
     nodata: Sequence[float | None],
     *,
-    out: NDArray[np.float64] | None = None,
-) -> NDArray[np.float64]:
+    out: NDArray[np.floating] | None = None,
+) -> NDArray[np.floating]:
     """raw as float64 with every nodata value NaN (written into ``out`` when given, else a new
-    array). Each value is compared in raw's own type (a spec's 0.1 matches a float32 file's 0.1;
-    a fractional value never matches integers)."""
+    array; ``out`` may be raw itself). Each value is compared in raw's own type (a spec's 0.1
+    matches a float32 file's 0.1; a fractional value never matches integers)."""
     if out is None:
         data = raw.astype(np.float64)
     else:
         data = out
-        np.copyto(data, raw, casting="unsafe")
+        if out is not raw:
+            np.copyto(data, raw, casting="unsafe")
     for value in dict.fromkeys(v for v in nodata if v is not None):
         if np.issubdtype(raw.dtype, np.integer):
             info = np.iinfo(str(raw.dtype))

@@ -21,20 +21,22 @@ _RESAMPLING = {
 
 
 def onto_grid(
-    source: NDArray[np.float64], source_grid: Grid, target: Grid, *, resampling: str = "bilinear"
-) -> NDArray[np.float64]:
+    source: NDArray[np.floating], source_grid: Grid, target: Grid, *, resampling: str = "bilinear"
+) -> NDArray[np.floating]:
     """Resample source (NaN = nodata) from source_grid onto target; NaN where nothing covers.
 
     Heights are not changed, only moved: units and vertical datum are the source's. When the
     target's pixels are pixels of the source grid (same CRS and pixel size, whole-pixel offset)
-    they are copied, not resampled: any resampling returns exactly these values there.
+    they are copied, not resampled: any resampling returns exactly these values there (float32
+    stays float32, anything else becomes float64). Otherwise GDAL resamples source as float64
+    into a float64 result.
     """
     offset = whole_pixel_offset(source_grid, target)
     if offset is not None:
         return _cut(source, offset, target.shape)
     out = np.full(target.shape, np.nan)
     reproject(
-        source=np.ascontiguousarray(source),
+        source=np.ascontiguousarray(source, dtype=np.float64),
         destination=out,
         src_transform=source_grid.affine,
         src_crs=rasterio_crs.CRS.from_wkt(source_grid.crs),
@@ -72,16 +74,17 @@ def _same_crs(wkt_a: str, wkt_b: str) -> bool:
 
 
 def _cut(
-    source: NDArray[np.float64], offset: tuple[int, int], shape: tuple[int, int]
-) -> NDArray[np.float64]:
+    source: NDArray[np.floating], offset: tuple[int, int], shape: tuple[int, int]
+) -> NDArray[np.floating]:
     """A new array of shape holding source from (row, col) = offset on; NaN beyond source."""
     row, col = offset
     rows, cols = source.shape
     r0, c0 = max(row, 0), max(col, 0)
     r1, c1 = min(row + shape[0], rows), min(col + shape[1], cols)
+    dtype = np.float32 if source.dtype == np.float32 else np.float64
     if (r0, c0, r1, c1) == (row, col, row + shape[0], col + shape[1]):
-        return np.array(source[r0:r1, c0:c1], dtype=np.float64)
-    out = np.full(shape, np.nan)
+        return np.array(source[r0:r1, c0:c1], dtype=dtype)
+    out = np.full(shape, np.nan, dtype=dtype)
     if r0 < r1 and c0 < c1:
         out[r0 - row : r1 - row, c0 - col : c1 - col] = source[r0:r1, c0:c1]
     return out

@@ -8,14 +8,15 @@ from numpy.typing import NDArray
 from demaudit.workers.tile import kernels
 
 
-def difference(test: NDArray[np.float64], reference: NDArray[np.float64]) -> NDArray[np.float64]:
-    """dh = test - reference (metres, both on one grid and one vertical datum).
+def difference(test: NDArray[np.floating], reference: NDArray[np.floating]) -> NDArray[np.float64]:
+    """dh = test - reference (metres, both on one grid and one vertical datum), in float64
+    whatever their dtypes (float32 heights are subtracted as the float64 values they hold).
 
     NaN where either is nodata.
     """
     if test.shape != reference.shape:
         raise ValueError(f"test {test.shape} and reference {reference.shape} are not on one grid")
-    return test - reference
+    return np.subtract(test, reference, dtype=np.float64)
 
 
 def block_mean(dh: NDArray[np.float64], factor: int) -> NDArray[np.float32]:

@@ -43,7 +43,7 @@ pairwise_sum_compiled: Any = None  # set by _compiled("block_sweep")
 
 def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, maxs, tail):  # type: ignore[no-untyped-def]
     """Per value (NaN, infinite and negative-cell values skipped): add it to its cell's sum and
-    extremes; count it in its linear bin (floor(x / linear_width), as summary.bin_index) or list
+    extremes; count it in its linear bin (floor(x / linear_width), as bins.bin_index) or list
     it in ``tail``. Returns how many values went to the tail."""
     n_tail = 0
     columns = 2 * k_limit
@@ -69,29 +69,16 @@ def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, 
 
 
 def _key_sweep(  # type: ignore[no-untyped-def]
-    dh, bits, bands, codes, patterns, sizes, binning, table,
-    dense, sums, mins, maxs, tails, keys, tail_key, tail_bin, unsure, out,
-):  # fmt: skip
-    """_cell_sweep with each pixel's key made on the way and the tails binned here too.
-
-    key = pattern * n_cells + class code * n_band_codes + band (``codes``, ``patterns`` may be
-    empty: all 0); sizes = (n_band_codes, n_cells, tail columns per sign). Pixels of class code
-    255 (excluded) and non-finite dh get key -1. A tail value (|v| >= linear limit) is binned
-    from ``bits`` (dh viewed as int64): its slot (exponent and 12 leading mantissa bits) gives
-    the first bin that slot can hold (table[0]), then the exact lower edges (table[1]) move it
-    up; its count goes to ``tails`` (columns j, then n + j for negative values) or, beyond,
-    to the list tail_key / tail_bin. Values the slots do not cover go to ``unsure`` (binned
-    by summary.bin_index). out = (listed tail entries, unsure entries, finite excluded)."""
+    dh, bands, codes, patterns, sizes, binning, dense, sums, mins, maxs, keys, tail, out
+):
+    """_cell_sweep with each pixel's key made on the way: pattern * n_cells + class code *
+    n_band_codes + band (``codes`` / ``patterns`` may be empty: 0), sizes = (n_band_codes,
+    n_cells); key -1 for class code 255 (excluded) and non-finite dh. Values outside the linear
+    bins are listed in ``tail`` (for _tail_sweep). out = (tail entries, finite excluded)."""
     linear_width, linear_limit, k_limit = binning[0], binning[1], int(binning[2])
-    first_bin, edges = table
-    n_band_codes, n_cells, width = sizes[0], sizes[1], sizes[2]
-    columns = 2 * k_limit
-    with_codes = codes.size > 0
-    with_patterns = patterns.size > 0
-    base = 0x4000000000000000 >> 40  # the slot of 2.0
-    n_tail = 0
-    n_unsure = 0
-    dropped = 0
+    n_band_codes, n_cells = sizes[0], sizes[1]
+    with_codes, with_patterns = codes.size > 0, patterns.size > 0
+    n_tail, dropped = 0, 0
     for i in range(dh.size):
         v = dh[i]
         code = codes[i] if with_codes else 0
@@ -112,29 +99,46 @@ def _key_sweep(  # type: ignore[no-untyped-def]
             maxs[c] = v
         if abs(v) < linear_limit:
             column = int(math.floor(v / linear_width)) + k_limit
-            if 0 <= column < columns:
+            if 0 <= column < 2 * k_limit:
                 dense[c, column] += 1
-            else:
-                unsure[n_unsure] = i
-                n_unsure += 1
-            continue
+                continue
+        tail[n_tail] = i
+        n_tail += 1
+    out[0], out[1] = n_tail, dropped
+
+
+def _tail_sweep(  # type: ignore[no-untyped-def]
+    dh, bits, keys, tail, n_tail, limits, table, tails, tail_key, tail_bin, unsure, out
+):
+    """Bin the listed tail values (|v| >= linear limit; limits = (linear limit, k limit)): a
+    value's slot (exponent and 12 leading mantissa bits of ``bits``, dh as int64) gives its
+    first possible bin (table[0]), the exact lower edges (table[1]) the rest. Counts go to
+    ``tails`` (column j for bin k + j, n + j for bin -k - 1 - j) when j < n, else to the list
+    tail_key / tail_bin; values beyond the slots (or below the limit) to ``unsure``.
+    out = (listed, unsure)."""
+    first_bin, edges = table
+    linear_limit, k_limit = limits[0], int(limits[1])
+    width = tails.shape[1] // 2
+    base = 0x4000000000000000 >> 40  # the slot of 2.0
+    n_listed, n_unsure = 0, 0
+    for t in range(n_tail):
+        i = tail[t]
+        v = dh[i]
+        a = abs(v)
         slot = ((bits[i] & 0x7FFFFFFFFFFFFFFF) >> 40) - base
-        if slot >= first_bin.size:
+        if a < linear_limit or slot >= first_bin.size:
             unsure[n_unsure] = i
             n_unsure += 1
             continue
-        a = abs(v)
         j = first_bin[slot]  # a slot holds at most three edges beyond its first bin's
         j += (a >= edges[j + 1]) + (a >= edges[j + 2]) + (a >= edges[j + 3])
         if j < width:
-            tails[c, j if v > 0 else width + j] += 1
+            tails[keys[i], j if v > 0 else width + j] += 1
         else:
-            tail_key[n_tail] = c
-            tail_bin[n_tail] = k_limit + j if v > 0 else -k_limit - 1 - j
-            n_tail += 1
-    out[0] = n_tail
-    out[1] = n_unsure
-    out[2] = dropped
+            tail_key[n_listed] = keys[i]
+            tail_bin[n_listed] = k_limit + j if v > 0 else -k_limit - 1 - j
+            n_listed += 1
+    out[0], out[1] = n_listed, n_unsure
 
 
 def _deviation_sweep(x, key, mean, residual, squares):  # type: ignore[no-untyped-def]
@@ -294,6 +298,11 @@ def cell_sweep(*args: Any) -> int:
 def key_sweep(*args: Any) -> None:
     """Compiled _key_sweep (same arguments)."""
     _compiled("key_sweep")(*args)
+
+
+def tail_sweep(*args: Any) -> None:
+    """Compiled _tail_sweep (same arguments)."""
+    _compiled("tail_sweep")(*args)
 
 
 def deviation_sweep(*args: Any) -> None:

@@ -21,11 +21,12 @@ from functools import lru_cache
 import numpy as np
 from numpy.typing import NDArray
 
+from demaudit.workers.stats import bins
 from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.tile import kernels
 
-_K = dh_summary._K_LIMIT  # linear bins are -_K .. _K - 1
+_K = bins.K_LIMIT  # linear bins are -_K .. _K - 1
 _WIDTH = 2 * _K + 1  # one column per linear bin, plus one (the last) for values in the tails
 #: Most (cell, bin) counters held at once (int64): larger tiles' cells are counted in groups.
 MAX_COUNTERS = 4_000_000
@@ -156,7 +157,7 @@ def _cell_histograms(
     x: NDArray[np.float64], key: NDArray[np.intp], n_cells: int
 ) -> tuple[tuple[NDArray[np.int64], ...], tuple[tuple[NDArray[np.int64], NDArray[np.int64]], ...]]:
     """Per cell, the counts of the linear bins (dense, column = bin + _K) and the tail bins."""
-    k = dh_summary.bin_index(x)
+    k = bins.bin_index(x)
     column = k + _K
     in_tail = column.view(np.uint64) >= _WIDTH - 1  # negative columns wrap to huge
     (tail,) = np.nonzero(in_tail)
@@ -189,8 +190,8 @@ def _summarise_compiled(
     n_tail = kernels.cell_sweep(
         x,
         key,
-        dh_summary.LINEAR_WIDTH_M,
-        dh_summary.LINEAR_LIMIT_M,
+        bins.LINEAR_WIDTH_M,
+        bins.LINEAR_LIMIT_M,
         _K,
         dense,
         sums,
@@ -200,7 +201,7 @@ def _summarise_compiled(
     )
     tail = tail[:n_tail]
     tail_key = key[tail].astype(np.intp)
-    tail_bin = dh_summary.bin_index(x[tail])
+    tail_bin = bins.bin_index(x[tail])
     return _finish(x, key, (dense, sums, minimum, maximum), tail_key, tail_bin)
 
 
@@ -214,11 +215,12 @@ def summarise_keyed(
     n_cells: int,
     n_patterns: int,
 ) -> tuple[CellSummaries, int] | None:
-    """summarise_cells of dh (metres, NaN = none) with each pixel's cell made on the way, in two
-    compiled sweeps: cell = pattern * n_cells + class code * n_band_codes + band (``codes`` and
-    ``patterns`` on dh's grid, None: all 0); pixels of class code 255 (excluded) are left out and
-    counted (the int returned, finite dh only). None when the compiled loops are not available or
-    the counters would not fit at once (the caller then builds the cells itself)."""
+    """summarise_cells of dh (metres, NaN = none) with each pixel's cell made on the way, in
+    compiled sweeps (keys and linear bins, tail bins, deviations): cell = pattern * n_cells +
+    class code * n_band_codes + band (``codes`` and ``patterns`` on dh's grid, None: all 0).
+    Pixels of class code 255 (excluded) are left out and counted (the int returned, finite dh
+    only). None when the compiled loops are not available or the counters would not fit at once
+    (the caller then builds the cells itself)."""
     total = n_patterns * n_cells
     if not kernels.AVAILABLE or total * _WIDTH > MAX_COUNTERS:
         return None
@@ -232,22 +234,42 @@ def summarise_keyed(
         np.zeros((total, 2 * width), dtype=np.int32),
     )
     key = np.empty(x.size, dtype=np.int32)
-    listed = (np.empty(x.size, dtype=np.int32), np.empty(x.size, dtype=np.int64))
-    unsure = np.empty(x.size, dtype=np.intp)
-    found = np.zeros(3, dtype=np.int64)
+    tail = np.empty(x.size, dtype=np.intp)
+    found = np.zeros(2, dtype=np.int64)
     kernels.key_sweep(
-        x, x.view(np.int64), _flat(bands, np.uint8), _flat(codes, np.uint8),
-        _flat(patterns, np.int32), np.array([n_band_codes, n_cells, width]), _BINNING,
-        tail_table(), *counters, key, *listed, unsure, found,
+        x, _flat(bands, np.uint8), _flat(codes, np.uint8), _flat(patterns, np.int32),
+        np.array([n_band_codes, n_cells]), _BINNING, *counters[:4], key, tail, found,
     )  # fmt: skip
-    n_tail, n_unsure, dropped = (int(v) for v in found)
-    keys_at, bins_at = listed[0][:n_tail].astype(np.intp), listed[1][:n_tail]
-    if n_unsure:  # beyond the slots (or rounding at +-2 m): binned as summary.bin_index bins them
-        unsure = unsure[:n_unsure]
-        keys_at = np.concatenate([keys_at, key[unsure].astype(np.intp)])
-        bins_at = np.concatenate([bins_at, dh_summary.bin_index(x[unsure])])
+    n_tail, dropped = (int(v) for v in found)
+    keys_at, bins_at = _bin_tails(x, key, tail[:n_tail], counters[4])
     summaries = _finish(x, key, counters[:4], keys_at, bins_at, tail_counts=counters[4])
     return summaries, dropped
+
+
+def _bin_tails(
+    x: NDArray[np.float64],
+    key: NDArray[np.int32],
+    tail: NDArray[np.intp],
+    counts: NDArray[np.int32],
+) -> tuple[NDArray[np.intp], NDArray[np.int64]]:
+    """Count the tail values at flat indices ``tail`` on the cells' dense tail counters
+    (kernels.tail_sweep); return the (cell, bin) of those beyond them, unsure ones binned by
+    bins.bin_index."""
+    listed = (np.empty(tail.size, dtype=np.int32), np.empty(tail.size, dtype=np.int64))
+    unsure = np.empty(tail.size, dtype=np.intp)
+    found = np.zeros(2, dtype=np.int64)
+    limits = np.array([bins.LINEAR_LIMIT_M, _K])
+    kernels.tail_sweep(
+        x, x.view(np.int64), key, tail, tail.size, limits, tail_table(), counts, *listed, unsure,
+        found,
+    )  # fmt: skip
+    n_listed, n_unsure = (int(v) for v in found)
+    keys_at, bins_at = listed[0][:n_listed].astype(np.intp), listed[1][:n_listed]
+    if n_unsure:  # beyond the slots (or rounding at +-2 m): binned as bins.bin_index bins them
+        unsure = unsure[:n_unsure]
+        keys_at = np.concatenate([keys_at, key[unsure].astype(np.intp)])
+        bins_at = np.concatenate([bins_at, bins.bin_index(x[unsure])])
+    return keys_at, bins_at
 
 
 def _flat(values: NDArray[np.generic] | None, dtype: type) -> NDArray[np.generic]:
@@ -257,9 +279,7 @@ def _flat(values: NDArray[np.generic] | None, dtype: type) -> NDArray[np.generic
     return np.ascontiguousarray(values, dtype=dtype).reshape(-1)
 
 
-_BINNING = np.array(
-    [dh_summary.LINEAR_WIDTH_M, dh_summary.LINEAR_LIMIT_M, _K, dh_summary._LOG_RATIO]
-)
+_BINNING = np.array([bins.LINEAR_WIDTH_M, bins.LINEAR_LIMIT_M, _K, bins.LOG_RATIO])
 #: Tail bins counted on dense counters per cell and sign (the first this many beyond +-2 m,
 #: i.e. up to about 53 m), as long as all cells' counters stay within MAX_TAIL_COUNTERS.
 TAIL_COLUMNS = 32_768
@@ -273,11 +293,11 @@ _SEARCH_ULPS = (6, 64)
 def tail_table() -> tuple[NDArray[np.int64], NDArray[np.float64]]:
     """For the compiled tail binning: the tail bin j (bin - _K of a positive value) of each
     slot's lowest value, and each bin's exact lower edge in |dh| (then +inf): the smallest
-    float64 that summary.bin_index puts in it, found among the floats next to 2 exp(j r)."""
+    float64 that bins.bin_index puts in it, found among the floats next to 2 exp(j r)."""
     top = np.array([2.0 ** (1 + _SLOT_EXPONENTS)])
     n_bins = int(_tail_j(top)[0]) + 2
     j = np.arange(n_bins)
-    near = (dh_summary.LINEAR_LIMIT_M * np.exp(j * dh_summary._LOG_RATIO)).view(np.int64)
+    near = (bins.LINEAR_LIMIT_M * np.exp(j * bins.LOG_RATIO)).view(np.int64)
     edges = np.full(n_bins + 3, np.inf)  # + inf after the last: j + 3 stays inside
     todo = j
     for ulps in _SEARCH_ULPS:  # most edges lie within a few floats of 2 exp(j r)
@@ -294,9 +314,9 @@ def tail_table() -> tuple[NDArray[np.int64], NDArray[np.float64]]:
 
 
 def _tail_j(a: NDArray[np.float64]) -> NDArray[np.int64]:
-    """floor(log(a / 2 m) / log ratio) for a >= 2 m, as summary.bin_index computes it."""
+    """floor(log(a / 2 m) / log ratio) for a >= 2 m, as bins.bin_index computes it."""
     with np.errstate(divide="ignore", invalid="ignore"):
-        q = np.floor(np.log(a / dh_summary.LINEAR_LIMIT_M) / dh_summary._LOG_RATIO)
+        q = np.floor(np.log(a / bins.LINEAR_LIMIT_M) / bins.LOG_RATIO)
     return np.where(np.isfinite(q), q, -1).astype(np.int64)
 
 

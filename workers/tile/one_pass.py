@@ -58,7 +58,9 @@ def summarise_pixels(
         with_landcover=landcover is not None, classes=classes, slope_edges=slope_edges
     )
     px, py = pixel_size_m
-    bands = slope_bands(reference, slope_edges, pixel_size_x_m=px, pixel_size_y_m=py)
+    bands = slope_bands(
+        reference, slope_edges, pixel_size_x_m=px, pixel_size_y_m=py, in_float64=True
+    )
     codes = None if landcover is None else class_codes(landcover, classes, size=dh.size)
     patterns, members = grid_patterns(region_masks) if kernels.AVAILABLE else (None, [])
     fused = (

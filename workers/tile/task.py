@@ -3,21 +3,23 @@
 This is the function the Dask workers run, once per test tile. It returns a small result (the
 mergeable summaries and a decimated dh overview), never the full-resolution arrays, and it never
 raises for a bad tile: the failure and its reason travel back in the result.
+
+The parts live beside it: records.py (options, result, layers), reference.py (reading and
+aligning the reference), summarise.py (the summaries of a tile's layers); their names are
+importable from here as before.
 """
 
 from __future__ import annotations
 
 import traceback
 from collections.abc import Sequence
-from dataclasses import dataclass, field, replace
+from dataclasses import replace
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from pyproj import CRS
 from rasterio.errors import RasterioError
-from rasterio.warp import transform_bounds
 
 from demaudit.workers.coregistration.tile import (
     Correction,
@@ -37,134 +39,57 @@ from demaudit.workers.inputs.catalog import (
     covered_mask,
     superseded_reason,
 )
-from demaudit.workers.inputs.rasters import read_mosaic, read_tile
+from demaudit.workers.inputs.rasters import read_tile
 from demaudit.workers.inputs.regions import Region, region_mask
-from demaudit.workers.spec import Coregistration, JobSpec, TileSource
-from demaudit.workers.stats import summary as dh_summary
-from demaudit.workers.stats.summary import DhSummary
-from demaudit.workers.tile.align import onto_grid
-from demaudit.workers.tile.datum import DEFAULT_GRID_DIRS, to_metres, vertical_offset_on_grid
-from demaudit.workers.tile.derivative_pass import (
-    DerivativeOptions,
-    TileDerivatives,
-    tile_derivatives,
+from demaudit.workers.tile.difference import difference
+from demaudit.workers.tile.records import (
+    ALL,
+    COREGISTRATION_MARGIN_PX,
+    FAILED,
+    NO_REFERENCE,
+    NO_VALID_PIXELS,
+    OK,
+    Mosaic,
+    TileOptions,
+    TileResult,
+    TileSurfaces,
 )
-from demaudit.workers.tile.difference import block_mean, difference
-from demaudit.workers.tile.grid import Grid
-from demaudit.workers.tile.one_pass import summarise_pixels
-from demaudit.workers.tile.strata import ClassInfo, classes_from_spec, excluded_mask
-from demaudit.workers.uncertainty.error_model import (
-    ErrorModelOptions,
-    TileErrorSample,
-    grid_error_sample,
+from demaudit.workers.tile.reference import (
+    keeps_float32,
+    mosaics_onto,
+    read_mosaics,
+    reference_heights,
+    resampled_onto,
+    test_heights,
 )
+from demaudit.workers.tile.summarise import summarise_tile, without_pixels
 
-OK = "ok"
-FAILED = "failed"
-NO_REFERENCE = "no_reference"
-NO_VALID_PIXELS = "no_valid_pixels"  # set by the runner: a tile with no dh pixel at all
-ALL = "*"  # key of the whole tile among region keys
-
-
-@dataclass(frozen=True)
-class TileOptions:
-    """Everything a worker needs to know about the job, as a frozen, picklable value."""
-
-    test_units: str = "metre"
-    test_vertical_crs: str = "ellipsoidal"
-    test_nodata: float | None = None
-    reference_units: str = "metre"
-    reference_vertical_crs: str = "ellipsoidal"
-    reference_nodata: float | None = None
-    resampling: str = "bilinear"
-    overview_factor: int = 8
-    grid_dirs: tuple[str, ...] = DEFAULT_GRID_DIRS
-    landcover_classes: tuple[ClassInfo, ...] = ()
-    slope_edges_deg: tuple[float, ...] = (0.0, 5.0, 15.0, 30.0, 45.0)
-    coregistration: Coregistration | None = None
-    correction: Correction | None = None  # the job-wide correction, set for the main pass
-    error_model: ErrorModelOptions | None = None  # sample the error model (workers/error_model)
-    derivatives: DerivativeOptions | None = None  # compare derived parameters (derivative_pass)
-
-    @classmethod
-    def from_spec(
-        cls, spec: JobSpec, *, grid_dirs: Sequence[str] = DEFAULT_GRID_DIRS
-    ) -> TileOptions:
-        # no reference (checkpoints only): the defaults of a source (metre, ellipsoidal)
-        reference = spec.reference or TileSource.model_construct(tiles=[])
-        return cls(
-            test_units=spec.test.units,
-            test_vertical_crs=spec.test.vertical_crs,
-            test_nodata=spec.test.nodata,
-            reference_units=reference.units,
-            reference_vertical_crs=reference.vertical_crs,
-            reference_nodata=reference.nodata,
-            resampling=spec.options.resampling,
-            overview_factor=spec.options.overview_factor,
-            grid_dirs=tuple(grid_dirs),
-            landcover_classes=classes_from_spec(spec.landcover.classes) if spec.landcover else (),
-            slope_edges_deg=tuple(spec.strata.slope_bands_deg),
-            coregistration=spec.coregistration,
-            error_model=None
-            if spec.error_model is None
-            else ErrorModelOptions(
-                seed=spec.error_model.seed,
-                samples_per_tile=spec.error_model.samples_per_tile,
-                outlier_rule=spec.outliers.rule,
-                outlier_factor=spec.outliers.factor,
-                overview_factor=spec.options.overview_factor,
-            ),
-            derivatives=DerivativeOptions.from_section(spec.derivatives),
-        )
-
-
-@dataclass(frozen=True, eq=False)
-class TileResult:
-    """What one tile task returns: status, summaries, a decimated overview.
-
-    ``strata`` maps a region id (``ALL`` for the whole tile) to stratum key -> summary.
-    ``excluded`` counts valid dh pixels dropped because their land-cover class is excluded.
-    """
-
-    tile_id: str
-    status: str
-    reason: str | None
-    summary: DhSummary = field(default_factory=dh_summary.empty)
-    regions: dict[str, DhSummary] = field(default_factory=dict)
-    strata: dict[str, dict[str, DhSummary]] = field(default_factory=dict)
-    excluded: int = 0
-    overview: NDArray[np.float32] | None = None
-    reference_tiles: tuple[str, ...] = ()
-    coregistration: dict[str, Any] | None = None
-    corrected: TileResult | None = None
-    summaries_stored: bool = False  # the worker wrote them to the results store (audit_and_store)
-    # with an error model (workers/uncertainty/error_model.py)
-    error_sample: TileErrorSample | None = None
-    derivatives: TileDerivatives | None = None  # with derivatives (workers/tile/derivative_pass)
-
-
-#: With co-registration the reference is read this many test pixels beyond the tile, so that
-#: a correction can resample it onto the shifted grid without reading it again.
-COREGISTRATION_MARGIN_PX = 8
-
-#: A reference mosaic as read (own unit and datum) on its own grid.
-Mosaic = tuple[NDArray[np.float64], Grid]
-
-
-@dataclass(frozen=True, eq=False)
-class TileSurfaces:
-    """The per-pixel layers of one tile on its own grid (metres, test vertical datum).
-
-    ``reference`` is sampled at the test pixels' centres, or at those minus a shift when
-    tile_surfaces was given one; ``mosaics`` are the reference as read (for a later shift), and
-    ``margin_px`` how many test pixels beyond the tile they cover."""
-
-    dh: NDArray[np.float64]
-    reference: NDArray[np.float64]
-    landcover: NDArray[np.float64] | None
-    test: NDArray[np.float64] | None = None
-    mosaics: tuple[Mosaic, ...] = ()
-    margin_px: int = 0
+__all__ = [
+    "ALL",
+    "COREGISTRATION_MARGIN_PX",
+    "FAILED",
+    "NO_REFERENCE",
+    "NO_VALID_PIXELS",
+    "OK",
+    "Mosaic",
+    "TileOptions",
+    "TileResult",
+    "TileSurfaces",
+    "audit_and_store",
+    "audit_tile",
+    "estimate_tile",
+    "estimate_tile_shift",
+    "mosaics_onto",
+    "own_estimate",
+    "read_mosaics",
+    "reference_heights",
+    "resampled_onto",
+    "shifted_reference",
+    "summarise_tile",
+    "tile_surfaces",
+    "with_coregistration",
+    "without_pixels",
+]
 
 
 def audit_tile(
@@ -315,14 +240,6 @@ def own_estimate(test: TileInfo, layers: TileSurfaces, options: TileOptions) -> 
     )
 
 
-def without_pixels(layers: TileSurfaces, hidden: NDArray[np.bool_] | None) -> TileSurfaces:
-    """layers with dh and the test heights set to NaN where ``hidden`` (None: unchanged)."""
-    if hidden is None:
-        return layers
-    test_heights = None if layers.test is None else np.where(hidden, np.nan, layers.test)
-    return replace(layers, dh=np.where(hidden, np.nan, layers.dh), test=test_heights)
-
-
 def estimate_tile_shift(
     test: TileInfo,
     references: Sequence[TileInfo],
@@ -375,63 +292,6 @@ def estimate_tile(
     )
 
 
-def summarise_tile(
-    test: TileInfo,
-    layers: TileSurfaces,
-    regions: Sequence[Region],
-    options: TileOptions,
-    *,
-    reference_tiles: tuple[str, ...] = (),
-    derived: bool = True,
-) -> TileResult:
-    """Summaries of dh for the tile, each region, and each region x stratum (one pass over the
-    valid pixels: workers/tile/one_pass.py); with options.derivatives and ``derived``, the
-    comparison of derived parameters (workers/tile/derivative_pass.py)."""
-    dh = layers.dh
-    px, py = test.grid.pixel_size_m()
-    masks = {r.region_id: region_mask(r, test.grid) for r in regions}
-    found = summarise_pixels(
-        dh,
-        reference=layers.reference,
-        landcover=layers.landcover,
-        region_masks=masks,
-        classes=options.landcover_classes,
-        slope_edges=options.slope_edges_deg,
-        pixel_size_m=(px, py),
-    )
-    dh_valid = dh
-    excluded = None
-    if found.excluded:
-        excluded = excluded_mask(layers.landcover, options.landcover_classes)
-    if excluded is not None:
-        dh_valid = np.where(excluded, np.nan, dh)
-    per_area = found.areas
-    per_stratum = found.strata
-    return TileResult(
-        tile_id=test.tile_id,
-        status=OK,
-        reason=None,
-        summary=per_area.pop(ALL),
-        regions=per_area,
-        strata=per_stratum,
-        excluded=found.excluded,
-        overview=block_mean(dh_valid, options.overview_factor),
-        reference_tiles=reference_tiles,
-        error_sample=grid_error_sample(
-            test.grid, test.tile_id, dh, layers.reference, layers.landcover, masks,
-            options.landcover_classes, options.error_model,
-        ),
-        derivatives=None
-        if options.derivatives is None or layers.test is None or not derived
-        else tile_derivatives(
-            layers.test, layers.reference, landcover=layers.landcover, region_masks=masks,
-            classes=options.landcover_classes, slope_edges=options.slope_edges_deg,
-            pixel_size_m=(px, py), options=options.derivatives,
-            overview_factor=options.overview_factor,
-        ),
-    )
-
-
 def tile_surfaces(
     test: TileInfo,
     references: Sequence[TileInfo],
@@ -445,10 +305,10 @@ def tile_surfaces(
 
     With ``shift`` (only its east_m / north_m are used) the reference is taken at each test
     pixel's centre minus the shift, in the same single resampling (the test is never resampled).
+    With keeps_float32(options), float32 files stay float32 (tile.reference); dh is float64.
     """
-    test_heights = to_metres(
-        read_tile(test, nodata=options.test_nodata, units=options.test_units), options.test_units
-    )
+    as_read = keeps_float32(options) and shift is None
+    heights = test_heights(test, options, keep_float32=as_read)
     grid, margin = test.grid, 0
     if shift is not None:
         grid = reference_grid(test.grid, east_m=shift.east_m, north_m=shift.north_m)
@@ -459,70 +319,17 @@ def tile_surfaces(
         grid.expanded(margin),
         nodata=options.reference_nodata,
         units=options.reference_units,
+        keep_float32=as_read,
     )
     reference = reference_heights(mosaics, grid, options)
     classes = None
     if landcover:
         classes = resampled_onto(landcover, test.grid, resampling="nearest", nodata=None)
     return TileSurfaces(
-        difference(test_heights, reference),
+        difference(heights, reference),
         reference,
         classes,
-        test_heights,
+        heights,
         mosaics=mosaics if margin else (),
         margin_px=margin,
     )
-
-
-def reference_heights(
-    mosaics: Sequence[Mosaic], grid: Grid, options: TileOptions
-) -> NDArray[np.float64]:
-    """The reference mosaics resampled onto grid (the spec's resampling), in metres and in the
-    test's vertical datum (the datum offset evaluated at grid's pixel centres)."""
-    reference = to_metres(
-        mosaics_onto(mosaics, grid, resampling=options.resampling), options.reference_units
-    )
-    offset = vertical_offset_on_grid(
-        grid,
-        from_crs=options.reference_vertical_crs,
-        to_crs=options.test_vertical_crs,
-        grid_dirs=options.grid_dirs,
-    )
-    if offset is not None:
-        reference += offset
-    return reference
-
-
-def resampled_onto(
-    tiles: Sequence[TileInfo], grid: Grid, *, resampling: str, nodata: float | None
-) -> NDArray[np.float64]:
-    """Values of tiles (own unit and datum) resampled onto grid; NaN where none."""
-    return mosaics_onto(read_mosaics(tiles, grid, nodata=nodata), grid, resampling=resampling)
-
-
-def read_mosaics(
-    tiles: Sequence[TileInfo], grid: Grid, *, nodata: float | None, units: str | None = None
-) -> tuple[Mosaic, ...]:
-    """The parts of tiles that cover grid, one mosaic per CRS (own unit and datum). With units
-    (heights, not land cover) each tile's values are checked (rasters.check_heights)."""
-    target_crs = CRS.from_wkt(grid.crs)
-    by_crs: dict[str, list[TileInfo]] = {}
-    for tile in tiles:
-        by_crs.setdefault(tile.grid.crs, []).append(tile)
-    mosaics = []
-    for crs, members in by_crs.items():
-        bounds = transform_bounds(target_crs, CRS.from_wkt(crs), *grid.bounds, densify_pts=21)
-        mosaics.append(read_mosaic(members, bounds, nodata=nodata, units=units))
-    return tuple(mosaics)
-
-
-def mosaics_onto(mosaics: Sequence[Mosaic], grid: Grid, *, resampling: str) -> NDArray[np.float64]:
-    """Mosaics resampled onto grid, the first covering a pixel winning; NaN where none."""
-    if len(mosaics) == 1:  # onto_grid gives a new array: nothing to combine
-        mosaic, mosaic_grid = mosaics[0]
-        return onto_grid(mosaic, mosaic_grid, grid, resampling=resampling)
-    out = np.full(grid.shape, np.nan)
-    for mosaic, mosaic_grid in mosaics:
-        resampled = onto_grid(mosaic, mosaic_grid, grid, resampling=resampling)
-        np.copyto(out, resampled, where=np.isnan(out))
-    return out

@@ -51,6 +51,7 @@ def slope_bands(
     *,
     pixel_size_x_m: float,
     pixel_size_y_m: float,
+    in_float64: bool = False,
 ) -> NDArray[np.uint8]:
     """Slope band of each pixel: ``b`` where ``edges[b] <= slope < edges[b + 1]`` (the last band
     open above), ``len(edges)`` where the slope is NaN or below ``edges[0]``.
@@ -59,7 +60,9 @@ def slope_bands(
     ``np.digitize(slope_degrees(heights), edges) - 1`` on finite slopes, pixel for pixel,
     without the arctangent: the squared gradient is compared with tan(edge)^2, and the
     few pixels within a relative 1e-6 of a threshold are decided by the exact slope_degrees
-    arithmetic. Edges must increase and lie in [0, 90] degrees.
+    arithmetic. Edges must increase and lie in [0, 90] degrees. With ``in_float64``, float32
+    heights get the bands of the float64 values they hold (``heights.astype(np.float64)``)
+    without that copy.
     """
     edge_arr = np.asarray(edges, dtype=np.float64)
     if edge_arr.size == 0 or edge_arr[0] < 0 or edge_arr[-1] > 90 or np.any(np.diff(edge_arr) <= 0):
@@ -67,7 +70,10 @@ def slope_bands(
     none = np.uint8(edge_arr.size)
     if min(heights.shape) < 2:
         return np.full(heights.shape, none, dtype=np.uint8)
-    margin = _MARGIN if heights.dtype != np.float32 else _MARGIN_FLOAT32
+    wide = in_float64 or heights.dtype != np.float32
+    if wide and heights.dtype == np.float32 and not kernels.AVAILABLE:
+        heights = heights.astype(np.float64)  # the numpy path subtracts in the input's type
+    margin = _MARGIN if wide else _MARGIN_FLOAT32
     t2 = np.tan(np.radians(edge_arr)) ** 2
     lower, upper = t2 * (1 - margin), t2 * (1 + margin)
     if kernels.AVAILABLE and heights.dtype in (np.float32, np.float64):
@@ -78,7 +84,7 @@ def slope_bands(
     else:
         bands, close = _bands_numpy(heights, lower, upper, none, pixel_size_x_m, pixel_size_y_m)
     if close.size:
-        exact = _exact_slope_at(heights, close, pixel_size_x_m, pixel_size_y_m)
+        exact = _exact_slope_at(heights, close, pixel_size_x_m, pixel_size_y_m, wide=wide)
         counted = np.zeros(close.size, dtype=np.int16)
         for edge in edge_arr:
             counted += exact >= edge
@@ -140,14 +146,16 @@ def _squared_gradient(heights: NDArray[np.floating], px: float, py: float) -> ND
 
 
 def _exact_slope_at(
-    heights: NDArray[np.floating], flat: NDArray[np.intp], px: float, py: float
+    heights: NDArray[np.floating], flat: NDArray[np.intp], px: float, py: float, *, wide: bool
 ) -> NDArray[np.float64]:
-    """slope_degrees at the flat indices given, with np.gradient's arithmetic."""
+    """slope_degrees at the flat indices given, with np.gradient's arithmetic (in float64 when
+    ``wide``, else in the heights' own float type)."""
     rows, cols = heights.shape
     r, c = np.divmod(flat, cols)
     z = heights if np.issubdtype(heights.dtype, np.floating) else heights.astype(np.float64)
-    de = _one_axis(z, r, c, axis=1, n=cols, step=px)
-    dn = _one_axis(z, r, c, axis=0, n=rows, step=py)
+    as_type = np.float64 if wide else z.dtype
+    de = _one_axis(z, r, c, axis=1, n=cols, step=px, as_type=as_type)
+    dn = _one_axis(z, r, c, axis=0, n=rows, step=py, as_type=as_type)
     return np.degrees(np.arctan(np.hypot(de, dn)))  # type: ignore[no-any-return]
 
 
@@ -159,6 +167,7 @@ def _one_axis(
     axis: int,
     n: int,
     step: float,
+    as_type: type | np.dtype,
 ) -> NDArray[np.floating]:
     """np.gradient along one axis at (r, c): (z[+1] - z[-1]) / (2 step) inside, one-sided at
     the edges."""
@@ -167,9 +176,9 @@ def _one_axis(
     hi = np.minimum(i + 1, n - 1)
     at_hi = (r, hi) if axis == 1 else (hi, c)
     at_lo = (r, lo) if axis == 1 else (lo, c)
-    diff = z[at_hi] - z[at_lo]
+    diff = z[at_hi].astype(as_type) - z[at_lo].astype(as_type)
     inside = (i > 0) & (i < n - 1)
-    out = np.empty(diff.shape, dtype=z.dtype)  # np.gradient's output type, then its cast
+    out = np.empty(diff.shape, dtype=as_type)  # np.gradient's output type, then its cast
     out[inside] = diff[inside] / (2.0 * step)
     out[~inside] = diff[~inside] / step
     return out

@@ -7,6 +7,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from demaudit.workers.stats import bins
 from demaudit.workers.stats import summary as dhs
 from demaudit.workers.tile import kernels, keyed_summary
 
@@ -77,12 +78,12 @@ def test_tail_table_edges_are_bin_index_edges() -> None:
     first, edges = keyed_summary.tail_table()
     lower = edges[np.isfinite(edges)]
     j = np.arange(lower.size)
-    np.testing.assert_array_equal(dhs.bin_index(lower), dhs._K_LIMIT + j)
+    np.testing.assert_array_equal(bins.bin_index(lower), bins.K_LIMIT + j)
     below = np.nextafter(lower[1:], 0)
-    np.testing.assert_array_equal(dhs.bin_index(below), dhs._K_LIMIT + j[1:] - 1)
+    np.testing.assert_array_equal(bins.bin_index(below), bins.K_LIMIT + j[1:] - 1)
     slots = np.arange(first.size, dtype=np.int64)
     lowest = ((slots + (0x4000000000000000 >> 40)) << 40).view(np.float64)
-    np.testing.assert_array_equal(first, dhs.bin_index(lowest) - dhs._K_LIMIT)
+    np.testing.assert_array_equal(first, bins.bin_index(lowest) - bins.K_LIMIT)
 
 
 def test_fused_sweep_declines_what_it_cannot_count(monkeypatch: pytest.MonkeyPatch) -> None:
