@@ -60,30 +60,34 @@ def split_after(entries: dict[Key, DhSummary]) -> tuple[dict[Key, DhSummary], di
     return own, after
 
 
+def open_store_group(zarr_path: Path, name: str, *, mode: Literal["r", "a"]) -> Any:
+    """A group of per-tile records at the root of a results.zarr, opened without consolidated
+    metadata: made when missing in mode 'a', KeyError when missing in mode 'r'."""
+    root: Any = zarr.open_group(
+        str(zarr_path),
+        mode=mode,
+        zarr_format=3 if mode == "a" else None,
+        use_consolidated=False,
+    )
+    return root.require_group(name) if mode == "a" else root[name]
+
+
 class TileSummaryStore:
     """The ``tile_summaries`` group of one results.zarr, opened once (mode 'r' or 'a')."""
 
     def __init__(self, zarr_path: Path, *, mode: Literal["r", "a"] = "r") -> None:
         self.zarr_path = Path(zarr_path)
-        root: Any = zarr.open_group(
-            str(zarr_path),
-            mode=mode,
-            zarr_format=3 if mode == "a" else None,
-            use_consolidated=False,
-        )
-        self._parent: Any = (
-            root.require_group(TILE_SUMMARIES_GROUP) if mode == "a" else root[TILE_SUMMARIES_GROUP]
-        )
+        self._parent: Any = open_store_group(zarr_path, TILE_SUMMARIES_GROUP, mode=mode)
 
     def write(self, tile_id: str, entries: dict[Key, DhSummary], *, excluded: int = 0) -> None:
         """Write (replace) one tile's summaries."""
         group = self._parent.create_group(tile_id, overwrite=True)
-        _write_entries(group, entries, {"excluded": int(excluded)})
+        write_entries(group, entries, {"excluded": int(excluded)})
 
     def read(self, tile_id: str) -> tuple[dict[Key, DhSummary], int]:
         """A tile's summaries and its excluded-pixel count (KeyError when not stored)."""
         group = self._parent[tile_id]
-        entries, attrs = _read_entries(group)
+        entries, attrs = read_entries(group)
         return entries, int(attrs.get("excluded", 0))
 
     def has(self, tile_id: str) -> bool:
@@ -108,7 +112,7 @@ def write_job_totals(zarr_path: Path, part: str, acc: JobAccumulator) -> None:
     root: Any = zarr.open_group(str(zarr_path), mode="a", zarr_format=3, use_consolidated=False)
     group = root.require_group(JOB_SUMMARIES_GROUP).create_group(part, overwrite=True)
     table = acc.extremes().to_arrays()
-    _write_entries(group, acc.totals(), {"excluded": int(acc.excluded)})
+    write_entries(group, acc.totals(), {"excluded": int(acc.excluded)})
     for name in ("tile", "key", "values"):
         data = np.asarray(table[name])
         group.create_array(
@@ -127,7 +131,7 @@ def read_job_totals(zarr_path: Path, part: str, region_ids: list[str]) -> JobAcc
         group = root[JOB_SUMMARIES_GROUP][part]
     except (KeyError, FileNotFoundError):
         return None
-    totals, attrs = _read_entries(group)
+    totals, attrs = read_entries(group)
     for key, s in totals.items():
         if int(s.counts.sum()) != s.count:
             raise ValueError(f"stored job totals of {key} do not add up")
@@ -143,7 +147,7 @@ def read_job_totals(zarr_path: Path, part: str, region_ids: list[str]) -> JobAcc
     )
 
 
-def _write_entries(group: Any, entries: dict[Key, DhSummary], attrs: dict[str, Any]) -> None:
+def write_entries(group: Any, entries: dict[Key, DhSummary], attrs: dict[str, Any]) -> None:
     """Histograms concatenated in two arrays; moments and slices in the attribute entries."""
     records: list[dict[str, Any]] = []
     offset = 0
@@ -170,7 +174,7 @@ def _write_entries(group: Any, entries: dict[Key, DhSummary], attrs: dict[str, A
     group.attrs.update({"entries": records, **attrs})
 
 
-def _read_entries(group: Any) -> tuple[dict[Key, DhSummary], dict[str, Any]]:
+def read_entries(group: Any) -> tuple[dict[Key, DhSummary], dict[str, Any]]:
     bins = np.asarray(group["bins"][:], dtype=np.int64)
     counts = np.asarray(group["counts"][:], dtype=np.int64)
     out: dict[Key, DhSummary] = {}

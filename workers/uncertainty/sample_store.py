@@ -19,12 +19,11 @@ from pathlib import Path
 from typing import Any, Literal
 
 import numpy as np
-import zarr
 from numpy.typing import NDArray
 
 from demaudit.workers.outputs.folder import link_or_copy
 from demaudit.workers.outputs.layout import ERROR_SAMPLES_GROUP
-from demaudit.workers.outputs.summary_store import _read_entries, _write_entries
+from demaudit.workers.outputs.summary_store import open_store_group, read_entries, write_entries
 from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.uncertainty.accumulate import ErrorModelAccumulator
 from demaudit.workers.uncertainty.sample import ErrorModelOptions, TileErrorSample
@@ -39,13 +38,7 @@ class ErrorSampleStore:
 
     def __init__(self, zarr_path: Path, *, mode: Literal["r", "a"] = "r") -> None:
         self.zarr_path = Path(zarr_path)
-        root: Any = zarr.open_group(
-            str(zarr_path),
-            mode=mode,
-            zarr_format=3 if mode == "a" else None,
-            use_consolidated=False,
-        )
-        self._parent: Any = root.require_group(GROUP) if mode == "a" else root[GROUP]
+        self._parent: Any = open_store_group(zarr_path, GROUP, mode=mode)
 
     def write(
         self, tile_id: str, part: str, sample: TileErrorSample, options: ErrorModelOptions
@@ -57,7 +50,7 @@ class ErrorSampleStore:
             for kind, bins in zip(KINDS, _bins_of(sample), strict=True)
             for k, s in bins.items()
         }
-        _write_entries(group, entries, _attributes(sample, options))
+        write_entries(group, entries, _attributes(sample, options))
         points = np.column_stack(
             [sample.priority, sample.x, sample.y, sample.dh, sample.slope_deg, sample.curvature]
         )
@@ -74,7 +67,7 @@ class ErrorSampleStore:
     def read(self, tile_id: str, part: str) -> TileErrorSample:
         """One tile's sample (KeyError when not stored)."""
         group = self._parent[tile_id][part]
-        entries, attrs = _read_entries(group)
+        entries, attrs = read_entries(group)
         bins: dict[str, dict[int, DhSummary]] = {kind: {} for kind in KINDS}
         for (kind, key), s in entries.items():
             bins[kind][int(key)] = s
