@@ -16,14 +16,13 @@ from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
-import dask.array as da
 import numpy as np
 import rioxarray  # noqa: F401 - registers the .rio accessor
 import xarray as xr
 import zarr
 
 from demaudit.workers.outputs.layout import DERIVATIVES_OVERVIEW_GROUP
-from demaudit.workers.outputs.writers import OverviewLayout
+from demaudit.workers.outputs.writers import OverviewLayout, blank_overview, overview_axes
 from demaudit.workers.stats.derivatives_merge import (
     DerivativesAccumulator,
     derivative_cautions,
@@ -124,17 +123,10 @@ def _create(store_path: Path, layout: OverviewLayout, parameters: Sequence[str])
     """The empty group: one NaN-filled variable per parameter, georeferenced like dh_overview."""
     from affine import Affine
 
-    a, _, c, _, e, f = layout.transform
-    x = c + a * (np.arange(layout.width, dtype=np.float64) + 0.5)
-    y = f + e * (np.arange(layout.height, dtype=np.float64) + 0.5)
+    x, y = overview_axes(layout)
     variables = {}
     for name in parameters:
-        blank = da.full(
-            (layout.height, layout.width),
-            np.nan,
-            dtype=np.float32,
-            chunks=(layout.tile_block, layout.tile_block),
-        )
+        blank = blank_overview(layout)
         variable = xr.DataArray(blank, dims=("y", "x"), coords={"y": y, "x": x}, name=name)
         variable.attrs.update(
             long_name=f"{name}, test minus reference (block mean)", units=UNITS[name]

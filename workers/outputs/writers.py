@@ -93,6 +93,25 @@ def overview_layout(tiles: Sequence[TileInfo], *, factor: int) -> OverviewLayout
     )
 
 
+def overview_axes(layout: OverviewLayout) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+    """Cell-centre x (one per column) and y (one per row) of the overview grid, in its CRS."""
+    a, _, c, _, e, f = layout.transform
+    x = c + a * (np.arange(layout.width, dtype=np.float64) + 0.5)
+    y = f + e * (np.arange(layout.height, dtype=np.float64) + 0.5)
+    return x.astype(np.float64), y.astype(np.float64)
+
+
+def blank_overview(layout: OverviewLayout) -> da.Array:
+    """A NaN overview (float32, lazy), chunked one tile block a chunk so that each tile's block
+    is written alone."""
+    return da.full(
+        (layout.height, layout.width),
+        np.nan,
+        dtype=np.float32,
+        chunks=(layout.tile_block, layout.tile_block),
+    )
+
+
 @contextmanager
 def _quiet_zarr() -> Iterator[None]:
     with warnings.catch_warnings():
@@ -119,13 +138,8 @@ class ResultsStore:
             self._create_overview(layout)
 
     def _create_overview(self, layout: OverviewLayout) -> None:
-        x, y = self._overview_coords()
-        blank = da.full(
-            (layout.height, layout.width),
-            np.nan,
-            dtype=np.float32,
-            chunks=(layout.tile_block, layout.tile_block),
-        )
+        x, y = overview_axes(layout)
+        blank = blank_overview(layout)
         dh = xr.DataArray(blank, dims=("y", "x"), coords={"y": y, "x": x}, name=OVERVIEW_ARRAY)
         dh.attrs.update(long_name="dh, test minus reference (block mean)", units="m")
         dh = dh.rio.write_crs(layout.crs).rio.write_transform(_affine(layout.transform))
@@ -171,7 +185,7 @@ class ResultsStore:
         except (KeyError, FileNotFoundError, OSError):
             return
         new = self._overview()
-        x, y = self._overview_coords()
+        x, y = overview_axes(self.layout)
         if (
             old.shape == new.shape
             and old.chunks == new.chunks
@@ -203,13 +217,6 @@ class ResultsStore:
                 str(self.path / OVERVIEW_GROUP / OVERVIEW_ARRAY), mode="r+", use_consolidated=False
             )
         return self._overview_array
-
-    def _overview_coords(self) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-        assert self.layout is not None
-        a, _, c, _, e, f = self.layout.transform
-        x = c + a * (np.arange(self.layout.width, dtype=np.float64) + 0.5)
-        y = f + e * (np.arange(self.layout.height, dtype=np.float64) + 0.5)
-        return x.astype(np.float64), y.astype(np.float64)
 
     def finish(self) -> None:
         """Consolidate the metadata and put the store in place of any earlier results.zarr.
