@@ -1,9 +1,9 @@
 """Confined reading: a job reads only files inside the data roots, checked on the open file.
 
-A spec's paths are checked when the job is accepted (workers/spec/resolution.py), but files change after
-that: a tile or a region file swapped for a symlink leading out of the roots must not be read.
-So every file a job reads (tiles, reference, land cover, regions, checkpoints) is opened here, and
-the check is made on the file the kernel opened, not on a second lookup of its name::
+A spec's paths are checked when the job is accepted (workers/spec/resolution.py), but files
+change after that: a tile or a region file swapped for a symlink leading out of the roots must not
+be read. So every file a job reads (tiles, reference, land cover, regions, checkpoints) is opened
+here, and the check is made on the file the kernel opened, not on a second lookup of its name::
 
     os.open(name, O_RDONLY | O_NONBLOCK)   a FIFO or a device never blocks the open
       ├─ fstat: a regular file only
