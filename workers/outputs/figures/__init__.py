@@ -16,7 +16,7 @@ later on a results folder.
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from pathlib import Path
 from typing import Any
 
@@ -49,6 +49,7 @@ __all__ = [
     "PNG_OPTIONS",
     "Drawn",
     "FigureContext",
+    "draw_figures",
     "overview_crs",
     "read_overview",
     "stored_totals",
@@ -111,8 +112,17 @@ def write_figures(
         crs or overview_crs(Path(out_dir)),
         log_counts,
     )
+    return draw_figures(ctx)
+
+
+def draw_figures(
+    ctx: FigureContext, keep: Callable[[str], bool] = lambda name: True
+) -> dict[str, dict[str, Any]]:
+    """Draw and write the figures of BUILDERS whose names keep() accepts, in their order."""
     written: dict[str, dict[str, Any]] = {}
     for name, build in BUILDERS:
+        if not keep(name) or not ctx.out_dir.is_dir():  # the folder goes when a job fails
+            continue
         drawn = build(ctx)
         if drawn is None:
             continue
