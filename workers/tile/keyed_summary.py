@@ -102,8 +102,7 @@ class CellSummaries:
         tail_bins = np.concatenate([self.tails[c][0] for c in cells])
         tail_counts = np.concatenate([self.tails[c][1] for c in cells])
         if len(cells) > 1 and tail_bins.size:
-            tail_bins, where = np.unique(tail_bins, return_inverse=True)
-            tail_counts = np.bincount(where, weights=tail_counts).astype(np.int64)
+            return _added_runs(tail_bins, tail_counts)
         return tail_bins.astype(np.int64), tail_counts.astype(np.int64)
 
     def _histogram(self, cells: list[int]) -> tuple[NDArray[np.int32], NDArray[np.int64]]:
@@ -111,10 +110,25 @@ class CellSummaries:
         (columns,) = np.nonzero(dense)
         linear_counts = dense[columns]
         tail_bins, tail_counts = self._tails(cells)
-        bins = np.concatenate([columns - _K, tail_bins]).astype(np.int32)
-        counts = np.concatenate([linear_counts, tail_counts]).astype(np.int64)
-        order = np.argsort(bins, kind="stable")
-        return bins[order], counts[order]
+        below = int(np.searchsorted(tail_bins, 0))  # tail bins lie below or above the linear ones
+        bins = np.concatenate([tail_bins[:below], columns - _K, tail_bins[below:]])
+        counts = np.concatenate([tail_counts[:below], linear_counts, tail_counts[below:]])
+        return bins.astype(np.int32), counts.astype(np.int64)
+
+
+def _added_runs(
+    bins: NDArray[np.integer], counts: NDArray[np.integer]
+) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+    """Sorted distinct bins and their summed counts: on one dense counter over the bins' span
+    when it is small enough, else by sorting."""
+    low = int(bins.min())
+    span = int(bins.max()) - low + 1
+    if span <= MAX_COUNTERS:
+        summed = np.bincount(bins - low, weights=counts, minlength=span)
+        (present,) = np.nonzero(summed)
+        return (present + low).astype(np.int64), summed[present].astype(np.int64)
+    distinct, where = np.unique(bins, return_inverse=True)
+    return distinct.astype(np.int64), np.bincount(where, weights=counts).astype(np.int64)
 
 
 def summarise_cells(
@@ -366,8 +380,7 @@ def _with_dense_tails(
     bins = np.concatenate([-_K - 1 - neg, listed[0], _K + pos]).astype(np.int64)
     counts = np.concatenate([row[width + neg], listed[1], row[pos]]).astype(np.int64)
     if listed[0].size and (neg.size or pos.size):  # listed bins may be any: add and sort
-        bins, where = np.unique(bins, return_inverse=True)
-        counts = np.bincount(where, weights=counts).astype(np.int64)
+        return _added_runs(bins, counts)
     return bins, counts
 
 

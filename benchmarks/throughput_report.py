@@ -1,0 +1,225 @@
+"""Reporting for the throughput benchmark (bench_throughput.py): the phases of one tile timed in
+this process, marginal throughputs, and the printed table."""
+
+from __future__ import annotations
+
+import datetime as dt
+import math
+import os
+import platform
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import rasterio
+from throughput_archives import REPROJECTED, SAME_GRID
+
+REPEATS = 3
+
+
+@dataclass
+class Run:
+    contender: str
+    kind: str
+    size: int
+    pixels: int
+    seconds: float
+    peak_mib: float
+    output: str = ""
+    load: float = 0.0
+    ok: bool = True  # a failed run (exit status not 0) counts in no figure
+
+
+# -- phases of one tile -------------------------------------------------------------------------
+
+
+def best_of(fn: Callable[[], Any]) -> tuple[float, Any]:
+    best, value = math.inf, None
+    for _ in range(REPEATS):
+        started = time.perf_counter()
+        value = fn()
+        best = min(best, time.perf_counter() - started)
+    return best, value
+
+
+def phases(spec_path: Path) -> list[tuple[str, float]]:
+    """Seconds per phase of the first test tile, calling the worker functions directly (as
+    task.tile_surfaces and audit_tile call them: float32 kept when the options allow)."""
+    from demaudit.workers.tile import reference as ref_side
+    from demaudit.workers.tile import task as tile_task
+    from demaudit.workers.tile.datum import vertical_offset_on_grid
+    from demaudit.workers.tile.difference import block_mean, difference
+
+    test, refs, regions, options = _first_tile(spec_path)
+    keep = ref_side.keeps_float32(options)
+    out: list[tuple[str, float]] = []
+    seconds, heights = best_of(lambda: ref_side.test_heights(test, options, keep_float32=keep))
+    out.append(("read test tile", seconds))
+    seconds, mosaics = best_of(
+        lambda: ref_side.read_mosaics(
+            refs, test.grid, nodata=None, units=options.reference_units, keep_float32=keep
+        )
+    )
+    out.append((f"read reference ({len(refs)} tile(s))", seconds))
+    seconds, aligned = best_of(
+        lambda: ref_side.mosaics_onto(mosaics, test.grid, resampling=options.resampling)
+    )
+    out.append(("align (warp onto the test grid)", seconds))
+    seconds, offset = best_of(
+        lambda: vertical_offset_on_grid(
+            test.grid,
+            from_crs=options.reference_vertical_crs,
+            to_crs=options.test_vertical_crs,
+            grid_dirs=options.grid_dirs,
+        )
+    )
+    out.append(("datum (geoid offset)", seconds))
+    reference = aligned if offset is None else aligned + offset
+    seconds, dh = best_of(lambda: difference(heights, reference))
+    out.append(("difference", seconds))
+    layers = tile_task.TileSurfaces(dh, reference, None, heights)
+    seconds, _ = best_of(lambda: tile_task.summarise_tile(test, layers, regions, options))
+    out.append(("slope, strata, summaries, overview (summarise_tile)", seconds))
+    seconds, _ = best_of(lambda: block_mean(dh, options.overview_factor))
+    out.append(("  of which overview (block mean)", seconds))
+    seconds, _ = best_of(lambda: tile_task.audit_tile(test, refs, regions, options))
+    out.append(("whole audit_tile", seconds))
+    return out
+
+
+def _first_tile(spec_path: Path) -> tuple[Any, list[Any], list[Any], Any]:
+    """The job's first test tile, its reference tiles, its regions and the tile options."""
+    from demaudit.workers import spec as job_spec
+    from demaudit.workers.inputs import regions as region_ops
+    from demaudit.workers.inputs.catalog import TileIndex, TileInfo, scan_tile
+    from demaudit.workers.tile import task as tile_task
+
+    job = job_spec.resolve(
+        job_spec.parse_spec(job_spec.load_spec_file(spec_path)), base_dir=spec_path.parent
+    )
+    options = tile_task.TileOptions.from_spec(job.spec)
+    test = scan_tile(job.test_tiles[0])
+    references = [s for s in (scan_tile(p) for p in job.reference_tiles) if isinstance(s, TileInfo)]
+    assert isinstance(test, TileInfo)
+    refs = TileIndex(references).overlapping(test.grid)
+    regions: list[Any] = []
+    if job.region_file is not None and job.spec.region is not None:
+        regions = region_ops.read_regions(job.region_file, id_property=job.spec.region.id_property)
+        regions = region_ops.clip_to(region_ops.to_crs(regions, test.grid.crs), test.bounds)
+    return test, refs, regions, options
+
+
+# -- report -------------------------------------------------------------------------------------
+
+
+@dataclass
+class Marginal:
+    mpix_s: float
+    peaks: tuple[float, float]
+
+
+def marginal(runs: Sequence[Run], contender: str, kind: str) -> Marginal | None:
+    """Extra pixels / extra seconds between the two sizes, each size's fastest completed run
+    (with --repeat, the one least slowed by other processes)."""
+    mine = [r for r in runs if r.contender == contender and r.kind == kind and r.ok]
+    sizes = sorted({r.size for r in mine})
+    if len(sizes) < 2:
+        return None
+    small = min((r for r in mine if r.size == sizes[0]), key=lambda r: r.seconds)
+    big = min((r for r in mine if r.size == sizes[-1]), key=lambda r: r.seconds)
+    if big.seconds <= small.seconds:
+        return None
+    return Marginal(
+        (big.pixels - small.pixels) / (big.seconds - small.seconds) / 1e6,
+        (small.peak_mib, big.peak_mib),
+    )
+
+
+def machine_facts() -> list[str]:
+    with open("/proc/meminfo") as fh:
+        total_kib = int(fh.readline().split()[1])
+    return [
+        f"cores: {os.cpu_count()}, memory {total_kib / 2**20:.1f} GiB, python "
+        f"{platform.python_version()}, numpy {np.__version__}, rasterio {rasterio.__version__}",
+        "load average (1/5/15 min): " + ", ".join(f"{v:.2f}" for v in os.getloadavg()),
+    ]
+
+
+def report(
+    runs: Sequence[Run],
+    sizes: Sequence[int],
+    pixels: int,
+    phase_table: dict[str, list[tuple[str, float]]],
+    command: str,
+) -> str:
+    lines = [
+        "=" * 100,
+        f"demaudit throughput benchmark, {dt.datetime.now(dt.UTC).isoformat(timespec='seconds')}",
+        f"command: {command}",
+    ]
+    lines += machine_facts()
+    lines.append(
+        f"sizes: {sizes[0]} and {sizes[1]} test tiles of {pixels} x {pixels} px; "
+        "marginal = extra pixels / extra seconds (each size's fastest run)"
+    )
+    lines += ["", *contender_table(runs), "", *ratio_lines(runs)]
+    for kind, table in phase_table.items():
+        lines.append("")
+        lines.append(
+            f"phases of one {pixels} px tile, {kind} (best of {REPEATS}, this process, seconds):"
+        )
+        for name, seconds in table:
+            lines.append(f"  {name:<52}{seconds:8.3f}")
+    naive_out = [r for r in runs if r.contender == "naive" and r.output.strip()]
+    if naive_out:
+        lines.append("")
+        lines.append("naive script's overall figures (a sanity check against summary.json):")
+        for r in naive_out:
+            lines.append(f"  {r.kind} {r.size} tiles: {r.output.strip()}")
+    lines.append("=" * 100)
+    return "\n".join(lines)
+
+
+def contender_table(runs: Sequence[Run]) -> list[str]:
+    """One row per archive and contender: marginal throughput, peaks, every run's seconds and
+    the 1-minute load average at its end."""
+    lines = [
+        f"{'archive':<13}{'contender':<14}{'marginal Mpix/s':>16}"
+        f"{'peak MiB small -> large':>26}   {'seconds small / large (load 1 min)'}"
+    ]
+    for kind in (SAME_GRID, REPROJECTED):
+        for contender in ("decode", "decode+warp", "naive", "demaudit-w2", "demaudit-w1"):
+            mine = sorted(
+                (r for r in runs if r.contender == contender and r.kind == kind),
+                key=lambda r: r.size,
+            )
+            if not mine:
+                continue
+            m = marginal(runs, contender, kind)
+            rate = f"{m.mpix_s:.2f}" if m else "n/a"
+            if not all(r.ok for r in mine):
+                rate += " (FAILED runs left out)" if m else " FAILED"
+            peaks = f"{mine[0].peak_mib:,.0f} -> {mine[-1].peak_mib:,.0f}"
+            secs = " / ".join(f"{r.seconds:.1f} ({r.load:.1f})" for r in mine)
+            lines.append(f"{kind:<13}{contender:<14}{rate:>16}{peaks:>26}   {secs}")
+    return lines
+
+
+def ratio_lines(runs: Sequence[Run]) -> list[str]:
+    """demaudit (2 workers) against the limit and the naive script; 2 workers against 1."""
+    lines = []
+    for kind, limit in ((SAME_GRID, "decode"), (REPROJECTED, "decode+warp")):
+        d2, d1 = marginal(runs, "demaudit-w2", kind), marginal(runs, "demaudit-w1", kind)
+        lim, naive = marginal(runs, limit, kind), marginal(runs, "naive", kind)
+        parts = [f"{kind}:"]
+        if d2 and lim:
+            parts.append(f"demaudit/{limit} {d2.mpix_s / lim.mpix_s:.2f}")
+        if d2 and naive:
+            parts.append(f"demaudit/naive {d2.mpix_s / naive.mpix_s:.2f}")
+        if d2 and d1:
+            parts.append(f"2 workers / 1 worker {d2.mpix_s / d1.mpix_s:.2f}")
+        lines.append("  ".join(parts))
+    return lines
