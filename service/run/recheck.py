@@ -1,5 +1,5 @@
-"""Re-check against a baseline run: plan which tiles to recompute, bring the others' results
-back from the baseline's results.zarr, and report what changed."""
+"""Re-check against a baseline run: read the baseline's folder (``Baseline``) and the job totals
+of the tiles it keeps; the plan and the change report are pure (workers/recheck/baseline.py)."""
 
 from __future__ import annotations
 
@@ -12,6 +12,7 @@ from typing import Any
 
 from demaudit.workers.errors import SpecError
 from demaudit.workers.inputs.catalog import TileInfo, headers_checked, tiles_from_catalog
+from demaudit.workers.outputs.layout import CATALOG_NAME, SUMMARY_NAME, ZARR_NAME
 from demaudit.workers.outputs.summary_store import (
     AFTER_PART,
     ALL_PART,
@@ -20,21 +21,11 @@ from demaudit.workers.outputs.summary_store import (
     read_job_totals,
     split_after,
 )
-from demaudit.workers.outputs.writers import SUMMARY_NAME, ZARR_NAME
-from demaudit.workers.recheck.plan import ChangePlan, Thresholds, compare, lost_grades, plan
+from demaudit.workers.outputs.tile_records import TileRecord
+from demaudit.workers.recheck.baseline import change_plan, tile_records
+from demaudit.workers.recheck.baseline import change_report as report_of
+from demaudit.workers.recheck.plan import ChangePlan, Thresholds
 from demaudit.workers.stats.merge import JobAccumulator
-from demaudit.workers.tile.task import OK
-
-#: Spec sections whose change forces every tile to be recomputed.
-_PROCESSING_KEYS = (
-    "test",
-    "reference",
-    "region",
-    "landcover",
-    "strata",
-    "options",
-    "coregistration",
-)
 
 
 @dataclass(frozen=True)
@@ -49,14 +40,14 @@ class Baseline:
         return self.folder / ZARR_NAME
 
     @cached_property
-    def tiles(self) -> dict[str, dict[str, Any]]:
-        return {t["tile"]: t for t in self.document.get("tiles", [])}
+    def tiles(self) -> dict[str, TileRecord]:
+        return tile_records(self.document)
 
     @cached_property
     def catalog(self) -> dict[str, TileInfo]:
         """Path -> TileInfo of the baseline's scan (empty when it wrote no catalog.json)."""
         try:
-            doc = json.loads((self.folder / "catalog.json").read_text(encoding="utf-8"))
+            doc = json.loads((self.folder / CATALOG_NAME).read_text(encoding="utf-8"))
         except (OSError, json.JSONDecodeError):
             return {}
         return tiles_from_catalog(doc)
@@ -66,7 +57,7 @@ class Baseline:
         """Whether the baseline's catalog passed today's header checks (else headers are opened
         again; fingerprints of unchanged files are still reused)."""
         try:
-            doc = json.loads((self.folder / "catalog.json").read_text(encoding="utf-8"))
+            doc = json.loads((self.folder / CATALOG_NAME).read_text(encoding="utf-8"))
         except (OSError, json.JSONDecodeError):
             return False
         return headers_checked(doc)
@@ -100,37 +91,16 @@ def make_plan(
     *,
     region_fingerprint: str | None = None,
 ) -> ChangePlan:
-    """The change plan; every tile is recomputed when the processing part of the spec, or the
-    content of the region file, changed."""
+    """The change plan (workers/recheck/baseline.py: change_plan) of the tests against it."""
     current = {t.tile_id: t.fingerprint for t in tests}
-    before = baseline.document.get("job", {}).get("spec", {})
-    changed = [
-        k for k in _PROCESSING_KEYS if _canonical(before.get(k)) != _canonical(spec_dump.get(k))
-    ]
-    if baseline.document.get("job", {}).get("region_fingerprint") != region_fingerprint:
-        changed.append("region file content")
-    if changed:
-        return ChangePlan(
-            recompute={t: f"job spec changed ({', '.join(changed)})" for t in current},
-            added=tuple(t for t in current if t not in baseline.tiles),
-            removed=tuple(sorted(t for t in baseline.tiles if t not in current)),
-        )
-    return plan(
-        baseline_tiles=baseline.tiles,
-        baseline_sources=baseline.document.get("sources", {}),
-        current_tiles=current,
-        current_sources=sources,
-        overlaps=overlaps,
+    return change_plan(
+        baseline.document,
+        spec_dump,
+        current,
+        sources,
+        overlaps,
+        region_fingerprint=region_fingerprint,
     )
-
-
-def known_shifts(baseline: Baseline, change: ChangePlan) -> dict[str, dict[str, Any]]:
-    """The baseline's per-tile co-registration estimates of the tiles carried over."""
-    return {
-        tile_id: {k: v for k, v in record.items() if k != "applied"}
-        for tile_id in change.reuse
-        if (record := baseline.tiles[tile_id].get("coregistration"))
-    }
 
 
 def resumed_totals(
@@ -145,12 +115,13 @@ def resumed_totals(
         raise SpecError(f"baseline: {baseline.zarr} holds no job totals ({JOB_GROUP})")
     after = read_job_totals(baseline.zarr, AFTER_PART, region_ids)
     after = after or JobAccumulator(region_ids=region_ids)
-    kept = [t for t in change.reuse if baseline.tiles[t].get("status") == OK]
+    kept = [t for t in change.reuse if baseline.tiles[t].ok]
     missing = [t for t in kept if not baseline.summaries.has(t)]
     if missing:
         raise KeyError(f"no stored summaries for {len(missing)} tile(s), e.g. {missing[0]}")
     for tile_id in sorted({*change.recompute, *change.removed}):
-        if baseline.tiles.get(tile_id, {}).get("status") != OK:
+        record = baseline.tiles.get(tile_id)
+        if record is None or not record.ok:
             continue  # failed or not audited: it added nothing
         entries, excluded = baseline.summaries.read(tile_id)
         own, corrected = split_after(entries)
@@ -161,55 +132,8 @@ def resumed_totals(
 
 
 def change_report(
-    baseline: Baseline,
-    change: ChangePlan,
-    document: Mapping[str, Any],
-    limits: Thresholds,
+    baseline: Baseline, change: ChangePlan, document: Mapping[str, Any], limits: Thresholds
 ) -> dict[str, Any]:
-    """Tiles added, removed and recomputed with before/after figures; regions and grades."""
-    before_tiles = baseline.tiles
-    after_tiles = {t["tile"]: t for t in document["tiles"]}
-    tiles = []
-    for tile_id, why in sorted(change.recompute.items()):
-        verdict = compare(
-            before_tiles.get(tile_id, {}).get("stats"),
-            after_tiles.get(tile_id, {}).get("stats"),
-            limits,
-        )
-        tiles.append({"tile": tile_id, "why": why} | verdict)
-    before_docs = {r["region"]: r for r in baseline.document.get("regions", [])}
-    regions = [
-        {"region": r["region"]}
-        | compare(
-            before_docs.get(r["region"], {}).get("stats"),
-            r["stats"],
-            limits,
-            uncertainty_before=before_docs.get(r["region"], {}).get("uncertainty"),
-            uncertainty_after=r.get("uncertainty"),
-        )
-        for r in document["regions"]
-    ]
-    grades = lost_grades(
-        baseline.document.get("grading_indicative") or [], document.get("grading_indicative") or []
-    )
-    checkpoints_before = (baseline.document.get("checkpoints") or {}).get("grading") or []
-    checkpoints_after = (document.get("checkpoints") or {}).get("grading") or []
-    grades += lost_grades(checkpoints_before, checkpoints_after)
-    regressions = sum(t["verdict"] == "regressed" for t in tiles + regions) + len(grades)
-    return {
-        "baseline": str(baseline.folder),
-        "baseline_finished": baseline.document.get("job", {}).get("finished"),
-        "thresholds": limits.__dict__,
-        "tiles_added": list(change.added),
-        "tiles_removed": list(change.removed),
-        "tiles_recomputed": sorted(change.recompute),
-        "tiles_reused": len(change.reuse),
-        "tiles": tiles,
-        "regions": regions,
-        "grades_lost": grades,
-        "regressions": regressions,
-    }
-
-
-def _canonical(value: Any) -> str:
-    return json.dumps(value, sort_keys=True, default=str)
+    """Tiles added, removed and recomputed with before/after figures; regions and grades
+    (workers/recheck/baseline.py: change_report)."""
+    return report_of(baseline.document, change, document, limits, baseline=str(baseline.folder))

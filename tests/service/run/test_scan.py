@@ -10,7 +10,7 @@ import numpy as np
 import rasterio
 from rasterio.transform import from_origin
 
-from demaudit.service.run.runner import _local_map, _scan
+from demaudit.service.run.scan import _scan, local_map
 from demaudit.workers.inputs.catalog import (
     HEADER_CHECKS,
     ScanFailure,
@@ -59,10 +59,10 @@ def test_an_image_an_older_catalog_accepted_is_refused_when_its_headers_were_not
     assert isinstance(dem, TileInfo)
     known = {str(image): _as_old_catalog_saw_it(image, dem)}
     # an up-to-date catalog's unchanged tile is taken as it is, without opening the file ...
-    ok, failed = _scan(_local_map, [image], known, known)
+    ok, failed = _scan(local_map, [image], known, known)
     assert [t.path for t in ok] == [str(image)] and not failed
     # ... but one written before today's header checks is opened again and the image refused
-    ok, failed = _scan(_local_map, [image], known, {})
+    ok, failed = _scan(local_map, [image], known, {})
     assert not ok
     assert isinstance(failed[0], ScanFailure) and "3 bands" in failed[0].reason
 
