@@ -14,7 +14,6 @@ import socket
 import threading
 import time
 from collections.abc import Callable, Iterator
-from http.server import BaseHTTPRequestHandler, ThreadingHTTPServer
 from pathlib import Path
 from typing import Any
 
@@ -24,15 +23,10 @@ from fastapi.testclient import TestClient
 
 from demaudit.service.api.app import create_app
 from demaudit.service.scheduling.notify import deliver as deliver_anywhere
-from demaudit.service.scheduling.webhook_address import (
-    WebhookRefusedError,
-    WebhookUnresolvedError,
-    check_webhook_url,
-    redact_url,
-)
 from demaudit.service.settings import Settings
 from demaudit.service.store.jobs import MemoryJobStore
 from tests.service.tokens import AUTH
+from tests.support.webhooks import Receiver, stub
 
 T0 = dt.datetime(2026, 11, 1, 12, 0, tzinfo=dt.UTC)
 LOOPBACK = (ipaddress.ip_network("127.0.0.0/8"),)
@@ -41,49 +35,6 @@ LOOPBACK = (ipaddress.ip_network("127.0.0.0/8"),)
 def deliver(url: str, payload: Any, **options: Any):
     """deliver() with the loopback network allowed (the receivers of these tests)."""
     return deliver_anywhere(url, payload, allow=LOOPBACK, **options)
-
-
-class Receiver:
-    """An HTTP server on a free loopback port answering POSTs with the statuses given, in
-    order, then with default; it keeps (time, headers, JSON body) of every request."""
-
-    def __init__(
-        self, statuses: list[int], default: int = 200, headers: dict[str, str] | None = None
-    ) -> None:
-        extra = dict(headers or {})
-        self.requests: list[tuple[float, dict[str, str], Any]] = []
-        self.raw_bodies: list[bytes]
-        answers = list(statuses)
-        received = self.requests
-
-        raw = self.raw_bodies = []
-
-        class Handler(BaseHTTPRequestHandler):
-            def do_POST(self) -> None:  # noqa: N802 - http.server's name
-                body = self.rfile.read(int(self.headers.get("Content-Length", 0)))
-                raw.append(body)
-                received.append((time.monotonic(), dict(self.headers), json.loads(body)))
-                self.send_response(answers.pop(0) if answers else default)
-                self.send_header("Content-Length", "2")
-                for name, value in extra.items():
-                    self.send_header(name, value)
-                self.end_headers()
-                self.wfile.write(b"{}")
-
-            def log_message(self, *args: Any) -> None:
-                pass
-
-        self.server = ThreadingHTTPServer(("127.0.0.1", 0), Handler)
-        self.url = f"http://127.0.0.1:{self.server.server_address[1]}/hook"
-        self.thread = threading.Thread(
-            target=self.server.serve_forever, kwargs={"poll_interval": 0.05}, daemon=True
-        )
-        self.thread.start()
-
-    def close(self) -> None:
-        self.server.shutdown()
-        self.server.server_close()
-        self.thread.join(5)
 
 
 @pytest.fixture
@@ -344,86 +295,7 @@ def test_redirects_are_not_followed(receiver):
     assert len(hook.requests) == 1 and target.requests == []
 
 
-# --- where a webhook may go ------------------------------------------------------------------
-
-
-def stub(*addresses: str) -> Callable[[str, int], list[str]]:
-    """A resolver answering every name with addresses (no DNS traffic)."""
-
-    def resolve(host: str, port: int) -> list[str]:
-        return list(addresses)
-
-    return resolve
-
-
-# Address kinds from RFC 6890 / RFC 4193 / RFC 5735 (special-purpose registries), as the
-# ipaddress module classifies them (common practice).
-REFUSED = {
-    "127.0.0.1": "loopback",
-    "127.255.0.9": "loopback",
-    "::1": "loopback",
-    "169.254.169.254": "link-local",  # the cloud metadata service
-    "fe80::1": "link-local",
-    "10.0.0.1": "private",
-    "10.255.255.255": "private",
-    "172.16.0.1": "private",
-    "172.31.255.254": "private",
-    "192.168.1.1": "private",
-    "fd12:3456:789a::1": "private",  # IPv6 unique local (ULA)
-    "fc00::1": "private",
-    "224.0.0.1": "multicast",
-    "239.255.255.250": "multicast",
-    "ff02::1": "multicast",
-    "0.0.0.0": "unspecified",
-    "::": "unspecified",
-    "240.0.0.1": "reserved",
-    "100.64.0.1": "not public",  # shared address space (carrier-grade NAT)
-    "::ffff:10.0.0.1": "private",  # IPv4-mapped
-    "::ffff:169.254.169.254": "link-local",
-}
-
-
-@pytest.mark.parametrize(("address", "kind"), REFUSED.items())
-def test_non_public_addresses_are_refused(address, kind):
-    with pytest.raises(WebhookRefusedError, match=kind):
-        check_webhook_url("https://hooks.example.org/x", resolve=stub(address))
-
-
-@pytest.mark.parametrize("address", ["93.184.216.34", "8.8.8.8", "2606:4700:4700::1111"])
-def test_public_addresses_pass(address):
-    found = check_webhook_url("https://hooks.example.org/x", resolve=stub(address))
-    assert [str(a) for a in found] == [address]
-
-
-def test_one_non_public_address_among_public_ones_is_refused():
-    with pytest.raises(WebhookRefusedError, match="private"):
-        check_webhook_url("http://h.example.org/", resolve=stub("93.184.216.34", "10.0.0.7"))
-
-
-def test_the_allow_list_lets_named_networks_through():
-    allow = (ipaddress.ip_network("10.20.0.0/16"),)
-    check_webhook_url("http://h.example.org/", allow=allow, resolve=stub("10.20.3.4"))
-    with pytest.raises(WebhookRefusedError, match="private"):
-        check_webhook_url("http://h.example.org/", allow=allow, resolve=stub("10.21.3.4"))
-
-
-@pytest.mark.parametrize("url", ["ftp://h.example.org/x", "file:///etc/passwd", "gopher://h/"])
-def test_only_http_and_https_are_called(url):
-    with pytest.raises(WebhookRefusedError, match="http or https"):
-        check_webhook_url(url, resolve=stub("93.184.216.34"))
-
-
-def test_a_literal_address_is_checked_without_resolving():
-    def never(host: str, port: int) -> list[str]:
-        raise AssertionError("resolved a literal address")
-
-    with pytest.raises(WebhookRefusedError, match="loopback"):
-        check_webhook_url("http://127.0.0.1:8080/hook", resolve=never)
-
-
-def test_a_host_that_does_not_resolve_is_its_own_error():
-    with pytest.raises(WebhookUnresolvedError):
-        check_webhook_url("http://h.example.org/", resolve=stub())
+# --- where a webhook may go: checked again before each try ---------------------------------
 
 
 def test_delivery_checks_again_and_refuses_a_loopback_answer():
@@ -451,13 +323,6 @@ def test_a_scheduled_delivery_whose_host_moved_to_loopback_is_refused(scheduled_
     note = wait_for_end(api, job_id)["notification"]
     assert note["status"] == "failed" and "link-local" in note["error"]
     assert note["attempts"] == 1  # refused before any connection, not retried
-
-
-def test_webhook_urls_are_shown_without_credentials_path_or_query():
-    assert redact_url("https://u:p@h.example.org:8443/a/b?k=v") == "https://h.example.org:8443/***"
-    assert redact_url("https://h.example.org/") == "https://h.example.org/"
-    assert redact_url("http://[2001:db8::1]/x") == "http://[2001:db8::1]/***"
-    assert redact_url(None) is None
 
 
 def test_a_try_connects_to_the_address_it_checked(receiver, monkeypatch):
