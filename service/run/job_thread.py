@@ -25,7 +25,6 @@ from demaudit.service.run.faults import (
     remove_outputs,
 )
 from demaudit.service.run.recorder import JobRecorder
-from demaudit.service.run.runner import UNAUDITED, JobDismissedError
 from demaudit.service.run.watchdog import ActiveJob
 from demaudit.service.store.jobs import (
     ACCEPTED,
@@ -37,6 +36,8 @@ from demaudit.service.store.jobs import (
     JobStore,
     utc_now,
 )
+from demaudit.workers.errors import JobDismissedError
+from demaudit.workers.outputs.tile_records import UNAUDITED
 from demaudit.workers.spec import ResolvedJob
 
 __all__ = ["EndHook", "JobThreads", "Runner", "current_job_id"]

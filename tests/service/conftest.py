@@ -16,9 +16,9 @@ import pytest
 from fastapi.testclient import TestClient
 
 from demaudit.service.api.app import create_app
-from demaudit.service.run.runner import JobDismissedError
 from demaudit.service.settings import Settings
 from demaudit.service.store.jobs import JobStore, MemoryJobStore
+from demaudit.workers.errors import JobDismissedError
 from demaudit.workers.spec import ResolvedJob
 from tests.service.tokens import AUTH, PRINCIPALS
 

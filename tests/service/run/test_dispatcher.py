@@ -24,9 +24,9 @@ from demaudit.service.run.faults import (
     LOST_MESSAGE,
     RESOURCES,
 )
-from demaudit.service.run.runner import JobDismissedError
 from demaudit.service.store.jobs import FAILED, RUNNING, JobRecord, MemoryJobStore
 from demaudit.workers.errors import (
+    JobDismissedError,
     SpecError,
     TileReadError,
 )
