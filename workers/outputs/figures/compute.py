@@ -22,8 +22,8 @@ from numpy.typing import NDArray
 from demaudit.workers.checkpoints.grading import ASPRS_CLASSES_CM
 from demaudit.workers.stats import summary as dhs
 from demaudit.workers.stats.bins import bin_edges
-from demaudit.workers.stats.quantiles import quantile
-from demaudit.workers.stats.robust import confidence_intervals
+from demaudit.workers.stats.quantiles import order_statistics, quantile
+from demaudit.workers.stats.robust import order_statistic_ranks
 
 #: colour limits of the dh map: median +- LIMIT_NMADS x NMAD of all valid pixels
 LIMIT_NMADS = 3.0
@@ -255,6 +255,17 @@ def nmad_interval(nmad: float, count: int, *, z: float = 1.959964) -> tuple[floa
     return max(nmad - z * se, 0.0), nmad + z * se
 
 
+def median_interval(s: dhs.DhSummary) -> tuple[float | None, float | None] | None:
+    """The 95 % order-statistic interval of the median, as robust.confidence_intervals gives it
+    (an open end None), without the intervals of the |dh| quantiles the figure does not show."""
+    if s.count < 2:
+        return None
+    low, high = order_statistic_ranks(s.count, 0.5)
+    ranks = np.array([r for r in (low, high) if r is not None], dtype=np.int64)
+    values = iter(float(v) for v in order_statistics(s, ranks))
+    return (None if low is None else next(values), None if high is None else next(values))
+
+
 def tile_statistics(spec: Mapping[str, Any] | None) -> tuple[str, ...]:
     """The statistics of the tile maps the job spec asks for (figures.tile_statistics), or
     DEFAULT_TILE_STATISTICS; unknown names are refused."""
@@ -284,7 +295,7 @@ def strata_rows(
             continue
         ci = (entry.get("confidence_95") or {}).get("median")
         if ci is None and summaries is not None and key in summaries:
-            ci = confidence_intervals(summaries[key])["median"]
+            ci = median_interval(summaries[key])
         nmad, count = float(stats["nmad"]), int(stats["count"])
         median_ci = (ci[0], ci[1]) if ci is not None else None
         rows.append(

@@ -202,3 +202,10 @@ def test_tile_statistics_come_from_the_spec_or_the_default():
     assert compute.tile_statistics({"figures": {"tile_statistics": []}}) == ()
     with pytest.raises(ValueError, match="tile_statistics"):
         compute.tile_statistics({"figures": {"tile_statistics": ["mode"]}})
+
+
+@pytest.mark.parametrize("n", [2, 5, 60, 5000])
+def test_median_interval_is_the_one_of_confidence_intervals(n):
+    s = dhs.summarise(np.random.default_rng(n).standard_t(3, n))
+    expected = confidence_intervals(s)["median"]
+    assert list(compute.median_interval(s)) == expected
