@@ -64,8 +64,8 @@ SHIFTS_NAME = "tile_shifts.png"
 RECHECK_MAP_NAME = "recheck_tiles.png"
 RECHECK_REGIONS_NAME = "recheck_regions.png"
 DPI = 100
-#: PNG encoding: zlib level 6 (Pillow's default) makes files a third smaller than level 1 for
-#: a few milliseconds more per figure
+#: PNG encoding: zlib level 6 (Pillow's default); measured on the demo's dh map, level 1 saves
+#: ~10 ms for a 3 % larger file and level 9 costs 5x the time for 2 % less: not worth changing
 PNG_OPTIONS: dict[str, Any] = {"pil_kwargs": {"compress_level": 6}}
 
 
