@@ -229,3 +229,23 @@ def test_compiled_sweep_matches_the_numpy_functions(integer: bool) -> None:
         assert np.array_equal(np.isnan(a), np.isnan(b)), name
         np.testing.assert_allclose(a, b, rtol=1e-12, atol=1e-12, equal_nan=True, err_msg=name)
     assert np.array_equal(fast.d8, slow.d8)
+
+
+@settings(max_examples=25, deadline=None)
+@given(seed=st.integers(0, 2**32 - 1))
+def test_swapping_test_and_reference_negates_every_difference(seed: int) -> None:
+    # invariant: test - reference = -(reference - test); aspect on the circle too (away from a
+    # half turn, where (-180, 180] keeps +180 both ways)
+    rng = np.random.default_rng(seed)
+    a = rng.normal(scale=5.0, size=(12, 14)).cumsum(axis=1)
+    b = a + rng.normal(scale=0.5, size=a.shape)
+    size = {"pixel_size_x_m": DX, "pixel_size_y_m": DY}
+    one, other = surface_derivatives(a, **size), surface_derivatives(b, **size)
+    forward = derived_differences(one, other, min_slope_deg=0.0)
+    backward = derived_differences(other, one, min_slope_deg=0.0)
+    for name in PARAMETERS:
+        f, g = forward[name], backward[name]
+        both = np.isfinite(f) & np.isfinite(g)
+        if name == ASPECT:
+            both &= np.abs(f) < 179.9
+        np.testing.assert_allclose(f[both], -g[both], atol=1e-9, err_msg=name)
