@@ -7,6 +7,7 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 from typing import Any
 
+from demaudit.workers.outputs.figures.compute import NMAD_INTERVAL_NOTE, nmad_interval
 from demaudit.workers.outputs.report_format import (
     change_table,
     esc,
@@ -121,7 +122,25 @@ def strata(document: Mapping[str, Any]) -> list[str]:
     strata = (document.get("overall_detail") or {}).get("strata") or []
     if not strata:
         return []
-    return [stats_table([(s["stratum"], s["stats"]) for s in strata])]
+    return [stats_table([(s["stratum"], s["stats"]) for s in strata]), nmad_intervals(strata)]
+
+
+def nmad_intervals(entries: Sequence[Mapping[str, Any]]) -> str:
+    """Each stratum's NMAD with its 95 % interval (figures.compute.nmad_interval)."""
+    rows = []
+    for entry in entries:
+        stats = entry.get("stats") or {}
+        if not stats.get("count") or stats.get("nmad") is None:
+            continue
+        ci = nmad_interval(float(stats["nmad"]), int(stats["count"]))
+        rows.append(
+            f"<tr><td>{esc(entry['stratum'])}</td><td>{number(float(stats['nmad']))}</td>"
+            f"<td>{interval(list(ci) if ci else None)}</td></tr>"
+        )
+    return (
+        "<table><tr><th>stratum</th><th>NMAD (m)</th><th>NMAD 95 % interval (m)</th></tr>"
+        f"{''.join(rows)}</table><p>{esc(NMAD_INTERVAL_NOTE)}</p>"
+    )
 
 
 def derivatives(d: Mapping[str, Any]) -> list[str]:

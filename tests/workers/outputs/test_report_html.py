@@ -145,3 +145,15 @@ def test_formatting_of_numbers_intervals_and_changes():
     table = change_table("region", rows, "region")
     assert "A&lt;" in table and "<td class='regressed'>regressed</td>" in table
     assert change_table("tile", [], "tile") == ""
+
+
+def test_strata_section_gives_each_nmad_its_interval():
+    from demaudit.workers.outputs.figures.compute import nmad_interval
+    from demaudit.workers.outputs.report_sections import strata
+
+    stats = {"count": 400, "nmad": 0.5, "median": 0.0}
+    entries = [{"stratum": "slope_deg:0-5", "stats": stats}, {"stratum": "x", "stats": {}}]
+    low, high = nmad_interval(0.5, 400)
+    html = "".join(strata({"overall_detail": {"strata": entries}}))
+    assert f"<td>slope_deg:0-5</td><td>0.500</td><td>[{low:.3f}, {high:.3f}]</td>" in html
+    assert "Rousseeuw &amp; Croux 1993" in html and "<td>x</td><td>0.000" not in html

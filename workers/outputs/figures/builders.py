@@ -125,10 +125,7 @@ def build_histogram(ctx: FigureContext) -> Drawn | None:
 
 
 STRATA_PANELS = (("slope band (degrees)", "slope_deg:"), ("land cover", "landcover:"))
-NMAD_INTERVAL_RULE = (
-    "NMAD +- 1.96 SE, SE = 1.1664 NMAD / sqrt(n): the asymptotic standard error of the NMAD at "
-    "the Gaussian (MAD efficiency 36.75 %, Rousseeuw & Croux 1993); assumes independent pixels"
-)
+NMAD_INTERVAL_RULE = compute.NMAD_INTERVAL_NOTE
 
 
 def _row_entry(r: compute.StratumRow) -> dict[str, Any]:

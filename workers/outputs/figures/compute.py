@@ -39,6 +39,11 @@ DEFAULT_TILE_STATISTICS = ("median", "nmad", "grade")
 #: JASA 88:1273, section 1), whose variance is sigma^2 / 2n, so Var(NMAD) = sigma^2 / (2 x
 #: 0.3675 n); equivalently 1.4826^2 / (16 phi(0.6745)^2 n) from the sample median of |x|.
 NMAD_SE_FACTOR = math.sqrt(1.0 / (2.0 * 0.3675))
+NMAD_INTERVAL_NOTE = (
+    "NMAD intervals: NMAD +- 1.96 SE, SE = 1.1664 NMAD / sqrt(n), the asymptotic standard error "
+    "of the NMAD at the Gaussian (MAD efficiency 36.75 %, Rousseeuw & Croux 1993); they assume "
+    "independent pixels and a Gaussian core"
+)
 Bounds = tuple[float, float, float, float]
 VERDICT_ORDER = ("regressed", "improved", "unchanged", "new", "removed", "reused")
 
