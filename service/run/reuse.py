@@ -4,15 +4,10 @@ the job totals it continues), and the carry-over of the kept tiles' stored resul
 from __future__ import annotations
 
 from dataclasses import dataclass, replace
-from pathlib import Path
-from typing import Any
 
-from distributed import Client
-
-from demaudit.service.run.checkpoints import audit_checkpoints, earlier_heights
+from demaudit.service.run.checkpoints import earlier_heights
 from demaudit.service.run.recheck import Baseline, make_plan, resumed_totals
 from demaudit.service.run.scan import Catalog, Scan
-from demaudit.workers.checkpoints.points import CheckpointFile
 from demaudit.workers.coregistration.shift import ShiftEstimate
 from demaudit.workers.outputs.summary_store import TileSummaryStore
 from demaudit.workers.outputs.tile_records import TileRecord
@@ -21,7 +16,7 @@ from demaudit.workers.recheck.baseline import known_shifts
 from demaudit.workers.recheck.plan import ChangePlan
 from demaudit.workers.spec import ResolvedJob
 from demaudit.workers.stats.merge import JobAccumulator
-from demaudit.workers.tile.task import OK, TileOptions
+from demaudit.workers.tile.task import OK
 from demaudit.workers.uncertainty.sample import ErrorModelOptions
 from demaudit.workers.uncertainty.sample_store import not_reusable
 
@@ -48,6 +43,20 @@ class Reuse:
         if self.baseline is None or not self.change:
             return {}
         return known_shifts(self.baseline.tiles, self.change)
+
+    def earlier_checkpoints(
+        self, job: ResolvedJob, catalog: Catalog
+    ) -> tuple[dict[str, float], list[list[float]]]:
+        """In a re-check, the test heights the baseline sampled at the checkpoints (by point id)
+        and the footprints of the test tiles recomputed or gone since (points there are sampled
+        again); nothing otherwise."""
+        prior, change = self.baseline, self.change
+        if prior is None or change is None:
+            return {}, []
+        by_id = catalog.by_id
+        changed = [list(by_id[t].bounds) for t in change.recompute if t in by_id]
+        changed += [list(b) for t in change.removed if (b := prior.tiles[t].bounds)]
+        return earlier_heights(prior.folder, prior.document, job), changed
 
     def kept_records(self) -> dict[str, TileRecord]:
         """The baseline's records of the tiles carried over."""
@@ -122,35 +131,3 @@ def carry_over(reuse: Reuse, store: ResultsStore, summaries: TileSummaryStore) -
     gone = [*change.recompute, *change.removed]
     blank = [list(b) for t in gone if t in tiles and (b := tiles[t].bounds)]
     store.carry_overview(prior.zarr, keep, blank)
-
-
-def checkpoint_section(
-    client: Client,
-    job: ResolvedJob,
-    catalog: Catalog,
-    options: TileOptions,
-    out_dir: Path,
-    reuse: Reuse,
-    data: CheckpointFile | None = None,
-) -> dict[str, Any]:
-    """The checkpoint audit; in a re-check, points away from the changed tiles keep the test
-    heights the baseline sampled."""
-    earlier: dict[str, float] = {}
-    changed_areas: list[list[float]] = []
-    prior, change = reuse.baseline, reuse.change
-    if prior is not None and change is not None:
-        by_id = catalog.by_id
-        earlier = earlier_heights(prior.folder, prior.document, job)
-        changed_areas = [list(by_id[t].bounds) for t in change.recompute if t in by_id]
-        changed_areas += [list(b) for t in change.removed if (b := prior.tiles[t].bounds)]
-    return audit_checkpoints(
-        client,
-        job,
-        catalog.tests,
-        regions=catalog.regions_by_crs,
-        options=options,
-        out_dir=out_dir,
-        earlier=earlier,
-        changed_areas=changed_areas,
-        data=data,
-    )

@@ -14,8 +14,6 @@ result at a time; pixels stay on the workers.
 
 from __future__ import annotations
 
-import datetime as dt
-import time
 import uuid
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, replace
@@ -24,9 +22,11 @@ from typing import Any
 
 from distributed import Client
 
+from demaudit.service.run.checkpoints import audit_checkpoints
+from demaudit.service.run.clock import Phases, now
 from demaudit.service.run.coregistration import CorrectionEstimate, estimate_job_correction
 from demaudit.service.run.recheck import Baseline, change_report, load_baseline
-from demaudit.service.run.reuse import Reuse, carry_over, checkpoint_section, plan_reuse
+from demaudit.service.run.reuse import Reuse, carry_over, plan_reuse
 from demaudit.service.run.scan import Inputs, Scan, dask_map, read_inputs, scan_job
 from demaudit.service.run.tables import write_tables
 from demaudit.service.run.tiles import (
@@ -43,11 +43,9 @@ from demaudit.service.run.tiles import (
 )
 from demaudit.service.run.validate import check_output, validate_job
 from demaudit.workers.checkpoints.section import indicative_grading
-from demaudit.workers.inputs import regions as region_ops
-from demaudit.workers.inputs.catalog import overlap_cautions
 from demaudit.workers.outputs.derivatives import JobDerivatives
 from demaudit.workers.outputs.figures.background import FigureDrawing, start_figures
-from demaudit.workers.outputs.job_document import Figures, JobInfo, JobParts, assemble
+from demaudit.workers.outputs.job_document import Figures, JobParts, assemble, job_info
 from demaudit.workers.outputs.layout import CATALOG_NAME, CHANGE_REPORT_NAME
 from demaudit.workers.outputs.report_html import write_report
 from demaudit.workers.outputs.summary_document import vertical_accuracy_cautions
@@ -60,7 +58,6 @@ from demaudit.workers.outputs.summary_store import (
 from demaudit.workers.outputs.tile_records import (
     UNAUDITED,
     TileRecord,
-    coverage_cautions,
 )
 from demaudit.workers.outputs.writers import ResultsStore, staged_folder, write_summary
 from demaudit.workers.recheck.plan import Thresholds
@@ -125,7 +122,7 @@ def run_job(
     out_dir itself: it stays readable until the swap. ``inputs``: read_inputs(job) when the
     caller has already read them.
     """
-    started = _now()
+    started = now()
     run_id = run_id or uuid.uuid4().hex[:12]
     inputs = inputs if inputs is not None else read_inputs(job)
     prior = load_baseline(baseline) if baseline is not None else None
@@ -297,18 +294,33 @@ class _Run:
         write_summary(self.out_dir, catalog.document(), name=CATALOG_NAME)
         checkpoints = None
         if job.spec.checkpoints is not None:
-            checkpoints = checkpoint_section(
-                self.client, job, catalog, options, self.out_dir, reuse, inputs.checkpoints
+            earlier, changed_areas = reuse.earlier_checkpoints(job, catalog)
+            checkpoints = audit_checkpoints(
+                self.client,
+                job,
+                catalog.tests,
+                regions=catalog.regions_by_crs,
+                options=options,
+                out_dir=self.out_dir,
+                earlier=earlier,
+                changed_areas=changed_areas,
+                data=inputs.checkpoints,
             )
         self.clock.mark("checkpoints")
         parts = JobParts(
-            job=_job_info(job, scan.region_fingerprint, started),
+            job=job_info(
+                job,
+                region_fingerprint=scan.region_fingerprint,
+                started=started,
+                finished=now(),
+                software=SOFTWARE,
+            ),
             areas=areas,
             excluded_pixels=tiles.totals.all.excluded,
             tiles=tiles.records,
             reference_failures=catalog.reference_failures,
             sources={**scan.sources, "vertical_transformations": vertical},
-            early_cautions=_early_cautions(scan, tiles.records),
+            early_cautions=scan.cautions(tiles.records),
             cautions=vertical_accuracy_cautions(vertical, job.spec.grading)
             + ([reuse.note] if reuse.note else []),
             checkpoints=checkpoints,
@@ -352,7 +364,13 @@ class _Run:
         (workers/outputs/figures/background.py); figures() finishes them."""
         layout = scan.layout
         map_regions = scan.catalog.regions_by_crs.get(layout.crs, []) if layout else []
-        info = _job_info(self.job, scan.region_fingerprint, started)
+        info = job_info(
+            self.job,
+            region_fingerprint=scan.region_fingerprint,
+            started=started,
+            finished=now(),
+            software=SOFTWARE,
+        )
         early = JobParts(info, areas, tiles.totals.all.excluded, tiles.records, (), {})
         return start_figures(
             self.out_dir,
@@ -372,44 +390,3 @@ class _Run:
         except (OSError, ValueError, KeyError) as exc:
             return Figures({}, f"figures or report.html could not be drawn: {exc}")
         return Figures(files)
-
-
-def _job_info(job: ResolvedJob, region_fingerprint: str | None, started: str) -> JobInfo:
-    return JobInfo(
-        name=job.spec.name,
-        spec=job.spec.model_dump(mode="json"),
-        started=started,
-        finished=_now(),
-        software=SOFTWARE,
-        region_fingerprint=region_fingerprint,
-        test_tiles=len(job.test_tiles),
-        reference_tiles=len(job.reference_tiles),
-    )
-
-
-def _early_cautions(scan: Scan, records: Sequence[TileRecord]) -> list[str]:
-    """Cautions on tiles left out, regions, overlapping test tiles and the overview."""
-    catalog = scan.catalog
-    return (
-        coverage_cautions(records)
-        + region_ops.region_cautions(catalog.regions)
-        + overlap_cautions(catalog.overlaps)
-        + ([] if scan.layout else ["no dh overview: the test tiles are not on one grid"])
-    )
-
-
-class Phases:
-    """Wall time of the phases of a run (seconds, in the order they ran), for summary.json."""
-
-    def __init__(self) -> None:
-        self.seconds: dict[str, float] = {}
-        self._last = time.perf_counter()
-
-    def mark(self, phase: str) -> None:
-        now = time.perf_counter()
-        self.seconds[phase] = round(self.seconds.get(phase, 0.0) + now - self._last, 3)
-        self._last = now
-
-
-def _now() -> str:
-    return dt.datetime.now(dt.UTC).isoformat(timespec="seconds")

@@ -28,6 +28,7 @@ from demaudit.workers.inputs.catalog import (
     TileInfo,
     catalog_document,
     file_fingerprint,
+    overlap_cautions,
     overlap_sources,
     overlap_sources_of,
     scan_landcover_tile,
@@ -38,6 +39,7 @@ from demaudit.workers.inputs.catalog import (
 )
 from demaudit.workers.inputs.confine import Roots
 from demaudit.workers.inputs.regions import Region
+from demaudit.workers.outputs.tile_records import TileRecord, coverage_cautions
 from demaudit.workers.outputs.writers import OverviewLayout, overview_layout
 from demaudit.workers.spec import ELLIPSOIDAL, ResolvedJob
 from demaudit.workers.tile.datum import geoid_undulation
@@ -124,6 +126,16 @@ class Scan:
     region_ids: list[str]
     layout: OverviewLayout | None
     region_fingerprint: str | None
+
+    def cautions(self, records: Sequence[TileRecord]) -> list[str]:
+        """Cautions on test tiles left out, regions, overlapping test tiles, the overview."""
+        catalog = self.catalog
+        return (
+            coverage_cautions(records)
+            + region_ops.region_cautions(catalog.regions)
+            + overlap_cautions(catalog.overlaps)
+            + ([] if self.layout else ["no dh overview: the test tiles are not on one grid"])
+        )
 
 
 def scan_job(

@@ -13,6 +13,7 @@ from typing import Any
 
 from demaudit.workers.outputs.summary_document import build_summary
 from demaudit.workers.outputs.tile_records import TileRecord
+from demaudit.workers.spec import ResolvedJob
 from demaudit.workers.stats.derivatives_merge import derivative_cautions
 from demaudit.workers.stats.job_statistics import AreaStatistics
 from demaudit.workers.tile.task import FAILED
@@ -50,6 +51,27 @@ class JobInfo:
         if self.timings_s is not None:
             out["timings_s"] = dict(self.timings_s)
         return out
+
+
+def job_info(
+    job: ResolvedJob,
+    *,
+    region_fingerprint: str | None,
+    started: str,
+    finished: str,
+    software: str,
+) -> JobInfo:
+    """The ``job`` section of a resolved job (its spec as JSON, its tile counts)."""
+    return JobInfo(
+        name=job.spec.name,
+        spec=job.spec.model_dump(mode="json"),
+        started=started,
+        finished=finished,
+        software=software,
+        region_fingerprint=region_fingerprint,
+        test_tiles=len(job.test_tiles),
+        reference_tiles=len(job.reference_tiles),
+    )
 
 
 @dataclass(frozen=True)
