@@ -12,6 +12,7 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import cast
 
 import numpy as np
 from numpy.typing import NDArray
@@ -62,7 +63,7 @@ def read_tile(
     """
     raw = _read_band(tile, "tile", None)
     if keep_float32 and raw.dtype == np.float32:
-        data = _voids_to_nan(raw, (tile.nodata, nodata), out=raw)
+        data = _voids_to_nan(raw, (tile.nodata, nodata), out=cast("NDArray[np.float32]", raw))
     else:
         data = _voids_to_nan(raw, (tile.nodata, nodata))
     if units is not None:
@@ -148,7 +149,7 @@ def implausible_heights(
 
 
 def _other_within(
-    data: NDArray[np.float64], near: tuple[float, float], value: float, *, compiled: bool
+    data: NDArray[np.floating], near: tuple[float, float], value: float, *, compiled: bool
 ) -> bool:
     """Whether a value of data other than ``value`` lies within ``near`` (inclusive)."""
     if compiled:
@@ -273,6 +274,7 @@ def _voids_to_nan(
     """raw as float64 with every nodata value NaN (written into ``out`` when given, else a new
     array; ``out`` may be raw itself). Each value is compared in raw's own type (a spec's 0.1
     matches a float32 file's 0.1; a fractional value never matches integers)."""
+    data: NDArray[np.floating]
     if out is None:
         data = raw.astype(np.float64)
     else:

@@ -345,7 +345,7 @@ def _finish(
     tail_key: NDArray[np.intp],
     tail_bin: NDArray[np.int64],
     *,
-    tail_counts: NDArray[np.int64] | None = None,
+    tail_counts: NDArray[np.int32] | None = None,
 ) -> CellSummaries:
     """The cells' summaries from the first sweep's counters (dense linear bins, sums, extremes)
     and tail entries: counts, then the deviations' sweep for the moments, then the tail runs."""

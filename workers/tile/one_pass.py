@@ -116,10 +116,10 @@ def _summarise_in_numpy(
         valid &= ~excluded
     (flat,) = np.nonzero(valid.ravel())
     del valid
-    keys, members = membership_patterns(flat, region_masks)
-    keys *= layout.n_cells
-    keys += cells.ravel()[flat]
-    per_key = summarise_cells(dh.ravel()[flat], keys, len(members) * layout.n_cells)
+    patterns, members = membership_patterns(flat, region_masks)
+    patterns *= layout.n_cells
+    patterns += cells.ravel()[flat]
+    per_key = summarise_cells(dh.ravel()[flat], patterns, len(members) * layout.n_cells)
     return per_key, members, dropped
 
 

@@ -75,8 +75,8 @@ def reference_heights(
 
 def resampled_onto(
     tiles: Sequence[TileInfo], grid: Grid, *, resampling: str, nodata: float | None
-) -> NDArray[np.float64]:
-    """Values of tiles (own unit and datum) resampled onto grid; NaN where none."""
+) -> NDArray[np.floating]:
+    """Values of tiles (own unit and datum) resampled onto grid (float64); NaN where none."""
     return mosaics_onto(read_mosaics(tiles, grid, nodata=nodata), grid, resampling=resampling)
 
 
