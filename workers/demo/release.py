@@ -181,9 +181,16 @@ def reference_heights(
         & (northing <= grid.north + margin_m)
         & (northing >= grid.north - grid.height_m - margin_m)
     )
-    heights = np.full(easting.shape, np.nan)
     if not covered.any():
-        return heights
+        return np.full(easting.shape, np.nan)
+    if easting.ndim == 2:  # a raster's positions: every pixel, so Waves may use their lattice
+        at = place(world, easting, northing)
+        layout = province_layout(world, at)
+        kept = np.where(
+            covered & ~water_at(world, at, layout), terrain_at(world, at, layout), np.nan
+        )
+        return kept + noise
+    heights = np.full(easting.shape, np.nan)
     at = place(world, easting[covered], northing[covered])
     layout = province_layout(world, at)
     land = ~water_at(world, at, layout)

@@ -102,7 +102,7 @@ def terrain_at(world: DemoWorld, at: Place, layout: ProvinceLayout) -> np.ndarra
         if not weight.any():
             continue
         weighs = weight != 0
-        if at.is_grid or weighs.all():
+        if at.dense or weighs.all():
             term = weight * relief(at)
         else:
             term = np.zeros(at.shape)

@@ -1,5 +1,6 @@
-"""Smooth random fields of the demo world: sums of plane waves, evaluated pointwise or, on the
-axes of a regular grid, by one matrix product."""
+"""Smooth random fields of the demo world: sums of plane waves, evaluated pointwise, on the
+axes of a regular grid by one matrix product, or on a near-affine 2-D array of positions (a
+reprojected raster) by the compiled split of workers/demo/wave_kernels.py."""
 
 from __future__ import annotations
 
@@ -7,6 +8,8 @@ import math
 from dataclasses import dataclass
 
 import numpy as np
+
+from demaudit.workers.demo.wave_kernels import near_affine_waves
 
 
 @dataclass(frozen=True, eq=False)
@@ -21,6 +24,13 @@ class Waves:
     def __call__(self, x: np.ndarray, y: np.ndarray | float = 0.0) -> np.ndarray:
         if is_grid(x, y):
             return self._on_grid(np.asarray(x), np.asarray(y))
+        if np.ndim(x) == 2:  # a reprojected raster's positions: see wave_kernels
+            xs, ys = np.broadcast_arrays(np.asarray(x, dtype=float), np.asarray(y, dtype=float))
+            fast = near_affine_waves(
+                xs, ys, kx=self.kx, ky=self.ky, phase=self.phase, amplitude=self.amplitude
+            )
+            if fast is not None:
+                return fast
         out = np.zeros(np.broadcast(x, y).shape)
         for kx, ky, phase, amplitude in zip(
             self.kx, self.ky, self.phase, self.amplitude, strict=True

@@ -99,6 +99,12 @@ class Place:
     def is_grid(self) -> bool:
         return is_grid(self.x, self.y)
 
+    @property
+    def dense(self) -> bool:
+        """True for a grid's axes or a 2-D raster of positions: fields are evaluated at every
+        point there (by the fast paths of Waves) and masks then select, instead of subsetting."""
+        return self.is_grid or (self.x.ndim == 2 and self.x.shape == self.y.shape)
+
     def subset(self, mask: np.ndarray) -> Place:
         """The points where mask (of shape self.shape) is True, as 1-D arrays."""
         shape = self.shape
@@ -113,10 +119,10 @@ def place(world: DemoWorld, easting: np.ndarray, northing: np.ndarray) -> Place:
 
 
 def only_where(mask: np.ndarray, field: Callable[[Place], np.ndarray], at: Place) -> np.ndarray:
-    """field(at) where mask is True and NaN elsewhere (on a grid: everywhere, it is cheap)."""
+    """field(at) where mask is True and NaN elsewhere (on a dense Place: everywhere)."""
     if not mask.any():
         return np.full(at.shape, np.nan)
-    if at.is_grid or mask.all():
+    if at.dense or mask.all():
         return np.broadcast_to(field(at), at.shape)
     out = np.full(at.shape, np.nan)
     if mask.any():
