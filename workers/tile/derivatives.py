@@ -6,9 +6,9 @@ read from the 3 x 3 window around a pixel (z1 z2 z3 / z4 z5 z6 / z7 z8 z9, z1 no
 
 - slope and aspect: Horn (1981), the weighted differences
   dz/dx = ((z3 + 2 z6 + z9) - (z1 + 2 z4 + z7)) / (8 dx), dz/dy = ((z1 + 2 z2 + z3) -
-  (z7 + 2 z8 + z9)) / (8 dy) (y north). Horn's 8-neighbour weighting smooths noise along each
-  axis, so a noisy model's slope is less biased than with 2-neighbour differences; slope and
-  aspect are the parameters users take from it most.
+  (z7 + 2 z8 + z9)) / (8 dy) (y north). Chosen for slope and aspect because its 8-neighbour
+  weighting averages noise across three rows (or columns), so a noisy model's slope is less
+  inflated than with 2-neighbour differences (common practice).
 - plan and profile curvature: the derivatives of Zevenbergen & Thorne (1987)'s partial quartic
   through the 9 heights, p = (z6 - z4) / (2 dx), q = (z2 - z8) / (2 dy), r = (z4 - 2 z5 + z6) /
   dx^2, t = (z2 - 2 z5 + z8) / dy^2, s = (z3 - z1 + z7 - z9) / (4 dx dy) (Horn's scheme gives no
@@ -18,9 +18,9 @@ read from the 3 x 3 window around a pixel (z1 z2 z3 / z4 z5 z6 / z7 z8 z9, z1 no
   profile curvature = -(p^2 r + 2 p q s + q^2 t) / ((p^2 + q^2) (1 + p^2 + q^2)^(3/2)), the
   curvature of the surface along the steepest slope;
   plan curvature = -(q^2 r - 2 p q s + p^2 t) / (p^2 + q^2)^(3/2), the curvature of the contour.
-  Sign: positive where the surface is convex (a hilltop: both are 1/R on a sphere of radius R,
-  the plan curvature 1/rho at horizontal distance rho from its axis). Returned in 1/m; the
-  differences are reported in 1/km (CURVATURE_PER_KM) so that the summaries' bins resolve them.
+  Sign: positive where the surface is convex (on a sphere cap of radius R: profile curvature
+  1/R, plan curvature 1/rho at horizontal distance rho from its axis). Returned in 1/m; the
+  differences are reported in 1/km (CURVATURE_PER_KM).
 - D8 flow direction: the neighbour of steepest descent (drop / distance, diagonals at
   hypot(dx, dy)), coded 1..8 clockwise from north (N, NE, E, SE, S, SW, W, NW), 0 when no
   neighbour is lower; a tie goes to the first in that order.
@@ -28,6 +28,9 @@ read from the 3 x 3 window around a pixel (z1 z2 z3 / z4 z5 z6 / z7 z8 z9, z1 no
 Edges: a pixel whose 3 x 3 window is not complete (the outermost row and column of the grid, or
 a NaN height in the window) gets NaN (D8: NO_WINDOW). The tile pass reads no halo around a test
 tile, so the border pixels of every tile are left out of the derived statistics.
+
+surface_derivatives computes everything in one compiled sweep (derivative_kernels.py) when
+numba is installed; the numpy functions here are its reference (tested equal).
 """
 
 from __future__ import annotations
