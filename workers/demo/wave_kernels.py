@@ -25,23 +25,39 @@ MIN_PIXELS = 4096
 _COMPILED: dict[str, Any] = {}
 
 
-def _near_affine_sum(cos_a, sin_a, cos_b, sin_b, kx, ky, amplitude, rx, ry, out):  # type: ignore[no-untyped-def]
-    """out[i, j] = sum_w amplitude[w] cos(A[i, w] + B[w, j] + kx[w] rx[i, j] + ky[w] ry[i, j])."""
-    rows, cols = rx.shape
+def _near_affine_sum(x, y, plane_x, plane_y, cos_a, sin_a, cos_b, sin_b, waves, limit, out):  # type: ignore[no-untyped-def]
+    """out[i, j] = sum_w amplitude[w] cos(A[i, w] + B[w, j] + d), d = kx[w] rx + ky[w] ry with
+    (rx, ry) the remainder of (x, y) from the planes (origin, row step, column step); waves
+    holds kx, ky, amplitude as rows. Returns False (out unfinished) if a row's remainders may give
+    |d| > limit."""
+    rows, cols = x.shape
+    rx = np.empty(cols)
+    ry = np.empty(cols)
+    reach_x = np.abs(waves[0]).max()
+    reach_y = np.abs(waves[1]).max()
     for i in range(rows):
+        largest_x = 0.0
+        largest_y = 0.0
         for j in range(cols):
+            rx[j] = x[i, j] - (plane_x[0] + plane_x[1] * i + plane_x[2] * j)
+            ry[j] = y[i, j] - (plane_y[0] + plane_y[1] * i + plane_y[2] * j)
+            largest_x = max(largest_x, abs(rx[j]))
+            largest_y = max(largest_y, abs(ry[j]))
             out[i, j] = 0.0
-        for w in range(kx.size):
-            ca, sa, kx_w, ky_w, amp = cos_a[i, w], sin_a[i, w], kx[w], ky[w], amplitude[w]
+        if not reach_x * largest_x + reach_y * largest_y <= limit:
+            return False
+        for w in range(waves.shape[1]):
+            ca, sa = cos_a[i, w], sin_a[i, w]
+            kx_w, ky_w, amp = waves[0, w], waves[1, w], waves[2, w]
             for j in range(cols):
-                d = kx_w * rx[i, j] + ky_w * ry[i, j]
+                d = kx_w * rx[j] + ky_w * ry[j]
                 d2 = d * d
                 cos_d = 1.0 - d2 * (0.5 - d2 * (1.0 / 24.0 - d2 / 720.0))
                 sin_d = d * (1.0 - d2 * (1.0 / 6.0 - d2 / 120.0))
                 cos_ab = ca * cos_b[w, j] - sa * sin_b[w, j]
                 sin_ab = sa * cos_b[w, j] + ca * sin_b[w, j]
                 out[i, j] += amp * (cos_ab * cos_d - sin_ab * sin_d)
-    return out
+    return True
 
 
 def _compiled() -> Any:
@@ -55,13 +71,12 @@ def _compiled() -> Any:
     return _COMPILED["sum"]
 
 
-def affine_split(a: np.ndarray) -> tuple[float, float, float, np.ndarray]:
-    """A 2-D array as a0 + di * i + dj * j + remainder, the plane through three corners."""
+def affine_plane(a: np.ndarray) -> np.ndarray:
+    """(a0, di, dj) of the plane a0 + di * i + dj * j through three corners of a 2-D array."""
     rows, cols = a.shape
-    di = (a[-1, 0] - a[0, 0]) / (rows - 1)
-    dj = (a[0, -1] - a[0, 0]) / (cols - 1)
-    plane = a[0, 0] + di * np.arange(rows)[:, None] + dj * np.arange(cols)[None, :]
-    return float(a[0, 0]), float(di), float(dj), a - plane
+    return np.array(
+        [a[0, 0], (a[-1, 0] - a[0, 0]) / (rows - 1), (a[0, -1] - a[0, 0]) / (cols - 1)], float
+    )
 
 
 def near_affine_waves(
@@ -80,15 +95,14 @@ def near_affine_waves(
         return None
     if min(x.shape) < 2:
         return None
-    x0, xi, xj, rx = affine_split(x)
-    y0, yi, yj, ry = affine_split(y)
-    reach = np.abs(kx) * np.abs(rx).max() + np.abs(ky) * np.abs(ry).max()
-    if not reach.max(initial=0.0) <= MAX_REMAINDER_RAD:
-        return None
+    plane_x, plane_y = affine_plane(x), affine_plane(y)
     rows, cols = x.shape
-    a = (kx * x0 + ky * y0 + phase)[None, :] + np.arange(rows)[:, None] * (kx * xi + ky * yi)
-    b = (kx * xj + ky * yj)[:, None] * np.arange(cols)[None, :]
+    row_step = kx * plane_x[1] + ky * plane_y[1]
+    a = (kx * plane_x[0] + ky * plane_y[0] + phase)[None, :] + np.arange(rows)[:, None] * row_step
+    b = (kx * plane_x[2] + ky * plane_y[2])[:, None] * np.arange(cols)[None, :]
+    waves = np.stack([kx, ky, amplitude]).astype(float)
     out = np.empty(x.shape)
-    return np.asarray(
-        _compiled()(np.cos(a), np.sin(a), np.cos(b), np.sin(b), kx, ky, amplitude, rx, ry, out)
-    )
+    args = (np.cos(a), np.sin(a), np.cos(b), np.sin(b), waves, MAX_REMAINDER_RAD, out)
+    if not _compiled()(x, y, plane_x, plane_y, *args):
+        return None
+    return out

@@ -25,7 +25,8 @@ class Waves:
         if is_grid(x, y):
             return self._on_grid(np.asarray(x), np.asarray(y))
         if np.ndim(x) == 2:  # a reprojected raster's positions: see wave_kernels
-            xs, ys = np.broadcast_arrays(np.asarray(x, dtype=float), np.asarray(y, dtype=float))
+            xs = np.asarray(x, dtype=float)
+            ys = np.ascontiguousarray(np.broadcast_to(np.asarray(y, dtype=float), xs.shape))
             fast = near_affine_waves(
                 xs, ys, kx=self.kx, ky=self.ky, phase=self.phase, amplitude=self.amplitude
             )

@@ -206,7 +206,34 @@ class ProvinceLayout:
             return 1.0
         if extremes[1] / width <= 0.0:
             return 0.0
+        if self.at.is_grid:
+            grid = self.world.grid
+            if name == "to_west":
+                return _banded_smoothstep(self._west_axis, self.at.u, grid.width_m, width)
+            return _banded_smoothstep(self._north_axis, self.at.v, grid.height_m, width)
         return _smoothstep(getattr(self, name) / width)
+
+
+def _banded_smoothstep(
+    border: np.ndarray, position: np.ndarray, scale: float, width: float
+) -> np.ndarray:
+    """_smoothstep((border - position) * scale / width) on a grid, border along one axis and
+    position along the other, computed only in the band of positions where some value lies
+    strictly between 0 and 1 (elsewhere it is exactly 1.0 or 0.0; the arithmetic is monotonic
+    in the border, so its extremes decide). Equal to the full computation, value for value."""
+    low = (border.min() - position) * scale / width
+    high = (border.max() - position) * scale / width
+    shape = np.broadcast_shapes(border.shape, position.shape)
+    out = np.broadcast_to(np.where(low >= 1.0, 1.0, 0.0), shape).copy()
+    band = np.flatnonzero((high > 0.0) & (low < 1.0))
+    if band.size:
+        axis = 1 if position.shape[0] == 1 else 0
+        values = _smoothstep((border - np.take(position, band, axis=axis)) * scale / width)
+        if axis == 1:
+            out[:, band] = values
+        else:
+            out[band, :] = values
+    return out
 
 
 def _extremes(values: np.ndarray) -> tuple[float, float]:

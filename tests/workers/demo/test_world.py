@@ -20,7 +20,15 @@ from demaudit.workers.demo.release import (
     void_mask,
 )
 from demaudit.workers.demo.surface import land_cover, terrain_slope, true_terrain
-from demaudit.workers.demo.world import DemoWorld, build_world, province_index, province_weights
+from demaudit.workers.demo.world import (
+    DemoWorld,
+    ProvinceLayout,
+    _smoothstep,
+    build_world,
+    place,
+    province_index,
+    province_weights,
+)
 from tests.support.demo_files import TINY
 
 
@@ -177,3 +185,23 @@ def test_grid_evaluation_equals_the_pointwise_one() -> None:
 def test_options_are_checked(bad: dict[str, float]) -> None:
     with pytest.raises(ValueError):
         DemoArchiveOptions(**bad)  # type: ignore[arg-type]
+
+
+def test_banded_blend_weights_equal_the_full_smoothstep_on_every_tile() -> None:
+    # the band (where the blend is strictly between 0 and 1) is found from the border's
+    # extremes; outside it every value must still be exactly what the full formula gives
+    world = build_world(DemoArchiveOptions(tiles_x=8, tiles_y=8, pixels=60))
+    banded = 0
+    for col, row in world.grid.tiles():
+        at = place(world, *world.grid.pixel_axes(col, row))
+        layout = ProvinceLayout(world, at)
+        for extremes, name, width in (
+            (layout.west_range, "to_west", world.blend_m),
+            (layout.west_range, "to_west", world.blend_m / 4),
+            (layout.north_range, "to_north", world.blend_m),
+        ):
+            got = layout._step(extremes, width, name)
+            full = _smoothstep(getattr(layout, name) / width)
+            assert np.array_equal(np.broadcast_to(got, full.shape), full), (col, row, name)
+            banded += isinstance(got, np.ndarray)
+    assert banded >= 8  # tiles crossed by a border took the banded path
