@@ -21,6 +21,8 @@ import rasterio
 from rasterio.transform import from_origin
 
 from demaudit.service.cli import main as cli
+from demaudit.service.run import runner
+from demaudit.workers.outputs.layout import SUMMARY_NAME
 from tests.conftest import UTM32, write_tif
 
 Run = Callable[..., tuple[int, str, str]]
@@ -121,13 +123,17 @@ def test_a_late_internal_error_leaves_the_earlier_result_whole(
     # 4-tile summary.json before failing
     (archive / "test" / "t_1_1.tif").unlink()
 
-    def broken(*args, **kwargs):
-        raise RuntimeError("figure writer exploded")
+    real = runner.write_summary
 
-    monkeypatch.setattr("demaudit.service.run.runner.write_figures", broken)
+    def broken(out_dir, document, **kwargs):  # the last step: summary.json, staged folder full
+        if kwargs.get("name", SUMMARY_NAME) == SUMMARY_NAME:
+            raise RuntimeError("summary writer exploded")
+        return real(out_dir, document, **kwargs)
+
+    monkeypatch.setattr(runner, "write_summary", broken)
     code, _, err = demaudit("run", str(archive / "job.yaml"), "--out", str(out))
     assert code == 3
-    assert "internal error" in err and "figure writer exploded" in err
+    assert "internal error" in err and "summary writer exploded" in err
     assert len(err.strip().splitlines()) == 1
     assert snapshot(out) == before and leftovers(out) == []
 
@@ -139,10 +145,14 @@ def test_an_interrupted_run_leaves_the_earlier_result_whole(
     assert demaudit("run", str(archive / "job.yaml"), "--out", str(out))[0] == 0
     before = snapshot(out)
 
-    def interrupted(*args, **kwargs):
-        raise KeyboardInterrupt
+    real = runner.write_summary
 
-    monkeypatch.setattr("demaudit.service.run.runner.write_figures", interrupted)
+    def interrupted(out_dir, document, **kwargs):  # Ctrl-C at the last step
+        if kwargs.get("name", SUMMARY_NAME) == SUMMARY_NAME:
+            raise KeyboardInterrupt
+        return real(out_dir, document, **kwargs)
+
+    monkeypatch.setattr(runner, "write_summary", interrupted)
     code, _, err = demaudit("run", str(archive / "job.yaml"), "--out", str(out))
     assert code == 130 and "interrupted" in err
     assert snapshot(out) == before and leftovers(out) == []
