@@ -236,7 +236,7 @@ def _run_tasks(
         return outcomes
     spawn = multiprocessing.get_context("spawn")  # safe when the caller runs threads
     with (
-        _one_thread_per_worker(),
+        _worker_environment(),
         ProcessPoolExecutor(max_workers=min(workers, total), mp_context=spawn) as pool,
     ):
         futures: list[Future[dict[str, Any]]] = [
@@ -248,16 +248,25 @@ def _run_tasks(
         return [future.result() for future in futures]
 
 
-_THREAD_VARIABLES = ("OPENBLAS_NUM_THREADS", "OMP_NUM_THREADS", "MKL_NUM_THREADS")
+#: Set for the worker processes (unless already set): one BLAS thread each (they run one per
+#: core already; the small products of Waves are faster on one thread), and glibc malloc keeps
+#: freed tile-sized arrays (< 32 MiB) in its heap instead of returning them to the system, so a
+#: task does not fault in fresh zeroed pages for every temporary (system time -85 %, measured).
+_WORKER_VARIABLES = {
+    "OPENBLAS_NUM_THREADS": "1",
+    "OMP_NUM_THREADS": "1",
+    "MKL_NUM_THREADS": "1",
+    "MALLOC_MMAP_THRESHOLD_": str(32 * 2**20),
+    "MALLOC_TRIM_THRESHOLD_": str(512 * 2**20),
+}
 
 
 @contextmanager
-def _one_thread_per_worker() -> Iterator[None]:
-    """Workers started inside get one BLAS thread each (they run one per core already; the
-    small products of Waves are faster on one thread). Variables already set are kept."""
-    added = [name for name in _THREAD_VARIABLES if name not in os.environ]
+def _worker_environment() -> Iterator[None]:
+    """Workers started inside get _WORKER_VARIABLES; variables already set are kept."""
+    added = [name for name in _WORKER_VARIABLES if name not in os.environ]
     for name in added:
-        os.environ[name] = "1"
+        os.environ[name] = _WORKER_VARIABLES[name]
     try:
         yield
     finally:
