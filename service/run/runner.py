@@ -307,6 +307,9 @@ class _Run:
                 data=inputs.checkpoints,
             )
         self.clock.mark("checkpoints")
+        derived, names = tiles.outputs.derivatives, {r.region_id: r.name for r in catalog.regions}
+        derivatives = derived.section(names) if derived is not None else None
+        self.clock.mark("derivatives")
         parts = JobParts(
             job=job_info(
                 job,
@@ -324,11 +327,7 @@ class _Run:
             cautions=vertical_accuracy_cautions(vertical, job.spec.grading)
             + ([reuse.note] if reuse.note else []),
             checkpoints=checkpoints,
-            derivatives=tiles.outputs.derivatives.section(
-                {r.region_id: r.name for r in catalog.regions}
-            )
-            if tiles.outputs.derivatives is not None
-            else None,
+            derivatives=derivatives,
             grading_indicative=self.indicative_grading(tiles.totals),
         )
         parts = self.with_change_report(parts, reuse)
