@@ -7,6 +7,8 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import lru_cache
+from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
@@ -24,6 +26,7 @@ class MapFrame:
     x_label: str
     y_label: str
     centre_lat: float | None = None
+    parallel_scale: float = 1.0
 
     @property
     def aspect(self) -> float:
@@ -43,8 +46,12 @@ class ScaleBar:
     label: str
 
 
+@lru_cache(maxsize=64)
 def map_frame(crs: str | None, extent: Bounds) -> MapFrame:
-    """The frame of a map with this extent in crs (None: unknown units, no scale bar)."""
+    """The frame of a map with this extent in crs (None: unknown units, no scale bar). On a
+    projected map, the metres per map unit are those on the ground at the map's centre: the
+    unit's length divided by the projection's scale along the parallel there (PROJ's factors;
+    1.0004 for UTM on its central meridian, sec(latitude) for Web Mercator)."""
     if crs is None:
         return MapFrame(False, None, "x", "y")
     from pyproj import CRS
@@ -58,8 +65,27 @@ def map_frame(crs: str | None, extent: Bounds) -> MapFrame:
     unit = c.axis_info[0]
     name = (unit.unit_name or "").lower()
     short = "m" if name in ("metre", "meter") else name or "map units"
-    factor = float(unit.unit_conversion_factor or 0.0) or None
-    return MapFrame(False, factor, f"easting ({short})", f"northing ({short})")
+    factor = float(unit.unit_conversion_factor or 0.0)
+    scale, centre_lat = _parallel_scale(c, extent)
+    per_unit = factor / scale if factor > 0 else None
+    labels = f"easting ({short})", f"northing ({short})"
+    return MapFrame(False, per_unit, *labels, centre_lat, scale)
+
+
+def _parallel_scale(crs: Any, extent: Bounds) -> tuple[float, float | None]:
+    """The projection's scale factor along the parallel at the extent's centre, and the
+    centre's latitude (1.0 and None when PROJ cannot say)."""
+    from pyproj import Proj, Transformer
+
+    x, y = (extent[0] + extent[2]) / 2, (extent[1] + extent[3]) / 2
+    try:
+        lon, lat = Transformer.from_crs(crs, "EPSG:4326", always_xy=True).transform(x, y)
+        scale = float(Proj(crs).get_factors(lon, lat).parallel_scale)
+    except Exception:  # noqa: BLE001 - any PROJ failure: no correction, said by the None
+        return 1.0, None
+    if not math.isfinite(scale) or scale <= 0:
+        return 1.0, None
+    return scale, float(lat)
 
 
 def metres_per_degree_lon(lat_deg: float, crs: str = "EPSG:4326") -> float:
@@ -102,6 +128,8 @@ def scale_bar(frame: MapFrame, extent: Bounds) -> ScaleBar | None:
     label = f"{length_m / 1000:g} km" if length_m >= 1000 else f"{length_m:g} m"
     if frame.geographic:
         label += f" (along latitude {frame.centre_lat:.2f}°)"
+    elif abs(frame.parallel_scale - 1.0) > 0.01:
+        label += " (at the map's centre)"
     return ScaleBar(length_m, length_m / frame.metres_per_unit, label)
 
 

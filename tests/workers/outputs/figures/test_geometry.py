@@ -50,10 +50,12 @@ def test_projected_maps_in_feet_get_a_scale_bar_in_metres():
     # EPSG:2263 (NY Long Island, US survey foot; EPSG registry); 1 ftUS = 1200/3937 m (NIST)
     extent = (1_000_000.0, 200_000.0, 1_040_000.0, 230_000.0)
     frame = geometry.map_frame("EPSG:2263", extent)
-    assert frame.metres_per_unit == pytest.approx(1200 / 3937)
+    # the Lambert conformal conic's scale near its standard parallels is within 1e-4 of 1
+    assert frame.parallel_scale == pytest.approx(1.0, abs=1e-4)
+    assert frame.metres_per_unit == pytest.approx(1200 / 3937 / frame.parallel_scale)
     bar = geometry.scale_bar(frame, extent)
     assert bar is not None and bar.length_m == 2000  # a quarter of 12.2 km, rounded down
-    assert bar.length_units == pytest.approx(2000 / (1200 / 3937))
+    assert bar.length_units == pytest.approx(2000 / frame.metres_per_unit)
     assert geometry.scale_bar(geometry.map_frame(None, extent), extent) is None
 
 
@@ -61,3 +63,26 @@ def test_tile_corners():
     corners = geometry.tile_corners([(0, 1, 2, 4), (5, 5, 6, 6)])
     assert corners.shape == (2, 4, 2)
     assert corners[0].tolist() == [[0, 1], [2, 1], [2, 4], [0, 4]]
+
+
+def test_scale_bar_on_web_mercator_is_true_at_the_map_centre():
+    # Web Mercator's scale factor is sec(latitude) (Snyder 1987, Map Projections - A Working
+    # Manual, Mercator, eq. 7-8 on the sphere): at 60 degrees one map metre is half a metre
+    from pyproj import Transformer
+
+    x, y = Transformer.from_crs("EPSG:4326", "EPSG:3857", always_xy=True).transform(10.0, 60.0)
+    extent = (x - 20_000, y - 20_000, x + 20_000, y + 20_000)
+    frame = geometry.map_frame("EPSG:3857", extent)
+    assert frame.metres_per_unit == pytest.approx(0.5, rel=1e-3)
+    bar = geometry.scale_bar(frame, extent)
+    assert bar is not None and bar.length_m == 5000  # a quarter of 20 km on the ground, rounded
+    assert bar.length_units == pytest.approx(10_000, rel=1e-3)
+    assert bar.label == "5 km (at the map's centre)"
+
+
+def test_utm_scale_bar_within_its_scale_factor():
+    # UTM's scale factor on the central meridian is 0.9996 (EPSG:32632 parameters)
+    extent = (499_000.0, 6_600_000.0, 501_000.0, 6_602_000.0)
+    frame = geometry.map_frame("EPSG:32632", extent)
+    assert frame.metres_per_unit == pytest.approx(1 / 0.9996, rel=1e-6)
+    assert geometry.scale_bar(frame, extent).label == "500 m"
