@@ -165,16 +165,13 @@ def reference_heights(
 
     True terrain plus lidar noise (sigma 0.03 m, none for clean options) drawn from a stream of
     (seed, tile_key) for every point; NaN on water (no returns) and farther than margin_m outside
-    the test domain. The terrain is evaluated only where it is kept.
+    the test domain. On a 2-D raster of positions the terrain is evaluated at every pixel (by
+    the fast path of Waves) and the masks select; at other points only where it is kept.
     """
     options = world.options
     grid = world.grid
     easting = np.asarray(easting, dtype=float)
     northing = np.asarray(northing, dtype=float)
-    noise = np.zeros(easting.shape)
-    if not options.clean:
-        rng = np.random.default_rng([options.seed, RandomStream.REFERENCE, *tile_key])
-        noise = LIDAR_NOISE_M * rng.standard_normal(easting.shape)
     covered = (
         (easting >= grid.west - margin_m)
         & (easting <= grid.west + grid.width_m + margin_m)
@@ -183,6 +180,10 @@ def reference_heights(
     )
     if not covered.any():
         return np.full(easting.shape, np.nan)
+    noise = np.zeros(easting.shape)  # the tile's own stream: skipping it above changes nothing
+    if not options.clean:
+        rng = np.random.default_rng([options.seed, RandomStream.REFERENCE, *tile_key])
+        noise = LIDAR_NOISE_M * rng.standard_normal(easting.shape)
     if easting.ndim == 2:  # a raster's positions: every pixel, so Waves may use their lattice
         at = place(world, easting, northing)
         layout = province_layout(world, at)
