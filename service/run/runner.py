@@ -164,6 +164,8 @@ class _Run:
             known=prior.catalog if prior else {},
             headers_checked=prior.catalog_headers_checked if prior else False,
         )
+        if scan.layout is not None:  # tiles decimate by the mosaic's own factor
+            options = options.with_overview_factor(scan.layout.factor)
         reuse = plan_reuse(prior, self.job, scan)
         estimate = self.estimate_correction(scan, reuse)
         options = replace(options, correction=estimate.correction)

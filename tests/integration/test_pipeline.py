@@ -178,3 +178,26 @@ def test_a_wrong_datum_is_flagged(make_archive, dask_client, tmp_path):
     doc = run_job(job, tmp_path / "out", client=dask_client)
     assert doc["overall"]["median"] > 30
     assert any("check the vertical datum" in c for c in doc["cautions"])
+
+
+def test_the_overview_blocks_fit_its_grid_when_tiles_are_not_a_multiple_of_the_factor(
+    make_archive, dask_client, tmp_path
+):
+    # 42 px tiles: the mosaic decimates by 7 (the largest divisor <= 8); each tile's blocks must
+    # be means of 7 x 7 pixels too, or the overview shows each tile at the wrong scale
+    root = make_archive(tiles=2, pixels=42, bias=0.25, noise=1.0, seed=5)
+    job = load(root)
+    out = tmp_path / "out"
+    run_job(job, out, client=dask_client)
+    overview = xr.open_zarr(out / "results.zarr", group="dh_overview", decode_coords="all")
+    assert overview.sizes == {"y": 12, "x": 12}
+    assert overview["dh"].rio.resolution() == (35.0, -35.0)
+    options = TileOptions.from_spec(job.spec)
+    index = TileIndex([scan_tile(p) for p in job.reference_tiles])
+    tile = scan_tile(next(p for p in job.test_tiles if p.name == "t_1_0.tif"))
+    dh = tile_surfaces(tile, index.overlapping(tile.grid), options).dh
+    # reference: numpy block means of the tile's own dh (7 x 7 pixels per cell)
+    with np.errstate(invalid="ignore"):
+        expected = np.nanmean(dh.reshape(6, 7, 6, 7), axis=(1, 3))
+    got = overview["dh"].values[0:6, 6:12]
+    np.testing.assert_allclose(got, expected, rtol=0, atol=1e-4)

@@ -4,7 +4,7 @@ result (summaries, overview, extras), and the per-pixel layers the task works on
 from __future__ import annotations
 
 from collections.abc import Sequence
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -77,6 +77,15 @@ class TileOptions:
             ),
             derivatives=DerivativeOptions.from_section(spec.derivatives),
         )
+
+    def with_overview_factor(self, factor: int) -> TileOptions:
+        """The same options with the dh overview (and the error model's) decimated by factor:
+        the factor of the job's overview mosaic, which may be smaller than the spec's when the
+        tile size is not a multiple of it (writers.overview_layout)."""
+        error_model = self.error_model
+        if error_model is not None:
+            error_model = replace(error_model, overview_factor=factor)
+        return replace(self, overview_factor=factor, error_model=error_model)
 
 
 @dataclass(frozen=True, eq=False)
