@@ -175,8 +175,12 @@ class _Run:
         write_tables(tiles.outputs.store, tiles.records, areas)
         self.clock.mark("tables")
         drawing = self.start_figures(scan, tiles, areas, started)  # while checkpoints run
-        parts = self.document_parts(inputs, scan, reuse, tiles, areas, options, started)
-        return self.write_outputs(parts, drawing)
+        try:
+            parts = self.document_parts(inputs, scan, reuse, tiles, areas, options, started)
+            return self.write_outputs(parts, drawing)
+        except BaseException:
+            drawing.abandon()  # before the staged folder is removed
+            raise
 
     def estimate_correction(self, scan: Scan, reuse: Reuse) -> CorrectionEstimate:
         """The job-wide co-registration (none unless the spec asks for it)."""

@@ -12,6 +12,7 @@ import errno
 import json
 import os
 import socket
+import time
 from collections.abc import Callable
 from pathlib import Path
 
@@ -22,6 +23,7 @@ from rasterio.transform import from_origin
 
 from demaudit.service.cli import main as cli
 from demaudit.service.run import runner
+from demaudit.workers.outputs.figures import background
 from demaudit.workers.outputs.layout import SUMMARY_NAME
 from tests.conftest import UTM32, write_tif
 
@@ -135,6 +137,38 @@ def test_a_late_internal_error_leaves_the_earlier_result_whole(
     assert code == 3
     assert "internal error" in err and "summary writer exploded" in err
     assert len(err.strip().splitlines()) == 1
+    assert snapshot(out) == before and leftovers(out) == []
+
+
+def test_an_error_while_figures_are_drawn_leaves_no_partial_folder(
+    archive, demaudit, tmp_path, monkeypatch
+):
+    # the first write after the figures start (catalog.json) fails while the background thread
+    # still draws into the staged folder: the folder must still go, whole
+    out = tmp_path / "out"
+    assert demaudit("run", str(archive / "job.yaml"), "--out", str(out))[0] == 0
+    before = snapshot(out)
+
+    def broken(out_dir, document, **kwargs):
+        raise RuntimeError("writer exploded")
+
+    real_draw = background._draw_early
+    folder_there_while_drawing = []
+
+    def slow_draw(ctx):  # still drawing when the job fails
+        time.sleep(1.0)
+        drawn = real_draw(ctx)
+        folder_there_while_drawing.append(ctx.out_dir.is_dir())
+        return drawn
+
+    monkeypatch.setattr(runner, "write_summary", broken)
+    monkeypatch.setattr(background, "_draw_early", slow_draw)
+    code, _, err = demaudit("run", str(archive / "job.yaml"), "--out", str(out))
+    assert code == 3 and "writer exploded" in err
+    background._THREAD.submit(lambda: None).result()  # whatever the thread still had to do
+    # the staged folder went only after the drawing into it ended (else rmtree races the
+    # writes), or the drawing was cancelled before it began
+    assert folder_there_while_drawing in ([True], [])
     assert snapshot(out) == before and leftovers(out) == []
 
 

@@ -13,7 +13,7 @@ from __future__ import annotations
 
 import time
 from collections.abc import Mapping, Sequence
-from concurrent.futures import Future, ThreadPoolExecutor
+from concurrent.futures import Future, ThreadPoolExecutor, wait
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -65,6 +65,12 @@ class FigureDrawing:
         late = draw_figures(replace(self.context, document=document), lambda name: name in LATE)
         both = drawn.figures | late
         return {name: both[name] for name, _ in BUILDERS if name in both}
+
+    def abandon(self) -> None:
+        """The job failed: wait until the background thread no longer writes into the job's
+        folder (a drawing not yet begun is cancelled), so the folder can be removed whole."""
+        if not self.early.cancel():
+            wait([self.early])
 
     @property
     def seconds(self) -> tuple[float, float] | None:
