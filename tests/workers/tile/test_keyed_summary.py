@@ -7,7 +7,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from demaudit.workers.stats import bins
 from demaudit.workers.stats import summary as dhs
 from demaudit.workers.tile import kernels, keyed_summary
 
@@ -70,20 +69,6 @@ def test_fused_sweep_equals_summarise_cells(
     for c in range(3 * n_cells):
         assert_identical(per_key.union([c]), want.union([c]), f"cell {c}")
     assert_identical(per_key.union(range(3 * n_cells)), want.union(range(3 * n_cells)), "all")
-
-
-def test_tail_table_edges_are_bin_index_edges() -> None:
-    """Each tail bin's lower edge is the smallest float bin_index puts in that bin, and every
-    slot's first bin is bin_index's bin of the slot's lowest value (both checked whole)."""
-    first, edges = keyed_summary.tail_table()
-    lower = edges[np.isfinite(edges)]
-    j = np.arange(lower.size)
-    np.testing.assert_array_equal(bins.bin_index(lower), bins.K_LIMIT + j)
-    below = np.nextafter(lower[1:], 0)
-    np.testing.assert_array_equal(bins.bin_index(below), bins.K_LIMIT + j[1:] - 1)
-    slots = np.arange(first.size, dtype=np.int64)
-    lowest = ((slots + (0x4000000000000000 >> 40)) << 40).view(np.float64)
-    np.testing.assert_array_equal(first, bins.bin_index(lowest) - bins.K_LIMIT)
 
 
 def test_fused_sweep_declines_what_it_cannot_count(monkeypatch: pytest.MonkeyPatch) -> None:
