@@ -47,3 +47,28 @@ def test_nothing_imports_the_folders_by_their_bare_names(root: str) -> None:
         if name.split(".")[0] in SOURCE_ROOTS
     ]
     assert bare == []
+
+
+MAX_MODULE_LINES = 400  # issue 14: a module a newcomer reads in one sitting
+MAX_FUNCTION_LINES = 60
+
+
+def test_no_module_is_longer_than_the_limit() -> None:
+    long = {
+        str(path.relative_to(ROOT)): n
+        for path in python_files(*SOURCE_ROOTS)
+        if (n := len(path.read_text().splitlines())) > MAX_MODULE_LINES
+    }
+    assert long == {}
+
+
+def test_no_function_is_longer_than_the_limit() -> None:
+    long = {
+        f"{path.relative_to(ROOT)}::{node.name}": node.end_lineno - node.lineno + 1
+        for path in python_files(*SOURCE_ROOTS)
+        for node in ast.walk(ast.parse(path.read_text()))
+        if isinstance(node, ast.FunctionDef | ast.AsyncFunctionDef)
+        and node.end_lineno is not None
+        and node.end_lineno - node.lineno + 1 > MAX_FUNCTION_LINES
+    }
+    assert long == {}
