@@ -91,7 +91,9 @@ def load_job(spec_path: Path, settings: Settings) -> job_spec.ResolvedJob:
 def run_command(args: argparse.Namespace, settings: Settings) -> int:
     """Run the job; print its report; the exit status says whether every tile was audited."""
     # imported here: the client commands (submit, status, schedule) start without Dask
-    from demaudit.service.run.runner import check_output, read_inputs, run_job
+    from demaudit.service.run.runner import run_job
+    from demaudit.service.run.scan import read_inputs
+    from demaudit.service.run.validate import check_output
 
     job = load_job(Path(args.spec), settings)
     inputs = read_inputs(job)  # a bad region or checkpoint file stops here, before the cluster
@@ -142,7 +144,7 @@ def _enter_client(stack: ExitStack, scheduler: str | None, workers: int, setting
 
 def validate_command(args: argparse.Namespace, settings: Settings) -> int:
     """Check the spec and its files; 1 when some tile has a problem, else 0."""
-    from demaudit.service.run.runner import validate_job
+    from demaudit.service.run.validate import validate_job
 
     job = load_job(Path(args.spec), settings)
     notes, problems = validate_job(

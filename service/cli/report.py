@@ -6,6 +6,7 @@ from __future__ import annotations
 from pathlib import Path
 from typing import Any
 
+from demaudit.workers.outputs.layout import REPORT_NAME, SUMMARY_NAME, ZARR_NAME
 from demaudit.workers.outputs.summary_document import CAUTIONS_ALWAYS
 
 __all__ = ["print_report"]
@@ -14,7 +15,7 @@ __all__ = ["print_report"]
 def print_report(document: dict[str, Any], out_dir: Path) -> None:
     """Print the summary document of a finished run written to out_dir."""
     folder = Path(out_dir).resolve()
-    print(f"\nresults: {folder}/report.html (for people), summary.json, results.zarr")
+    print(f"\nresults: {folder / REPORT_NAME} (for people), {SUMMARY_NAME}, {ZARR_NAME}")
     print(f"dh = {document['sign']}, {document['units']}s\n")
     _print_regions(document)
     if document.get("checkpoints"):
@@ -29,7 +30,7 @@ def print_report(document: dict[str, Any], out_dir: Path) -> None:
         print("\ncautions:")
         for caution in notable:
             print(f"  ! {caution}")
-    print(f"\nreport: {folder / 'report.html'}")
+    print(f"\nreport: {folder / REPORT_NAME}")
     print(document["cautions"][0])
 
 

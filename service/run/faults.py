@@ -36,6 +36,7 @@ from demaudit.service.store.jobs import (
     utc_now,
 )
 from demaudit.workers.errors import AuditError, OutputError, TileReadError
+from demaudit.workers.outputs.layout import leftover_patterns
 
 __all__ = [
     "CAUSES",
@@ -107,7 +108,7 @@ def remove_outputs(results_dir: Path, job_id: str) -> None:
     results_dir = Path(results_dir)
     shutil.rmtree(results_dir / job_id, ignore_errors=True)
     if results_dir.is_dir():
-        for pattern in (f"{job_id}.partial-*", f"{job_id}.replaced-*"):
+        for pattern in leftover_patterns(job_id):
             for leftover in results_dir.glob(pattern):
                 shutil.rmtree(leftover, ignore_errors=True)
 

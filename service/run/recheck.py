@@ -12,11 +12,15 @@ from typing import Any
 
 from demaudit.workers.errors import SpecError
 from demaudit.workers.inputs.catalog import TileInfo, headers_checked, tiles_from_catalog
-from demaudit.workers.outputs.layout import CATALOG_NAME, SUMMARY_NAME, ZARR_NAME
-from demaudit.workers.outputs.summary_store import (
+from demaudit.workers.outputs.layout import (
     AFTER_PART,
     ALL_PART,
-    JOB_GROUP,
+    CATALOG_NAME,
+    JOB_SUMMARIES_GROUP,
+    SUMMARY_NAME,
+    ZARR_NAME,
+)
+from demaudit.workers.outputs.summary_store import (
     TileSummaryStore,
     read_job_totals,
     split_after,
@@ -64,7 +68,7 @@ class Baseline:
 
     @property
     def has_job_totals(self) -> bool:
-        return (self.zarr / JOB_GROUP / ALL_PART / "zarr.json").is_file()
+        return (self.zarr / JOB_SUMMARIES_GROUP / ALL_PART / "zarr.json").is_file()
 
     @cached_property
     def summaries(self) -> TileSummaryStore:
@@ -112,7 +116,7 @@ def resumed_totals(
     stored summaries are missing or do not add up."""
     acc = read_job_totals(baseline.zarr, ALL_PART, region_ids)
     if acc is None:
-        raise SpecError(f"baseline: {baseline.zarr} holds no job totals ({JOB_GROUP})")
+        raise SpecError(f"baseline: {baseline.zarr} holds no job totals ({JOB_SUMMARIES_GROUP})")
     after = read_job_totals(baseline.zarr, AFTER_PART, region_ids)
     after = after or JobAccumulator(region_ids=region_ids)
     kept = [t for t in change.reuse if baseline.tiles[t].ok]

@@ -31,7 +31,6 @@ from demaudit.service.run.scan import Inputs, Scan, dask_map, read_inputs, scan_
 from demaudit.service.run.tables import write_tables
 from demaudit.service.run.tiles import (
     Dispatch,
-    JobDismissedError,
     Outputs,
     Progress,
     TilePhase,
@@ -41,25 +40,19 @@ from demaudit.service.run.tiles import (
     to_audit,
     unaudited_records,
 )
-from demaudit.service.run.validate import check_output, validate_job
 from demaudit.workers.checkpoints.section import indicative_grading
 from demaudit.workers.outputs.derivatives import JobDerivatives
 from demaudit.workers.outputs.figures.background import FigureDrawing, start_figures
+from demaudit.workers.outputs.folder import staged_folder, write_summary
 from demaudit.workers.outputs.job_document import Figures, JobParts, assemble, job_info
-from demaudit.workers.outputs.layout import CATALOG_NAME, CHANGE_REPORT_NAME
+from demaudit.workers.outputs.layout import AFTER_PART, ALL_PART, CATALOG_NAME, CHANGE_REPORT_NAME
 from demaudit.workers.outputs.report_html import write_report
 from demaudit.workers.outputs.summary_document import vertical_accuracy_cautions
-from demaudit.workers.outputs.summary_store import (
-    AFTER_PART,
-    ALL_PART,
-    TileSummaryStore,
-    write_job_totals,
-)
+from demaudit.workers.outputs.summary_store import TileSummaryStore, write_job_totals
 from demaudit.workers.outputs.tile_records import (
-    UNAUDITED,
     TileRecord,
 )
-from demaudit.workers.outputs.writers import ResultsStore, staged_folder, write_summary
+from demaudit.workers.outputs.writers import ResultsStore
 from demaudit.workers.recheck.plan import Thresholds
 from demaudit.workers.spec import ResolvedJob
 from demaudit.workers.stats.job_statistics import (
@@ -75,16 +68,7 @@ from demaudit.workers.tile.task import ALL, OK, TileOptions
 from demaudit.workers.uncertainty.overview import write_standardised_overview
 from demaudit.workers.uncertainty.sample_store import ErrorSampleStore, carry_samples
 
-__all__ = [
-    "UNAUDITED",
-    "Inputs",
-    "JobDismissedError",
-    "Phases",
-    "check_output",
-    "read_inputs",
-    "run_job",
-    "validate_job",
-]
+__all__ = ["SOFTWARE", "run_job"]
 
 SOFTWARE = "demaudit 0.1.0"
 
@@ -117,7 +101,7 @@ def run_job(
 
     Every input file that can be checked (regions, checkpoints, baseline, the output folder) is
     checked before the first tile runs. The new result is built in ``<out_dir>.partial-<run_id>``
-    beside out_dir and swapped in only when complete (writers.staged_folder): a run that fails
+    beside out_dir and swapped in only when complete (folder.staged_folder): a run that fails
     leaves out_dir as it was, and out_dir never mixes files of two runs. A baseline may be
     out_dir itself: it stays readable until the swap. ``inputs``: read_inputs(job) when the
     caller has already read them.

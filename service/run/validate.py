@@ -9,10 +9,10 @@ from pathlib import Path
 
 from demaudit.service.run.recheck import load_baseline
 from demaudit.service.run.scan import local_map, read_inputs, scan_catalog
-from demaudit.workers.errors import AuditError
+from demaudit.workers.errors import AuditError, OutputError
 from demaudit.workers.inputs.catalog import TileInfo
 from demaudit.workers.inputs.rasters import read_tile
-from demaudit.workers.outputs.writers import OutputError, check_output_folder
+from demaudit.workers.outputs.folder import check_output_folder
 from demaudit.workers.spec import ResolvedJob
 from demaudit.workers.tile.datum import DEFAULT_GRID_DIRS
 from demaudit.workers.tile.task import TileOptions

@@ -24,6 +24,7 @@ from rasterio.transform import from_origin
 from demaudit.service.cli import main as cli
 from demaudit.service.run import runner
 from demaudit.workers.outputs.figures import background
+from demaudit.workers.outputs.folder import write_summary
 from demaudit.workers.outputs.layout import SUMMARY_NAME
 from tests.conftest import UTM32, write_tif
 
@@ -195,17 +196,15 @@ def test_an_interrupted_run_leaves_the_earlier_result_whole(
 def test_disk_full_while_writing_is_one_line_and_changes_nothing(
     archive, demaudit, tmp_path, monkeypatch
 ):
-    from demaudit.workers.outputs import writers
-
     out = tmp_path / "out"
     assert demaudit("run", str(archive / "job.yaml"), "--out", str(out))[0] == 0
     before = snapshot(out)
-    real = writers.write_summary
+    real = write_summary
     calls = []
 
-    def full(folder, document, *, name=writers.SUMMARY_NAME):
+    def full(folder, document, *, name=SUMMARY_NAME):
         calls.append(name)
-        if name == writers.SUMMARY_NAME:  # the last file of a run
+        if name == SUMMARY_NAME:  # the last file of a run
             target = Path(folder) / name
             raise OSError(errno.ENOSPC, os.strerror(errno.ENOSPC), str(target))
         return real(folder, document, name=name)

@@ -23,7 +23,7 @@ from demaudit.workers.coregistration.estimate import (
 )
 from demaudit.workers.coregistration.job import JobEstimate
 from demaudit.workers.coregistration.tile import Correction, TileEquations
-from demaudit.workers.stats.summary import quantile
+from demaudit.workers.stats.quantiles import quantile
 
 #: One pass over the sampled tiles at a correction: their merged equations.
 Pass = Callable[[Correction], TileEquations]

@@ -24,8 +24,6 @@ import zarr
 
 from demaudit.workers.outputs.folder import link_or_copy
 from demaudit.workers.outputs.layout import (
-    AFTER_PART,  # noqa: F401 - imported from here by service/run (to switch to layout)
-    ALL_PART,  # noqa: F401 - imported from here by service/run (to switch to layout)
     JOB_SUMMARIES_GROUP,
     TILE_SUMMARIES_GROUP,
 )
@@ -33,8 +31,6 @@ from demaudit.workers.stats.merge import JobAccumulator, TileExtremes, keyed_sum
 from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.tile.task import TileResult
 
-#: The name service/run/recheck.py imports (until it imports layout.JOB_SUMMARIES_GROUP).
-JOB_GROUP = JOB_SUMMARIES_GROUP
 Key = tuple[str, str]  # (area, stratum)
 
 

@@ -21,21 +21,11 @@ import xarray as xr
 import zarr
 from numpy.typing import NDArray
 
-# Re-exported (noqa: F401) until their users import them from errors.py, folder.py and
-# layout.py: service/run/runner.py (staged_folder, write_summary), service/run/validate.py
-# (OutputError, check_output_folder), tests/integration/test_cli_faults.py (SUMMARY_NAME).
-from demaudit.workers.errors import OutputError  # noqa: F401
 from demaudit.workers.inputs.catalog import TileInfo
-from demaudit.workers.outputs.folder import (
-    check_output_folder,  # noqa: F401
-    link_or_copy,
-    staged_folder,  # noqa: F401
-    write_summary,  # noqa: F401
-)
+from demaudit.workers.outputs.folder import link_or_copy
 from demaudit.workers.outputs.layout import (
     OVERVIEW_ARRAY,
     OVERVIEW_GROUP,
-    SUMMARY_NAME,  # noqa: F401
     UNCONSOLIDATED_GROUPS,
     ZARR_NAME,
     partial_store,
@@ -123,7 +113,7 @@ class ResultsStore:
     """Writes one job's ``results.zarr``; overview blocks are written as tiles finish.
 
     The store is built as ``results.zarr.partial`` and replaces an earlier ``results.zarr`` only
-    in :meth:`finish`. The runner writes it inside a staged output folder (:func:`staged_folder`),
+    in :meth:`finish`. The runner writes it inside a staged output folder (folder.staged_folder),
     which keeps the whole earlier result, not only its store, intact when a job fails.
     """
 
