@@ -8,6 +8,7 @@ from typing import Any
 
 import numpy as np
 
+from demaudit.workers.coregistration.shift import SHIFT_KEYS
 from demaudit.workers.outputs.layout import (
     AFTER_COREGISTRATION_GROUP,
     REGIONS_GROUP,
@@ -20,15 +21,7 @@ from demaudit.workers.stats.job_statistics import AreaStatistics
 from demaudit.workers.tile.task import ALL
 
 #: Per-tile co-registration values stored as ``shift_<key>`` variables of the tiles table.
-TILE_SHIFT_KEYS = (
-    "east_m",
-    "north_m",
-    "vertical_m",
-    "east_se_m",
-    "north_se_m",
-    "tilt_east_m_per_km",
-    "tilt_north_m_per_km",
-)
+TILE_SHIFT_KEYS = SHIFT_KEYS
 
 
 def write_tables(store: ResultsStore, tiles: Sequence[TileRecord], areas: AreaStatistics) -> None:

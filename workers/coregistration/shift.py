@@ -14,9 +14,8 @@ from typing import Any
 
 OK = "ok"
 
-#: The values of a tile's estimate, in the order the record lists them (metres; tilts in metres
-#: per km; counts and flags as tile_estimate reports them).
-VALUE_KEYS = (
+#: The estimate itself: shift, its standard errors and tilt (metres; tilts in metres per km).
+SHIFT_KEYS = (
     "east_m",
     "north_m",
     "vertical_m",
@@ -24,6 +23,12 @@ VALUE_KEYS = (
     "north_se_m",
     "tilt_east_m_per_km",
     "tilt_north_m_per_km",
+)
+
+#: The values of a tile's estimate, in the order the record lists them (SHIFT_KEYS, then counts
+#: and flags as tile_estimate reports them).
+VALUE_KEYS = (
+    *SHIFT_KEYS,
     "iterations",
     "converged",
     "stable_pixels",

@@ -284,11 +284,8 @@ def job_tile(
     principal: PrincipalDep,
 ) -> dict[str, Any]:
     """One test tile of a successful job: status, reason, bounds and statistics."""
-    summary = _summary_of(dispatcher, _record(store, job_id, principal))
-    for entry in summary["tiles"]:
-        if entry["tile"] == tile:
-            return entry | {"links": _item_links(request, job_id)}
-    raise NoSuchItemError(f"job {job_id} has no tile {tile!r}")
+    record = _record(store, job_id, principal)
+    return _summary_item(request, dispatcher, record, kind="tile", key=tile)
 
 
 @router.get(
@@ -306,11 +303,19 @@ def job_region(
     principal: PrincipalDep,
 ) -> dict[str, Any]:
     """One region of a successful job: statistics, outlier-free statistics and strata."""
-    summary = _summary_of(dispatcher, _record(store, job_id, principal))
-    for entry in summary["regions"]:
-        if entry["region"] == region:
-            return entry | {"links": _item_links(request, job_id)}
-    raise NoSuchItemError(f"job {job_id} has no region {region!r}")
+    record = _record(store, job_id, principal)
+    return _summary_item(request, dispatcher, record, kind="region", key=region)
+
+
+def _summary_item(
+    request: Request, dispatcher: JobDispatcher, record: JobRecord, *, kind: str, key: str
+) -> dict[str, Any]:
+    """The entry of summary.json's list of kind ("tile": ``tiles``, "region": ``regions``)
+    whose kind field is key, with the item's links; NoSuchItemError when there is none."""
+    for entry in _summary_of(dispatcher, record)[f"{kind}s"]:
+        if entry[kind] == key:
+            return entry | {"links": _item_links(request, record.job_id)}
+    raise NoSuchItemError(f"job {record.job_id} has no {kind} {key!r}")
 
 
 @router.get(
