@@ -58,8 +58,9 @@ from demaudit.service.run.runner import run_job
 from demaudit.workers.demo.archive import make_demo_archive
 from demaudit.workers.demo.options import DemoArchiveOptions
 from demaudit.workers.inputs import regions as region_ops
-from demaudit.workers.inputs.catalog import ScanFailure, TileIndex, TileInfo, scan_tile
+from demaudit.workers.inputs.catalog import ScanFailure, TileInfo, scan_tile
 from demaudit.workers.inputs.regions import Region
+from demaudit.workers.inputs.tile_index import TileIndex
 from demaudit.workers.spec import ResolvedJob, load_spec_file, parse_spec, resolve
 from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.stats.bins import LINEAR_LIMIT_M

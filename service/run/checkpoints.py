@@ -34,8 +34,9 @@ from demaudit.workers.checkpoints.section import (
     unclassified_group_of,
     with_cover_groups,
 )
-from demaudit.workers.inputs.catalog import TileIndex, TileInfo, file_fingerprint
+from demaudit.workers.inputs.catalog import TileInfo, file_fingerprint
 from demaudit.workers.inputs.regions import Region
+from demaudit.workers.inputs.tile_index import TileIndex
 from demaudit.workers.outputs.layout import RESIDUALS_NAME
 from demaudit.workers.spec import ResolvedJob
 from demaudit.workers.tile.task import TileOptions

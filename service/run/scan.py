@@ -24,7 +24,6 @@ from demaudit.workers.inputs.catalog import (
     Known,
     Overlap,
     ScanFailure,
-    TileIndex,
     TileInfo,
     catalog_document,
     file_fingerprint,
@@ -39,6 +38,7 @@ from demaudit.workers.inputs.catalog import (
 )
 from demaudit.workers.inputs.confine import Roots
 from demaudit.workers.inputs.regions import Region
+from demaudit.workers.inputs.tile_index import TileIndex
 from demaudit.workers.outputs.tile_records import TileRecord, coverage_cautions
 from demaudit.workers.outputs.writers import OverviewLayout, overview_layout
 from demaudit.workers.spec import ELLIPSOIDAL, ResolvedJob

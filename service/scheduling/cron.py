@@ -19,8 +19,7 @@ from zoneinfo import ZoneInfo, ZoneInfoNotFoundError
 
 from croniter import CroniterBadDateError, croniter
 
-from demaudit.service.store.jobs import ScheduleRecord
-from demaudit.service.store.schedules import DEFAULT_TIMEZONE
+from demaudit.service.store.schedules import DEFAULT_TIMEZONE, ScheduleRecord
 
 __all__ = [
     "CRON_ALIASES",

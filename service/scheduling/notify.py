@@ -53,7 +53,8 @@ from demaudit.service.scheduling.webhook_address import (
     pinned,
     system_resolver,
 )
-from demaudit.service.store.jobs import SUCCESSFUL, JobRecord, JobStore, ScheduleRecord
+from demaudit.service.store.jobs import SUCCESSFUL, JobRecord, JobStore
+from demaudit.service.store.schedules import ScheduleRecord
 
 __all__ = ["Delivery", "Notifier", "change_report", "deliver", "should_notify", "sign"]
 

@@ -41,8 +41,8 @@ from demaudit.service.store.jobs import (
     SUCCESSFUL,
     JobRecord,
     JobStore,
-    ScheduleRecord,
 )
+from demaudit.service.store.schedules import ScheduleRecord
 from demaudit.workers import spec as job_spec
 from demaudit.workers.errors import AuditError
 from demaudit.workers.outputs.layout import is_result

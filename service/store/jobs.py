@@ -29,10 +29,6 @@ from typing import Any, Literal, Protocol, get_args
 
 from demaudit.service.store.schedules import (
     MemorySchedules,
-    NotifyWhen,
-    RunOutcome,
-    ScheduleRecord,
-    ScheduleRun,
     ScheduleStore,
 )
 
@@ -50,10 +46,6 @@ __all__ = [
     "JobStore",
     "Lease",
     "MemoryJobStore",
-    "NotifyWhen",
-    "RunOutcome",
-    "ScheduleRecord",
-    "ScheduleRun",
     "check_changes",
     "utc_now",
 ]

@@ -14,8 +14,9 @@ import xarray as xr
 
 from demaudit.service.run.runner import run_job
 from demaudit.workers import spec as job_spec
-from demaudit.workers.inputs.catalog import TileIndex, scan_tile
+from demaudit.workers.inputs.catalog import scan_tile
 from demaudit.workers.inputs.regions import read_regions, region_mask, to_crs
+from demaudit.workers.inputs.tile_index import TileIndex
 from demaudit.workers.tile.derivatives import (
     ASPECT,
     PARAMETERS,

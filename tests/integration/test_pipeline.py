@@ -15,8 +15,9 @@ from scipy.stats import median_abs_deviation
 from demaudit.service.run.runner import run_job
 from demaudit.workers import spec as job_spec
 from demaudit.workers.errors import EmptyOverlapError, SpecError
-from demaudit.workers.inputs.catalog import TileIndex, scan_tile
+from demaudit.workers.inputs.catalog import scan_tile
 from demaudit.workers.inputs.regions import read_regions, region_mask, to_crs
+from demaudit.workers.inputs.tile_index import TileIndex
 from demaudit.workers.stats.summary import nmad_bound_m, quantile_bound_m
 from demaudit.workers.tile.task import TileOptions, tile_surfaces
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 import datetime as dt
 from typing import Any
 
-from demaudit.service.store.jobs import ScheduleRecord
+from demaudit.service.store.schedules import ScheduleRecord
 
 UTC = dt.UTC
 

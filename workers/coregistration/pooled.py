@@ -17,12 +17,12 @@ import numpy as np
 
 from demaudit.workers.coregistration.estimate import (
     MAX_STANDARD_ERROR_PX,
-    CannotEstimateError,
     FitResult,
     solve,
 )
 from demaudit.workers.coregistration.job import JobEstimate
 from demaudit.workers.coregistration.tile import Correction, TileEquations
+from demaudit.workers.errors import CannotEstimateError
 from demaudit.workers.stats.quantiles import quantile
 
 #: One pass over the sampled tiles at a correction: their merged equations.

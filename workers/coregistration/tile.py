@@ -17,7 +17,6 @@ import numpy as np
 from numpy.typing import NDArray
 
 from demaudit.workers.coregistration.estimate import (
-    CannotEstimateError,
     LinearFit,
     elevation_fit,
     nuth_kaab,
@@ -27,6 +26,7 @@ from demaudit.workers.coregistration.estimate import (
     solve,
     stable_pixels,
 )
+from demaudit.workers.errors import CannotEstimateError
 from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.tile.grid import Grid

@@ -31,15 +31,14 @@ from demaudit.service.scheduling.webhook_address import (
     check_webhook_url,
     redact_url,
 )
-from demaudit.service.store.jobs import (
-    JobStatus,
-    JobStore,
+from demaudit.service.store.jobs import JobStatus, JobStore
+from demaudit.service.store.schedules import (
+    DEFAULT_TIMEZONE,
     NotifyWhen,
     RunOutcome,
     ScheduleRecord,
     ScheduleRun,
 )
-from demaudit.service.store.schedules import DEFAULT_TIMEZONE
 from demaudit.workers.spec import JobSpec
 
 router = APIRouter(prefix="/schedules", tags=["Schedules"], responses=responses(401))

@@ -19,9 +19,7 @@ from demaudit.service.scheduling.cron import (
     next_slot,
 )
 from demaudit.service.scheduling.scheduler import LastRun, Run, plan
-from demaudit.service.store.jobs import (
-    ScheduleRecord,
-)
+from demaudit.service.store.schedules import ScheduleRecord
 from tests.support.schedules import UTC, at, schedule
 
 # --- due_runs with a frozen clock -------------------------------------------------------------

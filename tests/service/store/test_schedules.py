@@ -14,8 +14,8 @@ from demaudit.service.store.jobs import (
     JobRecord,
     JobStore,
     MemoryJobStore,
-    ScheduleRecord,
 )
+from demaudit.service.store.schedules import ScheduleRecord
 from demaudit.service.store.sqlite_jobs import SqliteJobStore
 
 T0 = dt.datetime(2026, 11, 2, 2, 0, tzinfo=dt.UTC)

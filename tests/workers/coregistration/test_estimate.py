@@ -8,12 +8,12 @@ from matplotlib import cbook
 from scipy.ndimage import map_coordinates
 
 from demaudit.workers.coregistration.estimate import (
-    CannotEstimateError,
     LinearFit,
     nuth_kaab,
     sample_shifted,
     solve,
 )
+from demaudit.workers.errors import CannotEstimateError
 from demaudit.workers.tile.terrain import aspect_degrees, slope_degrees
 
 PIXEL = 5.0
