@@ -85,8 +85,8 @@ class TileDerivatives:
 
 
 def tile_derivatives(
-    test: NDArray[np.float64],
-    reference: NDArray[np.float64],
+    test: NDArray[np.floating],
+    reference: NDArray[np.floating],
     *,
     landcover: NDArray[np.float64] | None,
     region_masks: Mapping[str, NDArray[np.bool_]],
@@ -99,9 +99,8 @@ def tile_derivatives(
     """Compare the derived parameters of test and reference heights (metres, one grid and
     datum, NaN = none; pixel_size_m = (east, north) pixel sides)."""
     px, py = pixel_size_m
-    size = {"pixel_size_x_m": px, "pixel_size_y_m": py}
-    of_test = surface_derivatives(test, **size)
-    of_reference = surface_derivatives(reference, **size)
+    of_test = surface_derivatives(test, pixel_size_x_m=px, pixel_size_y_m=py)
+    of_reference = surface_derivatives(reference, pixel_size_x_m=px, pixel_size_y_m=py)
     differences = derived_differences(
         of_test, of_reference, parameters=options.compared, min_slope_deg=options.min_slope_deg
     )

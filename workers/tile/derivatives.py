@@ -176,7 +176,11 @@ def d8_directions(
 
 
 def surface_derivatives(
-    heights: Grid, *, pixel_size_x_m: float, pixel_size_y_m: float, compiled: bool = True
+    heights: NDArray[np.floating],
+    *,
+    pixel_size_x_m: float,
+    pixel_size_y_m: float,
+    compiled: bool = True,
 ) -> SurfaceDerivatives:
     """Every derived parameter of one surface (see SurfaceDerivatives), in one compiled sweep
     when numba is there (``compiled=False``: the numpy functions above, always)."""
@@ -198,14 +202,14 @@ def surface_derivatives(
         )
         return out
     size = {"pixel_size_x_m": pixel_size_x_m, "pixel_size_y_m": pixel_size_y_m}
-    east, north = horn_gradient(heights, **size)
-    plan, profile = curvatures(heights, **size)
+    east, north = horn_gradient(z, **size)
+    plan, profile = curvatures(z, **size)
     return SurfaceDerivatives(
         slope_from_gradient(east, north),
         aspect_from_gradient(east, north),
         plan,
         profile,
-        d8_directions(heights, **size),
+        d8_directions(z, **size),
     )
 
 

@@ -220,7 +220,7 @@ def _summarise_compiled(
 
 
 def summarise_keyed(
-    dh: NDArray[np.float64],
+    dh: NDArray[np.floating],
     *,
     bands: NDArray[np.uint8],
     codes: NDArray[np.uint8] | None,

@@ -194,7 +194,7 @@ def with_coregistration(
     except (AuditError, RasterioError, OSError) as exc:
         reason = f"the reference could not be read again for the correction: {exc}"
         return replace(result, coregistration=record | {"applied": False, "reason": reason})
-    dh = corrected_dh(layers.test, moved, test.grid, correction)
+    dh = corrected_dh(as_float64(layers.test), as_float64(moved), test.grid, correction)
     moved_layers = replace(layers, dh=dh, reference=moved)
     corrected = summarise_tile(test, moved_layers, regions, options, derived=False)
     return replace(
@@ -210,7 +210,7 @@ def shifted_reference(
     layers: TileSurfaces,
     options: TileOptions,
     c: Correction,
-) -> NDArray[np.float64]:
+) -> NDArray[np.floating]:
     """The reference (metres, test datum) at the test pixels' centres minus c's shift, in one
     resampling from the mosaics already read, or from a new read when the shift reaches beyond
     their margin."""
@@ -231,8 +231,8 @@ def own_estimate(test: TileInfo, layers: TileSurfaces, options: TileOptions) -> 
     coreg = options.coregistration
     assert coreg is not None and layers.test is not None
     return tile_estimate(
-        layers.test,
-        layers.reference,
+        as_float64(layers.test),
+        as_float64(layers.reference),
         test.grid,
         cover=cover_ok(layers.landcover, options.landcover_classes),
         max_iterations=coreg.max_iterations,
@@ -288,7 +288,12 @@ def estimate_tile(
     masks = {r.region_id: region_mask(r, test.grid) for r in regions}
     cover = cover_ok(layers.landcover, options.landcover_classes)
     return tile_equations(
-        layers.test, layers.reference, test.grid, at=at, cover=cover, region_masks=masks
+        as_float64(layers.test),
+        as_float64(layers.reference),
+        test.grid,
+        at=at,
+        cover=cover,
+        region_masks=masks,
     )
 
 
@@ -328,8 +333,14 @@ def tile_surfaces(
     return TileSurfaces(
         difference(heights, reference),
         reference,
-        classes,
+        None if classes is None else as_float64(classes),
         heights,
         mosaics=mosaics if margin else (),
         margin_px=margin,
     )
+
+
+def as_float64(values: NDArray[np.floating]) -> NDArray[np.float64]:
+    """values in float64 (the same array when it is already: co-registration and land cover
+    never take the float32 path, so this copies nothing there)."""
+    return np.asarray(values, dtype=np.float64)

@@ -283,7 +283,7 @@ def tile_map(
     known = [v for v in values if v.value is not None]
     cmap, norm = _tile_colours(statistic, value_range)
     collection = PolyCollection(
-        tile_corners([v.bounds for v in known]),
+        list(tile_corners([v.bounds for v in known])),
         cmap=cmap,
         norm=norm,
         edgecolor="white",
