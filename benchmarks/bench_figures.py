@@ -32,7 +32,8 @@ from demaudit.service.run import runner
 from demaudit.service.run.cluster import dask_client
 from demaudit.service.run.runner import run_job
 from demaudit.workers import spec as job_spec
-from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
+from demaudit.workers.demo.archive import make_demo_archive
+from demaudit.workers.demo.options import DemoArchiveOptions
 from demaudit.workers.inputs import regions as region_ops
 from demaudit.workers.outputs import figures
 from demaudit.workers.outputs.figures import background

@@ -25,7 +25,8 @@ from distributed import get_task_stream
 from demaudit.service.run.cluster import dask_client
 from demaudit.service.run.runner import run_job
 from demaudit.workers import spec as job_spec
-from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
+from demaudit.workers.demo.archive import make_demo_archive
+from demaudit.workers.demo.options import DemoArchiveOptions
 
 
 def archive(cache: Path, tiles: int, pixels: int) -> Path:

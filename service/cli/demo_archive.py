@@ -34,7 +34,8 @@ def _error(message: str) -> int:
 
 def make_demo_command(args: argparse.Namespace, settings: Settings) -> int:
     """Check the options and the folder, then write the archive with a progress bar."""
-    from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
+    from demaudit.workers.demo.archive import make_demo_archive
+    from demaudit.workers.demo.options import DemoArchiveOptions
 
     try:
         cols, rows = (int(v) for v in args.tiles.lower().split("x"))

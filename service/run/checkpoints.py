@@ -30,7 +30,6 @@ from demaudit.workers.checkpoints.residuals import (
 from demaudit.workers.checkpoints.section import (
     SectionInputs,
     checkpoint_section,
-    grade,
     unclassified_group_of,
     with_cover_groups,
 )
@@ -41,7 +40,7 @@ from demaudit.workers.outputs.layout import RESIDUALS_NAME
 from demaudit.workers.spec import ResolvedJob
 from demaudit.workers.tile.task import TileOptions
 
-__all__ = ["RESIDUALS_NAME", "audit_checkpoints", "earlier_heights", "grade", "points_near"]
+__all__ = ["audit_checkpoints", "earlier_heights", "read_job_checkpoints", "write_residuals"]
 
 
 def read_job_checkpoints(job: ResolvedJob) -> CheckpointFile:

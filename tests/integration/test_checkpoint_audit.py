@@ -12,7 +12,8 @@ import pytest
 from demaudit.service.run.runner import run_job
 from demaudit.workers import spec as job_spec
 from demaudit.workers.checkpoints.grading import ASPRS_CLASSES_CM
-from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
+from demaudit.workers.demo.archive import make_demo_archive
+from demaudit.workers.demo.options import DemoArchiveOptions
 from demaudit.workers.demo.surface import terrain_slope
 from demaudit.workers.demo.world import build_world
 from demaudit.workers.errors import SpecError

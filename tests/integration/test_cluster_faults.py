@@ -19,7 +19,8 @@ from typing import Any
 import httpx
 import pytest
 
-from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
+from demaudit.workers.demo.archive import make_demo_archive
+from demaudit.workers.demo.options import DemoArchiveOptions
 from tests.integration.test_rest_server import (
     EXECUTE,
     PRINCIPALS,

@@ -24,7 +24,8 @@ import yaml
 
 from demaudit.service.run.runner import run_job
 from demaudit.workers import spec as job_spec
-from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
+from demaudit.workers.demo.archive import make_demo_archive
+from demaudit.workers.demo.options import DemoArchiveOptions
 from tests.support.processes import VENV_BIN, Process, free_port, start_dask
 
 pytestmark = pytest.mark.slow

@@ -25,7 +25,8 @@ import httpx
 import pytest
 import yaml
 
-from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
+from demaudit.workers.demo.archive import make_demo_archive
+from demaudit.workers.demo.options import DemoArchiveOptions
 from tests.support.processes import VENV_BIN, Process, free_port, start_dask
 
 pytestmark = pytest.mark.slow

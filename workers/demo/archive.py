@@ -44,10 +44,9 @@ from demaudit.workers.demo.tile_files import (
 )
 from demaudit.workers.demo.world import DemoWorld, build_world
 
-#: The entry points; DemoArchiveOptions is what make_demo_archive takes.
+#: The entry points; make_demo_archive takes a workers.demo.options.DemoArchiveOptions.
 __all__ = [
     "ArchiveSize",
-    "DemoArchiveOptions",
     "archive_size",
     "clean_options",
     "make_demo_archive",

@@ -6,8 +6,9 @@ from pathlib import Path
 
 import pytest
 
-from demaudit.workers.demo.archive import DemoArchiveOptions, clean_options, make_demo_archive
+from demaudit.workers.demo.archive import clean_options, make_demo_archive
 from demaudit.workers.demo.grids import Egm96Geoid
+from demaudit.workers.demo.options import DemoArchiveOptions
 from tests.support.demo_files import TINY
 
 

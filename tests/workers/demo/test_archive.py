@@ -18,14 +18,19 @@ import shapely
 from demaudit.workers.demo import archive as demo_archive
 from demaudit.workers.demo.archive import (
     TASK_BYTES_PER_PIXEL,
-    DemoArchiveOptions,
     archive_size,
     clean_options,
     make_demo_archive,
     size_problem,
 )
 from demaudit.workers.demo.grids import Egm96Geoid, reference_layout
-from demaudit.workers.demo.options import NODATA, LandCover, tile_layout, tilted_tiles
+from demaudit.workers.demo.options import (
+    NODATA,
+    DemoArchiveOptions,
+    LandCover,
+    tile_layout,
+    tilted_tiles,
+)
 from demaudit.workers.demo.release import (
     tilt_ramp,
 )

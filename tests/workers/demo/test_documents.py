@@ -13,8 +13,8 @@ import shapely
 import yaml
 from shapely.geometry import shape
 
-from demaudit.workers.demo.archive import DemoArchiveOptions, make_demo_archive
-from demaudit.workers.demo.options import PROVINCES
+from demaudit.workers.demo.archive import make_demo_archive
+from demaudit.workers.demo.options import PROVINCES, DemoArchiveOptions
 from demaudit.workers.demo.world import build_world, province_index
 from demaudit.workers.spec import parse_spec, resolve
 from tests.support.demo_files import TINY

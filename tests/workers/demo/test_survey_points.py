@@ -8,8 +8,8 @@ from pathlib import Path
 import numpy as np
 import rasterio
 
-from demaudit.workers.demo.archive import DemoArchiveOptions, clean_options
-from demaudit.workers.demo.options import NODATA, LandCover, tile_layout
+from demaudit.workers.demo.archive import clean_options
+from demaudit.workers.demo.options import NODATA, DemoArchiveOptions, LandCover, tile_layout
 from demaudit.workers.demo.surface import true_terrain
 from demaudit.workers.demo.survey_points import checkpoint_count, checkpoints
 from demaudit.workers.demo.world import build_world

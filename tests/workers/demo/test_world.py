@@ -10,8 +10,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from demaudit.workers.demo.archive import DemoArchiveOptions, clean_options
-from demaudit.workers.demo.options import PROVINCES, LandCover
+from demaudit.workers.demo.archive import clean_options
+from demaudit.workers.demo.options import PROVINCES, DemoArchiveOptions, LandCover
 from demaudit.workers.demo.release import (
     VoidDisc,
     blunder_error,
