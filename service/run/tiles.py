@@ -28,7 +28,7 @@ from demaudit.workers.stats.job_statistics import Totals
 from demaudit.workers.stats.merge import JobAccumulator
 from demaudit.workers.tile.task import FAILED, OK, TileOptions, TileResult, audit_and_store
 from demaudit.workers.uncertainty.accumulate import ErrorModelAccumulator
-from demaudit.workers.uncertainty.error_model import ErrorModelOptions
+from demaudit.workers.uncertainty.sample import ErrorModelOptions
 from demaudit.workers.uncertainty.sample_store import ErrorSampleStore, record_samples
 
 Progress = Callable[[int, int], None]
