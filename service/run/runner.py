@@ -150,6 +150,7 @@ class _Run:
         )
         if scan.layout is not None:  # tiles decimate by the mosaic's own factor
             options = options.with_overview_factor(scan.layout.factor)
+            scan = replace(scan, options=options)  # re-checks compare stored samples' options
         reuse = plan_reuse(prior, self.job, scan)
         estimate = self.estimate_correction(scan, reuse)
         options = replace(options, correction=estimate.correction)

@@ -56,9 +56,10 @@ def split_after(entries: dict[Key, DhSummary]) -> tuple[dict[Key, DhSummary], di
     return own, after
 
 
-def open_store_group(zarr_path: Path, name: str, *, mode: Literal["r", "a"]) -> Any:
+def open_store_group(zarr_path: Path, name: str, *, mode: Literal["r", "r+", "a"]) -> Any:
     """A group of per-tile records at the root of a results.zarr, opened without consolidated
-    metadata: made when missing in mode 'a', KeyError when missing in mode 'r'."""
+    metadata: made when missing in mode 'a'; in modes 'r' and 'r+' (read and write) the store
+    and the group must exist (an error, never a new store)."""
     root: Any = zarr.open_group(
         str(zarr_path),
         mode=mode,
@@ -69,9 +70,9 @@ def open_store_group(zarr_path: Path, name: str, *, mode: Literal["r", "a"]) -> 
 
 
 class TileSummaryStore:
-    """The ``tile_summaries`` group of one results.zarr, opened once (mode 'r' or 'a')."""
+    """The ``tile_summaries`` group of one results.zarr, opened once (mode 'r', 'r+' or 'a')."""
 
-    def __init__(self, zarr_path: Path, *, mode: Literal["r", "a"] = "r") -> None:
+    def __init__(self, zarr_path: Path, *, mode: Literal["r", "r+", "a"] = "r") -> None:
         self.zarr_path = Path(zarr_path)
         self._parent: Any = open_store_group(zarr_path, TILE_SUMMARIES_GROUP, mode=mode)
 

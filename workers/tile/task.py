@@ -151,8 +151,8 @@ def audit_and_store(*args: Any, summaries_to: str | None = None, **kwargs: Any) 
         entries_of,
     )
 
-    try:
-        store = TileSummaryStore(Path(summaries_to), mode="a")
+    try:  # r+: the client made the store; once a failed job removed it, nothing is recreated
+        store = TileSummaryStore(Path(summaries_to), mode="r+")
         store.write(result.tile_id, entries_of(result), excluded=result.excluded)
     except Exception:  # noqa: BLE001 - any failure here leaves the writing to the client
         return result

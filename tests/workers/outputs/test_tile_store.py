@@ -57,3 +57,13 @@ def test_without_a_store_nothing_is_written(tmp_path: Path) -> None:
     test, ref = tile_pair(tmp_path)
     result = audit_and_store(test, [ref], [], TileOptions())
     assert result.status == OK and not result.summaries_stored
+
+
+def test_a_store_removed_meanwhile_is_not_made_again(tmp_path: Path) -> None:
+    # a job dismissed (or failed) while this tile ran has removed its staged folder: the worker
+    # must not recreate results.zarr there (the folder would be left behind)
+    test, ref = tile_pair(tmp_path)
+    gone = tmp_path / "out.partial-run" / "results.zarr.partial"
+    result = audit_and_store(test, [ref], [], TileOptions(), summaries_to=str(gone))
+    assert result.status == OK and not result.summaries_stored
+    assert not (tmp_path / "out.partial-run").exists()
