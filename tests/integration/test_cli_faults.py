@@ -116,6 +116,18 @@ def test_a_bad_checkpoint_or_region_file_stops_the_run_before_any_tile(archive, 
     assert snapshot(out) == before and leftovers(out) == []
 
 
+def failing_summary(error: BaseException) -> Callable[..., None]:
+    """runner.write_summary that raises error when it writes summary.json (its last write)."""
+    real = runner.write_summary
+
+    def write(out_dir, document, **kwargs):
+        if kwargs.get("name", SUMMARY_NAME) == SUMMARY_NAME:
+            raise error
+        return real(out_dir, document, **kwargs)
+
+    return write
+
+
 def test_a_late_internal_error_leaves_the_earlier_result_whole(
     archive, demaudit, tmp_path, monkeypatch
 ):
@@ -126,14 +138,10 @@ def test_a_late_internal_error_leaves_the_earlier_result_whole(
     # 4-tile summary.json before failing
     (archive / "test" / "t_1_1.tif").unlink()
 
-    real = runner.write_summary
-
-    def broken(out_dir, document, **kwargs):  # the last step: summary.json, staged folder full
-        if kwargs.get("name", SUMMARY_NAME) == SUMMARY_NAME:
-            raise RuntimeError("summary writer exploded")
-        return real(out_dir, document, **kwargs)
-
-    monkeypatch.setattr(runner, "write_summary", broken)
+    # the last step: summary.json, with the staged folder full
+    monkeypatch.setattr(
+        runner, "write_summary", failing_summary(RuntimeError("summary writer exploded"))
+    )
     code, _, err = demaudit("run", str(archive / "job.yaml"), "--out", str(out))
     assert code == 3
     assert "internal error" in err and "summary writer exploded" in err
@@ -180,14 +188,7 @@ def test_an_interrupted_run_leaves_the_earlier_result_whole(
     assert demaudit("run", str(archive / "job.yaml"), "--out", str(out))[0] == 0
     before = snapshot(out)
 
-    real = runner.write_summary
-
-    def interrupted(out_dir, document, **kwargs):  # Ctrl-C at the last step
-        if kwargs.get("name", SUMMARY_NAME) == SUMMARY_NAME:
-            raise KeyboardInterrupt
-        return real(out_dir, document, **kwargs)
-
-    monkeypatch.setattr(runner, "write_summary", interrupted)
+    monkeypatch.setattr(runner, "write_summary", failing_summary(KeyboardInterrupt()))  # Ctrl-C
     code, _, err = demaudit("run", str(archive / "job.yaml"), "--out", str(out))
     assert code == 130 and "interrupted" in err
     assert snapshot(out) == before and leftovers(out) == []
