@@ -24,7 +24,6 @@ OK = "ok"
 FAILED = "failed"
 NO_REFERENCE = "no_reference"
 NO_VALID_PIXELS = "no_valid_pixels"  # set by the runner: a tile with no dh pixel at all
-ALL = "*"  # key of the whole tile among region keys
 
 
 @dataclass(frozen=True)

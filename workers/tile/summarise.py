@@ -13,8 +13,8 @@ from demaudit.workers.inputs.catalog import TileInfo
 from demaudit.workers.inputs.regions import Region, region_mask
 from demaudit.workers.tile.derivative_pass import TileDerivatives, tile_derivatives
 from demaudit.workers.tile.difference import block_mean
-from demaudit.workers.tile.one_pass import summarise_pixels
-from demaudit.workers.tile.records import ALL, OK, TileOptions, TileResult, TileSurfaces
+from demaudit.workers.tile.one_pass import ALL, summarise_pixels
+from demaudit.workers.tile.records import OK, TileOptions, TileResult, TileSurfaces
 from demaudit.workers.tile.strata import excluded_mask
 from demaudit.workers.uncertainty.error_model import grid_error_sample
 

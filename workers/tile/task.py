@@ -42,8 +42,8 @@ from demaudit.workers.inputs.catalog import (
 from demaudit.workers.inputs.rasters import read_tile
 from demaudit.workers.inputs.regions import Region, region_mask
 from demaudit.workers.tile.difference import difference
+from demaudit.workers.tile.one_pass import ALL
 from demaudit.workers.tile.records import (
-    ALL,
     COREGISTRATION_MARGIN_PX,
     FAILED,
     NO_REFERENCE,

@@ -22,14 +22,13 @@ import numpy as np
 from numpy.typing import NDArray
 
 from demaudit.workers.outputs.folder import link_or_copy
-from demaudit.workers.outputs.layout import ERROR_SAMPLES_GROUP
+from demaudit.workers.outputs.layout import AFTER_PART, ALL_PART, ERROR_SAMPLES_GROUP
 from demaudit.workers.outputs.summary_store import open_store_group, read_entries, write_entries
 from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.uncertainty.accumulate import ErrorModelAccumulator
 from demaudit.workers.uncertainty.sample import ErrorModelOptions, TileErrorSample
 
 GROUP = ERROR_SAMPLES_GROUP
-ALL, AFTER = "all", "after"
 KINDS = ("slope", "curvature", "joint")
 
 
@@ -96,7 +95,7 @@ class ErrorSampleStore:
     def read_terrain(self, tile_id: str) -> NDArray[np.float32] | None:
         """A tile's terrain overview (part ``all``); None when not stored."""
         try:
-            data = np.asarray(self._parent[tile_id][ALL]["terrain_overview"][...], np.float32)
+            data = np.asarray(self._parent[tile_id][ALL_PART]["terrain_overview"][...], np.float32)
         except KeyError:
             return None
         return data if data.ndim == 3 else None
@@ -104,14 +103,15 @@ class ErrorSampleStore:
     def reusable(self, tile_id: str, options: ErrorModelOptions) -> bool:
         """Whether the tile's sample (part ``all``) is stored, taken under these options."""
         try:
-            attrs = self._parent[tile_id][ALL].attrs
+            attrs = self._parent[tile_id][ALL_PART].attrs
         except KeyError:
             return False
         return attrs.get("options") == dataclasses.asdict(options)  # type: ignore[no-any-return]
 
     def parts(self, tile_id: str) -> list[str]:
         """The parts stored for a tile."""
-        return [p for p in (ALL, AFTER) if (self.zarr_path / GROUP / tile_id / p).is_dir()]
+        folder = self.zarr_path / GROUP / tile_id
+        return [p for p in (ALL_PART, AFTER_PART) if (folder / p).is_dir()]
 
     def link_from(self, other: Path, tile_ids: Iterable[str]) -> None:
         """Bring tiles' stored samples over from another results.zarr (hard links where the
@@ -161,7 +161,7 @@ def record_samples(
 ) -> None:
     """Add a tile's samples (of dh, and after co-registration) to the running merges and, with
     a store, keep them for later re-checks."""
-    for part, sample, acc in zip((ALL, AFTER), samples, accumulators, strict=True):
+    for part, sample, acc in zip((ALL_PART, AFTER_PART), samples, accumulators, strict=True):
         acc.add(sample)
         if store is not None and sample is not None and options is not None:
             store.write(tile_id, part, sample, options)
@@ -179,4 +179,4 @@ def carry_samples(
     store.link_from(baseline_zarr, ids)
     for tile_id in ids:
         for part in store.parts(tile_id):
-            accumulators[0 if part == ALL else 1].add(store.read(tile_id, part))
+            accumulators[0 if part == ALL_PART else 1].add(store.read(tile_id, part))

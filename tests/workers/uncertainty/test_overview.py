@@ -7,6 +7,7 @@ import pytest
 import xarray as xr
 import zarr
 
+from demaudit.workers.outputs.layout import ALL_PART
 from demaudit.workers.outputs.writers import OverviewLayout, ResultsStore
 from demaudit.workers.uncertainty import overview as ov
 from demaudit.workers.uncertainty import sample_store as ss
@@ -54,7 +55,7 @@ def test_the_overview_is_written_per_tile_on_the_dh_overviews_grid(tmp_path):
     samples = ss.ErrorSampleStore(store.path, mode="a")
     terrain = np.stack([np.full((2, 2), 20.0), np.full((2, 2), 0.4)]).astype(np.float32)
     options = ErrorModelOptions()
-    samples.write("a", ss.ALL, sample_with(terrain), options)  # b has no sample: stays NaN
+    samples.write("a", ALL_PART, sample_with(terrain), options)  # b has no sample: stays NaN
     assert ov.write_standardised_overview(store.path, layout.offsets, SECTION, samples) == 1
     z = np.asarray(zarr.open_array(str(store.path / ov.GROUP / "z"), mode="r")[...])
     expected = (blocks["a"] - 0.1) / (0.2 + 0.5 * np.tan(np.radians(20.0)) + 0.3 * 0.4)

@@ -7,6 +7,7 @@ import numpy as np
 import pytest
 import zarr
 
+from demaudit.workers.outputs.layout import ALL_PART
 from demaudit.workers.tile.strata import ClassInfo
 from demaudit.workers.uncertainty import sample_store as ss
 from demaudit.workers.uncertainty.accumulate import ErrorModelAccumulator
@@ -82,9 +83,9 @@ def test_a_sample_reads_back_as_written_and_only_under_its_options(tmp_path):
     zarr.open_group(str(tmp_path / "r.zarr"), mode="w", zarr_format=3)
     store = ss.ErrorSampleStore(tmp_path / "r.zarr", mode="a")
     written = tile(1)
-    store.write("t1", ss.ALL, written, OPTIONS)
-    same(store.read("t1", ss.ALL), written)
-    assert store.parts("t1") == [ss.ALL]
+    store.write("t1", ALL_PART, written, OPTIONS)
+    same(store.read("t1", ALL_PART), written)
+    assert store.parts("t1") == [ALL_PART]
     assert store.reusable("t1", OPTIONS)
     assert not store.reusable("t1", ErrorModelOptions(seed=4, samples_per_tile=400))
     assert not store.reusable("t2", OPTIONS)
