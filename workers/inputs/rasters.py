@@ -104,15 +104,9 @@ def implausible_heights(
     if not fast:  # numpy compares float32 with a Python float in float32: widen first
         data = np.asarray(data, dtype=np.float64)
     plane = data.reshape(1, -1) if fast and data.ndim < 2 else data  # the kernels take 2-D
-    if fast:  # one compiled sweep (count, extremes and how many hold them)
-        valid, low, high, n_low, n_high = kernels.extremes_sweep(plane)
-    else:
-        valid = int(data.size - np.count_nonzero(np.isnan(data)))
+    valid, low, high, n_low, n_high = _extremes(data)
     if valid == 0:
         return None
-    if not fast:
-        low, high = float(np.nanmin(data)), float(np.nanmax(data))
-        n_low, n_high = (int(np.count_nonzero(data == v)) for v in (low, high))
     lowest, highest = (v / metres_per_unit for v in PLAUSIBLE_HEIGHT_M)
     if low < lowest or high > highest:
         data = np.asarray(data, dtype=np.float64)  # a refusal: what follows is numpy's
@@ -146,6 +140,19 @@ def implausible_heights(
             f"{nearest:,.0f} m away from every other height of the tile (a void code, not terrain)",
         )
     return None
+
+
+def _extremes(data: NDArray[np.floating]) -> tuple[int, float, float, int, int]:
+    """(count of non-NaN values, lowest, highest, how many hold the lowest, how many the
+    highest); (0, nan, nan, 0, 0) when every value is NaN. Vectorised reductions (fmin / fmax
+    skip NaN), in the data's own type."""
+    valid = int(data.size - np.count_nonzero(np.isnan(data)))
+    if valid == 0:
+        return 0, math.nan, math.nan, 0, 0
+    low, high = np.fmin.reduce(data, axis=None), np.fmax.reduce(data, axis=None)
+    return valid, float(low), float(high), int(np.count_nonzero(data == low)), int(
+        np.count_nonzero(data == high)
+    )
 
 
 def _other_within(

@@ -37,8 +37,9 @@ def _compiled(name: str) -> Any:
     return _COMPILED[name]
 
 
-_CALLS = {"block_sweep": ("pairwise_sum",)}
+_CALLS = {"block_sweep": ("pairwise_sum",), "band_sweep": ("row_squared_gradient",)}
 pairwise_sum_compiled: Any = None  # set by _compiled("block_sweep")
+row_squared_gradient_compiled: Any = None  # set by _compiled("band_sweep")
 
 
 def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, maxs, tail):  # type: ignore[no-untyped-def]
@@ -155,35 +156,49 @@ def _deviation_sweep(x, key, mean, residual, squares):  # type: ignore[no-untype
 def _band_sweep(z, half_x, half_y, full_x, full_y, lower, upper, none, out):  # type: ignore[no-untyped-def]
     """Slope band per pixel from the squared gradient (central differences, one-sided at the
     edges) against squared thresholds ``lower`` < ``upper`` per edge; AMBIGUOUS where they
-    disagree, ``none`` where the gradient is NaN or below the first edge."""
+    disagree, ``none`` where the gradient is NaN or below the first edge.
+
+    Row by row: the row's squared gradients first, then one compare-and-count pass per edge
+    over the row (loops without branches, which the compiler turns into vector code)."""
     rows, cols = z.shape
+    g2 = np.empty(cols)
+    surely = np.empty(cols, dtype=np.uint8)
+    maybe = np.empty(cols, dtype=np.uint8)
     for r in range(rows):
         r0 = r - 1 if r > 0 else 0
         r1 = r + 1 if r < rows - 1 else rows - 1
         sy = half_y if 0 < r < rows - 1 else full_y
+        row_squared_gradient_compiled(z, r, r0, r1, sy, half_x, full_x, g2)
+        surely[:] = 0
+        maybe[:] = 0
+        for e in range(upper.size):
+            high = upper[e]
+            low = lower[e]
+            for c in range(cols):
+                surely[c] += g2[c] >= high
+                maybe[c] += g2[c] >= low
         for c in range(cols):
-            c0 = c - 1 if c > 0 else 0
-            c1 = c + 1 if c < cols - 1 else cols - 1
-            sx = half_x if 0 < c < cols - 1 else full_x
-            gx = (np.float64(z[r, c1]) - np.float64(z[r, c0])) * sx
-            gy = (np.float64(z[r1, c]) - np.float64(z[r0, c])) * sy
-            g2 = gx * gx + gy * gy
-            if g2 != g2:
-                out[r, c] = none
-                continue
-            surely = 0
-            maybe = 0
-            for e in range(upper.size):
-                if g2 >= upper[e]:
-                    surely += 1
-                if g2 >= lower[e]:
-                    maybe += 1
-            if surely != maybe:
-                out[r, c] = AMBIGUOUS
-            elif surely == 0:
-                out[r, c] = none
-            else:
-                out[r, c] = surely - 1
+            s = surely[c]
+            band = np.uint8(s - 1) if s > 0 else none
+            out[r, c] = AMBIGUOUS if s != maybe[c] else band
+
+
+def _row_squared_gradient(z, r, r0, r1, sy, half_x, full_x, g2):  # type: ignore[no-untyped-def]
+    """Squared gradient of row r of z (rows r0 and r1 above and below; the first and last
+    column one-sided) into g2, each value as (dz/dx)^2 + (dz/dy)^2 in float64."""
+    cols = g2.size
+    for c in range(cols):
+        gy = (np.float64(z[r1, c]) - np.float64(z[r0, c])) * sy
+        g2[c] = gy * gy
+    for c in range(1, cols - 1):
+        gx = (np.float64(z[r, c + 1]) - np.float64(z[r, c - 1])) * half_x
+        g2[c] = gx * gx + g2[c]
+    for c in (0, cols - 1):
+        c0 = c - 1 if c > 0 else 0
+        c1 = c + 1 if c < cols - 1 else cols - 1
+        gx = (np.float64(z[r, c1]) - np.float64(z[r, c0])) * full_x
+        gy = (np.float64(z[r1, c]) - np.float64(z[r0, c])) * sy
+        g2[c] = gx * gx + gy * gy
 
 
 def _pairwise_sum(a, n):  # type: ignore[no-untyped-def]
@@ -234,38 +249,6 @@ def _block_sweep(dh, factor, total, count, row):  # type: ignore[no-untyped-def]
                 total[b, c] += pairwise_sum_compiled(row, factor)
 
 
-def _extremes_sweep(x, out):  # type: ignore[no-untyped-def]
-    """Over the non-NaN values of x (2-D, any strides): out = (count, lowest, highest, how many
-    hold the lowest, how many hold the highest); out[0] = 0 when every value is NaN."""
-    n = 0
-    low = np.inf
-    high = -np.inf
-    n_low = 0
-    n_high = 0
-    rows, cols = x.shape
-    for r in range(rows):
-        for c in range(cols):
-            v = x[r, c]
-            if v != v:
-                continue
-            n += 1
-            if v < low:  # starting from +inf, the first value (even +inf itself) counts
-                low = v
-                n_low = 1
-            elif v == low:
-                n_low += 1
-            if v > high:
-                high = v
-                n_high = 1
-            elif v == high:
-                n_high += 1
-    out[0] = n
-    out[1] = low
-    out[2] = high
-    out[3] = n_low
-    out[4] = n_high
-
-
 def _other_within(x, lower, upper, value):  # type: ignore[no-untyped-def]
     """Whether any value of x (2-D, any strides) lies in [lower, upper] and differs from value
     (stops at the first)."""
@@ -276,13 +259,6 @@ def _other_within(x, lower, upper, value):  # type: ignore[no-untyped-def]
             if lower <= v <= upper and v != value:
                 return True
     return False
-
-
-def extremes_sweep(x: Any) -> tuple[int, float, float, int, int]:
-    """Compiled _extremes_sweep: (count, lowest, highest, count of lowest, count of highest)."""
-    out = np.zeros(5)
-    _compiled("extremes_sweep")(x, out)
-    return int(out[0]), float(out[1]), float(out[2]), int(out[3]), int(out[4])
 
 
 def other_within(x: Any, lower: float, upper: float, value: float) -> bool:

@@ -241,7 +241,7 @@ def summarise_keyed(
     x = np.ascontiguousarray(dh, dtype=np.float64).reshape(-1)
     width = min(TAIL_COLUMNS, MAX_TAIL_COUNTERS // (2 * total))
     counters = (
-        np.zeros((total, _WIDTH - 1), dtype=np.int64),
+        np.zeros((total, _WIDTH - 1), dtype=np.int32 if x.size < 2**31 else np.int64),
         np.zeros(total),
         np.full(total, np.inf),
         np.full(total, -np.inf),
