@@ -150,8 +150,12 @@ def _extremes(data: NDArray[np.floating]) -> tuple[int, float, float, int, int]:
     if valid == 0:
         return 0, math.nan, math.nan, 0, 0
     low, high = np.fmin.reduce(data, axis=None), np.fmax.reduce(data, axis=None)
-    return valid, float(low), float(high), int(np.count_nonzero(data == low)), int(
-        np.count_nonzero(data == high)
+    return (
+        valid,
+        float(low),
+        float(high),
+        int(np.count_nonzero(data == low)),
+        int(np.count_nonzero(data == high)),
     )
 
 
