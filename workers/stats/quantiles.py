@@ -17,7 +17,7 @@ rounding are added to each bound. Units: those of the values summarised (metres)
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -115,6 +115,20 @@ class Layout:
     lo: NDArray[np.float64]
     hi: NDArray[np.float64]
     cum: NDArray[np.int64]
+    _knots: list[tuple[NDArray[np.float64], NDArray[np.float64]]] = field(
+        default_factory=list, repr=False
+    )
+
+    def knots(self) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
+        """Knots (x, F) of the piecewise-linear CDF that spreads each bin's count evenly
+        across it (built at the first call)."""
+        if not self._knots:
+            cum = self.cum.astype(np.float64)
+            before = np.concatenate([[0.0], cum[:-1]])
+            x = np.column_stack([self.lo, self.hi]).ravel()
+            f = np.column_stack([before, cum]).ravel()
+            self._knots.append((x, f))
+        return self._knots[0]
 
 
 def layout_of(s: DhSummary) -> Layout:
@@ -162,22 +176,13 @@ def _interpolate_order_statistics(s, p, estimate):  # type: ignore[no-untyped-de
     return result.reshape(np.shape(p))
 
 
-def _cdf_knots(layout: Layout) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
-    """Knots of the piecewise-linear CDF that spreads each bin's count evenly across it."""
-    cum = layout.cum.astype(np.float64)
-    before = np.concatenate([[0.0], cum[:-1]])
-    x = np.column_stack([layout.lo, layout.hi]).ravel()
-    f = np.column_stack([before, cum]).ravel()
-    return x, f
-
-
 def order_statistics(
     s: DhSummary, ranks: NDArray[np.int64], *, layout: Layout | None = None
 ) -> NDArray[np.float64]:
     """Estimate of the rank-th smallest value (0-based) for each rank (kept, against rounding,
     inside the bin that holds the true value)."""
     layout = layout or layout_of(s)
-    x, f = _cdf_knots(layout)
+    x, f = layout.knots()
     brackets = order_statistic_brackets(s, ranks, layout=layout)
     return np.clip(np.interp(ranks + 0.5, f, x), *brackets)
 
@@ -190,15 +195,15 @@ def abs_order_statistics(
     solution lies in too, but bisection and interpolation lose precision in subnormal-wide
     bins)."""
     layout = layout or layout_of(s)
-    x, f = _cdf_knots(layout)
+    x, f = layout.knots()
     target = ranks + 0.5
     lo = np.zeros(target.shape)
     hi = np.full(target.shape, max(abs(s.maximum - center), abs(s.minimum - center)) * 1.000001)
-    for _ in range(64):
-        mid = 0.5 * (lo + hi)
-        with np.errstate(invalid="ignore", over="ignore"):  # subnormal-wide bins
+    with np.errstate(invalid="ignore", over="ignore"):  # subnormal-wide bins
+        for _ in range(64):
+            mid = 0.5 * (lo + hi)
             inside = np.interp(center + mid, x, f) - np.interp(center - mid, x, f)
-        below = inside < target
-        lo = np.where(below, mid, lo)
-        hi = np.where(below, hi, mid)
+            below = inside < target
+            lo = np.where(below, mid, lo)
+            hi = np.where(below, hi, mid)
     return np.clip(hi, *abs_order_statistic_brackets(s, ranks, center, layout=layout))
