@@ -36,7 +36,7 @@ from demaudit.workers.inputs.catalog import (
     unchanged,
     unique_tile_ids,
 )
-from demaudit.workers.inputs.confine import Roots
+from demaudit.workers.inputs.confine import Roots, stamp_of
 from demaudit.workers.inputs.regions import Region
 from demaudit.workers.inputs.tile_index import TileIndex
 from demaudit.workers.outputs.tile_records import TileRecord, coverage_cautions
@@ -242,7 +242,7 @@ def _header_only(
         stat = Path(path).stat()
     except OSError:
         return scan(path, None, roots)  # reports the unreadable file
-    return scan(path, (stat.st_size, stat.st_mtime_ns, ""), roots)
+    return scan(path, (stamp_of(stat), ""), roots)
 
 
 def _scan(
@@ -253,9 +253,9 @@ def _scan(
     scan: Callable[..., TileInfo | ScanFailure] = scan_tile,
     roots: Roots = None,
 ) -> tuple[list[TileInfo], list[ScanFailure]]:
-    """Scan tiles on the cluster; a tile in ``reuse`` with the same size and modification time
-    is taken from it without opening the file; one in ``known`` (an earlier scan) with the same
-    size and modification time is opened for its header but not hashed again. Every tile's
+    """Scan tiles on the cluster; a tile in ``reuse`` with the same stamp (size, mtime, ctime,
+    inode: confine.Stamp) is taken from it without opening the file; one in ``known`` (an
+    earlier scan) with the same stamp is opened for its header but not hashed again. Every tile's
     reads are confined to roots (workers/inputs/confine.py)."""
     reused = {
         str(p): replace(reuse[str(p)], roots=roots)
@@ -264,8 +264,7 @@ def _scan(
     }
     names = [str(p) for p in paths if str(p) not in reused]
     hints: list[Known | None] = [
-        (known[n].size_bytes, known[n].mtime_ns, known[n].fingerprint) if n in known else None
-        for n in names
+        (known[n].stamp, known[n].fingerprint) if n in known else None for n in names
     ]
     scanned = mapper(scan, names, hints, [roots] * len(names)) if names else []
     by_path = reused | {s.path: s for s in scanned}

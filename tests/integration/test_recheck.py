@@ -207,3 +207,32 @@ def test_editing_the_region_file_recomputes_every_tile(archive, dask_client, tmp
     doc, recomputed = audited(dask_client, archive, tmp_path / "night", tmp_path / "base")
     assert len(recomputed) == 36
     assert all("region file content" in t["why"] for t in doc["recheck"]["tiles"])
+
+
+def _rewrite_uncompressed(tif: Path, add: float) -> None:
+    """The tile rewritten in place without compression, heights raised by add (same size)."""
+    with rasterio.open(tif) as src:
+        profile, data = src.profile, src.read(1)
+    profile.update(compress=None)
+    raised = np.where(data == profile["nodata"], data, data + add).astype(data.dtype)
+    with rasterio.open(tif, "w", **profile) as dst:
+        dst.write(raised, 1)
+
+
+def test_a_rewrite_with_its_size_and_mtime_put_back_is_recomputed(archive, dask_client, tmp_path):
+    """The catalog's stamp holds the ctime and inode too: a tile rewritten with the same size
+    whose old mtime is put back (`touch -d`, `cp -p`) is hashed again and recomputed."""
+    tif = sorted((archive / "release_2026_11").glob("*.tif"))[5]
+    _rewrite_uncompressed(tif, 0.0)  # uncompressed: any heights give the same size
+    base, _ = audited(dask_client, archive, tmp_path / "base")
+    before = tif.stat()
+    _rewrite_uncompressed(tif, 1.0)
+    os.utime(tif, ns=(before.st_atime_ns, before.st_mtime_ns))
+    after = tif.stat()
+    assert (after.st_size, after.st_mtime_ns) == (before.st_size, before.st_mtime_ns)
+    night, recomputed = audited(dask_client, archive, tmp_path / "night", tmp_path / "base")
+    assert recomputed == [tif.stem] and night["recheck"]["tiles_reused"] == 35
+    old, new = ({t["tile"]: t for t in doc["tiles"]}[tif.stem] for doc in (base, night))
+    assert new["fingerprint"] != old["fingerprint"]
+    # every valid height rose by 1 m, so the tile's median dh did too (within float32 steps)
+    assert new["stats"]["median"] == pytest.approx(old["stats"]["median"] + 1.0, abs=1e-3)

@@ -25,7 +25,7 @@ from shapely import box, segmentize
 from shapely.geometry.base import BaseGeometry
 
 from demaudit.workers.errors import DataRootError, MissingCRSError, NotElevationError, TileReadError
-from demaudit.workers.inputs.confine import Roots, open_confined, shown
+from demaudit.workers.inputs.confine import Roots, Stamp, open_confined, shown, stamp_of
 from demaudit.workers.inputs.tile_index import TileIndex, same_crs, transformer_between
 from demaudit.workers.tile.grid import Grid, centres_in
 
@@ -33,7 +33,8 @@ from demaudit.workers.tile.grid import Grid, centres_in
 @dataclass(frozen=True)
 class TileInfo:
     """What the catalog knows of one tile. ``fingerprint`` is the SHA-256 of the file's bytes;
-    ``roots`` the data roots every read of the file is confined to (None: not confined)."""
+    ``roots`` the data roots every read of the file is confined to (None: not confined);
+    ``ctime_ns`` and ``inode`` complete its stamp (None: a catalog that did not record them)."""
 
     tile_id: str
     path: str
@@ -44,6 +45,12 @@ class TileInfo:
     fingerprint: str
     mtime_ns: int = 0
     roots: Roots = None
+    ctime_ns: int | None = None
+    inode: int | None = None
+
+    @property
+    def stamp(self) -> Stamp:
+        return (self.size_bytes, self.mtime_ns, self.ctime_ns, self.inode)
 
     @property
     def bounds(self) -> tuple[float, float, float, float]:
@@ -85,7 +92,7 @@ def unique_tile_ids(
     return out
 
 
-Known = tuple[int, int, str]  # size in bytes, modification time (ns), fingerprint
+Known = tuple[Stamp, str]  # an earlier scan's stamp of the file (confine.Stamp), fingerprint
 
 
 ELEVATION = "elevation"
@@ -99,9 +106,10 @@ def scan_tile(
 ) -> TileInfo | ScanFailure:
     """Read a tile's header and fingerprint; a failure is returned, not raised.
 
-    ``known`` is what an earlier scan found for this path: when size and modification time are
-    unchanged its fingerprint is reused, otherwise the content is hashed again (so a touched but
-    unchanged file keeps its fingerprint, only costing the hash).
+    ``known`` is what an earlier scan found for this path: when the file's stamp (size,
+    modification and status-change times, inode: confine.Stamp) is unchanged its fingerprint is
+    reused, otherwise the content is hashed again (so a touched but unchanged file keeps its
+    fingerprint, only costing the hash, and one rewritten with its mtime put back is hashed).
 
     ``kind`` is ELEVATION (test and reference tiles) or LANDCOVER; a raster that cannot be of
     that kind fails with the reason (see not_of_kind).
@@ -165,7 +173,7 @@ def _scan(path: Path, known: Known | None, kind: str, roots: Roots) -> TileInfo:
         except RasterioIOError as exc:
             reason = opened.clean(str(exc))
             raise TileReadError(f"tile {opened.name} cannot be opened: {reason}") from None
-        same = known is not None and (known[0], known[1]) == (opened.size, opened.mtime_ns)
+        same = known is not None and known[0] == opened.stamp
         return TileInfo(
             tile_id=tile_id_of(path),
             path=str(path),
@@ -173,9 +181,11 @@ def _scan(path: Path, known: Known | None, kind: str, roots: Roots) -> TileInfo:
             nodata=nodata,
             dtype=dtype,
             size_bytes=opened.size,
-            fingerprint=known[2] if same and known is not None else opened.sha256(),
+            fingerprint=known[1] if same and known is not None else opened.sha256(),
             mtime_ns=opened.mtime_ns,
             roots=roots,
+            ctime_ns=opened.stamp[2],
+            inode=opened.stamp[3],
         )
 
 
@@ -352,6 +362,8 @@ def catalog_document(tiles: Sequence[TileInfo]) -> dict[str, object]:
                 "dtype": t.dtype,
                 "size": t.size_bytes,
                 "mtime_ns": t.mtime_ns,
+                "ctime_ns": t.ctime_ns,
+                "inode": t.inode,
                 "fingerprint": t.fingerprint,
             }
             for t in tiles
@@ -370,23 +382,16 @@ def tiles_from_catalog(document: dict[str, Any]) -> dict[str, TileInfo]:
     out = {}
     for t in document.get("tiles", []):
         grid = Grid(crs_list[t["crs"]], tuple(t["transform"]), t["width"], t["height"])  # type: ignore[arg-type]
-        out[t["path"]] = TileInfo(
-            t["tile"],
-            t["path"],
-            grid,
-            t["nodata"],
-            t["dtype"],
-            t["size"],
-            t["fingerprint"],
-            t["mtime_ns"],
-        )
+        known = (t["tile"], t["path"], grid, t["nodata"], t["dtype"], t["size"], t["fingerprint"])
+        # ctime and inode are absent from catalogs written before: such a file is hashed again
+        stamp = {"ctime_ns": t.get("ctime_ns"), "inode": t.get("inode")}
+        out[t["path"]] = TileInfo(*known, t["mtime_ns"], **stamp)
     return out
 
 
 def unchanged(known: TileInfo, path: Path) -> bool:
-    """True when the file still has the size and modification time it had when scanned."""
+    """True when the file still has the stamp (confine.Stamp) it had when scanned."""
     try:
-        stat = path.stat()
+        return stamp_of(path.stat()) == known.stamp
     except OSError:
         return False
-    return (stat.st_size, stat.st_mtime_ns) == (known.size_bytes, known.mtime_ns)

@@ -37,11 +37,23 @@ from typing import Any
 
 from demaudit.workers.errors import DataRootError, SpecError
 
-__all__ = ["ConfinedFile", "Roots", "open_confined", "real_roots", "shown"]
+__all__ = ["ConfinedFile", "Roots", "Stamp", "open_confined", "real_roots", "shown", "stamp_of"]
 
 #: Data roots as resolved absolute paths (strings, so options stay small and picklable); None
 #: means no confinement.
 Roots = tuple[str, ...] | None
+
+#: What says a file was not rewritten, without reading it: size, modification time (ns),
+#: status-change time (ns) and inode. Anyone may set a file's mtime back (os.utime, ``touch -d``,
+#: ``cp -p``), but not its ctime, which that very call sets to now; a copy renamed over the file
+#: has a new inode. None (not recorded) never matches a stamp taken from a file.
+Stamp = tuple[int, int, int | None, int | None]
+
+
+def stamp_of(info: os.stat_result) -> Stamp:
+    """The Stamp of a stat result."""
+    return (info.st_size, info.st_mtime_ns, info.st_ctime_ns, info.st_ino)
+
 
 _BLOCK = 1 << 20
 _PROC_FD = "/proc/self/fd"
@@ -70,8 +82,8 @@ def shown(path: str | Path, roots: Roots) -> str:
 class ConfinedFile:
     """An open regular file that was checked to lie inside the data roots.
 
-    ``name`` is its path for messages (see shown); ``size`` and ``mtime_ns`` are from fstat of
-    the open file. Use as a context manager (closes the descriptor).
+    ``name`` is its path for messages (see shown); ``size``, ``mtime_ns`` and ``stamp`` are from
+    fstat of the open file. Use as a context manager (closes the descriptor).
     """
 
     def __init__(self, fd: int, *, name: str, real: str, info: os.stat_result) -> None:
@@ -80,6 +92,7 @@ class ConfinedFile:
         self._real = real
         self.size = info.st_size
         self.mtime_ns = info.st_mtime_ns
+        self.stamp = stamp_of(info)
 
     def __enter__(self) -> ConfinedFile:
         return self

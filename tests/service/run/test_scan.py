@@ -47,7 +47,7 @@ def _as_old_catalog_saw_it(image: Path, like: TileInfo) -> TileInfo:
     stat = image.stat()
     return replace(
         like, path=str(image), size_bytes=stat.st_size, mtime_ns=stat.st_mtime_ns,
-        fingerprint="f" * 64,
+        ctime_ns=stat.st_ctime_ns, inode=stat.st_ino, fingerprint="f" * 64,
     )  # fmt: skip
 
 

@@ -1,8 +1,10 @@
 """The catalog's scan: rasters that cannot be elevation (or land cover) are refused with the
-reason; integer single-band DEMs and palette land cover are accepted."""
+reason; integer single-band DEMs and palette land cover are accepted; an earlier fingerprint is
+reused only for a file whose whole stamp (size, mtime, ctime, inode) is unchanged."""
 
 from __future__ import annotations
 
+from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
@@ -11,7 +13,15 @@ import rasterio
 from rasterio.enums import ColorInterp
 from rasterio.transform import from_origin
 
-from demaudit.workers.inputs.catalog import ScanFailure, TileInfo, scan_landcover_tile, scan_tile
+from demaudit.workers.inputs.catalog import (
+    ScanFailure,
+    TileInfo,
+    catalog_document,
+    scan_landcover_tile,
+    scan_tile,
+    tiles_from_catalog,
+    unchanged,
+)
 
 UTM32 = "EPSG:32632"
 
@@ -173,3 +183,68 @@ def test_same_file_names_in_two_folders_get_unique_ids(tmp_path: Path):
     ids = [t.tile_id for t in unique_tile_ids([a, b, c, gone])]
     assert ids == ["t_0_0@first", "t_0_0@again", "t_1_0@first", "t_1_0@again"]
     assert [t.tile_id for t in unique_tile_ids([a, c])] == ["t_0_0", "t_1_0"]
+
+
+# --- re-check: when an earlier scan's fingerprint is reused ----------------------------------
+
+
+def _dem_of(path: Path, height: float) -> Path:
+    """An uncompressed 8 x 8 float32 DEM: any heights give the same file size."""
+    profile = {
+        "driver": "GTiff", "height": 8, "width": 8, "count": 1, "dtype": "float32",
+        "crs": UTM32, "transform": from_origin(500_000, 6_000_000, 5.0, 5.0),
+    }  # fmt: skip
+    with rasterio.open(path, "w", **profile) as dst:
+        dst.write(np.full((1, 8, 8), height, dtype="float32"))
+    return path
+
+
+def _sha256(path: Path) -> str:
+    import hashlib
+
+    return hashlib.sha256(path.read_bytes()).hexdigest()
+
+
+def test_an_unchanged_file_keeps_the_earlier_fingerprint_without_hashing(tmp_path: Path):
+    path = _dem_of(tmp_path / "dem.tif", 50.0)
+    first = scan_tile(path)
+    assert isinstance(first, TileInfo) and first.fingerprint == _sha256(path)
+    again = scan_tile(path, (first.stamp, "e" * 64))  # a marker no hash can give
+    assert isinstance(again, TileInfo) and again.fingerprint == "e" * 64
+    assert unchanged(first, path)
+
+
+def test_a_rewrite_with_the_same_size_and_the_old_mtime_put_back_is_hashed_again(tmp_path):
+    import os
+    import time
+
+    path = _dem_of(tmp_path / "dem.tif", 50.0)
+    first = scan_tile(path)
+    assert isinstance(first, TileInfo)
+    time.sleep(0.05)  # past the file system clock's tick (coarse, a few ms), as for any later edit
+    _dem_of(path, 51.0)  # new content, same size
+    os.utime(path, ns=(path.stat().st_atime_ns, first.mtime_ns))  # `touch -d`, `cp -p`
+    stat = path.stat()
+    assert (stat.st_size, stat.st_mtime_ns) == (first.size_bytes, first.mtime_ns)  # the old check
+    assert not unchanged(first, path)
+    again = scan_tile(path, (first.stamp, first.fingerprint))
+    assert isinstance(again, TileInfo)
+    assert again.fingerprint == _sha256(path) != first.fingerprint
+
+
+def test_a_catalog_written_without_ctime_and_inode_has_its_tiles_hashed_again(tmp_path: Path):
+    path = _dem_of(tmp_path / "dem.tif", 50.0)
+    first = scan_tile(path)
+    assert isinstance(first, TileInfo)
+    document = catalog_document([replace(first, fingerprint="e" * 64)])
+    assert tiles_from_catalog(document)[str(path)].fingerprint == "e" * 64
+    current = tiles_from_catalog(document)[str(path)]
+    assert unchanged(current, path)  # today's catalog: the marker would be reused
+    for entry in document["tiles"]:  # type: ignore[attr-defined]
+        del entry["ctime_ns"], entry["inode"]  # as catalogs were written before
+    old = tiles_from_catalog(document)[str(path)]
+    assert (old.size_bytes, old.mtime_ns) == (first.size_bytes, first.mtime_ns)
+    assert not unchanged(old, path)
+    again = scan_tile(path, (old.stamp, old.fingerprint))
+    assert isinstance(again, TileInfo) and again.fingerprint == _sha256(path)
+    assert again.stamp == current.stamp  # the new catalog records the whole stamp
