@@ -124,14 +124,21 @@ def computed_record(result: TileResult, tile: TileInfo, sources: Sequence[str]) 
     return TileRecord(
         result.tile_id,
         result.status,
-        statistics(result.summary),
+        _statistics_of(result),
         result.reason,
         tuple(tile.bounds),
         tile.fingerprint,
         ShiftEstimate.from_record(shift) if shift is not None else None,
-        statistics(after.summary) if after is not None else None,
+        _statistics_of(after) if after is not None else None,
         tuple(sources),
     )
+
+
+def _statistics_of(result: TileResult) -> dict[str, float | int | None]:
+    """The statistics of result.summary: as the worker worked them out, or here."""
+    if result.statistics is not None:
+        return dict(result.statistics)
+    return statistics(result.summary)
 
 
 def with_status(result: TileResult) -> TileResult:

@@ -80,7 +80,7 @@ def added_histograms(
 ) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
     """Sorted distinct bins and their summed counts. Large inputs (a batch of tile histograms)
     add their linear bins on one dense counter instead of sorting; the result is the same."""
-    if bins.size < _DENSE_ADD_FROM:
+    if bins.size < _DENSE_ADD_FROM or _span(bins) <= _DENSE_SPAN:
         return _sorted_sums(bins, counts)
     column = bins + K_LIMIT
     tail = column.view(np.uint64) >= 2 * K_LIMIT  # negative columns wrap to huge
@@ -100,6 +100,11 @@ def _sorted_sums(
 ) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
     if bins.size == 0:
         return bins.astype(np.int64), counts.astype(np.int64)
+    if bins.size >= _DENSE_ADD_FROM and _span(bins) <= _DENSE_SPAN:  # one dense counter
+        low = int(bins.min())
+        summed = np.bincount(bins - low, weights=counts, minlength=_span(bins))
+        (present,) = np.nonzero(summed)
+        return (present + low).astype(np.int64), summed[present].astype(np.int64)
     order = np.argsort(bins, kind="stable")
     sorted_bins = bins[order]
     starts = np.flatnonzero(np.r_[True, sorted_bins[1:] != sorted_bins[:-1]])
@@ -107,4 +112,10 @@ def _sorted_sums(
     return sorted_bins[starts].astype(np.int64), summed.astype(np.int64)
 
 
+def _span(bins: NDArray[np.int64]) -> int:
+    """How many bins from the lowest to the highest of bins (not empty)."""
+    return int(bins.max()) - int(bins.min()) + 1
+
+
 _DENSE_ADD_FROM = 4096  # entries; below this one sort is cheaper than the dense counter
+_DENSE_SPAN = 4_000_000  # most counters of a dense add (bincount's weights are float64: exact)

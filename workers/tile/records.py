@@ -110,6 +110,9 @@ class TileResult:
     # with an error model (workers/uncertainty/error_model.py)
     error_sample: TileErrorSample | None = None
     derivatives: TileDerivatives | None = None  # with derivatives (workers/tile/derivative_pass)
+    #: statistics(summary), worked out by the worker (audit_and_store) so that the client
+    #: does no per-tile reading of histograms; None: not yet computed
+    statistics: dict[str, float | int | None] | None = None
 
 
 #: With co-registration the reference is read this many test pixels beyond the tile, so that

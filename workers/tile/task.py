@@ -41,6 +41,7 @@ from demaudit.workers.inputs.catalog import (
 )
 from demaudit.workers.inputs.rasters import read_tile
 from demaudit.workers.inputs.regions import Region, region_mask
+from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.tile.difference import difference
 from demaudit.workers.tile.one_pass import ALL
 from demaudit.workers.tile.records import (
@@ -141,7 +142,7 @@ def audit_and_store(*args: Any, summaries_to: str | None = None, **kwargs: Any) 
     store at ``summaries_to`` (its tile_summaries group) instead of the client. The result says
     so (summaries_stored); the client still checks that they arrived and writes them when not
     (a worker that cannot reach the store, or sees another disk at that path)."""
-    result = audit_tile(*args, **kwargs)
+    result = with_statistics(audit_tile(*args, **kwargs))
     if summaries_to is None or result.status != OK:
         return result
     if result.summary.count == 0 and result.excluded == 0:
@@ -157,6 +158,17 @@ def audit_and_store(*args: Any, summaries_to: str | None = None, **kwargs: Any) 
     except Exception:  # noqa: BLE001 - any failure here leaves the writing to the client
         return result
     return replace(result, summaries_stored=True)
+
+
+def with_statistics(result: TileResult) -> TileResult:
+    """result (and its corrected pass) with the tile's statistics worked out here, on the
+    worker, instead of by the client that gathers every tile's result."""
+    if result.status != OK:
+        return result
+    corrected = result.corrected
+    if corrected is not None:
+        corrected = replace(corrected, statistics=dh_summary.statistics(corrected.summary))
+    return replace(result, statistics=dh_summary.statistics(result.summary), corrected=corrected)
 
 
 def with_coregistration(

@@ -67,3 +67,17 @@ def test_a_store_removed_meanwhile_is_not_made_again(tmp_path: Path) -> None:
     result = audit_and_store(test, [ref], [], TileOptions(), summaries_to=str(gone))
     assert result.status == OK and not result.summaries_stored
     assert not (tmp_path / "out.partial-run").exists()
+
+
+def test_the_worker_works_out_the_tile_statistics_the_client_would(tmp_path: Path) -> None:
+    from dataclasses import replace
+
+    from demaudit.workers.outputs.tile_records import computed_record
+    from demaudit.workers.stats.summary import statistics
+
+    test, ref = tile_pair(tmp_path)
+    result = audit_and_store(test, [ref], [], TileOptions())
+    assert result.statistics == statistics(result.summary)
+    assert result.statistics["count"] == 40 * 50
+    by_client = computed_record(replace(result, statistics=None), test, [ref.tile_id])
+    assert computed_record(result, test, [ref.tile_id]).stats == by_client.stats
