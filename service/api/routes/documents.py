@@ -8,7 +8,8 @@ from typing import Any, Literal
 from fastapi import Request
 from pydantic import BaseModel, ConfigDict, Field
 
-from demaudit.service.store.jobs import SUCCESSFUL, JobRecord, JobStatus
+from demaudit.service.api.problems import failure_cause
+from demaudit.service.store.jobs import FAILED, SUCCESSFUL, JobRecord, JobStatus
 
 REL_RESULTS = "http://www.opengis.net/def/rel/ogc/1.0/results"
 REL_EXECUTE = "http://www.opengis.net/def/rel/ogc/1.0/execute"
@@ -47,8 +48,18 @@ class TileCounts(BaseModel):
     total: int
 
 
+class FailureCause(BaseModel):
+    """Why a job failed, as the ``cause`` member of its results' 409 problem: the problem type
+    of the cause, its title, and the HTTP status a problem of that cause alone would have."""
+
+    type: str
+    title: str
+    status: int
+
+
 class StatusInfo(_Document):
-    """The status of one job (OGC statusInfo)."""
+    """The status of one job (OGC statusInfo). A failed job's ``message`` says why it failed and
+    ``cause`` (an extension member; statusInfo allows them) what kind of failure it was."""
 
     jobID: str  # noqa: N815 - the standard's member names
     type: Literal["process"] = "process"
@@ -62,6 +73,7 @@ class StatusInfo(_Document):
     progress: int = Field(ge=0, le=100)
     tiles: TileCounts
     links: list[Link]
+    cause: FailureCause | None = OMITTED_WHEN_NONE
 
 
 class JobList(_Document):
@@ -98,11 +110,15 @@ def status_document(request: Request, record: JobRecord) -> StatusInfo:
         scheduled["scheduleID"] = record.schedule_id
     if record.notification is not None:
         scheduled["notification"] = record.notification
+    cause = FailureCause(**failure_cause(record.cause)) if record.status == FAILED else None
+    message = record.message
+    if cause is not None and not message.strip():  # a failed job always says why
+        message = cause.title
     return StatusInfo(
         jobID=record.job_id,
         processID=record.process_id,
         status=record.status,
-        message=record.message,
+        message=message,
         created=record.created,
         started=record.started,
         finished=record.finished,
@@ -110,6 +126,7 @@ def status_document(request: Request, record: JobRecord) -> StatusInfo:
         progress=record.progress,
         tiles=TileCounts(done=record.tiles_done, total=record.tiles_total),
         links=links,
+        cause=cause,
         **scheduled,
     )
 

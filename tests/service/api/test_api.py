@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import json
 import os
 import time
 
@@ -275,7 +276,11 @@ def test_a_job_with_bad_data_fails_with_the_reason(api, runner, settings, submit
     job_id = submit(api)
     failed = wait_for(api, job_id, lambda d: d["status"] == "failed")
     assert failed["message"] == "no test tile could be read: a.tif: not a raster"
-    assert_problem(api.get(f"/jobs/{job_id}/results"), 409)
+    problem = api.get(f"/jobs/{job_id}/results")
+    assert_problem(problem, 409)
+    # the status document carries the cause the results problem gives
+    assert failed["cause"] == problem.json()["cause"]
+    assert failed["cause"]["type"].endswith("tile-unreadable") and failed["cause"]["status"] == 422
     assert not (settings.results_dir / job_id).exists()
 
 
@@ -285,6 +290,8 @@ def test_a_crash_fails_the_job_without_leaking_its_text(api, runner, submit, wai
     job_id = submit(api)
     failed = wait_for(api, job_id, lambda d: d["status"] == "failed")
     assert failed["message"] == INTERNAL_FAILURE
+    assert failed["cause"]["type"].endswith("internal") and failed["cause"]["status"] == 500
+    assert "root:x" not in json.dumps(failed)
 
 
 def test_jobs_are_listed_newest_first_filtered_and_paged(api, runner, submit, wait_for):

@@ -83,6 +83,37 @@ def test_an_accepted_job_has_no_started_member(api, store):
     assert "started" not in document and "finished" not in document
 
 
+def _failed(store, job_id: str, message: str, cause: str | None) -> None:
+    now = dt.datetime.now(dt.UTC)
+    record = JobRecord(
+        job_id, "dem-audit", "failed", message, now, now, finished=now, owner="alice", cause=cause
+    )
+    store.add(record)
+
+
+def test_a_failed_job_says_why_in_its_status_document(api, store):
+    """statusInfo's message (a string) carries the reason; cause is an extension member (the
+    schema allows them) with the type, title and status of the results' 409 problem's cause."""
+    _failed(store, "bad-input", "test_tiles: no file matches 'x/*.tif'", "invalid-input")
+    _failed(store, "no-reason", "", None)  # a record without message or cause
+    bad = api.get("/jobs/bad-input").json()
+    validate(bad, "statusInfo.yaml")
+    assert bad["message"] == "test_tiles: no file matches 'x/*.tif'"
+    assert bad["cause"] == api.get("/jobs/bad-input/results").json()["cause"]
+    assert bad["cause"]["type"].endswith("invalid-input") and bad["cause"]["status"] == 422
+    bare = api.get("/jobs/no-reason").json()
+    validate(bare, "statusInfo.yaml")
+    assert bare["message"] == bare["cause"]["title"] == "Internal error"
+    validate(api.get("/jobs").json(), "jobList.yaml")
+
+
+def test_only_failed_jobs_have_a_cause(api, runner, submit, wait_for):
+    job_id = submit(api)
+    assert "cause" not in wait_for(api, job_id, lambda d: d["status"] == "running")
+    runner.gate.set()
+    assert "cause" not in wait_for(api, job_id, lambda d: d["status"] == "successful")
+
+
 def test_job_list(api, runner, submit, wait_for):
     _finished(api, runner, submit, wait_for)
     submit(api)
