@@ -35,14 +35,15 @@ class ErrorModelAccumulator:
     counts: dict[str, NDArray[np.int64]] = field(default_factory=dict)
     points: dict[str, NDArray[np.float64]] = field(default_factory=dict)  # crs -> (k, 6)
     pixel_areas: list[float] = field(default_factory=list)
-    tiles: int = 0
+    tiles: int = 0  # tiles that added at least one sampled stable pixel
     stable: int = 0
     outside_limits: int = 0
 
     def add(self, sample: TileErrorSample | None) -> None:
         if sample is None:
             return
-        self.tiles += 1
+        if len(sample.dh):  # a tile without stable pixels (all vegetated) adds no sample
+            self.tiles += 1
         self.stable += sample.stable
         self.outside_limits += sample.outside_limits
         self.pixel_areas.append(sample.pixel_area_m2)

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import numpy as np
 
+from demaudit.workers.tile.strata import ClassInfo
 from demaudit.workers.uncertainty import accumulate, sample
 
 PIXEL = 5.0
@@ -72,3 +73,36 @@ def test_the_samples_come_in_one_order_whatever_order_the_tiles_came_in():
         backward.add(fake(5 - i))
     a, b = forward.samples(), backward.samples()
     assert len(a) == 300 and np.array_equal(a, b)
+
+
+def test_only_tiles_that_added_a_sample_are_counted():
+    """A tile whose valid pixels are all vegetated adds its pixel counts but no sample: the
+    error model's ``tiles`` counts the tiles its samples came from."""
+    n = 40
+    reference = np.tile(0.1 * np.arange(n) * PIXEL, (n, 1))
+    dh = np.random.default_rng(1).standard_normal((n, n)) * 0.3
+    classes = (ClassInfo(1, "open", "non_vegetated"), ClassInfo(2, "forest", "vegetated"))
+
+    def tile(tile_id: str, cover: float) -> sample.TileErrorSample:
+        return sample.tile_error_sample(
+            dh,
+            reference=reference,
+            landcover=np.full((n, n), cover),
+            classes=classes,
+            region_masks={},
+            pixel_centres=lambda r, c: ((c + 0.5) * PIXEL, (r + 0.5) * PIXEL),
+            crs="EPSG:32632",
+            pixel_size_m=(PIXEL, PIXEL),
+            tile_id=tile_id,
+            options=sample.ErrorModelOptions(samples_per_tile=100),
+        )
+
+    forest, open_ground = tile("forest", 2.0), tile("open", 1.0)
+    assert forest.stable == 0 and len(forest.dh) == 0 and forest.counts["*"].sum() == n * n
+    assert len(open_ground.dh) == 100
+    acc = accumulate.ErrorModelAccumulator()
+    for s in (forest, open_ground, None):
+        acc.add(s)
+    assert acc.tiles == 1
+    assert acc.stable == open_ground.stable
+    assert acc.counts["*"].sum() == 2 * n * n  # the forest tile's pixels still count
