@@ -15,6 +15,7 @@ from typing import Any
 import numpy as np
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
+from matplotlib.ticker import LogLocator
 from numpy.typing import NDArray
 
 from demaudit.workers.outputs.figures import compute
@@ -41,6 +42,8 @@ def histogram(h: compute.Histogram, *, log_counts: bool, title: str) -> Figure:
         )  # fmt: skip
     if log_counts:
         ax.set_yscale("log")
+        # minor ticks at 2 and 5 of each decade (the default 2..9 costs ~40 ms more to draw)
+        ax.yaxis.set_minor_locator(LogLocator(subs=(2.0, 5.0)))
         positive = h.counts[h.counts > 0]
         if positive.size:
             ax.set_ylim(max(0.5, float(positive.min()) / 2), float(positive.max()) * 3)

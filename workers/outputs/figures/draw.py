@@ -10,7 +10,8 @@ Artists the tests look for carry a ``gid``: ``region:<id>`` for each region outl
 ``inset``, ``failed:<id>`` / ``not-audited:<id>`` / ``no-value:<id>`` for tiles without results.
 
 Speed: no layout engine, titles placed at a fixed height (matplotlib otherwise measures every
-tick label to place them), tiles drawn as one polygon collection.
+tick label to place them), tiles drawn as one polygon collection, outlines added without
+widening the data limits, at most ~6 coordinate ticks a side (text is most of the drawing time).
 """
 
 from __future__ import annotations
@@ -29,6 +30,7 @@ from matplotlib.colors import BoundaryNorm, Colormap, ListedColormap, Normalize 
 from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.patches import Patch, PathPatch, Rectangle  # noqa: E402
 from matplotlib.path import Path as MplPath  # noqa: E402
+from matplotlib.ticker import MaxNLocator  # noqa: E402
 from numpy.typing import NDArray  # noqa: E402
 from shapely.geometry.base import BaseGeometry  # noqa: E402
 
@@ -60,6 +62,9 @@ VERDICT_COLOURS = {
 Region = tuple[str, str, BaseGeometry]
 MAP_AXES = (0.12, 0.08, 0.64, 0.85)
 BAR_AXES = (0.80, 0.14, 0.025, 0.72)
+#: at most this many coordinate intervals along a map's side (matplotlib's default, ~9 ticks,
+#: crowds 7-digit coordinates at 7 pt, and each tick and its label cost ~1-2 ms to draw)
+MAP_TICK_BINS = 5
 
 
 def new_figure(width: float, height: float) -> Figure:
@@ -78,6 +83,8 @@ def set_title(
 
 def map_axes(ax: Axes, frame: MapFrame) -> None:
     ax.set_aspect(frame.aspect)
+    ax.xaxis.set_major_locator(MaxNLocator(nbins=MAP_TICK_BINS))
+    ax.yaxis.set_major_locator(MaxNLocator(nbins=MAP_TICK_BINS))
     ax.set_xlabel(frame.x_label)
     ax.set_ylabel(frame.y_label)
     ax.ticklabel_format(useOffset=False, style="plain")
