@@ -109,7 +109,7 @@ def watch(http: Any, job_id: str, *, interval: float) -> int:
         bar.close()
     print(f"job {job_id} {job['status']}: {job['message']}")
     print_job_links(str(http.base_url), job_id, job["status"])
-    return server_job_status(job["status"], job.get("message") or "")
+    return server_job_status(job["status"], job.get("message") or "", cause=job.get("cause"))
 
 
 def print_job_links(server: str, job_id: str, status: str) -> None:

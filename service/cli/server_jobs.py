@@ -76,6 +76,6 @@ def status_command(args: argparse.Namespace, settings: Settings) -> int:
         job = response.json()
         print(f"job {job['jobID']} {job['status']} ({job['progress']} %): {job['message']}")
         print_job_links(args.server, job["jobID"], job["status"])
-        return server_job_status(job["status"], job.get("message") or "")
+        return server_job_status(job["status"], job.get("message") or "", cause=job.get("cause"))
 
     return call(args, settings, shown)
