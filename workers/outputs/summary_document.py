@@ -9,7 +9,7 @@ from demaudit.workers.checkpoints.grading import QUALITY_LEVELS_CM
 from demaudit.workers.spec import Grading
 from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.stats.bins import LINEAR_WIDTH_M, RELATIVE_WIDTH
-from demaudit.workers.stats.robust import confidence_intervals, without_outliers
+from demaudit.workers.stats.robust import confidence_intervals, nmad_interval, without_outliers
 from demaudit.workers.stats.summary import DhSummary
 
 SIGN = "test minus reference"
@@ -40,6 +40,16 @@ def quantile_resolution(overall: Mapping[str, Any] | None = None) -> dict[str, A
     }
 
 
+def stratum_entry(key: str, part: DhSummary) -> dict[str, Any]:
+    """A stratum's statistics and the 95 % interval of its NMAD (robust.nmad_interval: asymptotic
+    standard error at the Gaussian, independent pixels; None below 2 values), as the figures
+    show it."""
+    stats = dh_summary.statistics(part)
+    nmad = stats["nmad"]
+    ci = nmad_interval(float(nmad), part.count) if nmad is not None else None
+    return {"stratum": key, "stats": stats, "nmad_ci_95": list(ci) if ci else None}
+
+
 def area_entry(
     s: DhSummary, strata: Mapping[str, DhSummary], *, outlier_rule: str, outlier_factor: float
 ) -> dict[str, Any]:
@@ -50,9 +60,7 @@ def area_entry(
         "resolution_m": dh_summary.statistic_bounds(s),
         "confidence_95": confidence_intervals(s),
         "without_outliers": without_outliers(s, rule=outlier_rule, factor=outlier_factor),
-        "strata": [
-            {"stratum": key, "stats": dh_summary.statistics(part)} for key, part in strata.items()
-        ],
+        "strata": [stratum_entry(key, part) for key, part in strata.items()],
     }
     if s.count == 0:
         entry["note"] = "no valid pixels: no overlap of test, reference and region"

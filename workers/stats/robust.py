@@ -3,6 +3,7 @@ distribution-free confidence intervals of quantiles (Höhle & Höhle 2009)."""
 
 from __future__ import annotations
 
+import math
 from typing import Any
 
 import numpy as np
@@ -81,6 +82,28 @@ INDEPENDENCE_NOTE = (
     "distribution-free intervals from order statistics (Höhle & Höhle 2009); they assume "
     "independent pixels: spatially correlated errors make the true intervals wider"
 )
+
+
+#: asymptotic standard error of the NMAD at the Gaussian, in units of sigma / sqrt(n): the MAD's
+#: asymptotic efficiency there is 36.75 % of the standard deviation's (Rousseeuw & Croux 1993,
+#: JASA 88:1273, section 1), whose variance is sigma^2 / 2n, so Var(NMAD) = sigma^2 / (2 x
+#: 0.3675 n); equivalently 1.4826^2 / (16 phi(0.6745)^2 n) from the sample median of |x|.
+NMAD_SE_FACTOR = math.sqrt(1.0 / (2.0 * 0.3675))
+NMAD_INTERVAL_NOTE = (
+    "NMAD intervals: NMAD +- 1.96 SE, SE = 1.1664 NMAD / sqrt(n), the asymptotic standard error "
+    "of the NMAD at the Gaussian (MAD efficiency 36.75 %, Rousseeuw & Croux 1993); they assume "
+    "independent pixels and a Gaussian core"
+)
+
+
+def nmad_interval(nmad: float, count: int, *, z: float = 1.959964) -> tuple[float, float] | None:
+    """95 % interval of the NMAD from its asymptotic standard error at the Gaussian,
+    NMAD_SE_FACTOR x NMAD / sqrt(n) (assumes independent values and a Gaussian core; heavier
+    tails widen the true interval). None for fewer than 2 values; the low end is at least 0."""
+    if count < 2 or not math.isfinite(nmad):
+        return None
+    se = NMAD_SE_FACTOR * nmad / math.sqrt(count)
+    return max(nmad - z * se, 0.0), nmad + z * se
 
 
 def order_statistic_ranks(n: int, p: float, *, z: float = Z95) -> tuple[int | None, int | None]:

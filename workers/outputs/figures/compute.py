@@ -1,6 +1,7 @@
 """What the figures draw, computed without matplotlib (pure): colour limits, histogram bars and
 the two Gaussian curves, tile values and grades, the worst tiles, strata rows with their
-intervals (median and NMAD), re-check verdicts. Map placement (scale bar, inset outline) is in
+intervals (median and NMAD; the NMAD's from :func:`~demaudit.workers.stats.robust.nmad_interval`,
+re-exported here), re-check verdicts. Map placement (scale bar, inset outline) is in
 :mod:`demaudit.workers.outputs.figures.geometry`.
 
 Everything here takes the job's own numbers (summary.json entries or a mergeable
@@ -23,6 +24,9 @@ from demaudit.workers.checkpoints.grading import ASPRS_CLASSES_CM
 from demaudit.workers.stats import summary as dhs
 from demaudit.workers.stats.bins import bin_edges
 from demaudit.workers.stats.quantiles import order_statistics, quantile
+from demaudit.workers.stats.robust import NMAD_INTERVAL_NOTE as NMAD_INTERVAL_NOTE
+from demaudit.workers.stats.robust import NMAD_SE_FACTOR as NMAD_SE_FACTOR
+from demaudit.workers.stats.robust import nmad_interval as nmad_interval
 from demaudit.workers.stats.robust import order_statistic_ranks
 
 #: colour limits of the dh map: median +- LIMIT_NMADS x NMAD of all valid pixels
@@ -34,16 +38,6 @@ HIST_NMADS = 6.0
 TILE_STATISTICS = ("median", "nmad", "q95_abs", "rmse", "grade")
 #: the tile maps drawn when the spec does not say (figures.tile_statistics)
 DEFAULT_TILE_STATISTICS = ("median", "nmad", "grade")
-#: asymptotic standard error of the NMAD at the Gaussian, in units of sigma / sqrt(n): the MAD's
-#: asymptotic efficiency there is 36.75 % of the standard deviation's (Rousseeuw & Croux 1993,
-#: JASA 88:1273, section 1), whose variance is sigma^2 / 2n, so Var(NMAD) = sigma^2 / (2 x
-#: 0.3675 n); equivalently 1.4826^2 / (16 phi(0.6745)^2 n) from the sample median of |x|.
-NMAD_SE_FACTOR = math.sqrt(1.0 / (2.0 * 0.3675))
-NMAD_INTERVAL_NOTE = (
-    "NMAD intervals: NMAD +- 1.96 SE, SE = 1.1664 NMAD / sqrt(n), the asymptotic standard error "
-    "of the NMAD at the Gaussian (MAD efficiency 36.75 %, Rousseeuw & Croux 1993); they assume "
-    "independent pixels and a Gaussian core"
-)
 Bounds = tuple[float, float, float, float]
 VERDICT_ORDER = ("regressed", "improved", "unchanged", "new", "removed", "reused")
 
@@ -248,16 +242,6 @@ class StratumRow:
     count: int
     median_ci: tuple[float | None, float | None] | None
     nmad_ci: tuple[float, float] | None = None
-
-
-def nmad_interval(nmad: float, count: int, *, z: float = 1.959964) -> tuple[float, float] | None:
-    """95 % interval of the NMAD from its asymptotic standard error at the Gaussian,
-    NMAD_SE_FACTOR x NMAD / sqrt(n) (assumes independent values and a Gaussian core; heavier
-    tails widen the true interval). None for fewer than 2 values; the low end is at least 0."""
-    if count < 2 or not math.isfinite(nmad):
-        return None
-    se = NMAD_SE_FACTOR * nmad / math.sqrt(count)
-    return max(nmad - z * se, 0.0), nmad + z * se
 
 
 def median_interval(s: dhs.DhSummary) -> tuple[float | None, float | None] | None:
