@@ -116,6 +116,7 @@ def _submit(
         own.record() if own is not None else None,
         covered=catalog.covered_of(tile),
         summaries_to=str(outputs.summaries.zarr_path),
+        overview_to=outputs.store.overview_target(tile.tile_id),
         pure=False,
         retries=dispatch.retries,
         key=f"audit-tile-{tile.tile_id}-{dispatch.run_id}",
@@ -143,7 +144,8 @@ def fold(result: TileResult, totals: Totals, outputs: Outputs) -> None:
     pair = (result.error_sample, result.corrected.error_sample if result.corrected else None)
     accumulators = [totals.errors, totals.errors_after]
     record_samples(outputs.samples, result.tile_id, pair, accumulators, outputs.sample_options)
-    outputs.store.write_overview(result.tile_id, result.overview)
+    if not result.overview_stored:
+        outputs.store.write_overview(result.tile_id, result.overview)
     if result.status == OK:
         summaries = outputs.summaries
         by_worker = result.summaries_stored and summaries.has(result.tile_id)  # audit_and_store

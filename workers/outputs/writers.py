@@ -30,6 +30,7 @@ from demaudit.workers.outputs.layout import (
     ZARR_NAME,
     partial_store,
 )
+from demaudit.workers.outputs.overview_block import OverviewTarget, write_block
 from demaudit.workers.stats.summary import STAT_KEYS
 
 
@@ -144,15 +145,21 @@ class ResultsStore:
                 consolidated=False,
             )
 
+    def overview_target(self, tile_id: str) -> OverviewTarget | None:
+        """Where the tile's overview block goes (for the worker that makes it); None without
+        an overview mosaic or for a tile outside it."""
+        if self.layout is None or tile_id not in self.layout.offsets:
+            return None
+        row, col = self.layout.offsets[tile_id]
+        path = str(self.path / OVERVIEW_GROUP / OVERVIEW_ARRAY)
+        return OverviewTarget(path, row, col, self.layout.height, self.layout.width)
+
     def write_overview(self, tile_id: str, block: NDArray[np.float32] | None) -> None:
         """Write one tile's overview block in place (no other block is read)."""
-        if self.layout is None or block is None or tile_id not in self.layout.offsets:
+        target = self.overview_target(tile_id)
+        if target is None or block is None:
             return
-        row, col = self.layout.offsets[tile_id]
-        rows = slice(row, min(row + block.shape[0], self.layout.height))
-        cols = slice(col, min(col + block.shape[1], self.layout.width))
-        part = block[: rows.stop - rows.start, : cols.stop - cols.start]
-        self._overview()[rows, cols] = part
+        write_block(self._overview(), target, block)
 
     def carry_overview(
         self,

@@ -107,6 +107,7 @@ class TileResult:
     coregistration: dict[str, Any] | None = None
     corrected: TileResult | None = None
     summaries_stored: bool = False  # the worker wrote them to the results store (audit_and_store)
+    overview_stored: bool = False  # the worker wrote its overview block (and sent none back)
     # with an error model (workers/uncertainty/error_model.py)
     error_sample: TileErrorSample | None = None
     derivatives: TileDerivatives | None = None  # with derivatives (workers/tile/derivative_pass)

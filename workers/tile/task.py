@@ -41,6 +41,7 @@ from demaudit.workers.inputs.catalog import (
 )
 from demaudit.workers.inputs.rasters import read_tile
 from demaudit.workers.inputs.regions import Region, region_mask
+from demaudit.workers.outputs.overview_block import OverviewTarget, store_block
 from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.tile.difference import difference
 from demaudit.workers.tile.one_pass import ALL
@@ -137,16 +138,32 @@ def audit_tile(
     return result
 
 
-def audit_and_store(*args: Any, summaries_to: str | None = None, **kwargs: Any) -> TileResult:
+def audit_and_store(
+    *args: Any,
+    summaries_to: str | None = None,
+    overview_to: OverviewTarget | None = None,
+    **kwargs: Any,
+) -> TileResult:
     """audit_tile (same arguments), then the worker writes the tile's summaries into the results
-    store at ``summaries_to`` (its tile_summaries group) instead of the client. The result says
-    so (summaries_stored); the client still checks that they arrived and writes them when not
-    (a worker that cannot reach the store, or sees another disk at that path)."""
+    store at ``summaries_to`` (its tile_summaries group) and its overview block at
+    ``overview_to`` instead of the client. The result says so (summaries_stored; an overview
+    stored is not sent back); the client still checks that the summaries arrived and writes
+    what the worker could not (a worker that cannot reach the store, or sees another disk)."""
     result = with_statistics(audit_tile(*args, **kwargs))
-    if summaries_to is None or result.status != OK:
-        return result
-    if result.summary.count == 0 and result.excluded == 0:
-        return result  # the runner gives it status no_valid_pixels and stores nothing
+    if result.status != OK or (result.summary.count == 0 and result.excluded == 0):
+        return result  # the runner gives an empty one status no_valid_pixels, stores nothing
+    if summaries_to is not None:
+        result = _store_summaries(result, summaries_to)
+    if overview_to is not None and result.overview is not None:
+        try:
+            store_block(overview_to, result.overview)
+        except Exception:  # noqa: BLE001 - any failure here leaves the writing to the client
+            return result
+        result = replace(result, overview=None, overview_stored=True)
+    return result
+
+
+def _store_summaries(result: TileResult, summaries_to: str) -> TileResult:
     from demaudit.workers.outputs.summary_store import (  # summary_store imports us
         TileSummaryStore,
         entries_of,

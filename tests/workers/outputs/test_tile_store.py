@@ -81,3 +81,40 @@ def test_the_worker_works_out_the_tile_statistics_the_client_would(tmp_path: Pat
     assert result.statistics["count"] == 40 * 50
     by_client = computed_record(replace(result, statistics=None), test, [ref.tile_id])
     assert computed_record(result, test, [ref.tile_id]).stats == by_client.stats
+
+
+def _store_with_overview(folder: Path, test):
+    from demaudit.workers.outputs.writers import ResultsStore, overview_layout
+
+    layout = overview_layout([test], factor=5)
+    return ResultsStore(folder, layout)
+
+
+def test_the_worker_writes_the_overview_block_the_client_would(tmp_path: Path) -> None:
+    import zarr
+
+    test, ref = tile_pair(tmp_path)
+    by_worker = _store_with_overview(tmp_path / "worker", test)
+    by_client = _store_with_overview(tmp_path / "client", test)
+    options = TileOptions(overview_factor=5)
+    result = audit_and_store(
+        test, [ref], [], options, overview_to=by_worker.overview_target(test.tile_id)
+    )
+    assert result.status == OK and result.overview_stored and result.overview is None
+    by_client.write_overview(test.tile_id, audit_tile(test, [ref], [], options).overview)
+    worker_block = zarr.open_array(by_worker.overview_target(test.tile_id).array_path)[:]
+    client_block = zarr.open_array(by_client.overview_target(test.tile_id).array_path)[:]
+    assert worker_block.shape == (8, 10) and np.isfinite(worker_block).all()
+    np.testing.assert_array_equal(worker_block, client_block)
+
+
+def test_an_overview_store_removed_meanwhile_is_not_made_again(tmp_path: Path) -> None:
+    import shutil
+
+    test, ref = tile_pair(tmp_path)
+    store = _store_with_overview(tmp_path / "out.partial-run", test)
+    target = store.overview_target(test.tile_id)
+    shutil.rmtree(tmp_path / "out.partial-run")
+    result = audit_and_store(test, [ref], [], TileOptions(overview_factor=5), overview_to=target)
+    assert result.status == OK and not result.overview_stored and result.overview is not None
+    assert not (tmp_path / "out.partial-run").exists()
