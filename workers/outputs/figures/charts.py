@@ -15,15 +15,23 @@ from typing import Any
 import numpy as np
 from matplotlib.axes import Axes
 from matplotlib.figure import Figure
-from matplotlib.ticker import LogLocator
+from matplotlib.ticker import LogLocator, MaxNLocator
 from numpy.typing import NDArray
 
 from demaudit.workers.outputs.figures import compute
-from demaudit.workers.outputs.figures.draw import VERDICT_COLOURS, new_figure, set_title
+from demaudit.workers.outputs.figures.draw import (
+    NICE_STEPS,
+    VERDICT_COLOURS,
+    new_figure,
+    set_title,
+)
 
 MEDIAN_COLOUR = "#4527a0"
 NMAD_COLOUR = "#ffb74d"
 NMAD_BAR_COLOUR = "#8d4e00"
+#: at most this many intervals along a panel's value axis (matplotlib's default puts 8-10 ticks
+#: on these narrow panels; each tick and label costs ~1-2 ms to draw)
+PANEL_TICK_BINS = 5
 
 
 def histogram(h: compute.Histogram, *, log_counts: bool, title: str) -> Figure:
@@ -111,6 +119,7 @@ def _median_panel(ax: Axes, name: str, rows: Sequence[compute.StratumRow]) -> No
         gid=f"median:{name}",
     )
     ax.axvline(0.0, color="#999999", linewidth=0.8)
+    ax.xaxis.set_major_locator(MaxNLocator(nbins=PANEL_TICK_BINS, steps=NICE_STEPS))
     ax.set_yticks(y, [f"{r.label} ({r.count:,})" for r in rows], fontsize=7)
     ax.invert_yaxis()
     ax.set_xlabel("median dh (m), bars: 95 % interval", fontsize=7)
@@ -134,6 +143,7 @@ def _nmad_panel(ax: Axes, name: str, rows: Sequence[compute.StratumRow]) -> None
         gid=f"nmad-ci:{name}",
     )
     ax.set_yticks(y, [])
+    ax.xaxis.set_major_locator(MaxNLocator(nbins=PANEL_TICK_BINS, steps=NICE_STEPS))
     ax.invert_yaxis()
     ax.set_xlabel("NMAD (m), bars: 95 % interval (asymptotic SE)", fontsize=7)
     ax.tick_params(labelsize=7)
@@ -157,6 +167,7 @@ def before_after(changes: Sequence[Mapping[str, Any]], *, title: str) -> Figure:
         ax.scatter(after, y, c=colours, zorder=3, label="after", gid=f"after:{key}")
         ax.set_xlabel(f"{key} dh (m)" if key == "median" else "NMAD (m)", fontsize=7)
         ax.tick_params(labelsize=7)
+        ax.xaxis.set_major_locator(MaxNLocator(nbins=PANEL_TICK_BINS, steps=NICE_STEPS))
     axes[0].set_yticks(y, [f"{c['region']} ({c['verdict']})" for c in changes])
     axes[0].invert_yaxis()
     axes[0].legend(fontsize=7)
