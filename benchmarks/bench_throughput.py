@@ -5,6 +5,8 @@ Run from the repository root:
     .venv/bin/python benchmarks/bench_throughput.py            # 4 and 16 tiles of 1500 px
     .venv/bin/python benchmarks/bench_throughput.py --quick    # 1 and 4 tiles of 1000 px
     .venv/bin/python benchmarks/bench_throughput.py --tiles 16,64 --pixels 1500
+    .venv/bin/python benchmarks/bench_throughput.py --tiles 16,256 --archives same-grid \
+        --contenders decode,demaudit-w2,demaudit-w1      # memory from 16 to 256 tiles
 
 What one run does, for two archives it writes itself (kept in ``--cache`` and reused):
 
@@ -284,6 +286,11 @@ def main(argv: Sequence[str] | None = None) -> int:
         default=1,
         help="run every contender's two sizes this many times (marginal from the fastest)",
     )
+    parser.add_argument(
+        "--contenders",
+        help="comma-separated subset of decode,decode+warp,naive,demaudit-w2,demaudit-w1 "
+        "(default all; leave naive out for large sizes: it holds every dh in memory)",
+    )
     parser.add_argument("--contender", help=argparse.SUPPRESS)
     parser.add_argument("--plan", type=Path, help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
@@ -308,6 +315,8 @@ def main(argv: Sequence[str] | None = None) -> int:
         contenders = ["decode", "naive", "demaudit-w2", "demaudit-w1"]
         if kind == REPROJECTED:
             contenders.insert(1, "decode+warp")
+        if args.contenders:
+            contenders = [c for c in contenders if c in args.contenders.split(",")]
         plans = [make_plan(folder, kind, big, subset) for subset in (small, big)]
         for _ in range(args.repeat):  # contenders side by side in each round
             for contender in contenders:  # the two sizes back to back: a similar load
