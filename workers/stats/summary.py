@@ -108,8 +108,8 @@ def merge_all(summaries: Iterable[DhSummary]) -> DhSummary:
         mean += delta * s.count / total
         m2 += s.m2 + delta * delta * n * s.count / total
         n = total
-    all_bins = np.concatenate([s.bins for s in parts]).astype(np.int64)
-    all_counts = np.concatenate([s.counts for s in parts]).astype(np.int64)
+    all_bins = np.concatenate([s.bins for s in parts], dtype=np.int64)
+    all_counts = np.concatenate([s.counts for s in parts], dtype=np.int64)
     bins, counts = added_histograms(all_bins, all_counts)
     return DhSummary(
         n,
