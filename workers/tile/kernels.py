@@ -80,6 +80,9 @@ def _key_sweep(  # type: ignore[no-untyped-def]
     n_band_codes, n_cells = sizes[0], sizes[1]
     with_codes, with_patterns = codes.size > 0, patterns.size > 0
     n_tail, dropped = 0, 0
+    # the current cell's sum and extremes live in locals while neighbouring pixels share the
+    # cell (the same additions in the same order as sums[c] += v, without a store per pixel)
+    cell, total, low, high = -1, 0.0, 0.0, 0.0
     for i in range(dh.size):
         v = dh[i]
         code = codes[i] if with_codes else 0
@@ -93,11 +96,15 @@ def _key_sweep(  # type: ignore[no-untyped-def]
         if with_patterns:
             c += patterns[i] * n_cells
         keys[i] = c
-        sums[c] += v
-        if v < mins[c]:
-            mins[c] = v
-        if v > maxs[c]:
-            maxs[c] = v
+        if c != cell:
+            if cell >= 0:
+                sums[cell], mins[cell], maxs[cell] = total, low, high
+            cell, total, low, high = c, sums[c], mins[c], maxs[c]
+        total += v
+        if v < low:
+            low = v
+        if v > high:
+            high = v
         if abs(v) < linear_limit:
             column = int(math.floor(v / linear_width)) + k_limit
             if 0 <= column < 2 * k_limit:
@@ -105,6 +112,8 @@ def _key_sweep(  # type: ignore[no-untyped-def]
                 continue
         tail[n_tail] = i
         n_tail += 1
+    if cell >= 0:
+        sums[cell], mins[cell], maxs[cell] = total, low, high
     out[0], out[1] = n_tail, dropped
 
 
@@ -143,14 +152,23 @@ def _tail_sweep(  # type: ignore[no-untyped-def]
 
 
 def _deviation_sweep(x, key, mean, residual, squares):  # type: ignore[no-untyped-def]
-    """Per cell: the sum of deviations from mean and of their squares (same values skipped)."""
+    """Per cell: the sum of deviations from mean and of their squares (same values skipped).
+    The current cell's sums live in locals while neighbouring values share it (the same
+    additions in the same order)."""
+    cell, centre, r, q = -1, 0.0, 0.0, 0.0
     for i in range(x.size):
         c = key[i]
         if c < 0 or not math.isfinite(x[i]):
             continue
-        d = x[i] - mean[c]
-        residual[c] += d
-        squares[c] += d * d
+        if c != cell:
+            if cell >= 0:
+                residual[cell], squares[cell] = r, q
+            cell, centre, r, q = c, mean[c], residual[c], squares[c]
+        d = x[i] - centre
+        r += d
+        q += d * d
+    if cell >= 0:
+        residual[cell], squares[cell] = r, q
 
 
 def _band_sweep(z, half_x, half_y, full_x, full_y, lower, upper, none, out):  # type: ignore[no-untyped-def]
