@@ -11,6 +11,7 @@ from affine import Affine
 from numpy.typing import NDArray
 from pyproj import CRS
 from rasterio.features import rasterize
+from shapely.geometry import Polygon
 from shapely.geometry.base import BaseGeometry
 
 
@@ -85,6 +86,9 @@ def centres_in(geometries: Sequence[BaseGeometry], grid: Grid) -> NDArray[np.boo
     """True for pixels of grid whose centre lies in one of the geometries (grid's CRS)."""
     if not geometries:
         return np.zeros(grid.shape, dtype=bool)
+    whole = _all_or_none(geometries, grid)
+    if whole is not None:
+        return np.full(grid.shape, whole, dtype=bool)
     burned = rasterize(
         [(g, 1) for g in geometries],
         out_shape=grid.shape,
@@ -94,3 +98,26 @@ def centres_in(geometries: Sequence[BaseGeometry], grid: Grid) -> NDArray[np.boo
         dtype="uint8",
     )
     return burned.astype(bool)
+
+
+def _all_or_none(geometries: Sequence[BaseGeometry], grid: Grid) -> bool | None:
+    """True when a geometry holds every pixel centre in its interior, False when none touches
+    any, None when only rasterizing tells (a tile wholly inside one region is the common case
+    and needs no rasterizing)."""
+    if min(grid.shape) < 2:
+        return None
+    hull = _centres_hull(grid)
+    if any(g.contains_properly(hull) for g in geometries):
+        return True
+    if all(g.disjoint(hull) for g in geometries):
+        return False
+    return None
+
+
+def _centres_hull(grid: Grid) -> BaseGeometry:
+    """The convex hull of grid's pixel centres (the parallelogram through the four corner
+    pixels' centres): a geometry holding it in its interior holds every centre."""
+    cols = np.array([0, grid.width - 1, grid.width - 1, 0], dtype=np.float64) + 0.5
+    rows = np.array([0, 0, grid.height - 1, grid.height - 1], dtype=np.float64) + 0.5
+    a, b, c, d, e, f = grid.transform
+    return Polygon(zip(a * cols + b * rows + c, d * cols + e * rows + f, strict=True))
