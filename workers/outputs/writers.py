@@ -45,6 +45,10 @@ class OverviewLayout:
     factor: int
     tile_block: int
     offsets: Mapping[str, tuple[int, int]]  # tile id -> (row, col) of its block in the mosaic
+    #: tiles whose block shares a chunk of the mosaic with another tile's block (tiles of other
+    #: sizes, overlaps): their blocks are written by the client, one at a time, never by two
+    #: workers at once (a chunk is rewritten whole: one of two concurrent writes would be lost)
+    shared_chunks: frozenset[str] = frozenset()
 
 
 def overview_layout(tiles: Sequence[TileInfo], *, factor: int) -> OverviewLayout | None:
@@ -73,15 +77,32 @@ def overview_layout(tiles: Sequence[TileInfo], *, factor: int) -> OverviewLayout
     factor = max(f for f in range(1, factor + 1) if common % f == 0)
     width = max(c + t.grid.width for t, (_, c) in zip(tiles, pixel_offsets.values(), strict=True))
     height = max(r + t.grid.height for t, (r, _) in zip(tiles, pixel_offsets.values(), strict=True))
+    block = max(min(sizes) // factor, 1)
+    windows = {
+        t.tile_id: (r // factor, c // factor, t.grid.height // factor, t.grid.width // factor)
+        for t, (r, c) in zip(tiles, pixel_offsets.values(), strict=True)
+    }
     return OverviewLayout(
         crs=first.crs,
         transform=(a * factor, 0.0, left, 0.0, e * factor, top),
         width=width // factor,
         height=height // factor,
         factor=factor,
-        tile_block=max(min(sizes) // factor, 1),
+        tile_block=block,
         offsets={k: (r // factor, c // factor) for k, (r, c) in pixel_offsets.items()},
+        shared_chunks=_sharing_chunks(windows, block),
     )
+
+
+def _sharing_chunks(windows: Mapping[str, tuple[int, int, int, int]], block: int) -> frozenset[str]:
+    """The tiles whose window (row, col, height, width in overview cells) touches a chunk
+    (block x block cells) that another tile's window touches too."""
+    owners: dict[tuple[int, int], list[str]] = {}
+    for tile_id, (row, col, height, width) in windows.items():
+        for i in range(row // block, (row + max(height, 1) - 1) // block + 1):
+            for j in range(col // block, (col + max(width, 1) - 1) // block + 1):
+                owners.setdefault((i, j), []).append(tile_id)
+    return frozenset(t for ids in owners.values() if len(ids) > 1 for t in ids)
 
 
 def overview_axes(layout: OverviewLayout) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
@@ -147,7 +168,13 @@ class ResultsStore:
 
     def overview_target(self, tile_id: str) -> OverviewTarget | None:
         """Where the tile's overview block goes (for the worker that makes it); None without
-        an overview mosaic or for a tile outside it."""
+        an overview mosaic, for a tile outside it, or for one whose block shares a chunk with
+        another tile's (OverviewLayout.shared_chunks: the client writes those)."""
+        if self.layout is None or tile_id in self.layout.shared_chunks:
+            return None
+        return self._target(tile_id)
+
+    def _target(self, tile_id: str) -> OverviewTarget | None:
         if self.layout is None or tile_id not in self.layout.offsets:
             return None
         row, col = self.layout.offsets[tile_id]
@@ -156,7 +183,7 @@ class ResultsStore:
 
     def write_overview(self, tile_id: str, block: NDArray[np.float32] | None) -> None:
         """Write one tile's overview block in place (no other block is read)."""
-        target = self.overview_target(tile_id)
+        target = self._target(tile_id)
         if target is None or block is None:
             return
         write_block(self._overview(), target, block)
