@@ -182,11 +182,18 @@ class ResultsStore:
         return OverviewTarget(path, row, col, self.layout.height, self.layout.width)
 
     def write_overview(self, tile_id: str, block: NDArray[np.float32] | None) -> None:
-        """Write one tile's overview block in place (no other block is read)."""
+        """Write one tile's overview block in place. A block that shares chunks with other
+        tiles' (OverviewLayout.shared_chunks) keeps the values they wrote where it is NaN: an
+        overlap counted by the first-listed tile stays filled whichever tile arrives last."""
         target = self._target(tile_id)
         if target is None or block is None:
             return
-        write_block(self._overview(), target, block)
+        array = self._overview()
+        if self.layout is not None and tile_id in self.layout.shared_chunks:
+            rows, cols = target.window(block.shape)
+            part = block[: rows.stop - rows.start, : cols.stop - cols.start]
+            block = np.where(np.isnan(part), array[rows, cols], part).astype(np.float32)
+        write_block(array, target, block)
 
     def carry_overview(
         self,

@@ -158,3 +158,18 @@ def test_no_two_workers_write_one_chunk_of_the_overview(tmp_path, layout_tiles, 
 
 def overview_array(store: ResultsStore) -> np.ndarray:
     return np.asarray(zarr.open_array(str(store.path / "dh_overview" / "dh"))[...])
+
+
+@pytest.mark.parametrize("first", ["s0", "s1"])
+def test_an_overlap_keeps_the_heights_of_the_tile_that_counted_it(tmp_path, first):
+    # s1's first 20 pixels lie under s0 (listed first), so s1's block is NaN there
+    # (catalog.tile_overlaps); the overlap shows s0's values whichever block is written last
+    layout_tiles = strip([40, 40], overlap=20)
+    store = ResultsStore(tmp_path, overview_layout(layout_tiles, factor=4))
+    covered = np.full((10, 10), 2.0, np.float32)
+    covered[:, :5] = np.nan
+    blocks = {"s0": np.full((10, 10), 1.0, np.float32), "s1": covered}
+    for tile_id in (first, "s1" if first == "s0" else "s0"):
+        store.write_overview(tile_id, blocks[tile_id])
+    want = np.concatenate([np.full((10, 10), 1.0), np.full((10, 5), 2.0)], axis=1)
+    np.testing.assert_array_equal(overview_array(store), want)
