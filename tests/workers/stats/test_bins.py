@@ -27,10 +27,19 @@ def test_a_sparse_histogram_counts_every_value_in_its_bin() -> None:
     assert counts.dtype == np.int32
 
 
-@pytest.mark.parametrize("entries", [50, 20_000])  # below and above the dense counter's limit
-def test_added_histograms_sum_the_counts_of_equal_bins(entries: int) -> None:
+@pytest.mark.parametrize(
+    ("entries", "far"),
+    [
+        (50, 0.0),  # sorted
+        (20_000, 0.0),  # one dense counter over the bins' span
+        (20_000, 1e250),  # a span too wide for that: linear bins dense, the tails sorted
+    ],
+)
+def test_added_histograms_sum_the_counts_of_equal_bins(entries: int, far: float) -> None:
     rng = np.random.default_rng(entries)
     values = np.concatenate([rng.normal(0, 1, entries), rng.uniform(-60, 60, entries // 10)])
+    if far:
+        values = np.concatenate([values, [far, -far, far]])
     k = bins.bin_index(values)
     counts = rng.integers(1, 5, k.size).astype(np.int64)
     got_k, got_counts = bins.added_histograms(k, counts)
