@@ -79,7 +79,8 @@ def added_histograms(
     bins: NDArray[np.int64], counts: NDArray[np.int64]
 ) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
     """Sorted distinct bins and their summed counts. Large inputs (a batch of tile histograms)
-    add their linear bins on one dense counter instead of sorting; the result is the same."""
+    are added on one dense counter over their span instead of sorting (over a span too wide
+    for it, the linear bins on one and the tail bins by sorting); the result is the same."""
     if bins.size < _DENSE_ADD_FROM or _span(bins) <= _DENSE_SPAN:
         return _sorted_sums(bins, counts)
     column = bins + K_LIMIT

@@ -7,8 +7,9 @@ from pathlib import Path
 import numpy as np
 from rasterio.transform import from_origin
 
-from demaudit.workers.inputs.catalog import scan_tile
+from demaudit.workers.inputs.catalog import TileInfo, scan_tile
 from demaudit.workers.outputs.summary_store import TileSummaryStore, entries_of
+from demaudit.workers.outputs.writers import ResultsStore, overview_layout
 from demaudit.workers.tile.task import OK, TileOptions, audit_and_store, audit_tile
 from tests.conftest import UTM32, terrain, write_tif
 
@@ -83,9 +84,7 @@ def test_the_worker_works_out_the_tile_statistics_the_client_would(tmp_path: Pat
     assert computed_record(result, test, [ref.tile_id]).stats == by_client.stats
 
 
-def _store_with_overview(folder: Path, test):
-    from demaudit.workers.outputs.writers import ResultsStore, overview_layout
-
+def _store_with_overview(folder: Path, test: TileInfo) -> ResultsStore:
     layout = overview_layout([test], factor=5)
     return ResultsStore(folder, layout)
 
