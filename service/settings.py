@@ -17,6 +17,7 @@ from typing import Annotated, Any
 from pydantic import Field, field_validator, model_validator
 from pydantic_settings import BaseSettings, NoDecode, SettingsConfigDict
 
+from demaudit.service.run.tile_limit import DEFAULT_TILE_TIMEOUT_S
 from demaudit.workers.tile.datum import DEFAULT_GRID_DIRS
 
 
@@ -63,6 +64,11 @@ class Settings(BaseSettings):
     job_stall_timeout_s: float | None = Field(default=600.0, gt=0)
     """A job none of whose waiting Dask tasks finished for this long fails ("no tile finished
     for N s; workers: W"), e.g. when every worker is gone; unset (``null``) waits for ever."""
+    tile_timeout_s: float | None = Field(default=DEFAULT_TILE_TIMEOUT_S, ge=0, allow_inf_nan=False)
+    """A tile task that has run (not waited) this long is cancelled and its tile recorded as
+    failed ("tile X did not finish within N s; cancelled"), e.g. GDAL blocked on a hung network
+    mount; its worker is restarted (Dask cannot stop a thread). 0 (or ``null``): no limit.
+    ``demaudit run --tile-timeout`` overrides it for one run."""
     scheduler_timeout_s: float = Field(default=30.0, gt=0)
     """How long one Dask client waits for the external scheduler (at start-up, after losing
     it); then the REST service makes a new client, every few seconds, until it answers."""
@@ -116,6 +122,11 @@ class Settings(BaseSettings):
         if text.startswith("["):
             return json.loads(text)
         return [part.strip() for part in text.split(",") if part.strip()]
+
+    @field_validator("tile_timeout_s")
+    @classmethod
+    def _no_tile_limit(cls, value: float | None) -> float | None:
+        return value or None  # 0: no limit (an environment variable cannot say null)
 
     @field_validator("public_base_url", "public_url")
     @classmethod

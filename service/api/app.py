@@ -225,6 +225,7 @@ def _dispatcher(
         runner=runner,
         on_end=notifier.after_job,
         stall_timeout_s=settings.job_stall_timeout_s,
+        tile_timeout_s=settings.tile_timeout_s,
         lease_s=settings.runner_lease_s,
         watch_interval_s=min(2.0, settings.runner_lease_s / 4),
     )

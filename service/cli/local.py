@@ -4,6 +4,7 @@ external Dask cluster) and ``validate`` (check a spec and its files without runn
 from __future__ import annotations
 
 import argparse
+import math
 import sys
 from contextlib import ExitStack
 from pathlib import Path
@@ -77,6 +78,24 @@ def _add_run_options(p: argparse.ArgumentParser) -> None:
         help="folder of an earlier run of this spec: recompute only changed tiles and report "
         "what changed (nightly re-check)",
     )
+    p.add_argument(
+        "--tile-timeout",
+        type=tile_timeout,
+        metavar="SECONDS",
+        help="cancel a tile task that has run this long and record the tile as failed (default: "
+        "DEMAUDIT_TILE_TIMEOUT_S, else 1800; 0: no limit)",
+    )
+
+
+def tile_timeout(text: str) -> float:
+    """argparse type of --tile-timeout: seconds, at least 0 (0: no limit)."""
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected seconds, got {text!r}") from None
+    if not math.isfinite(value) or value < 0:
+        raise argparse.ArgumentTypeError(f"must be 0 (no limit) or more seconds, got {text}")
+    return value
 
 
 def load_job(spec_path: Path, settings: Settings) -> job_spec.ResolvedJob:
@@ -116,11 +135,20 @@ def run_command(args: argparse.Namespace, settings: Settings) -> int:
                 progress=progress,
                 baseline=args.baseline,
                 inputs=inputs,
+                tile_timeout_s=_tile_timeout_s(args, settings),
             )
         finally:
             bar.close()
     print_report(document, args.out)
     return run_status(document)
+
+
+def _tile_timeout_s(args: argparse.Namespace, settings: Settings) -> float | None:
+    """The run's tile time limit: --tile-timeout (0: none), else the setting."""
+    given: float | None = getattr(args, "tile_timeout", None)
+    if given is None:
+        return settings.tile_timeout_s
+    return given or None
 
 
 def _enter_client(stack: ExitStack, scheduler: str | None, workers: int, settings: Settings) -> Any:

@@ -223,6 +223,7 @@ class JobClient:
         self._futures: weakref.WeakSet[Any] = weakref.WeakSet()
         self._lock = threading.Lock()
         self._pending: set[Any] = set()
+        self._dropped: set[str] = set()
         self.last_progress = time.monotonic()
         self.cancelled_by_us = False
 
@@ -242,6 +243,13 @@ class JobClient:
         self.cancelled_by_us = True
         return self._client.cancel(futures, *args, **kwargs)
 
+    def cancel_tasks(self, futures: Any) -> None:
+        """Cancel some of the job's tasks on purpose (tiles past their time limit): not taken
+        for a lost cluster, and the job can still cancel the others."""
+        with self._lock:
+            self._dropped.update(str(f.key) for f in futures)
+        self._client.cancel(futures)
+
     def __getattr__(self, name: str) -> Any:
         return getattr(self._client, name)
 
@@ -260,7 +268,9 @@ class JobClient:
         if self.cancelled_by_us:
             return False
         return any(
-            getattr(f, "status", None) == "cancelled" and not getattr(f, "_cleared", False)
+            getattr(f, "status", None) == "cancelled"
+            and not getattr(f, "_cleared", False)
+            and str(f.key) not in self._dropped
             for f in self._live()
         )  # a future the job released (Future.release) also reads "cancelled": not lost
 

@@ -60,6 +60,7 @@ from demaudit.service.run.faults import (
 from demaudit.service.run.job_thread import EndHook, JobThreads, Runner
 from demaudit.service.run.recorder import JobRecorder
 from demaudit.service.run.runner import run_job
+from demaudit.service.run.tile_limit import DEFAULT_TILE_TIMEOUT_S
 from demaudit.service.run.watchdog import ActiveJob, check_stall
 from demaudit.service.store.jobs import (
     ACCEPTED,
@@ -108,6 +109,7 @@ class JobDispatcher(JobThreads):
         runner: Runner = run_job,
         on_end: EndHook | None = None,
         stall_timeout_s: float | None = None,
+        tile_timeout_s: float | None = DEFAULT_TILE_TIMEOUT_S,
         lease_s: float = 60.0,
         watch_interval_s: float = 2.0,
         instance: str | None = None,
@@ -120,6 +122,7 @@ class JobDispatcher(JobThreads):
         )
         self._grid_dirs = tuple(grid_dirs)
         self._retries = retries
+        self._tile_timeout_s = tile_timeout_s
         self._runner = runner
         self._pool = ThreadPoolExecutor(max_running_jobs, thread_name_prefix="demaudit-job")
         self._lock = threading.Lock()

@@ -65,6 +65,7 @@ class Runner(Protocol):
         should_stop: Callable[[], bool],
         run_id: str,
         retries: int,
+        tile_timeout_s: float | None,
         baseline: Path | None = None,
     ) -> dict[str, Any]: ...
 
@@ -84,6 +85,7 @@ class JobThreads:
     _runner: Runner
     _grid_dirs: tuple[str, ...]
     _retries: int
+    _tile_timeout_s: float | None
     _lock: threading.Lock
     _active: dict[str, ActiveJob]
     _on_end: EndHook | None
@@ -148,6 +150,7 @@ class JobThreads:
                 should_stop=active.should_stop,
                 run_id=job_id,
                 retries=self._retries,
+                tile_timeout_s=self._tile_timeout_s,
                 **extra,
             )
         except Exception as exc:

@@ -29,6 +29,7 @@ from demaudit.service.run.recheck import Baseline, change_report, load_baseline
 from demaudit.service.run.reuse import Reuse, carry_over, plan_reuse
 from demaudit.service.run.scan import Inputs, Scan, dask_map, read_inputs, scan_job
 from demaudit.service.run.tables import write_tables
+from demaudit.service.run.tile_limit import DEFAULT_TILE_TIMEOUT_S
 from demaudit.service.run.tiles import (
     Dispatch,
     Outputs,
@@ -85,6 +86,7 @@ def run_job(
     retries: int = 1,
     baseline: Path | None = None,
     inputs: Inputs | None = None,
+    tile_timeout_s: float | None = DEFAULT_TILE_TIMEOUT_S,
 ) -> dict[str, Any]:
     """Audit job.spec on the cluster behind client; write results.zarr and summary.json into
     out_dir and return the summary document.
@@ -92,7 +94,8 @@ def run_job(
     progress(done, total) is called as tiles finish; when should_stop() turns true the remaining
     tile tasks are cancelled on the cluster and JobDismissedError is raised. Tile tasks get the
     key ``audit-tile-<tile>-<run_id>`` (a job id makes them deterministic) and ``retries``
-    retries when a worker is lost.
+    retries when a worker is lost. A tile task that runs longer than ``tile_timeout_s`` seconds
+    (None: no limit) is cancelled and its tile recorded as failed (tile_limit.TileClock).
 
     With ``baseline`` (the folder of an earlier run of the same spec), only new and changed tiles
     (or tiles whose reference or land cover changed) are recomputed; the run continues the
@@ -110,7 +113,7 @@ def run_job(
     run_id = run_id or uuid.uuid4().hex[:12]
     inputs = inputs if inputs is not None else read_inputs(job)
     prior = load_baseline(baseline) if baseline is not None else None
-    dispatch = Dispatch(run_id, retries, progress, should_stop)
+    dispatch = Dispatch(run_id, retries, progress, should_stop, tile_timeout_s)
     options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
     with staged_folder(out_dir, run_id) as stage:
         run = _Run(client, job, stage, Phases())

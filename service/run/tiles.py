@@ -4,6 +4,7 @@ running totals and the results store as it arrives (pixels stay on the workers).
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping, Sequence
+from contextlib import ExitStack
 from dataclasses import dataclass, replace
 
 from distributed import Client, Future, as_completed
@@ -11,6 +12,7 @@ from distributed import Client, Future, as_completed
 from demaudit.service.run.coregistration import CorrectionEstimate
 from demaudit.service.run.reuse import Reuse
 from demaudit.service.run.scan import Catalog
+from demaudit.service.run.tile_limit import TileClock
 from demaudit.workers.errors import JobDismissedError
 from demaudit.workers.inputs import regions as region_ops
 from demaudit.workers.inputs.catalog import TileInfo
@@ -37,12 +39,14 @@ Progress = Callable[[int, int], None]
 @dataclass(frozen=True)
 class Dispatch:
     """How the tile tasks run: task key suffix, retries when a worker is lost, progress
-    callback (done, total) and the dismissal check."""
+    callback (done, total), the dismissal check and the limit on one tile task's running time
+    in seconds (None: no limit; see tile_limit)."""
 
     run_id: str
     retries: int = 1
     progress: Progress | None = None
     should_stop: Callable[[], bool] | None = None
+    tile_timeout_s: float | None = None
 
 
 @dataclass(frozen=True)
@@ -70,10 +74,30 @@ def run_tiles(
     job_name: str,
 ) -> dict[str, TileRecord]:
     """Audit ``tiles`` on the cluster and fold each result into totals and outputs; the tiles'
-    records. JobDismissedError (the remaining tasks cancelled) once dispatch.should_stop()."""
+    records. JobDismissedError (the remaining tasks cancelled) once dispatch.should_stop(). A
+    task running longer than dispatch.tile_timeout_s is cancelled and its tile failed."""
     futures = [
         _submit(client, tile, catalog, estimate, options, outputs, dispatch) for tile in tiles
     ]
+    with ExitStack() as stack:
+        clock = None
+        if dispatch.tile_timeout_s is not None and futures:
+            limit = dispatch.tile_timeout_s
+            clock = stack.enter_context(TileClock(client, futures, limit, tile_of=tile_of_key))
+        return _collect(client, futures, catalog, clock, totals, outputs, dispatch, job_name)
+
+
+def _collect(
+    client: Client,
+    futures: list[Future],
+    catalog: Catalog,
+    clock: TileClock | None,
+    totals: Totals,
+    outputs: Outputs,
+    dispatch: Dispatch,
+    job_name: str,
+) -> dict[str, TileRecord]:
+    """Fold the tasks' results as they arrive (run_tiles)."""
     total = len(catalog.tests) + len(catalog.test_failures)
     done = total - len(futures)
     by_id = catalog.by_id
@@ -82,7 +106,8 @@ def run_tiles(
         if dispatch.should_stop is not None and dispatch.should_stop():
             client.cancel(futures)
             raise JobDismissedError(f"job {job_name} was dismissed after {done} tiles")
-        result = with_status(result_of(future))
+        timed_out = clock.reason(future.key) if clock is not None else None
+        result = with_status(result_of(future, timed_out))
         future.release()
         fold(result, totals, outputs)
         tile = by_id[result.tile_id]
@@ -123,14 +148,23 @@ def _submit(
     )
 
 
-def result_of(future: Future) -> TileResult:
-    """The tile's result; a lost worker or a crash outside audit_tile marks the tile failed."""
+def tile_of_key(key: object) -> str:
+    """The tile id of a task key ``audit-tile-<tile>-<run_id>``."""
+    return str(key).removeprefix("audit-tile-").rsplit("-", 1)[0]
+
+
+def result_of(future: Future, timed_out: str | None = None) -> TileResult:
+    """The tile's result; a lost worker, a crash outside audit_tile or the time limit
+    (timed_out: the reason, when the task was cancelled for it) marks the tile failed."""
+    if timed_out is not None:
+        return TileResult(tile_of_key(future.key), FAILED, timed_out)
     try:
         result: TileResult = future.result()
     except Exception as exc:  # noqa: BLE001 - report, never lose the job
-        tile_id = str(future.key).removeprefix("audit-tile-").rsplit("-", 1)[0]
         return TileResult(
-            tile_id, FAILED, f"task failed on the cluster: {type(exc).__name__}: {exc}"
+            tile_of_key(future.key),
+            FAILED,
+            f"task failed on the cluster: {type(exc).__name__}: {exc}",
         )
     return result
 

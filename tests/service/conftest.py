@@ -66,6 +66,7 @@ class ScriptedRunner:
         should_stop: Callable[[], bool],
         run_id: str,
         retries: int,
+        tile_timeout_s: float | None = None,
     ) -> dict[str, Any]:
         self.started.append(run_id)
         out_dir.mkdir(parents=True, exist_ok=True)
