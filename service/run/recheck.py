@@ -4,14 +4,15 @@ of the tiles it keeps; the plan and the change report are pure (workers/recheck/
 from __future__ import annotations
 
 import json
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
 from typing import Any
 
 from demaudit.workers.errors import SpecError
-from demaudit.workers.inputs.catalog import TileInfo, headers_checked, tiles_from_catalog
+from demaudit.workers.inputs.catalog import TileInfo
+from demaudit.workers.inputs.catalog_file import headers_checked, tiles_from_catalog
 from demaudit.workers.outputs.layout import (
     AFTER_PART,
     ALL_PART,
@@ -48,23 +49,25 @@ class Baseline:
         return tile_records(self.document)
 
     @cached_property
-    def catalog(self) -> dict[str, TileInfo]:
-        """Path -> TileInfo of the baseline's scan (empty when it wrote no catalog.json)."""
+    def catalog_document(self) -> dict[str, Any]:
+        """The baseline's catalog.json (empty when it wrote none or it cannot be read)."""
         try:
             doc = json.loads((self.folder / CATALOG_NAME).read_text(encoding="utf-8"))
-        except (OSError, json.JSONDecodeError):
+        except (OSError, UnicodeDecodeError, json.JSONDecodeError):
             return {}
-        return tiles_from_catalog(doc)
+        return doc if isinstance(doc, dict) else {}
+
+    def catalog(self, *, anchors: Sequence[str]) -> dict[str, TileInfo]:
+        """Absolute path -> TileInfo of the baseline's scan, its paths resolved against the
+        re-check's anchors (ResolvedJob.anchors); tiles it cannot place are left out (scanned
+        again: workers/inputs/catalog_file.py)."""
+        return tiles_from_catalog(self.catalog_document, anchors=anchors)
 
     @cached_property
     def catalog_headers_checked(self) -> bool:
         """Whether the baseline's catalog passed today's header checks (else headers are opened
         again; fingerprints of unchanged files are still reused)."""
-        try:
-            doc = json.loads((self.folder / CATALOG_NAME).read_text(encoding="utf-8"))
-        except (OSError, json.JSONDecodeError):
-            return False
-        return headers_checked(doc)
+        return headers_checked(self.catalog_document)
 
     @property
     def has_job_totals(self) -> bool:

@@ -148,7 +148,7 @@ class _Run:
             self.job,
             options,
             inputs,
-            known=prior.catalog if prior else {},
+            known=prior.catalog(anchors=self.job.anchors) if prior else {},
             headers_checked=prior.catalog_headers_checked if prior else False,
         )
         if scan.layout is not None:  # tiles decimate by the mosaic's own factor
@@ -285,7 +285,7 @@ class _Run:
         residuals and, in a re-check, change_report.json."""
         job, catalog = self.job, scan.catalog
         vertical = vertical_transformations(job.spec, grid_dirs=options.grid_dirs)
-        write_summary(self.out_dir, catalog.document(), name=CATALOG_NAME)
+        write_summary(self.out_dir, catalog.document(anchors=job.anchors), name=CATALOG_NAME)
         checkpoints = None
         if job.spec.checkpoints is not None:
             earlier, changed_areas = reuse.earlier_checkpoints(job, catalog)

@@ -25,7 +25,6 @@ from demaudit.workers.inputs.catalog import (
     Overlap,
     ScanFailure,
     TileInfo,
-    catalog_document,
     file_fingerprint,
     overlap_cautions,
     overlap_sources,
@@ -36,6 +35,7 @@ from demaudit.workers.inputs.catalog import (
     unchanged,
     unique_tile_ids,
 )
+from demaudit.workers.inputs.catalog_file import catalog_document
 from demaudit.workers.inputs.confine import Roots, stamp_of
 from demaudit.workers.inputs.regions import Region
 from demaudit.workers.inputs.tile_index import TileIndex
@@ -101,9 +101,11 @@ class Catalog:
             + overlap_sources_of(self.overlaps, tile.tile_id)
         )
 
-    def document(self) -> dict[str, Any]:
-        """catalog.json: every tile scanned, so a re-check need not open unchanged files."""
-        return catalog_document([*self.tests, *self.references, *self.landcover])
+    def document(self, *, anchors: Sequence[str]) -> dict[str, Any]:
+        """catalog.json: every tile scanned, so a re-check need not open unchanged files (paths
+        relative to the anchors, ResolvedJob.anchors: workers/inputs/catalog_file.py)."""
+        tiles = [*self.tests, *self.references, *self.landcover]
+        return catalog_document(tiles, anchors=anchors)
 
     def source_fingerprints(self) -> dict[str, str]:
         """Fingerprints of every reference and land-cover tile, ids prefixed by kind."""

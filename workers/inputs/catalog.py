@@ -4,7 +4,8 @@ reference tiles overlap a test tile.
 ``scan_tile`` is the only function here that touches files; the index is pure. It opens each
 file once through workers/inputs/confine.py: the header, the size and the fingerprint all come from
 that one open file, checked against the data roots; a tile that leads outside them fails its scan.
-The spatial index is workers/inputs/tile_index.py.
+The spatial index is workers/inputs/tile_index.py; catalog.json (written for re-checks and
+read back) is workers/inputs/catalog_file.py.
 """
 
 from __future__ import annotations
@@ -337,56 +338,6 @@ def _footprint(tile: TileInfo, crs: str) -> BaseGeometry:
         return np.column_stack(transformer.transform(xy[:, 0], xy[:, 1]))
 
     return shapely.transform(dense, to_target)
-
-
-HEADER_CHECKS = 2
-"""Version of the checks a scan makes on a tile's header (2: rasters that cannot be elevation
-are refused). A re-check opens again the headers of tiles an older catalog accepted."""
-
-
-def catalog_document(tiles: Sequence[TileInfo]) -> dict[str, object]:
-    """A JSON-ready record of scanned tiles (CRS definitions stored once)."""
-    crs_list = list(dict.fromkeys(t.grid.crs for t in tiles))
-    return {
-        "header_checks": HEADER_CHECKS,
-        "crs": crs_list,
-        "tiles": [
-            {
-                "path": t.path,
-                "tile": t.tile_id,
-                "crs": crs_list.index(t.grid.crs),
-                "transform": list(t.grid.transform),
-                "width": t.grid.width,
-                "height": t.grid.height,
-                "nodata": t.nodata,
-                "dtype": t.dtype,
-                "size": t.size_bytes,
-                "mtime_ns": t.mtime_ns,
-                "ctime_ns": t.ctime_ns,
-                "inode": t.inode,
-                "fingerprint": t.fingerprint,
-            }
-            for t in tiles
-        ],
-    }
-
-
-def headers_checked(document: dict[str, Any]) -> bool:
-    """True when a catalog_document's tiles passed the header checks a scan makes today."""
-    return document.get("header_checks") == HEADER_CHECKS
-
-
-def tiles_from_catalog(document: dict[str, Any]) -> dict[str, TileInfo]:
-    """Path -> TileInfo from a catalog_document."""
-    crs_list = document.get("crs", [])
-    out = {}
-    for t in document.get("tiles", []):
-        grid = Grid(crs_list[t["crs"]], tuple(t["transform"]), t["width"], t["height"])  # type: ignore[arg-type]
-        known = (t["tile"], t["path"], grid, t["nodata"], t["dtype"], t["size"], t["fingerprint"])
-        # ctime and inode are absent from catalogs written before: such a file is hashed again
-        stamp = {"ctime_ns": t.get("ctime_ns"), "inode": t.get("inode")}
-        out[t["path"]] = TileInfo(*known, t["mtime_ns"], **stamp)
-    return out
 
 
 def unchanged(known: TileInfo, path: Path) -> bool:

@@ -24,7 +24,8 @@ class ResolvedJob:
     """A validated spec with every path made absolute and every tile glob expanded.
 
     ``data_roots`` (resolved) confine every read of the job's files (workers/inputs/confine.py);
-    None when the job was resolved without roots."""
+    None when the job was resolved without roots. ``base_dir``: the folder relative spec paths
+    were resolved against (resolved)."""
 
     spec: JobSpec
     test_tiles: tuple[Path, ...]
@@ -33,6 +34,15 @@ class ResolvedJob:
     landcover_tiles: tuple[Path, ...] = ()
     checkpoint_file: Path | None = None
     data_roots: Roots = None
+    base_dir: Path | None = None
+
+    @property
+    def anchors(self) -> tuple[str, ...]:
+        """The folders catalog.json names tiles relative to: the data roots, else the (resolved)
+        folder relative spec paths were resolved against (workers/inputs/catalog_file.py)."""
+        if self.data_roots:
+            return self.data_roots
+        return (str((self.base_dir or Path.cwd()).resolve()),)
 
     def shown(self, path: str | Path | None) -> str:
         """path as messages and summary.json show it (relative to its data root)."""
@@ -66,7 +76,9 @@ def resolve(
         landcover = _expand_tiles(
             spec.landcover.tiles, base_dir=base_dir, field="landcover.tiles", roots=roots
         )
-    return ResolvedJob(spec, test, ref, region_file, landcover, checkpoint_file, roots)
+    return ResolvedJob(
+        spec, test, ref, region_file, landcover, checkpoint_file, roots, Path(base_dir).resolve()
+    )
 
 
 def resolve_in_roots(spec: JobSpec, *, data_roots: Sequence[Path] | None) -> ResolvedJob:

@@ -11,14 +11,8 @@ import rasterio
 from rasterio.transform import from_origin
 
 from demaudit.service.run.scan import _scan, local_map
-from demaudit.workers.inputs.catalog import (
-    HEADER_CHECKS,
-    ScanFailure,
-    TileInfo,
-    catalog_document,
-    headers_checked,
-    scan_tile,
-)
+from demaudit.workers.inputs.catalog import ScanFailure, TileInfo, scan_tile
+from demaudit.workers.inputs.catalog_file import HEADER_CHECKS, catalog_document, headers_checked
 
 
 def _rgb(path: Path) -> Path:
@@ -70,7 +64,7 @@ def test_an_image_an_older_catalog_accepted_is_refused_when_its_headers_were_not
 def test_catalog_documents_say_which_header_checks_they_passed(tmp_path):
     dem = scan_tile(_dem(tmp_path / "dem.tif"))
     assert isinstance(dem, TileInfo)
-    document = catalog_document([dem])
+    document = catalog_document([dem], anchors=(str(tmp_path),))
     assert document["header_checks"] == HEADER_CHECKS and headers_checked(document)
     del document["header_checks"]  # a catalog written before the checks existed
     assert not headers_checked(document)

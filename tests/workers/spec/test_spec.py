@@ -155,3 +155,11 @@ def test_a_resolved_job_keeps_its_roots_and_shows_paths_relative_to_them(tree: P
     assert job.data_roots == (str(tree.resolve()),)
     assert job.shown(job.test_tiles[0]) == "test/a.tif"
     assert resolve(parse_spec(minimal()), base_dir=tree).data_roots is None
+
+
+def test_catalog_anchors_are_the_data_roots_else_the_spec_folder(tree: Path, tmp_path: Path):
+    """catalog.json names tiles relative to these folders (workers/inputs/catalog_file.py)."""
+    spec = parse_spec(minimal())
+    assert resolve(spec, base_dir=tree).anchors == (str(tree.resolve()),)
+    roots = resolve(spec, base_dir=tree, data_roots=[tmp_path / "elsewhere", tree])
+    assert roots.anchors == (str((tmp_path / "elsewhere").resolve()), str(tree.resolve()))
