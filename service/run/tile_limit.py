@@ -122,11 +122,14 @@ class TileClock:
             self._thread.join(timeout=RESTART_TIMEOUT_S + 10)
 
     def _watch(self) -> None:
+        failures = 0
         while not self._stop.wait(self.poll_s):
             try:
                 self.check()
             except Exception:  # noqa: BLE001 - a failed look is retried at the next poll
-                log.warning("the tile time limit could not be checked", exc_info=True)
+                level = logging.WARNING if failures == 0 else logging.DEBUG  # say it once
+                log.log(level, "the tile time limit could not be checked", exc_info=True)
+                failures += 1
 
     def check(self) -> list[str]:
         """One look: cancel the tasks running past the limit, restart their workers; the keys

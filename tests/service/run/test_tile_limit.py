@@ -104,7 +104,7 @@ def _run(client: Any, futures: list[Any], limit_s: float) -> tuple[dict[str, str
 
 
 def test_a_hung_task_on_a_real_cluster_is_cancelled_and_the_others_finish(dask_client: Any):
-    client: Any = dask_client
+    client: Any = JobClient(dask_client)  # as the service runs a job
     hung = client.submit(time.sleep, 120, key="audit-tile-hung-r1", pure=False)
     quick = [
         client.submit(time.sleep, 0.1, key=f"audit-tile-q{i}-r1", pure=False) for i in range(6)
@@ -112,6 +112,7 @@ def test_a_hung_task_on_a_real_cluster_is_cancelled_and_the_others_finish(dask_c
     cancelled, finished = _run(client, [hung, *quick], 1.5)
     assert cancelled == {"audit-tile-hung-r1": timeout_reason("hung", 1.5)}
     assert finished == {f.key for f in quick}
+    assert not client.lost()  # the service does not take the cancelled task for a lost cluster
     # the stuck worker was restarted: no worker thread is left inside the cancelled task
     busy = client.run(lambda dask_worker: dask_worker.state.executing_count)
     assert busy and set(busy.values()) == {0}
