@@ -4,7 +4,7 @@ of the tiles it keeps; the plan and the change report are pure (workers/recheck/
 from __future__ import annotations
 
 import json
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass
 from functools import cached_property
 from pathlib import Path
@@ -139,8 +139,16 @@ def resumed_totals(
 
 
 def change_report(
-    baseline: Baseline, change: ChangePlan, document: Mapping[str, Any], limits: Thresholds
+    baseline: Baseline,
+    change: ChangePlan,
+    document: Mapping[str, Any],
+    limits: Thresholds,
+    *,
+    shown: Callable[[Path], str] = str,
 ) -> dict[str, Any]:
     """Tiles added, removed and recomputed with before/after figures; regions and grades
-    (workers/recheck/baseline.py: change_report)."""
-    return report_of(baseline.document, change, document, limits, baseline=str(baseline.folder))
+    (workers/recheck/baseline.py: change_report). The baseline's folder is named by shown
+    (ResolvedJob.shown: with data roots not an absolute server path, the service's baseline
+    by its job id)."""
+    named = shown(baseline.folder)
+    return report_of(baseline.document, change, document, limits, baseline=named)

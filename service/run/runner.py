@@ -337,7 +337,8 @@ class _Run:
         if reuse.baseline is None or reuse.change is None:
             return parts
         limits = Thresholds(**self.job.spec.recheck.model_dump())
-        report = change_report(reuse.baseline, reuse.change, assemble(parts), limits)
+        document, shown = assemble(parts), self.job.shown
+        report = change_report(reuse.baseline, reuse.change, document, limits, shown=shown)
         write_summary(self.out_dir, report, name=CHANGE_REPORT_NAME)
         return replace(parts, recheck=report)
 

@@ -12,11 +12,13 @@ import numpy as np
 import rasterio
 from rasterio.transform import from_origin
 
-from demaudit.service.run.recheck import Baseline
+from demaudit.service.run.recheck import Baseline, change_report
 from demaudit.service.run.scan import _scan
 from demaudit.workers.inputs.catalog import TileInfo, scan_tile
 from demaudit.workers.inputs.catalog_file import catalog_document
+from demaudit.workers.inputs.confine import real_roots, shown
 from demaudit.workers.outputs.layout import CATALOG_NAME
+from demaudit.workers.recheck.plan import ChangePlan, Thresholds
 
 MARKER = "e" * 64  # a fingerprint no file has: it comes back only when the entry is reused
 
@@ -79,3 +81,17 @@ def test_a_baseline_without_a_readable_catalog_knows_no_tile(tmp_path: Path):
     baseline = Baseline(folder, {})
     assert baseline.catalog(anchors=[str(tmp_path)]) == {}
     assert not baseline.catalog_headers_checked
+
+
+def test_the_change_report_names_the_baseline_without_its_server_folder(tmp_path: Path):
+    """With data roots (the service) the baseline, a results folder outside them, is named by
+    its folder's name (the job id), as paths are shown everywhere (confine.shown)."""
+    folder = tmp_path / "results" / "job-1234"
+    before = {"job": {"finished": "2026-11-30T02:00:00+00:00"}, "tiles": [], "regions": []}
+    after = {"tiles": [], "regions": []}
+    baseline, plan, limits = Baseline(folder, before), ChangePlan(), Thresholds()
+    roots = real_roots([tmp_path / "data"])
+    report = change_report(baseline, plan, after, limits, shown=lambda p: shown(p, roots))
+    assert report["baseline"] == "job-1234" and str(tmp_path) not in json.dumps(report)
+    # without roots (the CLI) the folder as it was given
+    assert change_report(baseline, plan, after, limits)["baseline"] == str(folder)
