@@ -66,7 +66,7 @@ def read_overview(out_dir: Path) -> tuple[NDArray[np.float64], compute.Bounds] |
         # read with zarr into this process: through xarray and Dask, the blocks would be
         # computed on whatever cluster the caller has open and shipped back
         group = _overview_group(out_dir)
-        dh, x, y = group["dh"][...], group["x"][...], group["y"][...]
+        dh, x, y = group["dh"], group["x"][...], group["y"][...]
     except (KeyError, FileNotFoundError, OSError):
         return None
     if dh.size == 0:
@@ -80,7 +80,20 @@ def read_overview(out_dir: Path) -> tuple[NDArray[np.float64], compute.Bounds] |
         float(y.max()) + dy / 2,
     )
     factor = max(-(-max(dh.shape) // MAP_PIXELS), 1)  # no more map pixels than the figure shows
-    return display_blocks(np.asarray(dh, dtype=np.float64), factor), extent
+    return stored_display_blocks(dh, factor), extent
+
+
+def stored_display_blocks(array: Any, factor: int) -> NDArray[np.float64]:
+    """display_blocks of a stored (zarr) array, read one band of whole chunk rows at a time:
+    the memory is one band's, not the whole mosaic's (a national mosaic at 1:8 holds billions
+    of cells). The same blocks, each averaged from the same values, as from the whole array."""
+    band = factor * max(1, -(-int(array.chunks[0]) // factor))  # a multiple of factor
+    rows = array.shape[0]
+    parts = [
+        display_blocks(np.asarray(array[start : start + band], dtype=np.float64), factor)
+        for start in range(0, rows, band)
+    ]
+    return np.concatenate(parts, axis=0)
 
 
 def display_blocks(values: NDArray[np.float64], factor: int) -> NDArray[np.float64]:

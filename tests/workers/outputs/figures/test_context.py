@@ -30,3 +30,24 @@ def test_context_reads_the_tile_statistics_from_the_spec(tmp_path):
         "nmad",
         "grade",
     )
+
+
+@pytest.mark.parametrize(
+    ("shape", "chunks", "factor"),
+    [((40, 30), (7, 7), 3), ((41, 29), (10, 10), 4), ((16, 16), (16, 16), 5), ((9, 9), (2, 3), 1)],
+)
+def test_a_stored_mosaic_read_in_bands_gives_the_blocks_of_the_whole(
+    tmp_path, shape, chunks, factor
+) -> None:
+    import zarr
+
+    from demaudit.workers.outputs.figures.context import stored_display_blocks
+
+    rng = np.random.default_rng(3)
+    values = rng.normal(0.2, 0.5, shape).astype(np.float32)
+    values[rng.random(shape) < 0.2] = np.nan
+    values[: chunks[0] + 1, :] = np.nan  # a band with no value at all
+    stored = zarr.create_array(str(tmp_path / "dh"), shape=shape, chunks=chunks, dtype="float32")
+    stored[...] = values
+    whole = display_blocks(values.astype(np.float64), factor)
+    np.testing.assert_array_equal(stored_display_blocks(stored, factor), whole)
