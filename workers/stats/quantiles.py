@@ -17,7 +17,8 @@ rounding are added to each bound. Units: those of the values summarised (metres)
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass
+from functools import cached_property
 from typing import TYPE_CHECKING
 
 import numpy as np
@@ -115,20 +116,16 @@ class Layout:
     lo: NDArray[np.float64]
     hi: NDArray[np.float64]
     cum: NDArray[np.int64]
-    _knots: list[tuple[NDArray[np.float64], NDArray[np.float64]]] = field(
-        default_factory=list, repr=False
-    )
 
+    @cached_property
     def knots(self) -> tuple[NDArray[np.float64], NDArray[np.float64]]:
         """Knots (x, F) of the piecewise-linear CDF that spreads each bin's count evenly
-        across it (built at the first call)."""
-        if not self._knots:
-            cum = self.cum.astype(np.float64)
-            before = np.concatenate([[0.0], cum[:-1]])
-            x = np.column_stack([self.lo, self.hi]).ravel()
-            f = np.column_stack([before, cum]).ravel()
-            self._knots.append((x, f))
-        return self._knots[0]
+        across it (built once per layout)."""
+        cum = self.cum.astype(np.float64)
+        before = np.concatenate([[0.0], cum[:-1]])
+        x = np.column_stack([self.lo, self.hi]).ravel()
+        f = np.column_stack([before, cum]).ravel()
+        return x, f
 
 
 def layout_of(s: DhSummary) -> Layout:
@@ -182,7 +179,7 @@ def order_statistics(
     """Estimate of the rank-th smallest value (0-based) for each rank (kept, against rounding,
     inside the bin that holds the true value)."""
     layout = layout or layout_of(s)
-    x, f = layout.knots()
+    x, f = layout.knots
     brackets = order_statistic_brackets(s, ranks, layout=layout)
     return np.clip(np.interp(ranks + 0.5, f, x), *brackets)
 
@@ -195,7 +192,7 @@ def abs_order_statistics(
     solution lies in too, but bisection and interpolation lose precision in subnormal-wide
     bins)."""
     layout = layout or layout_of(s)
-    x, f = layout.knots()
+    x, f = layout.knots
     target = ranks + 0.5
     lo = np.zeros(target.shape)
     hi = np.full(target.shape, max(abs(s.maximum - center), abs(s.minimum - center)) * 1.000001)
