@@ -83,8 +83,15 @@ def summarise_pixels(
     areas: dict[str, DhSummary] = {}
     strata: dict[str, dict[str, DhSummary]] = {}
     n_cells = layout.n_cells
+    occupied = per_key.count.reshape(len(members), n_cells).any(axis=1)
+    everywhere = [p for p in range(len(members)) if occupied[p]]
     for area in (ALL, *region_masks):
         held = [p for p, inside in enumerate(members) if area == ALL or area in inside]
+        if area != ALL and [p for p in held if occupied[p]] == everywhere:
+            # the region holds every pixel of the tile: the same cells give the same summaries,
+            # so it shares the tile's (one object each: sent and stored once)
+            areas[area], strata[area] = areas[ALL], dict(strata[ALL])
+            continue
         of_area = per_key.grouped([[p * n_cells + c for p in held] for c in range(n_cells)])
         areas[area] = of_area.union(range(n_cells))
         strata[area] = {name: of_area.union(cells) for name, cells in layout.strata.items()}

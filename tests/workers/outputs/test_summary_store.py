@@ -93,7 +93,42 @@ def test_job_totals_that_do_not_add_up_are_refused(tmp_path):
     path = tmp_path / "results.zarr"
     zarr.open_group(str(path), mode="w", zarr_format=3)
     write_job_totals(path, ALL_PART, acc)
-    counts = zarr.open_array(str(path / "job_summaries" / ALL_PART / "counts"), mode="r+")
-    counts[0] = counts[0] + 1  # a damaged store
+    table = zarr.open_array(str(path / "job_summaries" / ALL_PART / "histograms"), mode="r+")
+    table[1, 0] = table[1, 0] + 1  # a damaged store: one count too many
     with pytest.raises(ValueError, match="do not add up"):
         read_job_totals(path, ALL_PART, [])
+
+
+def test_an_entry_shared_by_two_keys_is_stored_once_and_read_back_for_both(tmp_path):
+    rng = np.random.default_rng(7)
+    whole = summarise(rng.normal(0.0, 0.5, 4000))
+    other = summarise(rng.normal(1.0, 0.5, 1000))
+    entries = {("*", ""): whole, ("R0", ""): whole, ("R1", ""): other}
+    path = tmp_path / "results.zarr"
+    store = TileSummaryStore(path, mode="a")
+    store.write("t0", entries, excluded=3)
+    table = zarr.open_array(str(path / TILE_SUMMARIES_GROUP / "t0" / "histograms"), mode="r")
+    assert table.shape == (2, whole.bins.size + other.bins.size)  # the shared one once
+    assert table.dtype == np.int32
+    back, excluded = store.read("t0")
+    assert excluded == 3 and list(back) == list(entries)
+    for key, want in entries.items():
+        got = back[key]
+        assert np.array_equal(got.bins, want.bins) and np.array_equal(got.counts, want.counts)
+        assert (got.count, got.mean, got.m2) == (want.count, want.mean, want.m2)
+
+
+def test_stores_written_with_two_arrays_are_still_read(tmp_path):
+    # the layout before one "histograms" array: "bins" (int32) and "counts" (int64) beside
+    rng = np.random.default_rng(8)
+    s = summarise(rng.normal(0.0, 0.5, 3000))
+    path = tmp_path / "results.zarr"
+    TileSummaryStore(path, mode="a")
+    group = zarr.open_group(str(path / TILE_SUMMARIES_GROUP), mode="r+").create_group("old")
+    group.create_array("bins", data=s.bins.astype(np.int32), chunks=(s.bins.size,))
+    group.create_array("counts", data=s.counts.astype(np.int64), chunks=(s.counts.size,))
+    record = {"area": "*", "stratum": "", "count": s.count, "mean": s.mean, "m2": s.m2,
+              "min": s.minimum, "max": s.maximum, "offset": 0, "length": int(s.bins.size)}  # fmt: skip
+    group.attrs.update({"entries": [record], "excluded": 0})
+    back, _ = TileSummaryStore(path).read("old")
+    assert np.array_equal(back[("*", "")].counts, s.counts) and back[("*", "")].count == s.count

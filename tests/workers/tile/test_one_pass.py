@@ -267,3 +267,31 @@ def test_loops_compile_without_a_cache_folder(monkeypatch: pytest.MonkeyPatch) -
     x = np.array([0.1, 5.0, np.nan, -0.3])
     per_cell = keyed_summary.summarise_cells(x, np.array([0, 0, 0, 1]), 2)
     assert_same(per_cell.union([0]), dhs.summarise(x[:3]), "cell 0")
+
+
+def test_a_region_holding_every_valid_pixel_shares_the_tiles_summaries() -> None:
+    dh, reference, landcover, _ = scene(6)
+    valid = np.isfinite(dh)
+    almost = valid.copy()
+    almost[np.unravel_index(np.flatnonzero(valid)[17], dh.shape)] = False  # one valid pixel out
+    masks = {"whole": np.ones(dh.shape, dtype=bool), "valid": valid, "almost": almost}
+    kwargs = dict(
+        reference=reference,
+        landcover=landcover,
+        region_masks=masks,
+        classes=CLASSES,
+        slope_edges=EDGES,
+        pixel_size_m=PIXEL,
+    )
+    got = tile_pass.summarise_pixels(dh, **kwargs)
+    tile = got.areas[tile_pass.ALL]
+    # "valid" differs from the tile only where dh is NaN: it holds the same pixels
+    for area in ("whole", "valid"):
+        assert got.areas[area] is tile
+        assert all(got.strata[area][k] is s for k, s in got.strata[tile_pass.ALL].items())
+    assert got.areas["almost"] is not tile and got.areas["almost"].count == tile.count - 1
+    want_areas, want_strata = per_mask(dh, **kwargs)
+    for area, want in want_areas.items():
+        assert_same(got.areas[area], want, area)
+        for name, want_s in want_strata[area].items():
+            assert_same(got.strata[area][name], want_s, f"{area} {name}")
