@@ -29,6 +29,7 @@ from demaudit.workers.inputs.catalog import (
     overlap_cautions,
     overlap_sources,
     overlap_sources_of,
+    call_each,
     scan_landcover_tile,
     scan_tile,
     tile_overlaps,
@@ -175,10 +176,24 @@ Mapper = Callable[..., list[Any]]
 
 
 def dask_map(client: Client) -> Mapper:
+    """A Mapper on the cluster: the calls go in batches (batch_size), one task each, so that a
+    task's fixed cost (scheduling, a round trip, about as long as one tile's header and hash)
+    is paid a few times per worker instead of once per file."""
+
     def mapped(function: Callable[..., Any], *arguments: Sequence[Any]) -> list[Any]:
-        return list(client.gather(client.map(function, *arguments, pure=False)))
+        calls = list(zip(*arguments, strict=True))
+        size = batch_size(len(calls), workers=max(1, sum(client.nthreads().values())))
+        batches = [calls[i : i + size] for i in range(0, len(calls), size)]
+        futures = client.map(call_each, [function] * len(batches), batches, pure=False)
+        return [out for batch in client.gather(futures) for out in batch]
 
     return mapped
+
+
+def batch_size(calls: int, *, workers: int, per_worker: int = 4, largest: int = 16) -> int:
+    """Calls per task: about per_worker tasks per worker thread (so that the work still
+    spreads evenly), never more than ``largest`` calls in one task."""
+    return max(1, min(largest, -(-calls // (workers * per_worker))))
 
 
 def scan_catalog(

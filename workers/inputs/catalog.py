@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import hashlib
 from collections import Counter
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Mapping, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
@@ -122,6 +122,12 @@ def scan_tile(
         return _scan(Path(path), known, kind, roots)
     except (TileReadError, MissingCRSError, DataRootError) as exc:
         return ScanFailure(tile_id_of(path), str(path), str(exc))
+
+
+def call_each(function: Callable[..., Any], calls: Sequence[tuple[Any, ...]]) -> list[Any]:
+    """function(*arguments) for each call, in order: one cluster task for a batch of scans
+    (scan_tile returns failures instead of raising, so one bad file spoils no other)."""
+    return [function(*arguments) for arguments in calls]
 
 
 def scan_landcover_tile(

@@ -7,11 +7,12 @@ from dataclasses import replace
 from pathlib import Path
 
 import numpy as np
+import pytest
 import rasterio
 from rasterio.transform import from_origin
 
-from demaudit.service.run.scan import _scan, local_map
-from demaudit.workers.inputs.catalog import ScanFailure, TileInfo, scan_tile
+from demaudit.service.run.scan import _scan, batch_size, local_map
+from demaudit.workers.inputs.catalog import ScanFailure, TileInfo, call_each, scan_tile
 from demaudit.workers.inputs.catalog_file import HEADER_CHECKS, catalog_document, headers_checked
 
 
@@ -68,3 +69,18 @@ def test_catalog_documents_say_which_header_checks_they_passed(tmp_path):
     assert document["header_checks"] == HEADER_CHECKS and headers_checked(document)
     del document["header_checks"]  # a catalog written before the checks existed
     assert not headers_checked(document)
+
+
+@pytest.mark.parametrize(
+    ("calls", "workers", "want"),
+    [(0, 2, 1), (1, 2, 1), (8, 2, 1), (9, 2, 2), (128, 2, 16), (10_000, 2, 16), (40, 8, 2)],
+)
+def test_scan_batches_keep_every_worker_busy_and_stay_small(calls, workers, want):
+    size = batch_size(calls, workers=workers)
+    assert size == want
+    if calls >= 4 * workers and size < 16:  # about 4 tasks per worker (ceil: at least 2)
+        assert -(-calls // size) >= 2 * workers
+
+
+def test_call_each_keeps_the_order_of_the_calls():
+    assert call_each(pow, [(2, 3), (3, 2), (10, 0)]) == [8, 9, 1]

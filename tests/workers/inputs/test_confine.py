@@ -168,3 +168,13 @@ def test_a_spec_file_is_read_inside_the_roots_and_refused_outside_naming_the_fie
         read_spec_file(root / "missing.csv", roots, field="checkpoints.file")
     with pytest.raises(SpecError, match=r"^checkpoints\.file: cannot read"):
         read_spec_file(root, roots, field="checkpoints.file")  # a folder, not a file
+
+
+@pytest.mark.parametrize("size", [0, 1, 5_000_003])
+def test_the_content_hash_is_sha256_of_the_bytes_whatever_the_size(tmp_path, size):
+    # hashlib on the bytes read back is the reference (empty files cannot be mapped)
+    data = np.random.default_rng(size).integers(0, 256, size, dtype=np.uint8).tobytes()
+    path = tmp_path / "blob.bin"
+    path.write_bytes(data)
+    with open_confined(path, None) as opened:
+        assert opened.sha256() == hashlib.sha256(data).hexdigest()
