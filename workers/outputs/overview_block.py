@@ -11,6 +11,8 @@ import numpy as np
 import zarr
 from numpy.typing import NDArray
 
+from demaudit.workers.outputs.open_nodes import opened
+
 
 @dataclass(frozen=True)
 class OverviewTarget:
@@ -38,7 +40,12 @@ def write_block(array: Any, target: OverviewTarget, block: NDArray[np.float32]) 
 
 
 def store_block(target: OverviewTarget, block: NDArray[np.float32]) -> None:
-    """Open the overview array (r+: a store removed meanwhile is not made again) and write
-    block; raises what zarr raises when the store is gone or cannot be written."""
-    array = zarr.open_array(target.array_path, mode="r+", use_consolidated=False)
+    """Open the overview array (r+: a store removed meanwhile is not made again; kept open by
+    the worker, see open_nodes) and write block; raises what zarr raises when the store is gone
+    or cannot be written."""
+    array = opened(
+        "overview",
+        target.array_path,
+        lambda: zarr.open_array(target.array_path, mode="r+", use_consolidated=False),
+    )
     write_block(array, target, block)

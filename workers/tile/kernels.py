@@ -74,11 +74,13 @@ def _key_sweep(  # type: ignore[no-untyped-def]
 ):
     """_cell_sweep with each pixel's key made on the way: pattern * n_cells + class code *
     n_band_codes + band (``codes`` / ``patterns`` may be empty: 0), sizes = (n_band_codes,
-    n_cells); key -1 for class code 255 (excluded) and non-finite dh. Values outside the linear
-    bins are listed in ``tail`` (for _tail_sweep). out = (tail entries, finite excluded)."""
+    n_cells); key -1 for class code 255 (excluded) and non-finite dh. ``patterns`` of one value
+    only: every pixel has that pattern. Values outside the linear bins are listed in ``tail``
+    (for _tail_sweep). out = (tail entries, finite excluded)."""
     linear_width, linear_limit, k_limit = binning[0], binning[1], int(binning[2])
     n_band_codes, n_cells = sizes[0], sizes[1]
-    with_codes, with_patterns = codes.size > 0, patterns.size > 0
+    with_codes, with_patterns = codes.size > 0, patterns.size > 1
+    base = patterns[0] * n_cells if patterns.size == 1 else 0
     n_tail, dropped = 0, 0
     # the current cell's sum and extremes live in locals while neighbouring pixels share the
     # cell (the same additions in the same order as sums[c] += v, without a store per pixel)
@@ -92,7 +94,7 @@ def _key_sweep(  # type: ignore[no-untyped-def]
             if finite:
                 dropped += 1
             continue
-        c = code * n_band_codes + bands[i]
+        c = code * n_band_codes + bands[i] + base
         if with_patterns:
             c += patterns[i] * n_cells
         keys[i] = c
@@ -277,6 +279,20 @@ def _other_within(x, lower, upper, value):  # type: ignore[no-untyped-def]
             if lower <= v <= upper and v != value:
                 return True
     return False
+
+
+def _difference_sweep(test, reference, out):  # type: ignore[no-untyped-def]
+    """out = test - reference in float64 (2-D, one shape; either may be float32): the same
+    values as numpy's subtract with dtype float64, without its buffered casting."""
+    rows, cols = test.shape
+    for r in range(rows):
+        for c in range(cols):
+            out[r, c] = np.float64(test[r, c]) - np.float64(reference[r, c])
+
+
+def difference_sweep(*args: Any) -> None:
+    """Compiled _difference_sweep (same arguments)."""
+    _compiled("difference_sweep")(*args)
 
 
 def other_within(x: Any, lower: float, upper: float, value: float) -> bool:

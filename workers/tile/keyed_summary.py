@@ -224,14 +224,15 @@ def summarise_keyed(
     *,
     bands: NDArray[np.uint8],
     codes: NDArray[np.uint8] | None,
-    patterns: NDArray[np.int32] | None,
+    patterns: NDArray[np.int32] | int | None,
     n_band_codes: int,
     n_cells: int,
     n_patterns: int,
 ) -> tuple[CellSummaries, int] | None:
     """summarise_cells of dh (metres, NaN = none) with each pixel's cell made on the way, in
     compiled sweeps (keys and linear bins, tail bins, deviations): cell = pattern * n_cells +
-    class code * n_band_codes + band (``codes`` and ``patterns`` on dh's grid, None: all 0).
+    class code * n_band_codes + band (``codes`` and ``patterns`` on dh's grid, None: all 0;
+    ``patterns`` may also be a single value, every pixel's pattern).
     Pixels of class code 255 (excluded) are left out and counted (the int returned, finite dh
     only). None when the compiled loops are not available or the counters would not fit at once
     (the caller then builds the cells itself)."""
@@ -251,7 +252,7 @@ def summarise_keyed(
     tail = np.empty(x.size, dtype=np.intp)
     found = np.zeros(2, dtype=np.int64)
     kernels.key_sweep(
-        x, _flat(bands, np.uint8), _flat(codes, np.uint8), _flat(patterns, np.int32),
+        x, _flat(bands, np.uint8), _flat(codes, np.uint8), _pattern_array(patterns),
         np.array([n_band_codes, n_cells]), _BINNING, *counters[:4], key, tail, found,
     )  # fmt: skip
     n_tail, dropped = (int(v) for v in found)
@@ -284,6 +285,13 @@ def _bin_tails(
         keys_at = np.concatenate([keys_at, key[unsure].astype(np.intp)])
         bins_at = np.concatenate([bins_at, bins.bin_index(x[unsure])])
     return keys_at, bins_at
+
+
+def _pattern_array(patterns: NDArray[np.int32] | int | None) -> NDArray[np.generic]:
+    """Patterns for the sweep: one per pixel, or one value for all (an array of one)."""
+    if isinstance(patterns, int):
+        return np.array([patterns], dtype=np.int32)
+    return _flat(patterns, np.int32)  # one pixel: its one pattern reads the same either way
 
 
 def _flat(values: NDArray[np.generic] | None, dtype: type) -> NDArray[np.generic]:

@@ -132,21 +132,25 @@ def _summarise_in_numpy(
 
 def grid_patterns(
     region_masks: Mapping[str, NDArray[np.bool_]],
-) -> tuple[NDArray[np.int32] | None, list[frozenset[str]]]:
-    """Each pixel's membership pattern on the grid (None without regions) and the regions of
-    each pattern: up to _DIRECT_REGIONS regions their bits (every pattern numbered), more
-    regions numbered as membership_patterns numbers them (those that occur on the grid)."""
+) -> tuple[NDArray[np.int32] | int | None, list[frozenset[str]]]:
+    """Each pixel's membership pattern on the grid (None without regions; one int when every
+    pixel has the same: the tile lies inside or outside each region, the common case) and the
+    regions of each pattern: up to _DIRECT_REGIONS regions their bits (every pattern numbered),
+    more regions numbered as membership_patterns numbers them (those that occur on the grid)."""
     ids = list(region_masks)
     if not ids:
         return None, [frozenset()]
     if len(ids) <= _DIRECT_REGIONS:
-        pattern = np.zeros(next(iter(region_masks.values())).shape, dtype=np.int32)
-        for bit, region_id in enumerate(ids):
-            np.add(pattern, 1 << bit, out=pattern, where=region_masks[region_id])
         members = [
             frozenset(r for bit, r in enumerate(ids) if (p >> bit) & 1)
             for p in range(1 << len(ids))
         ]
+        inside = [bool(region_masks[r].all()) for r in ids]
+        if all(inside[bit] or not region_masks[r].any() for bit, r in enumerate(ids)):
+            return sum(1 << bit for bit in range(len(ids)) if inside[bit]), members
+        pattern = np.zeros(next(iter(region_masks.values())).shape, dtype=np.int32)
+        for bit, region_id in enumerate(ids):
+            np.add(pattern, 1 << bit, out=pattern, where=region_masks[region_id])
         return pattern, members
     shape = next(iter(region_masks.values())).shape
     every = np.arange(int(np.prod(shape)), dtype=np.intp)

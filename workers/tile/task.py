@@ -164,13 +164,19 @@ def audit_and_store(
 
 
 def _store_summaries(result: TileResult, summaries_to: str) -> TileResult:
+    from demaudit.workers.outputs.layout import TILE_SUMMARIES_GROUP
+    from demaudit.workers.outputs.open_nodes import opened
     from demaudit.workers.outputs.summary_store import (  # summary_store imports us
         TileSummaryStore,
         entries_of,
     )
 
     try:  # r+: the client made the store; once a failed job removed it, nothing is recreated
-        store = TileSummaryStore(Path(summaries_to), mode="r+")
+        store = opened(
+            "tile summaries",
+            Path(summaries_to) / TILE_SUMMARIES_GROUP,
+            lambda: TileSummaryStore(Path(summaries_to), mode="r+"),
+        )
         store.write(result.tile_id, entries_of(result), excluded=result.excluded)
     except Exception:  # noqa: BLE001 - any failure here leaves the writing to the client
         return result

@@ -7,7 +7,7 @@ import pytest
 import xarray as xr
 
 from demaudit.workers.tile import kernels
-from demaudit.workers.tile.difference import block_mean
+from demaudit.workers.tile.difference import block_mean, difference
 
 
 @pytest.mark.parametrize(("shape", "factor"), [((1601, 1597), 3), ((40, 40), 4), ((7, 5), 1)])
@@ -75,3 +75,20 @@ def test_block_mean_of_float32_keeps_its_former_bits(compiled, monkeypatch):
     dh = rng.normal(100.0, 30.0, (203, 157)).astype(np.float32)
     dh[rng.random(dh.shape) < 0.1] = np.nan
     np.testing.assert_array_equal(block_mean(dh, 8), former_block_mean(dh, 8))
+
+
+@pytest.mark.parametrize(
+    "dtypes", [(np.float32, np.float32), (np.float32, np.float64), (np.float64, np.float64)]
+)
+def test_the_compiled_difference_is_numpys_float64_subtract(dtypes, monkeypatch):
+    # numpy's subtract with dtype float64 is the reference, NaN and infinities included
+    rng = np.random.default_rng(3)
+    test = (rng.normal(300, 50, (37, 53)) + rng.normal(0, 1e-3, (37, 53))).astype(dtypes[0])
+    reference = (test + rng.normal(0, 0.3, test.shape)).astype(dtypes[1])
+    test[3, :7], reference[5, 2:9], test[0, 0], reference[1, 1] = np.nan, np.nan, np.inf, -np.inf
+    got = difference(test, reference)
+    monkeypatch.setattr(kernels, "AVAILABLE", False)
+    want = difference(test, reference)
+    assert got.dtype == want.dtype == np.float64
+    np.testing.assert_array_equal(got, want)
+    assert np.array_equal(got, np.subtract(test, reference, dtype=np.float64), equal_nan=True)

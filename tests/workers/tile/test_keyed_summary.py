@@ -79,3 +79,16 @@ def test_fused_sweep_declines_what_it_cannot_count(monkeypatch: pytest.MonkeyPat
     assert keyed_summary.summarise_keyed(dh, n_cells=2, n_patterns=1, **kwargs) is None
     monkeypatch.setattr(kernels, "AVAILABLE", False)
     assert keyed_summary.summarise_keyed(dh, n_cells=1, n_patterns=1, **kwargs) is None
+
+
+def test_one_pattern_for_every_pixel_equals_that_pattern_on_the_grid() -> None:
+    dh = heavy_tails(4)
+    rng = np.random.default_rng(14)
+    bands = rng.integers(0, 4, dh.shape).astype(np.uint8)
+    kwargs = dict(bands=bands, codes=None, n_band_codes=4, n_cells=4, n_patterns=4)
+    one = keyed_summary.summarise_keyed(dh, patterns=2, **kwargs)
+    grid = keyed_summary.summarise_keyed(dh, patterns=np.full(dh.shape, 2, np.int32), **kwargs)
+    assert one is not None and grid is not None
+    for c in range(16):
+        assert_identical(one[0].union([c]), grid[0].union([c]), f"cell {c}")
+    assert one[0].count[8:12].sum() == np.isfinite(dh).sum()  # all in pattern 2's cells

@@ -295,3 +295,28 @@ def test_a_region_holding_every_valid_pixel_shares_the_tiles_summaries() -> None
         assert_same(got.areas[area], want, area)
         for name, want_s in want_strata[area].items():
             assert_same(got.strata[area][name], want_s, f"{area} {name}")
+
+
+def test_a_tile_inside_or_outside_each_region_has_one_pattern_and_the_same_summaries() -> None:
+    dh, reference, landcover, _ = scene(9)
+    masks = {
+        "inside": np.ones(dh.shape, dtype=bool),
+        "outside": np.zeros(dh.shape, dtype=bool),
+        "also": np.ones(dh.shape, dtype=bool),
+    }
+    patterns, members = tile_pass.grid_patterns(masks)
+    assert patterns == 0b101 and members[patterns] == {"inside", "also"}
+    kwargs = dict(
+        reference=reference,
+        landcover=landcover,
+        region_masks=masks,
+        classes=CLASSES,
+        slope_edges=EDGES,
+        pixel_size_m=PIXEL,
+    )
+    got = tile_pass.summarise_pixels(dh, **kwargs)
+    want_areas, want_strata = per_mask(dh, **kwargs)
+    for area, want in want_areas.items():
+        assert_same(got.areas[area], want, area)
+        for name, want_s in want_strata[area].items():
+            assert_same(got.strata[area][name], want_s, f"{area} {name}")
