@@ -27,6 +27,11 @@ from distributed import Client, LocalCluster
 #: the kernel faults in and zeroes again (measured: about 40 % more CPU per tile). Arrays up to
 #: 32 MiB (a 2000 x 2000 float64 tile) now come from the heap and are reused from tile to tile.
 #: glibc reads it at process start only: see dask_client (and the deploy manifests).
+#: DASK_DISTRIBUTED__WORKER__PROFILE__ENABLED: the worker's sampling profiler (it walks the task
+#: thread's stack every 10 ms, for a dashboard demaudit does not serve) costs about 5 % of the
+#: tile phase (benchmarks/RESULTS.md, issue 13). For `dask worker` processes (deploy manifests)
+#: the variable does it; the embedded cluster's nannies hand the client's configuration to their
+#: workers, so dask_client sets it there.
 WORKER_ENV = {
     "OMP_NUM_THREADS": "1",
     "OPENBLAS_NUM_THREADS": "1",
@@ -34,6 +39,7 @@ WORKER_ENV = {
     "GDAL_NUM_THREADS": "1",
     "GDAL_CACHEMAX": "128",
     "MALLOC_MMAP_THRESHOLD_": "33554432",
+    "DASK_DISTRIBUTED__WORKER__PROFILE__ENABLED": "False",
 }
 #: The part of WORKER_ENV that must be in the environment before the worker process starts.
 PRE_SPAWN_ENV = ("MALLOC_MMAP_THRESHOLD_",)
@@ -51,7 +57,10 @@ def dask_client(
         with Client(scheduler, timeout="30s") as client:
             yield client
         return
-    early = {f"distributed.nanny.pre-spawn-environ.{k}": WORKER_ENV[k] for k in PRE_SPAWN_ENV}
+    early: dict[str, object] = {
+        f"distributed.nanny.pre-spawn-environ.{k}": WORKER_ENV[k] for k in PRE_SPAWN_ENV
+    }
+    early["distributed.worker.profile.enabled"] = False
     with dask.config.set(early):  # the nanny sets these before it starts the worker process
         cluster = LocalCluster(
             n_workers=workers,

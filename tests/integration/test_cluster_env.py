@@ -33,3 +33,14 @@ def test_malloc_settings_are_there_when_the_worker_process_starts(dask_client) -
         pytest.skip("needs /proc (Linux)")
     for env in dask_client.run(_start_env).values():
         assert {k: env.get(k) for k in PRE_SPAWN_ENV} == {k: WORKER_ENV[k] for k in PRE_SPAWN_ENV}
+
+
+def _profiler_enabled() -> bool:
+    import dask
+
+    return bool(dask.config.get("distributed.worker.profile.enabled"))
+
+
+def test_the_workers_sampling_profiler_is_off(dask_client) -> None:
+    # dask reads DASK_DISTRIBUTED__WORKER__PROFILE__ENABLED at import: it must be there at start
+    assert not any(dask_client.run(_profiler_enabled).values())
