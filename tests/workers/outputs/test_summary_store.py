@@ -127,8 +127,8 @@ def test_stores_written_with_two_arrays_are_still_read(tmp_path):
     group = zarr.open_group(str(path / TILE_SUMMARIES_GROUP), mode="r+").create_group("old")
     group.create_array("bins", data=s.bins.astype(np.int32), chunks=(s.bins.size,))
     group.create_array("counts", data=s.counts.astype(np.int64), chunks=(s.counts.size,))
-    record = {"area": "*", "stratum": "", "count": s.count, "mean": s.mean, "m2": s.m2,
-              "min": s.minimum, "max": s.maximum, "offset": 0, "length": int(s.bins.size)}  # fmt: skip
+    record = {"area": "*", "stratum": "", "count": s.count, "mean": s.mean, "m2": s.m2}
+    record |= {"min": s.minimum, "max": s.maximum, "offset": 0, "length": int(s.bins.size)}
     group.attrs.update({"entries": [record], "excluded": 0})
     back, _ = TileSummaryStore(path).read("old")
     assert np.array_equal(back[("*", "")].counts, s.counts) and back[("*", "")].count == s.count

@@ -57,9 +57,7 @@ def test_every_arrival_order_gives_the_same_bits(results):
 def test_the_moments_agree_with_numpy_on_all_pixels():
     rng = np.random.default_rng(3)
     chunks = [rng.normal(rng.uniform(-50, 50), rng.uniform(0.1, 5), 300) for _ in range(40)]
-    acc = accumulate(
-        [TileResult(f"t{i}", OK, None, summarise(c)) for i, c in enumerate(chunks)]
-    )
+    acc = accumulate([TileResult(f"t{i}", OK, None, summarise(c)) for i, c in enumerate(chunks)])
     every = np.concatenate(chunks)
     s = acc.overall
     assert s.count == every.size
@@ -73,7 +71,11 @@ def test_a_resumed_recheck_gives_the_bits_of_a_fresh_run(results):
     base = accumulate(results)
     table = base.extremes().to_arrays()
     stored = TileExtremes.from_arrays(
-        table["tiles"], table["keys"], table["tile"], table["key"], table["values"]  # type: ignore[arg-type]
+        table["tiles"],
+        table["keys"],
+        table["tile"],
+        table["key"],
+        table["values"],  # type: ignore[arg-type]
     )
     night = JobAccumulator.resume(base.totals(), stored, excluded=base.excluded)
     changed = sorted(rng.choice(TILES, 30, replace=False))
