@@ -83,7 +83,8 @@ def summarise_pixels(
     areas: dict[str, DhSummary] = {}
     strata: dict[str, dict[str, DhSummary]] = {}
     n_cells = layout.n_cells
-    occupied: list[bool] = per_key.count.reshape(len(members), n_cells).any(axis=1).tolist()
+    per_pattern = per_key.count.reshape(len(members), n_cells)
+    occupied = [bool(per_pattern[p].any()) for p in range(len(members))]
     everywhere = [p for p in range(len(members)) if occupied[p]]
     for area in (ALL, *region_masks):
         held = [p for p, inside in enumerate(members) if area == ALL or area in inside]
