@@ -95,22 +95,7 @@ def test_one_pass_equals_one_summarise_per_mask(
 ) -> None:
     dh, reference, landcover, masks = scene(seed, with_landcover=with_landcover)
     masks = dict(list(masks.items())[:n_regions])  # the first two overlap
-    kwargs = dict(
-        reference=reference,
-        landcover=landcover,
-        region_masks=masks,
-        classes=CLASSES,
-        slope_edges=EDGES,
-        pixel_size_m=PIXEL,
-    )
-    got = tile_pass.summarise_pixels(dh, **kwargs)
-    want_areas, want_strata = per_mask(dh, **kwargs)
-    assert list(got.areas) == list(want_areas)
-    for area, want in want_areas.items():
-        assert_same(got.areas[area], want, area)
-        assert list(got.strata[area]) == list(want_strata[area])
-        for name, want_s in want_strata[area].items():
-            assert_same(got.strata[area][name], want_s, f"{area} {name}")
+    got = summarised_as_per_mask(dh, reference, landcover, masks)
     if with_landcover:
         valid = np.isfinite(dh)
         assert got.excluded == int(np.count_nonzero(valid & (landcover == 7)))
@@ -123,14 +108,7 @@ def test_one_pass_equals_one_summarise_per_mask(
 
 def test_counters_in_groups_give_the_same_summaries(monkeypatch: pytest.MonkeyPatch) -> None:
     dh, reference, landcover, masks = scene(5)
-    kwargs = dict(
-        reference=reference,
-        landcover=landcover,
-        region_masks=masks,
-        classes=CLASSES,
-        slope_edges=EDGES,
-        pixel_size_m=PIXEL,
-    )
+    kwargs = pass_arguments(reference, landcover, masks)
     whole = tile_pass.summarise_pixels(dh, **kwargs)
     monkeypatch.setattr(keyed_summary, "MAX_COUNTERS", 3 * keyed_summary._WIDTH)
     grouped = tile_pass.summarise_pixels(dh, **kwargs)
@@ -142,13 +120,7 @@ def test_counters_in_groups_give_the_same_summaries(monkeypatch: pytest.MonkeyPa
 def test_no_valid_pixel_gives_empty_summaries() -> None:
     dh, reference, landcover, masks = scene(3)
     got = tile_pass.summarise_pixels(
-        np.full(dh.shape, np.nan),
-        reference=reference,
-        landcover=landcover,
-        region_masks=masks,
-        classes=CLASSES,
-        slope_edges=EDGES,
-        pixel_size_m=PIXEL,
+        np.full(dh.shape, np.nan), **pass_arguments(reference, landcover, masks)
     )
     assert all(s.count == 0 for s in got.areas.values())
     assert all(s.count == 0 for by in got.strata.values() for s in by.values())
@@ -275,26 +247,13 @@ def test_a_region_holding_every_valid_pixel_shares_the_tiles_summaries() -> None
     almost = valid.copy()
     almost[np.unravel_index(np.flatnonzero(valid)[17], dh.shape)] = False  # one valid pixel out
     masks = {"whole": np.ones(dh.shape, dtype=bool), "valid": valid, "almost": almost}
-    kwargs = dict(
-        reference=reference,
-        landcover=landcover,
-        region_masks=masks,
-        classes=CLASSES,
-        slope_edges=EDGES,
-        pixel_size_m=PIXEL,
-    )
-    got = tile_pass.summarise_pixels(dh, **kwargs)
+    got = summarised_as_per_mask(dh, reference, landcover, masks)
     tile = got.areas[tile_pass.ALL]
     # "valid" differs from the tile only where dh is NaN: it holds the same pixels
     for area in ("whole", "valid"):
         assert got.areas[area] is tile
         assert all(got.strata[area][k] is s for k, s in got.strata[tile_pass.ALL].items())
     assert got.areas["almost"] is not tile and got.areas["almost"].count == tile.count - 1
-    want_areas, want_strata = per_mask(dh, **kwargs)
-    for area, want in want_areas.items():
-        assert_same(got.areas[area], want, area)
-        for name, want_s in want_strata[area].items():
-            assert_same(got.strata[area][name], want_s, f"{area} {name}")
 
 
 def test_a_tile_inside_or_outside_each_region_has_one_pattern_and_the_same_summaries() -> None:
@@ -306,7 +265,12 @@ def test_a_tile_inside_or_outside_each_region_has_one_pattern_and_the_same_summa
     }
     patterns, members = tile_pass.grid_patterns(masks)
     assert patterns == 0b101 and members[patterns] == {"inside", "also"}
-    kwargs = dict(
+    summarised_as_per_mask(dh, reference, landcover, masks)
+
+
+def pass_arguments(reference, landcover, masks) -> dict:
+    """The keyword arguments of summarise_pixels (and per_mask) for a scene."""
+    return dict(
         reference=reference,
         landcover=landcover,
         region_masks=masks,
@@ -314,9 +278,17 @@ def test_a_tile_inside_or_outside_each_region_has_one_pattern_and_the_same_summa
         slope_edges=EDGES,
         pixel_size_m=PIXEL,
     )
+
+
+def summarised_as_per_mask(dh, reference, landcover, masks) -> tile_pass.TileSummaries:
+    """summarise_pixels of the scene, asserted equal to one summarise per mask (per_mask)."""
+    kwargs = pass_arguments(reference, landcover, masks)
     got = tile_pass.summarise_pixels(dh, **kwargs)
     want_areas, want_strata = per_mask(dh, **kwargs)
+    assert list(got.areas) == list(want_areas)
     for area, want in want_areas.items():
         assert_same(got.areas[area], want, area)
+        assert list(got.strata[area]) == list(want_strata[area])
         for name, want_s in want_strata[area].items():
             assert_same(got.strata[area][name], want_s, f"{area} {name}")
+    return got
