@@ -70,6 +70,7 @@ def test_constant_shift_moves_median_keeps_nmad(x, c) -> None:
     arrays(np.float64, (5, 7), elements=st.floats(-1e3, 1e3, width=64)),
     arrays(np.float64, (5, 7), elements=st.floats(-1e3, 1e3, width=64)),
 )
+@settings(deadline=None)  # the first call may load the compiled subtraction (numba start-up)
 def test_dh_is_antisymmetric(a, b) -> None:
     assert np.array_equal(difference(a, b), -difference(b, a))
 

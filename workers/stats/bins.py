@@ -9,6 +9,8 @@ counts. Units: metres.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
+
 import numpy as np
 from numpy.typing import NDArray
 
@@ -93,6 +95,33 @@ def added_histograms(
     return (
         np.concatenate([tail_bins[:low], nonzero - K_LIMIT, tail_bins[low:]]).astype(np.int64),
         np.concatenate([tail_counts[:low], dense[nonzero].astype(np.int64), tail_counts[low:]]),
+    )
+
+
+def added_parts(
+    parts: Sequence[tuple[NDArray[np.integer], NDArray[np.integer]]],
+) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+    """added_histograms of several sparse histograms (bins, counts), without concatenating
+    them: when each one's bins rise strictly (as every histogram here does) and together they
+    span few enough bins, each is added into one dense counter in turn (about twice as fast
+    for a merge batch of 33 tile histograms); otherwise as added_histograms. The same result."""
+    present = [(b, c) for b, c in parts if b.size]
+    entries = sum(b.size for b, _ in present)
+    if entries >= _DENSE_ADD_FROM:
+        low = min(int(b[0]) for b, _ in present)
+        span = max(int(b[-1]) for b, _ in present) - low + 1
+        rising = all(b.size < 2 or bool((np.diff(b) > 0).all()) for b, _ in present)
+        if rising and span <= _DENSE_SPAN:
+            dense = np.zeros(span, dtype=np.int64)
+            for b, c in present:
+                dense[b - low] += c  # bins distinct within one histogram: no index repeats
+            (nonzero,) = np.nonzero(dense)
+            return (nonzero + low).astype(np.int64), dense[nonzero]
+    if not present:
+        return np.zeros(0, np.int64), np.zeros(0, np.int64)
+    return added_histograms(
+        np.concatenate([b for b, _ in present], dtype=np.int64),
+        np.concatenate([c for _, c in present], dtype=np.int64),
     )
 
 

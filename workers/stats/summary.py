@@ -31,7 +31,7 @@ from numpy.typing import ArrayLike, NDArray
 from demaudit.workers.stats.bins import (
     LINEAR_WIDTH_M,
     RELATIVE_WIDTH,
-    added_histograms,
+    added_parts,
     sparse_histogram,
 )
 from demaudit.workers.stats.quantiles import (
@@ -108,9 +108,7 @@ def merge_all(summaries: Iterable[DhSummary]) -> DhSummary:
         mean += delta * s.count / total
         m2 += s.m2 + delta * delta * n * s.count / total
         n = total
-    all_bins = np.concatenate([s.bins for s in parts], dtype=np.int64)
-    all_counts = np.concatenate([s.counts for s in parts], dtype=np.int64)
-    bins, counts = added_histograms(all_bins, all_counts)
+    bins, counts = added_parts([(s.bins, s.counts) for s in parts])
     return DhSummary(
         n,
         float(mean),
