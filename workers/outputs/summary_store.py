@@ -40,6 +40,9 @@ Key = tuple[str, str]  # (area, stratum)
 
 
 HISTOGRAMS = "histograms"  # the array of a group's histograms (bins, counts)
+#: Codec of the stored histograms: LZ4 on byte-shuffled integers, about as fast as writing them
+#: raw and several times smaller (measured: benchmarks/RESULTS.md, issue 13).
+_HISTOGRAM_CODEC = BloscCodec(cname="lz4", clevel=1, shuffle="shuffle")
 AFTER = "after:"  # area prefix of the summaries after co-registration
 
 
@@ -83,13 +86,8 @@ class TileSummaryStore:
         self._parent: Any = open_store_group(zarr_path, TILE_SUMMARIES_GROUP, mode=mode)
 
     def write(self, tile_id: str, entries: dict[Key, DhSummary], *, excluded: int = 0) -> None:
-        """Write (replace) one tile's summaries: one group made with its attributes, one array
-        (each zarr node written costs milliseconds; this runs once per tile on the workers)."""
-        records, table = packed_entries(entries)
-        group = self._parent.create_group(
-            tile_id, overwrite=True, attributes={"entries": records, "excluded": int(excluded)}
-        )
-        _write_table(group, table)
+        """Write (replace) one tile's summaries (runs once per tile on the workers)."""
+        write_entries(self._parent, tile_id, entries, {"excluded": int(excluded)})
 
     def read(self, tile_id: str) -> tuple[dict[Key, DhSummary], int]:
         """A tile's summaries and its excluded-pixel count (KeyError when not stored)."""
@@ -117,17 +115,18 @@ class TileSummaryStore:
 def write_job_totals(zarr_path: Path, part: str, acc: JobAccumulator) -> None:
     """Store a job's merged totals and per-tile extremes under job_summaries/<part>."""
     root: Any = zarr.open_group(str(zarr_path), mode="a", zarr_format=3, use_consolidated=False)
-    group = root.require_group(JOB_SUMMARIES_GROUP).create_group(part, overwrite=True)
     table = acc.extremes().to_arrays()
-    write_entries(group, acc.totals(), {"excluded": int(acc.excluded)})
+    attrs = {
+        "excluded": int(acc.excluded),
+        "extremes_tiles": table["tiles"],
+        "extremes_keys": [list(k) for k in table["keys"]],  # type: ignore[attr-defined]
+    }
+    group = write_entries(root.require_group(JOB_SUMMARIES_GROUP), part, acc.totals(), attrs)
     for name in ("tile", "key", "values"):
         data = np.asarray(table[name])
         group.create_array(
             f"extremes_{name}", data=data, chunks=tuple(max(n, 1) for n in data.shape)
         )
-    group.attrs.update(
-        {"extremes_tiles": table["tiles"], "extremes_keys": [list(k) for k in table["keys"]]}  # type: ignore[attr-defined]
-    )
 
 
 def read_job_totals(zarr_path: Path, part: str, region_ids: list[str]) -> JobAccumulator | None:
@@ -154,11 +153,21 @@ def read_job_totals(zarr_path: Path, part: str, region_ids: list[str]) -> JobAcc
     )
 
 
-def write_entries(group: Any, entries: dict[Key, DhSummary], attrs: dict[str, Any]) -> None:
-    """The entries' histograms in one array; moments and slices in the attribute entries."""
+def write_entries(
+    parent: Any, name: str, entries: dict[Key, DhSummary], attrs: dict[str, Any]
+) -> Any:
+    """Make (replace) the group ``name`` of parent holding the entries: their histograms in one
+    array, moments and slices in the attribute ``entries`` beside ``attrs``, all written with
+    the group (each zarr node written costs milliseconds). Returns the group."""
     records, table = packed_entries(entries)
-    _write_table(group, table)
-    group.attrs.update({"entries": records, **attrs})
+    group = parent.create_group(name, overwrite=True, attributes={"entries": records, **attrs})
+    group.create_array(
+        HISTOGRAMS,
+        data=table,
+        chunks=(2, max(table.shape[1], 1)),
+        compressors=_HISTOGRAM_CODEC,
+    )
+    return group
 
 
 def packed_entries(entries: dict[Key, DhSummary]) -> tuple[list[dict[str, Any]], NDArray[Any]]:
@@ -196,20 +205,6 @@ def packed_entries(entries: dict[Key, DhSummary]) -> tuple[list[dict[str, Any]],
         table[1, at : at + s.bins.size] = s.counts
         at += s.bins.size
     return records, table
-
-
-#: Codec of the stored histograms: LZ4 on byte-shuffled integers, about as fast as writing them
-#: raw and several times smaller (measured: benchmarks/RESULTS.md, issue 13).
-_HISTOGRAM_CODEC = BloscCodec(cname="lz4", clevel=1, shuffle="shuffle")
-
-
-def _write_table(group: Any, table: NDArray[Any]) -> None:
-    group.create_array(
-        HISTOGRAMS,
-        data=table,
-        chunks=(2, max(table.shape[1], 1)),
-        compressors=_HISTOGRAM_CODEC,
-    )
 
 
 def read_entries(group: Any) -> tuple[dict[Key, DhSummary], dict[str, Any]]:

@@ -43,13 +43,13 @@ class ErrorSampleStore:
         self, tile_id: str, part: str, sample: TileErrorSample, options: ErrorModelOptions
     ) -> None:
         """Write (replace) one tile's sample."""
-        group = self._parent.require_group(tile_id).create_group(part, overwrite=True)
         entries = {
             (kind, str(k)): s
             for kind, bins in zip(KINDS, _bins_of(sample), strict=True)
             for k, s in bins.items()
         }
-        write_entries(group, entries, _attributes(sample, options))
+        parent = self._parent.require_group(tile_id)
+        group = write_entries(parent, part, entries, _attributes(sample, options))
         points = np.column_stack(
             [sample.priority, sample.x, sample.y, sample.dh, sample.slope_deg, sample.curvature]
         )
