@@ -37,9 +37,14 @@ def _compiled(name: str) -> Any:
     return _COMPILED[name]
 
 
-_CALLS = {"block_sweep": ("pairwise_sum",), "band_sweep": ("row_squared_gradient",)}
+_CALLS = {
+    "block_sweep": ("pairwise_sum",),
+    "band_sweep": ("row_squared_gradient",),
+    "key_sweep": ("tail_bin",),
+}
 pairwise_sum_compiled: Any = None  # set by _compiled("block_sweep")
 row_squared_gradient_compiled: Any = None  # set by _compiled("band_sweep")
+tail_bin_compiled: Any = None  # set by _compiled("key_sweep")
 
 
 def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, maxs, tail):  # type: ignore[no-untyped-def]
@@ -70,18 +75,22 @@ def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, 
 
 
 def _key_sweep(  # type: ignore[no-untyped-def]
-    dh, bands, codes, patterns, sizes, binning, dense, sums, mins, maxs, keys, tail, out
+    dh, bits, bands, codes, patterns, sizes, binning, table, counters, keys, listed, unsure, out
 ):
-    """_cell_sweep with each pixel's key made on the way: pattern * n_cells + class code *
-    n_band_codes + band (``codes`` / ``patterns`` may be empty: 0), sizes = (n_band_codes,
-    n_cells); key -1 for class code 255 (excluded) and non-finite dh. ``patterns`` of one value
-    only: every pixel has that pattern. Values outside the linear bins are listed in ``tail``
-    (for _tail_sweep). out = (tail entries, finite excluded)."""
+    """One sweep: each pixel's key (pattern * n_cells + class code * n_band_codes + band;
+    ``codes`` / ``patterns`` may be empty: 0; sizes = (n_band_codes, n_cells); key -1 for class
+    code 255 (excluded) and non-finite dh; ``patterns`` of one value only: every pixel has that
+    pattern), its cell's sum and extremes, and its bin: the linear bins (floor(v / width), as
+    bins.bin_index) on dense counters, tail bins by _tail_bin (``bits`` is dh as int64).
+    counters = (dense, sums, mins, maxs, tails); listed = (cell, bin) of tail values beyond the
+    dense tail counters; ``unsure`` the indices of values _tail_bin cannot place (binned by the
+    caller). out = (listed, unsure, finite excluded)."""
+    dense, sums, mins, maxs, tails = counters
     linear_width, linear_limit, k_limit = binning[0], binning[1], int(binning[2])
     n_band_codes, n_cells = sizes[0], sizes[1]
     with_codes, with_patterns = codes.size > 0, patterns.size > 1
     base = patterns[0] * n_cells if patterns.size == 1 else 0
-    n_tail, dropped = 0, 0
+    n_listed, n_unsure, dropped = 0, 0, 0
     # the current cell's sum and extremes live in locals while neighbouring pixels share the
     # cell (the same additions in the same order as sums[c] += v, without a store per pixel)
     cell, total, low, high = -1, 0.0, 0.0, 0.0
@@ -112,45 +121,33 @@ def _key_sweep(  # type: ignore[no-untyped-def]
             if 0 <= column < 2 * k_limit:
                 dense[c, column] += 1
                 continue
-        tail[n_tail] = i
-        n_tail += 1
-    if cell >= 0:
-        sums[cell], mins[cell], maxs[cell] = total, low, high
-    out[0], out[1] = n_tail, dropped
-
-
-def _tail_sweep(  # type: ignore[no-untyped-def]
-    dh, bits, keys, tail, n_tail, limits, table, tails, tail_key, tail_bin, unsure, out
-):
-    """Bin the listed tail values (|v| >= linear limit; limits = (linear limit, k limit)): a
-    value's slot (exponent and 12 leading mantissa bits of ``bits``, dh as int64) gives its
-    first possible bin (table[0]), the exact lower edges (table[1]) the rest. Counts go to
-    ``tails`` (column j for bin k + j, n + j for bin -k - 1 - j) when j < n, else to the list
-    tail_key / tail_bin; values beyond the slots (or below the limit) to ``unsure``.
-    out = (listed, unsure)."""
-    first_bin, edges = table
-    linear_limit, k_limit = limits[0], int(limits[1])
-    width = tails.shape[1] // 2
-    base = 0x4000000000000000 >> 40  # the slot of 2.0
-    n_listed, n_unsure = 0, 0
-    for t in range(n_tail):
-        i = tail[t]
-        v = dh[i]
-        a = abs(v)
-        slot = ((bits[i] & 0x7FFFFFFFFFFFFFFF) >> 40) - base
-        if a < linear_limit or slot >= first_bin.size:
+        j = tail_bin_compiled(v, bits[i], linear_limit, table)
+        if j < 0:
             unsure[n_unsure] = i
             n_unsure += 1
-            continue
-        j = first_bin[slot]  # a slot holds at most three edges beyond its first bin's
-        j += (a >= edges[j + 1]) + (a >= edges[j + 2]) + (a >= edges[j + 3])
-        if j < width:
-            tails[keys[i], j if v > 0 else width + j] += 1
+        elif j < tails.shape[1] // 2:
+            tails[c, j if v > 0 else tails.shape[1] // 2 + j] += 1
         else:
-            tail_key[n_listed] = keys[i]
-            tail_bin[n_listed] = k_limit + j if v > 0 else -k_limit - 1 - j
+            listed[0][n_listed] = c
+            listed[1][n_listed] = k_limit + j if v > 0 else -k_limit - 1 - j
             n_listed += 1
-    out[0], out[1] = n_listed, n_unsure
+    if cell >= 0:
+        sums[cell], mins[cell], maxs[cell] = total, low, high
+    out[0], out[1], out[2] = n_listed, n_unsure, dropped
+
+
+def _tail_bin(v, bits, linear_limit, table):  # type: ignore[no-untyped-def]
+    """The tail bin j of v (bin k_limit + j when v > 0, -k_limit - 1 - j below), or -1 when v
+    lies below the linear limit or beyond the slots (the caller bins it as bins.bin_index):
+    v's slot (exponent and 12 leading mantissa bits of ``bits``, v as int64) gives its first
+    possible bin (table[0]), the exact lower edges (table[1]) the rest (at most three more)."""
+    first_bin, edges = table
+    a = abs(v)
+    slot = ((bits & 0x7FFFFFFFFFFFFFFF) >> 40) - (0x4000000000000000 >> 40)  # the slot of 2.0
+    if a < linear_limit or slot >= first_bin.size:
+        return -1
+    j = first_bin[slot]
+    return j + (a >= edges[j + 1]) + (a >= edges[j + 2]) + (a >= edges[j + 3])
 
 
 def _deviation_sweep(x, key, mean, residual, squares):  # type: ignore[no-untyped-def]
@@ -308,11 +305,6 @@ def cell_sweep(*args: Any) -> int:
 def key_sweep(*args: Any) -> None:
     """Compiled _key_sweep (same arguments)."""
     _compiled("key_sweep")(*args)
-
-
-def tail_sweep(*args: Any) -> None:
-    """Compiled _tail_sweep (same arguments)."""
-    _compiled("tail_sweep")(*args)
 
 
 def deviation_sweep(*args: Any) -> None:

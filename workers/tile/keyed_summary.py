@@ -230,7 +230,7 @@ def summarise_keyed(
     n_patterns: int,
 ) -> tuple[CellSummaries, int] | None:
     """summarise_cells of dh (metres, NaN = none) with each pixel's cell made on the way, in
-    compiled sweeps (keys and linear bins, tail bins, deviations): cell = pattern * n_cells +
+    compiled sweeps (keys and bins, tail bins included; deviations): cell = pattern * n_cells +
     class code * n_band_codes + band (``codes`` and ``patterns`` on dh's grid, None: all 0;
     ``patterns`` may also be a single value, every pixel's pattern).
     Pixels of class code 255 (excluded) are left out and counted (the int returned, finite dh
@@ -249,42 +249,22 @@ def summarise_keyed(
         np.zeros((total, 2 * width), dtype=np.int32),
     )
     key = np.empty(x.size, dtype=np.int32)
-    tail = np.empty(x.size, dtype=np.intp)
-    found = np.zeros(2, dtype=np.int64)
+    listed = (np.empty(x.size, dtype=np.int32), np.empty(x.size, dtype=np.int64))
+    unsure = np.empty(x.size, dtype=np.intp)
+    found = np.zeros(3, dtype=np.int64)
     kernels.key_sweep(
-        x, _flat(bands, np.uint8), _flat(codes, np.uint8), _pattern_array(patterns),
-        np.array([n_band_codes, n_cells]), _BINNING, *counters[:4], key, tail, found,
+        x, x.view(np.int64), _flat(bands, np.uint8), _flat(codes, np.uint8),
+        _pattern_array(patterns), np.array([n_band_codes, n_cells]), _BINNING, tail_table(),
+        counters, key, listed, unsure, found,
     )  # fmt: skip
-    n_tail, dropped = (int(v) for v in found)
-    keys_at, bins_at = _bin_tails(x, key, tail[:n_tail], counters[4])
-    summaries = _finish(x, key, counters[:4], keys_at, bins_at, tail_counts=counters[4])
-    return summaries, dropped
-
-
-def _bin_tails(
-    x: NDArray[np.float64],
-    key: NDArray[np.int32],
-    tail: NDArray[np.intp],
-    counts: NDArray[np.int32],
-) -> tuple[NDArray[np.intp], NDArray[np.int64]]:
-    """Count the tail values at flat indices ``tail`` on the cells' dense tail counters
-    (kernels.tail_sweep); return the (cell, bin) of those beyond them, unsure ones binned by
-    bins.bin_index."""
-    listed = (np.empty(tail.size, dtype=np.int32), np.empty(tail.size, dtype=np.int64))
-    unsure = np.empty(tail.size, dtype=np.intp)
-    found = np.zeros(2, dtype=np.int64)
-    limits = np.array([bins.LINEAR_LIMIT_M, _K])
-    kernels.tail_sweep(
-        x, x.view(np.int64), key, tail, tail.size, limits, tail_table(), counts, *listed, unsure,
-        found,
-    )  # fmt: skip
-    n_listed, n_unsure = (int(v) for v in found)
+    n_listed, n_unsure, dropped = (int(v) for v in found)
     keys_at, bins_at = listed[0][:n_listed].astype(np.intp), listed[1][:n_listed]
     if n_unsure:  # beyond the slots (or rounding at +-2 m): binned as bins.bin_index bins them
-        unsure = unsure[:n_unsure]
-        keys_at = np.concatenate([keys_at, key[unsure].astype(np.intp)])
-        bins_at = np.concatenate([bins_at, bins.bin_index(x[unsure])])
-    return keys_at, bins_at
+        at = unsure[:n_unsure]
+        keys_at = np.concatenate([keys_at, key[at].astype(np.intp)])
+        bins_at = np.concatenate([bins_at, bins.bin_index(x[at])])
+    summaries = _finish(x, key, counters[:4], keys_at, bins_at, tail_counts=counters[4])
+    return summaries, dropped
 
 
 def _pattern_array(patterns: NDArray[np.int32] | int | None) -> NDArray[np.generic]:
@@ -324,8 +304,9 @@ def _finish(
     dense, sums, minimum, maximum = counters
     n_cells = sums.size
     count = dense.sum(axis=1) + np.bincount(tail_key, minlength=n_cells)
-    if tail_counts is not None:
-        count += tail_counts.sum(axis=1)
+    counted_tails = None if tail_counts is None else tail_counts.sum(axis=1)
+    if counted_tails is not None:
+        count += counted_tails
     with np.errstate(invalid="ignore", divide="ignore"):
         mean = np.where(count > 0, sums / count, 0.0)
     residual = np.zeros(n_cells)
@@ -335,8 +316,11 @@ def _finish(
     mean += correction  # the residual of the first estimate, as in a second pass
     m2 = np.maximum(squares - residual * correction, 0.0)
     tails = _tail_runs(tail_key, tail_bin, n_cells)
-    if tail_counts is not None:
-        tails = tuple(_with_dense_tails(t, row) for t, row in zip(tails, tail_counts, strict=True))
+    if tail_counts is not None and counted_tails is not None:
+        tails = tuple(
+            _with_dense_tails(t, row) if n else t  # a cell without dense tail counts: as listed
+            for t, row, n in zip(tails, tail_counts, counted_tails.tolist(), strict=True)
+        )
     return CellSummaries(count, mean, m2, minimum, maximum, tuple(dense), tails)
 
 

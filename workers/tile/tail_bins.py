@@ -1,5 +1,5 @@
 """Exact tail bins without a logarithm per value (pure): for the compiled tail sweep
-(kernels._tail_sweep), each slot of |dh| (its float64 exponent and 12 leading mantissa bits,
+(kernels._tail_bin), each slot of |dh| (its float64 exponent and 12 leading mantissa bits,
 from 2 m up) holds the first tail bin a value in it can have, and each tail bin its exact lower
 edge: the smallest float64 that bins.bin_index puts in it. A value's bin is then its slot's
 first bin plus the edges at or below it (at most three), the same bin bin_index gives.
