@@ -24,6 +24,7 @@ from distributed import get_task_stream
 
 from demaudit.service.run.cluster import dask_client
 from demaudit.service.run.runner import run_job
+from demaudit.service.run.tile_tasks import tiles_of_key
 from demaudit.workers import spec as job_spec
 from demaudit.workers.demo.archive import make_demo_archive
 from demaudit.workers.demo.options import DemoArchiveOptions
@@ -71,7 +72,8 @@ def timed_run(
     compute = sum(
         s["stop"] - s["start"] for t in tasks for s in t["startstops"] if s["action"] == "compute"
     )
-    return elapsed, len({str(t["key"]) for t in tasks}), compute, doc
+    tiles = {tile for t in tasks for tile in tiles_of_key(t["key"])}
+    return elapsed, len(tiles), compute, doc
 
 
 def main() -> None:

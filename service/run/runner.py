@@ -3,7 +3,7 @@
 1. scan        every tile's header on the cluster, checks before the first tile (scan.py)
 2. plan reuse  in a re-check, which tiles the baseline still answers for (reuse.py)
 3. estimate    the job-wide co-registration, when the spec asks for it (coregistration.py)
-4. run tiles   one task per test tile, folded into the job totals as they finish (tiles.py)
+4. run tiles   a few test tiles per task, folded into the job totals as they finish (tiles.py)
 5. statistics  the areas' statistics, the error model, the results tables
 6. document    checkpoints, grades and the re-check report: the parts of summary.json
 7. write       figures, report.html and summary.json, assembled once from the parts
@@ -87,15 +87,18 @@ def run_job(
     baseline: Path | None = None,
     inputs: Inputs | None = None,
     tile_timeout_s: float | None = DEFAULT_TILE_TIMEOUT_S,
+    tiles_per_task: int | None = None,
 ) -> dict[str, Any]:
     """Audit job.spec on the cluster behind client; write results.zarr and summary.json into
     out_dir and return the summary document.
 
     progress(done, total) is called as tiles finish; when should_stop() turns true the remaining
-    tile tasks are cancelled on the cluster and JobDismissedError is raised. Tile tasks get the
-    key ``audit-tile-<tile>-<run_id>`` (a job id makes them deterministic) and ``retries``
-    retries when a worker is lost. A tile task that runs longer than ``tile_timeout_s`` seconds
-    (None: no limit) is cancelled and its tile recorded as failed (tile_limit.TileClock).
+    tile tasks are cancelled on the cluster and JobDismissedError is raised. Tile tasks (a few
+    tiles each: tile_tasks.py) get the key ``audit-tile-<tile>|<tile>...-<run_id>`` (a job id
+    makes them deterministic) and ``retries`` retries when a worker is lost. A tile that runs
+    longer than ``tile_timeout_s`` seconds (None: no limit) is cancelled and recorded as failed
+    (tile_limit.TileClock; a batch cut short runs again one tile per task). ``tiles_per_task``
+    None: tile_tasks.tiles_per_task for the cluster.
 
     With ``baseline`` (the folder of an earlier run of the same spec), only new and changed tiles
     (or tiles whose reference or land cover changed) are recomputed; the run continues the
@@ -113,7 +116,7 @@ def run_job(
     run_id = run_id or uuid.uuid4().hex[:12]
     inputs = inputs if inputs is not None else read_inputs(job)
     prior = load_baseline(baseline) if baseline is not None else None
-    dispatch = Dispatch(run_id, retries, progress, should_stop, tile_timeout_s)
+    dispatch = Dispatch(run_id, retries, progress, should_stop, tile_timeout_s, tiles_per_task)
     options = TileOptions.from_spec(job.spec, grid_dirs=grid_dirs)
     with staged_folder(out_dir, run_id) as stage:
         run = _Run(client, job, stage, Phases())

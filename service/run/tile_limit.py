@@ -8,7 +8,9 @@ figures every ``poll_s`` seconds (from a daemon thread) and cancels the job's ta
 time exceeds the limit. A task that waits (in the scheduler's queue or on a worker) has no running
 time, so a long queue of quick tiles on few workers is never cancelled however long the job
 takes; a task run again after a lost worker starts from zero. A task may run up to about
-``poll_s`` plus one heartbeat beyond the limit before it is cancelled.
+``poll_s`` plus one heartbeat beyond the limit before it is cancelled. A task of several tiles
+(service/run/tile_tasks.py) has the limit once per tile; when it is cut short the job runs its
+tiles again one per task, so that only the hung tile fails.
 
 What cancelling can and cannot do: Dask cannot stop a Python thread. Cancelling releases the
 task (the job no longer waits for it), but the worker's thread stays inside the hung call and
@@ -23,7 +25,7 @@ from __future__ import annotations
 
 import logging
 import threading
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Sequence
 from typing import Any
 
 __all__ = [
@@ -95,17 +97,23 @@ class TileClock:
         futures: Iterable[Any],
         limit_s: float,
         *,
-        tile_of: Callable[[str], str],
+        tiles_of: Callable[[str], Sequence[str]],
         poll_s: float | None = None,
     ) -> None:
         self._client = client
         self._futures = {str(f.key): f for f in futures}
+        self._lock = threading.Lock()
         self.limit_s = limit_s
-        self._tile_of = tile_of
+        self._tiles_of = tiles_of
         self.poll_s = poll_interval(limit_s) if poll_s is None else poll_s
         self._reasons: dict[str, str] = {}
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
+
+    def watch(self, futures: Iterable[Any]) -> None:
+        """Watch these futures too (tasks submitted after the clock started)."""
+        with self._lock:
+            self._futures.update({str(f.key): f for f in futures})
 
     def reason(self, key: Any) -> str | None:
         """Why the task of key was cancelled (None: it was not)."""
@@ -134,20 +142,26 @@ class TileClock:
     def check(self) -> list[str]:
         """One look: cancel the tasks running past the limit, restart their workers; the keys
         cancelled."""
-        self._futures = {k: f for k, f in self._futures.items() if not f.done()}
-        if not self._futures:
-            return []
+        with self._lock:
+            self._futures = {k: f for k, f in self._futures.items() if not f.done()}
+            if not self._futures:
+                return []
+            watched = dict(self._futures)
         overdue = {
             key: worker
             for key, (worker, seconds) in running_tasks(self._client).items()
-            if key in self._futures and seconds > self.limit_s
+            if key in watched and seconds > self.limit_s * len(self._tiles_of(key))
         }
         if not overdue:
             return []
         for key in overdue:  # the reason first: the job's thread reads it once the task ends
-            self._reasons[key] = timeout_reason(self._tile_of(key), self.limit_s)
+            tiles = self._tiles_of(key)
+            limit = self.limit_s * len(tiles)
+            self._reasons[key] = timeout_reason(", ".join(tiles), limit)
             log.warning("%s", self._reasons[key])
-        _cancel(self._client, [self._futures.pop(k) for k in overdue])
+        with self._lock:
+            cancelled = [self._futures.pop(k) for k in overdue if k in self._futures]
+        _cancel(self._client, cancelled)
         self._restart(sorted(set(overdue.values())))
         return sorted(overdue)
 

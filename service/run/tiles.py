@@ -1,5 +1,6 @@
-"""The tile phase of a job: one Dask task per test tile to compute, each result folded into the
-running totals and the results store as it arrives (pixels stay on the workers)."""
+"""The tile phase of a job: the test tiles to compute go to the cluster a few per task
+(tile_tasks.py), each tile's result folded into the running totals and the results store as it
+arrives (pixels stay on the workers)."""
 
 from __future__ import annotations
 
@@ -7,12 +8,13 @@ from collections.abc import Callable, Mapping, Sequence
 from contextlib import ExitStack
 from dataclasses import dataclass, replace
 
-from distributed import Client, Future, as_completed
+from distributed import Client, Future
 
 from demaudit.service.run.coregistration import CorrectionEstimate
 from demaudit.service.run.reuse import Reuse
 from demaudit.service.run.scan import Catalog
 from demaudit.service.run.tile_limit import TileClock
+from demaudit.service.run.tile_tasks import TileTasks, submitter, tiles_per_task
 from demaudit.workers.errors import JobDismissedError
 from demaudit.workers.inputs import regions as region_ops
 from demaudit.workers.inputs.catalog import TileInfo
@@ -28,7 +30,8 @@ from demaudit.workers.outputs.tile_records import (
 from demaudit.workers.outputs.writers import ResultsStore
 from demaudit.workers.stats.job_statistics import Totals
 from demaudit.workers.stats.merge import JobAccumulator
-from demaudit.workers.tile.task import FAILED, OK, TileOptions, TileResult, audit_and_store
+from demaudit.workers.tile.batch import TileCall, audit_tiles
+from demaudit.workers.tile.task import OK, TileOptions, TileResult
 from demaudit.workers.uncertainty.accumulate import ErrorModelAccumulator
 from demaudit.workers.uncertainty.sample import ErrorModelOptions
 from demaudit.workers.uncertainty.sample_store import ErrorSampleStore, record_samples
@@ -47,6 +50,7 @@ class Dispatch:
     progress: Progress | None = None
     should_stop: Callable[[], bool] | None = None
     tile_timeout_s: float | None = None
+    tiles_per_task: int | None = None  # None: tile_tasks.tiles_per_task for the cluster
 
 
 @dataclass(frozen=True)
@@ -73,23 +77,28 @@ def run_tiles(
     dispatch: Dispatch,
     job_name: str,
 ) -> dict[str, TileRecord]:
-    """Audit ``tiles`` on the cluster and fold each result into totals and outputs; the tiles'
-    records. JobDismissedError (the remaining tasks cancelled) once dispatch.should_stop(). A
-    task running longer than dispatch.tile_timeout_s is cancelled and its tile failed."""
-    futures = [
-        _submit(client, tile, catalog, estimate, options, outputs, dispatch) for tile in tiles
-    ]
+    """Audit ``tiles`` on the cluster (a few per task: tile_tasks) and fold each result into
+    totals and outputs; the tiles' records. JobDismissedError (the remaining tasks cancelled)
+    once dispatch.should_stop(). A task running longer than dispatch.tile_timeout_s per tile is
+    cancelled; its tiles run again one per task, and a single tile's task cut short fails it."""
+    per_task = dispatch.tiles_per_task
+    if per_task is None:
+        per_task = tiles_per_task(len(tiles), workers=max(1, sum(client.nthreads().values())))
+    submit = submitter(client, retries=dispatch.retries)
+    tasks = TileTasks(submit, run_id=dispatch.run_id, per_task=per_task, function=audit_tiles)
+    futures = tasks.submit_all(_call(t, catalog, estimate, options, outputs) for t in tiles)
     with ExitStack() as stack:
         clock = None
         if dispatch.tile_timeout_s is not None and futures:
             limit = dispatch.tile_timeout_s
-            clock = stack.enter_context(TileClock(client, futures, limit, tile_of=tile_of_key))
-        return _collect(client, futures, catalog, clock, totals, outputs, dispatch, job_name)
+            clock = stack.enter_context(TileClock(client, futures, limit, tiles_of=tasks.tiles))
+        return _collect(client, futures, tasks, catalog, clock, totals, outputs, dispatch, job_name)
 
 
 def _collect(
     client: Client,
     futures: list[Future],
+    tasks: TileTasks,
     catalog: Catalog,
     clock: TileClock | None,
     totals: Totals,
@@ -99,74 +108,52 @@ def _collect(
 ) -> dict[str, TileRecord]:
     """Fold the tasks' results as they arrive (run_tiles)."""
     total = len(catalog.tests) + len(catalog.test_failures)
-    done = total - len(futures)
+    done = total - sum(len(tasks.tiles(f.key)) for f in futures)
     by_id = catalog.by_id
     records: dict[str, TileRecord] = {}
-    for future in as_completed(futures):
+    for results in tasks.arrivals(futures, clock):
         if dispatch.should_stop is not None and dispatch.should_stop():
-            client.cancel(futures)
+            client.cancel(tasks.futures)
             raise JobDismissedError(f"job {job_name} was dismissed after {done} tiles")
-        timed_out = clock.reason(future.key) if clock is not None else None
-        result = with_status(result_of(future, timed_out))
-        future.release()
-        fold(result, totals, outputs)
-        tile = by_id[result.tile_id]
-        record = computed_record(result, tile, catalog.sources_of(tile))
-        if outputs.derivatives is not None:
-            record = replace(record, extra={**record.extra, **outputs.derivatives.add(result)})
-        records[result.tile_id] = record
-        done += 1
-        if dispatch.progress:
-            dispatch.progress(done, total)
+        for result in map(with_status, results):
+            fold(result, totals, outputs)
+            tile = by_id[result.tile_id]
+            record = computed_record(result, tile, catalog.sources_of(tile))
+            if outputs.derivatives is not None:
+                record = replace(record, extra={**record.extra, **outputs.derivatives.add(result)})
+            records[result.tile_id] = record
+            done += 1
+            if dispatch.progress:
+                dispatch.progress(done, total)
     return records
 
 
-def _submit(
-    client: Client,
+def _call(
     tile: TileInfo,
     catalog: Catalog,
     estimate: CorrectionEstimate,
     options: TileOptions,
     outputs: Outputs,
-    dispatch: Dispatch,
-) -> Future:
+) -> TileCall:
+    """One tile's arguments for its task (workers/tile/batch.py: task.audit_and_store)."""
     own = estimate.tiles.get(tile.tile_id)
-    return client.submit(
-        audit_and_store,
+    args = (
         tile,
         catalog.candidates[tile.tile_id],
         region_ops.clip_to(catalog.regions_by_crs.get(tile.grid.crs, []), tile.bounds),
         options,
         catalog.landcover_of(tile),
         own.record() if own is not None else None,
-        covered=catalog.covered_of(tile),
-        summaries_to=str(outputs.summaries.zarr_path),
-        overview_to=outputs.store.overview_target(tile.tile_id),
-        pure=False,
-        retries=dispatch.retries,
-        key=f"audit-tile-{tile.tile_id}-{dispatch.run_id}",
     )
-
-
-def tile_of_key(key: object) -> str:
-    """The tile id of a task key ``audit-tile-<tile>-<run_id>``."""
-    return str(key).removeprefix("audit-tile-").rsplit("-", 1)[0]
-
-
-def result_of(future: Future, timed_out: str | None = None) -> TileResult:
-    """The tile's result; a lost worker, a crash outside audit_tile or the time limit
-    (timed_out: the reason, when the task was cancelled for it) marks the tile failed."""
-    if timed_out is not None:
-        return TileResult(tile_of_key(future.key), FAILED, timed_out)
-    try:
-        result: TileResult = future.result()
-    except Exception as exc:  # noqa: BLE001 - report, never lose the job
-        return TileResult(
-            tile_of_key(future.key),
-            FAILED,
-            f"task failed on the cluster: {type(exc).__name__}: {exc}",
-        )
-    return result
+    return TileCall(
+        tile.tile_id,
+        args,
+        {
+            "covered": catalog.covered_of(tile),
+            "summaries_to": str(outputs.summaries.zarr_path),
+            "overview_to": outputs.store.overview_target(tile.tile_id),
+        },
+    )
 
 
 def fold(result: TileResult, totals: Totals, outputs: Outputs) -> None:

@@ -11,6 +11,7 @@ import yaml
 from distributed import get_task_stream
 
 from demaudit.service.run.runner import run_job
+from demaudit.service.run.tile_tasks import tiles_of_key
 from demaudit.workers import spec as job_spec
 
 DEMO = Path(__file__).resolve().parents[2] / "demo_tiles"
@@ -21,7 +22,7 @@ def audited(client, root: Path, out: Path, baseline: Path | None = None) -> tupl
     with get_task_stream(client) as stream:
         doc = run_job(job_spec.resolve(spec, base_dir=root), out, client=client, baseline=baseline)
     keys = {str(t["key"]) for t in stream.data if str(t["key"]).startswith("audit-tile-")}
-    return doc, sorted({k.removeprefix("audit-tile-").rsplit("-", 1)[0] for k in keys})
+    return doc, sorted({t for k in keys for t in tiles_of_key(k)})
 
 
 def assert_close(a: object, b: object, path: str = "") -> None:

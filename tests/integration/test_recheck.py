@@ -18,6 +18,7 @@ from rasterio.warp import transform_bounds
 from shapely.geometry import box
 
 from demaudit.service.run.runner import run_job
+from demaudit.service.run.tile_tasks import tiles_of_key
 from demaudit.workers import spec as job_spec
 
 DEMO = Path(__file__).resolve().parents[2] / "demo_tiles"
@@ -36,13 +37,7 @@ def audited(
         doc = run_job(job_of(root, spec_name), out, client=client, baseline=baseline)
     keys = {str(t["key"]) for t in stream.data}
     doc["_shift_estimates"] = sum(k.startswith("estimate_tile_shift") for k in keys)
-    tiles = sorted(
-        {
-            k.removeprefix("audit-tile-").rsplit("-", 1)[0]
-            for k in keys
-            if k.startswith("audit-tile-")
-        }
-    )
+    tiles = sorted({t for k in keys if k.startswith("audit-tile-") for t in tiles_of_key(k)})
     return doc, tiles
 
 

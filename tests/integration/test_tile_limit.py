@@ -1,5 +1,6 @@
 """A tile that hangs on a live worker: the job ends with that tile failed for the time limit,
-the other tiles computed and the statistics without it (real LocalCluster, run_job)."""
+the other tiles (one of them in the hung tile's task) computed and the statistics without it
+(real LocalCluster, run_job)."""
 
 from __future__ import annotations
 
@@ -11,7 +12,7 @@ from demaudit.service.run import tiles as tile_phase
 from demaudit.service.run.runner import run_job
 from demaudit.service.run.tile_limit import timeout_reason
 from demaudit.workers import spec as job_spec
-from demaudit.workers.tile.task import audit_and_store
+from demaudit.workers.tile.batch import TileCall, audit_tiles
 
 HUNG = "t_1_0"
 LIMIT_S = 5.0
@@ -20,16 +21,18 @@ LIMIT_S = 5.0
 def test_a_hung_tile_is_cancelled_and_the_job_goes_on(
     make_archive, dask_client, tmp_path, monkeypatch
 ):
-    def hangs_on_one_tile(tile: Any, *args: Any, **kwargs: Any) -> Any:
-        if tile.tile_id == HUNG:
+    def hangs_on_one_tile(calls: list[TileCall]) -> list[Any]:
+        if any(c.tile_id == HUNG for c in calls):
             time.sleep(600)  # as GDAL blocked on a hung network mount
-        return audit_and_store(tile, *args, **kwargs)
+        return audit_tiles(calls)
 
-    monkeypatch.setattr(tile_phase, "audit_and_store", hangs_on_one_tile)
+    monkeypatch.setattr(tile_phase, "audit_tiles", hangs_on_one_tile)
     root = make_archive(tiles=2, pixels=40)
     spec = job_spec.parse_spec(job_spec.load_spec_file(root / "job.yaml"))
     job = job_spec.resolve(spec, base_dir=root)
-    doc = run_job(job, tmp_path / "out", client=dask_client, tile_timeout_s=LIMIT_S)
+    doc = run_job(
+        job, tmp_path / "out", client=dask_client, tile_timeout_s=LIMIT_S, tiles_per_task=2
+    )  # the hung tile's task of two is cut short at 2 x LIMIT_S, then each runs alone
 
     tiles = {t["tile"]: t for t in doc["tiles"]}
     assert tiles[HUNG]["status"] == "failed"

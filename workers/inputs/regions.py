@@ -186,11 +186,14 @@ def to_crs(regions: Sequence[Region], crs: str, *, densify_m: float = 50.0) -> l
 
 
 def clip_to(regions: Sequence[Region], bounds: tuple[float, float, float, float]) -> list[Region]:
-    """The parts of regions (already in the bounds' CRS) inside bounds; regions outside dropped."""
+    """The parts of regions (already in the bounds' CRS) inside bounds; regions outside dropped.
+    A region that covers the bounds gives the bounds' box (no overlay: the same pixels)."""
     frame = box(*bounds)
     clipped = []
     for region in regions:
-        if region.geometry.intersects(frame):
+        if region.geometry.covers(frame):
+            clipped.append(replace(region, geometry=frame))
+        elif region.geometry.intersects(frame):
             part = region.geometry.intersection(frame)
             if not part.is_empty:
                 clipped.append(replace(region, geometry=part))

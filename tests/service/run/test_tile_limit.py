@@ -11,7 +11,7 @@ from distributed import as_completed
 
 from demaudit.service.run.cluster import JobClient
 from demaudit.service.run.tile_limit import TileClock, poll_interval, timeout_reason
-from demaudit.service.run.tiles import result_of, tile_of_key
+from demaudit.service.run.tile_tasks import TileTasks, tiles_of_key
 from demaudit.workers.tile.task import FAILED
 
 
@@ -49,7 +49,7 @@ class Scheduler:
 
 def test_the_reason_names_the_tile_and_the_limit():
     assert timeout_reason("t_0_1", 1800.0) == "tile t_0_1 did not finish within 1800 s; cancelled"
-    assert tile_of_key("audit-tile-t_0_1-abc123") == "t_0_1"
+    assert tiles_of_key("audit-tile-t_0_1-abc123") == ["t_0_1"]
     assert poll_interval(1800.0) == 10.0 and poll_interval(1.0) == 0.2
 
 
@@ -62,7 +62,7 @@ def test_only_tasks_running_past_the_limit_are_cancelled_and_their_worker_restar
             "audit-tile-other-job": ("tcp://b:1", 99.0),  # not this job's
         }
     )  # t2 and t3 wait in a queue: they have no running time
-    clock = TileClock(client, futures, 10.0, tile_of=tile_of_key)
+    clock = TileClock(client, futures, 10.0, tiles_of=tiles_of_key)
     assert clock.check() == ["audit-tile-t0-r"]
     assert client.cancelled == ["audit-tile-t0-r"] and client.restarted == [["tcp://a:1"]]
     assert clock.reason("audit-tile-t0-r") == timeout_reason("t0", 10.0)
@@ -71,8 +71,26 @@ def test_only_tasks_running_past_the_limit_are_cancelled_and_their_worker_restar
     assert clock.check() == [] and client.cancelled == ["audit-tile-t0-r"]
 
 
+def test_a_task_of_several_tiles_has_the_limit_once_per_tile():
+    futures = [Pending("audit-tile-a|b|c-r"), Pending("audit-tile-d-r")]
+    client = Scheduler(
+        {"audit-tile-a|b|c-r": ("tcp://a:1", 25.0), "audit-tile-d-r": ("tcp://a:1", 9.0)}
+    )
+    clock = TileClock(client, futures, 10.0, tiles_of=tiles_of_key)
+    assert clock.check() == []  # 25 s for three tiles: within 3 x 10 s
+    client.running["audit-tile-a|b|c-r"] = ("tcp://a:1", 31.0)
+    assert clock.check() == ["audit-tile-a|b|c-r"]
+    assert clock.reason("audit-tile-a|b|c-r") == timeout_reason("a, b, c", 30.0)
+    later = Pending("audit-tile-e-r")
+    clock.watch([later])  # tasks submitted after the clock started are watched too
+    client.running["audit-tile-e-r"] = ("tcp://b:1", 11.0)
+    assert clock.check() == ["audit-tile-e-r"] and client.restarted[-1] == ["tcp://b:1"]
+
+
 def test_a_timed_out_tile_is_failed_with_the_reason():
-    result = result_of(Pending("audit-tile-t_2_0-r"), timeout_reason("t_2_0", 5.0))  # type: ignore[arg-type]
+    tasks = TileTasks(lambda *a, **k: Pending(k["key"]), run_id="r", per_task=1)
+    tasks._tiles["audit-tile-t_2_0-r"] = ("t_2_0",)
+    [result] = tasks.results(Pending("audit-tile-t_2_0-r"), timeout_reason("t_2_0", 5.0))  # type: ignore[arg-type]
     assert (result.tile_id, result.status) == ("t_2_0", FAILED)
     assert result.reason == "tile t_2_0 did not finish within 5 s; cancelled"
 
@@ -93,7 +111,7 @@ def _run(client: Any, futures: list[Any], limit_s: float) -> tuple[dict[str, str
     the finished ones)."""
     cancelled: dict[str, str] = {}
     finished: set[str] = set()
-    with TileClock(client, futures, limit_s, tile_of=tile_of_key) as clock:
+    with TileClock(client, futures, limit_s, tiles_of=tiles_of_key) as clock:
         for future in as_completed(futures):
             reason = clock.reason(future.key)
             if reason is not None:

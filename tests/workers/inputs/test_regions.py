@@ -123,3 +123,25 @@ def test_latin1_bytes_in_json_are_refused_not_a_traceback(tmp_path: Path):
     path.write_bytes(text.encode("latin-1"))
     with pytest.raises(SpecError, match="regions.geojson is not UTF-8 text"):
         read_regions(path, id_property="code")
+
+
+@pytest.mark.parametrize(
+    "outline",
+    [
+        [(-50, -50), (150, -50), (150, 150), (-50, 150)],  # covers the grid: its box, no overlay
+        [(0, 0), (100, 0), (100, 100), (0, 100)],  # the grid's own outline: covers it too
+        [(-50, -50), (60, -50), (40, 150), (-50, 150)],  # part of the grid: the overlay
+        [(-50, -50), (150, -50), (150, 150), (-50, 150), (-50, -50), (20, 20), (70, 30), (30, 80)],
+    ],
+)
+def test_clipping_to_a_tile_keeps_the_pixels_of_the_region(outline: list) -> None:
+    from shapely.geometry import Polygon, box
+
+    from demaudit.workers.inputs.regions import Region, clip_to
+
+    ring = outline if len(outline) < 6 else None
+    geometry = Polygon(ring) if ring else Polygon(outline[:4], [outline[5:]])  # with a hole
+    region = Region("R", "R", geometry, GRID.crs)
+    [clipped] = clip_to([region], GRID.bounds)
+    np.testing.assert_array_equal(region_mask(clipped, GRID), region_mask(region, GRID))
+    assert clipped.geometry.equals(geometry.intersection(box(*GRID.bounds)))
