@@ -3,6 +3,7 @@ the job totals it continues), and the carry-over of the kept tiles' stored resul
 
 from __future__ import annotations
 
+from collections.abc import Mapping
 from dataclasses import dataclass, replace
 
 from demaudit.service.run.checkpoints import earlier_heights
@@ -120,14 +121,16 @@ def _refusal(prior: Baseline, scan: Scan) -> str:
     return ""
 
 
-def carry_over(reuse: Reuse, store: ResultsStore, summaries: TileSummaryStore) -> None:
+def carry_over(
+    reuse: Reuse, store: ResultsStore, summaries: TileSummaryStore, order: Mapping[str, int]
+) -> None:
     """Bring the kept tiles' stored summaries and overview blocks over from the baseline
-    (linked, not read)."""
+    (linked, not read); ``order``: each test tile's place in this run's listing (overlaps)."""
     prior, change = reuse.baseline, reuse.change
     assert prior is not None and change is not None
     tiles = prior.tiles
     summaries.link_from(prior.zarr, [t for t in change.reuse if tiles[t].status == OK])
     keep = {t: list(b) for t in change.reuse if (b := tiles[t].bounds)}
     gone = [*change.recompute, *change.removed]
-    blank = [list(b) for t in gone if t in tiles and (b := tiles[t].bounds)]
-    store.carry_overview(prior.zarr, keep, blank)
+    blank = {t: list(b) for t in gone if t in tiles and (b := tiles[t].bounds)}
+    store.carry_overview(prior.zarr, keep, blank, order)

@@ -214,7 +214,8 @@ class _Run:
         records = unaudited_records(catalog, raster=self.raster)
         to_compute = to_audit(catalog, reuse, raster=self.raster)
         if reuse.active:
-            records |= self.carry_over(reuse, outputs, totals)
+            order = {t.tile_id: i for i, t in enumerate(catalog.tests)}
+            records |= self.carry_over(reuse, outputs, totals, order)
         records |= run_tiles(
             self.client,
             to_compute,
@@ -233,12 +234,15 @@ class _Run:
         self.clock.mark("job_totals")
         return TilePhase(by_tile(records), totals, outputs)
 
-    def carry_over(self, reuse: Reuse, outputs: Outputs, totals: Totals) -> dict[str, TileRecord]:
-        """Bring the kept tiles' results (and error samples) over from the baseline."""
+    def carry_over(
+        self, reuse: Reuse, outputs: Outputs, totals: Totals, order: dict[str, int]
+    ) -> dict[str, TileRecord]:
+        """Bring the kept tiles' results (and error samples) over from the baseline; ``order``:
+        each test tile's place in the listing."""
         assert reuse.baseline is not None and reuse.change is not None
         if not reuse.change.reuse:
             return {}
-        carry_over(reuse, outputs.store, outputs.summaries)
+        carry_over(reuse, outputs.store, outputs.summaries, order)
         kept = reuse.kept_records()
         if outputs.samples is not None:
             ok = [t for t, record in kept.items() if record.status == OK]

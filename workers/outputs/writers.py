@@ -199,10 +199,15 @@ class ResultsStore:
         self,
         baseline: Path,
         keep: Mapping[str, Sequence[float]],
-        blank: Sequence[Sequence[float]],
+        blank: Mapping[str, Sequence[float]],
+        order: Mapping[str, int] | None = None,
     ) -> None:
         """Bring over the overview blocks of the tiles in keep (tile id -> bounds) from an
-        earlier results.zarr; blank the footprints in blank (tiles recomputed or gone).
+        earlier results.zarr; blank the footprints in blank (tile id -> bounds: tiles recomputed
+        or gone). Where footprints overlap, the first-listed tile (``order``: each test tile's
+        place in this run's listing; a tile missing from it is gone) holds the pixels: a kept
+        tile keeps its values where it comes first, a recomputed tile's strip is blank for its
+        new block (tile_overlaps' rule).
 
         When both overviews share one grid, the chunk files are linked (or copied) wholesale and
         only the blanked footprints are written: the cost does not grow with the tiles kept.
@@ -217,6 +222,7 @@ class ResultsStore:
             return
         new = self._overview()
         x, y = overview_axes(self.layout)
+        kept_first, blank_first = _overlaps_by_owner(keep, blank, order or {})
         if (
             old.shape == new.shape
             and old.chunks == new.chunks
@@ -231,16 +237,15 @@ class ResultsStore:
                     dirs_exist_ok=True,
                     copy_function=link_or_copy,
                 )
-            for bounds in blank:
-                rows, cols = _window(x, y, bounds)
-                if rows.stop > rows.start and cols.stop > cols.start:
-                    new[rows, cols] = np.nan
+            for bounds in blank.values():
+                _fill(new, x, y, bounds, None)
+            for bounds in kept_first:  # the kept tile holds these: its values back
+                _fill(new, x, y, bounds, (old, old_x, old_y))
             return
         for bounds in keep.values():
-            old_rows, old_cols = _window(old_x, old_y, bounds)
-            rows, cols = _window(x, y, bounds)
-            if rows.stop > rows.start and cols.stop > cols.start:
-                new[rows, cols] = old[old_rows, old_cols]
+            _fill(new, x, y, bounds, (old, old_x, old_y))
+        for bounds in blank_first:  # the recomputed tile holds these: blank for its new block
+            _fill(new, x, y, bounds, None)
 
     def _overview(self) -> Any:
         if self._overview_array is None:
@@ -298,6 +303,47 @@ def overview_carries(layout: OverviewLayout | None, baseline: Path) -> bool:
         return False
     cols, rows = (x[0] - (c + a / 2)) / a, (y[0] - (f + e / 2)) / e
     return bool(np.isclose(cols, round(cols)) and np.isclose(rows, round(rows)))
+
+
+def _overlaps_by_owner(
+    keep: Mapping[str, Sequence[float]],
+    blank: Mapping[str, Sequence[float]],
+    order: Mapping[str, int],
+) -> tuple[list[Bounds], list[Bounds]]:
+    """The overlaps of kept and blanked footprints: those where the kept tile is listed first
+    (it holds them), and those where the blanked one is (a tile gone is listed last)."""
+    kept_first: list[Bounds] = []
+    blank_first: list[Bounds] = []
+    for gone, g in blank.items():
+        for kept, k in keep.items():
+            common = (max(g[0], k[0]), max(g[1], k[1]), min(g[2], k[2]), min(g[3], k[3]))
+            if common[0] >= common[2] or common[1] >= common[3]:
+                continue
+            first = order.get(kept, math.inf) < order.get(gone, math.inf)
+            (kept_first if first else blank_first).append(common)
+    return kept_first, blank_first
+
+
+Bounds = tuple[float, float, float, float]
+
+
+def _fill(
+    new: Any,
+    x: NDArray[np.float64],
+    y: NDArray[np.float64],
+    bounds: Sequence[float],
+    source: tuple[Any, NDArray[np.float64], NDArray[np.float64]] | None,
+) -> None:
+    """Set the overview cells inside bounds from source (array, its x, its y), or NaN."""
+    rows, cols = _window(x, y, bounds)
+    if rows.stop <= rows.start or cols.stop <= cols.start:
+        return
+    if source is None:
+        new[rows, cols] = np.nan
+        return
+    old, old_x, old_y = source
+    old_rows, old_cols = _window(old_x, old_y, bounds)
+    new[rows, cols] = old[old_rows, old_cols]
 
 
 def _window(

@@ -59,7 +59,7 @@ def test_carried_overview_equals_writing_every_block(tmp_path, same_grid):
     new_values = dict(values) | {"t10": 42.0}
     keep = {k: b for k, b in bounds.items() if k != "t10"}
     store = build(tmp_path / "night", now, {})
-    store.carry_overview(tmp_path / "base" / "results.zarr", keep, [bounds["t10"]])
+    store.carry_overview(tmp_path / "base" / "results.zarr", keep, {"t10": bounds["t10"]})
     store.write_overview("t10", np.full((PIXELS // 4, PIXELS // 4), 42.0, np.float32))
     store.finish()
     build(tmp_path / "fresh", now, new_values).finish()
@@ -73,10 +73,62 @@ def test_a_tile_gone_or_failed_is_blank_not_stale(tmp_path):
     build(tmp_path / "base", grid, {t.tile_id: 1.0 for t in grid}).finish()
     store = build(tmp_path / "night", grid, {})
     keep = {t.tile_id: list(t.bounds) for t in grid[1:]}
-    store.carry_overview(tmp_path / "base" / "results.zarr", keep, [list(grid[0].bounds)])
+    store.carry_overview(tmp_path / "base" / "results.zarr", keep, {"t00": list(grid[0].bounds)})
     store.finish()
     block = overview(tmp_path / "night")[: PIXELS // 4, : PIXELS // 4]
     assert np.isnan(block).all() and np.nansum(overview(tmp_path / "night")) > 0
+
+
+def overlapping(shift_cols: int, *, third: bool = False) -> list[TileInfo]:
+    """Two tiles side by side, the second shifted left over the first by shift_cols pixels
+    (and a third below the first, touching neither, when asked)."""
+    lefts = [(0.0, 0.0), ((PIXELS - shift_cols) * SIZE, 0.0)] + ([(0.0, -PIXELS * SIZE)] * third)
+    out = []
+    for i, (left, top) in enumerate(lefts):
+        grid = Grid(UTM, (SIZE, 0.0, left, 0.0, -SIZE, top), PIXELS, PIXELS)  # type: ignore[arg-type]
+        out.append(TileInfo(f"t{i}0", "/dev/null", grid, None, "float32", 0, ""))
+    return out
+
+
+def block_of(value: float, nan_cols: slice | None = None) -> np.ndarray:
+    block = np.full((PIXELS // 4, PIXELS // 4), value, np.float32)
+    if nan_cols is not None:
+        block[:, nan_cols] = np.nan  # pixels counted by the first-listed tile: left out
+    return block
+
+
+@pytest.mark.parametrize("same_grid", [True, False])
+@pytest.mark.parametrize("recomputed", ["t00", "t10"])
+def test_a_recheck_keeps_the_overlap_of_the_first_listed_tile(tmp_path, recomputed, same_grid):
+    """Tiles overlapping by 8 pixels (2 overview cells): the overlap is the first-listed tile's
+    (t00's). Re-checking either tile gives the map a fresh run would draw, also when t00's new
+    block has a void in the overlap (and when a new tile changes the overview's grid)."""
+    grid = overlapping(8)
+    now = grid if same_grid else overlapping(8, third=True)
+    overlap = slice(0, 2)  # t10's first two overview columns lie over t00
+    void = slice(PIXELS // 4 - 1, PIXELS // 4)  # t00's last column: inside the overlap
+    first = {"t00": block_of(1.0), "t10": block_of(2.0, overlap)}
+    again = dict(first) | {recomputed: block_of(5.0, overlap if recomputed == "t10" else void)}
+    new_tiles = {} if same_grid else {"t20": block_of(7.0)}
+    order = {"t00": 0, "t10": 1, "t20": 2}
+
+    def run(folder, tiles_now, blocks, carry=None):
+        store = ResultsStore(tmp_path / folder, overview_layout(tiles_now, factor=4))
+        if carry is not None:
+            keep = {t.tile_id: list(t.bounds) for t in grid if t.tile_id != recomputed}
+            gone = {recomputed: list(next(t for t in grid if t.tile_id == recomputed).bounds)}
+            store.carry_overview(carry, keep, gone, order)
+        for tile_id in blocks:  # the first-listed tile last: the harder arrival order
+            store.write_overview(tile_id, blocks[tile_id])
+        store.finish()
+        return overview(tmp_path / folder)
+
+    run("base", grid, {"t10": first["t10"], "t00": first["t00"]})
+    base = tmp_path / "base" / "results.zarr"
+    night = run("night", now, {recomputed: again[recomputed], **new_tiles}, carry=base)
+    fresh = run("fresh", now, {"t10": again["t10"], "t00": again["t00"], **new_tiles})
+    assert np.array_equal(night, fresh, equal_nan=True)
+    assert np.nanmin(night) == (1.0 if recomputed == "t10" else 2.0)  # the kept tile's values
 
 
 def test_tables_open_consolidated_and_summaries_stay_out_of_it(tmp_path):
