@@ -31,6 +31,7 @@ from demaudit.workers.outputs.layout import (
     partial_store,
 )
 from demaudit.workers.outputs.overview_block import OverviewTarget, write_block
+from demaudit.workers.outputs.overview_carry import fill_cells, overlaps_by_owner
 from demaudit.workers.stats.summary import STAT_KEYS
 
 
@@ -222,7 +223,7 @@ class ResultsStore:
             return
         new = self._overview()
         x, y = overview_axes(self.layout)
-        kept_first, blank_first = _overlaps_by_owner(keep, blank, order or {})
+        kept_first, blank_first = overlaps_by_owner(keep, blank, order or {})
         if (
             old.shape == new.shape
             and old.chunks == new.chunks
@@ -238,14 +239,14 @@ class ResultsStore:
                     copy_function=link_or_copy,
                 )
             for bounds in blank.values():
-                _fill(new, x, y, bounds, None)
+                fill_cells(new, x, y, bounds, None)
             for bounds in kept_first:  # the kept tile holds these: its values back
-                _fill(new, x, y, bounds, (old, old_x, old_y))
+                fill_cells(new, x, y, bounds, (old, old_x, old_y))
             return
         for bounds in keep.values():
-            _fill(new, x, y, bounds, (old, old_x, old_y))
+            fill_cells(new, x, y, bounds, (old, old_x, old_y))
         for bounds in blank_first:  # the recomputed tile holds these: blank for its new block
-            _fill(new, x, y, bounds, None)
+            fill_cells(new, x, y, bounds, None)
 
     def _overview(self) -> Any:
         if self._overview_array is None:
@@ -303,59 +304,6 @@ def overview_carries(layout: OverviewLayout | None, baseline: Path) -> bool:
         return False
     cols, rows = (x[0] - (c + a / 2)) / a, (y[0] - (f + e / 2)) / e
     return bool(np.isclose(cols, round(cols)) and np.isclose(rows, round(rows)))
-
-
-def _overlaps_by_owner(
-    keep: Mapping[str, Sequence[float]],
-    blank: Mapping[str, Sequence[float]],
-    order: Mapping[str, int],
-) -> tuple[list[Bounds], list[Bounds]]:
-    """The overlaps of kept and blanked footprints: those where the kept tile is listed first
-    (it holds them), and those where the blanked one is (a tile gone is listed last)."""
-    kept_first: list[Bounds] = []
-    blank_first: list[Bounds] = []
-    for gone, g in blank.items():
-        for kept, k in keep.items():
-            common = (max(g[0], k[0]), max(g[1], k[1]), min(g[2], k[2]), min(g[3], k[3]))
-            if common[0] >= common[2] or common[1] >= common[3]:
-                continue
-            first = order.get(kept, math.inf) < order.get(gone, math.inf)
-            (kept_first if first else blank_first).append(common)
-    return kept_first, blank_first
-
-
-Bounds = tuple[float, float, float, float]
-
-
-def _fill(
-    new: Any,
-    x: NDArray[np.float64],
-    y: NDArray[np.float64],
-    bounds: Sequence[float],
-    source: tuple[Any, NDArray[np.float64], NDArray[np.float64]] | None,
-) -> None:
-    """Set the overview cells inside bounds from source (array, its x, its y), or NaN."""
-    rows, cols = _window(x, y, bounds)
-    if rows.stop <= rows.start or cols.stop <= cols.start:
-        return
-    if source is None:
-        new[rows, cols] = np.nan
-        return
-    old, old_x, old_y = source
-    old_rows, old_cols = _window(old_x, old_y, bounds)
-    new[rows, cols] = old[old_rows, old_cols]
-
-
-def _window(
-    x: NDArray[np.float64], y: NDArray[np.float64], bounds: Sequence[float]
-) -> tuple[slice, slice]:
-    """Rows and columns of the overview cells whose centres lie inside bounds."""
-    left, bottom, right, top = bounds
-    cols = np.flatnonzero((x > left) & (x < right))
-    rows = np.flatnonzero((y > bottom) & (y < top))
-    if cols.size == 0 or rows.size == 0:
-        return slice(0, 0), slice(0, 0)
-    return slice(int(rows[0]), int(rows[-1]) + 1), slice(int(cols[0]), int(cols[-1]) + 1)
 
 
 def _affine(t: tuple[float, ...]):  # type: ignore[no-untyped-def]
