@@ -29,6 +29,7 @@ __all__ = [
     "MAX_TILES_PER_TASK",
     "TASKS_PER_WORKER",
     "TileTasks",
+    "submitter",
     "task_key",
     "tiles_of_key",
     "tiles_per_task",
@@ -105,6 +106,7 @@ class TileTasks:
             timed_out = clock.reason(future.key) if clock is not None else None
             if timed_out is not None and len(self.tiles(future.key)) > 1:
                 alone = self.split(future)
+                future.release()
                 if clock is not None:
                     clock.watch(alone)
                 for again in alone:
