@@ -8,9 +8,11 @@ name their tiles, and what a task's outcome means for each of its tiles.
       split: one task per tile again ◄── the time limit cut the task short (only the hung
                                           tile then fails; the others are audited anew)
 
-Batches stay small (at most MAX_TILES_PER_TASK, and about TASKS_PER_WORKER tasks per worker
-thread) so that the work still spreads evenly over the workers. The tile ids in a key are for
-people, task streams and tests (tiles_of_key); the runner keeps its own map from key to tiles.
+Batches stay small (at most MAX_TILES_PER_TASK, and at least TASKS_PER_WORKER tasks per worker
+thread) so that the work still spreads evenly over the workers and the progress a person follows
+on the job page moves in small steps; a small job keeps one tile per task. The tile ids in a key
+are for people, task streams and tests (tiles_of_key); the runner keeps its own map from key to
+tiles.
 """
 
 from __future__ import annotations
@@ -20,7 +22,6 @@ from typing import Any
 
 from distributed import Future, as_completed
 
-from demaudit.service.run.scan import batch_size
 from demaudit.service.run.tile_limit import TileClock
 from demaudit.workers.tile.batch import TileCall, audit_tiles
 from demaudit.workers.tile.records import FAILED, TileResult
@@ -37,17 +38,16 @@ __all__ = [
 
 KEY_PREFIX = "audit-tile-"
 _SEPARATOR = "|"
-#: Most tiles in one task, and about how many tasks each worker thread gets (measured on the
+#: Most tiles in one task, and the fewest tasks each worker thread gets (measured on the
 #: 2-core machine: benchmarks/RESULTS.md, issue 13).
 MAX_TILES_PER_TASK = 4
-TASKS_PER_WORKER = 8
+TASKS_PER_WORKER = 16
 
 
 def tiles_per_task(tiles: int, *, workers: int) -> int:
-    """How many tiles go in one task for a phase of ``tiles`` on ``workers`` worker threads."""
-    return batch_size(
-        tiles, workers=workers, per_worker=TASKS_PER_WORKER, largest=MAX_TILES_PER_TASK
-    )
+    """How many tiles go in one task for a phase of ``tiles`` on ``workers`` worker threads:
+    as many as leave every thread TASKS_PER_WORKER tasks, 1 to MAX_TILES_PER_TASK."""
+    return max(1, min(MAX_TILES_PER_TASK, tiles // (max(1, workers) * TASKS_PER_WORKER)))
 
 
 def task_key(tile_ids: Sequence[str], run_id: str) -> str:

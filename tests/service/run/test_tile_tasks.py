@@ -37,13 +37,13 @@ def calls(*ids: str) -> list[TileCall]:
     return [TileCall(t, ()) for t in ids]
 
 
-def test_tiles_per_task_keeps_about_eight_tasks_per_worker_and_at_most_four_tiles():
-    assert tiles_per_task(16, workers=2) == 1  # a small job: one tile per task as before
-    assert tiles_per_task(36, workers=2) == 3
-    assert tiles_per_task(64, workers=2) == 4
-    assert tiles_per_task(10_000, workers=2) == MAX_TILES_PER_TASK == 4
-    assert tiles_per_task(10_000, workers=400) == 4 and tiles_per_task(1_000, workers=400) == 1
-    assert tiles_per_task(0, workers=2) == 1
+def test_tiles_per_task_leaves_sixteen_tasks_per_worker_and_at_most_four_tiles():
+    assert tiles_per_task(16, workers=2) == 1  # a small job (the demo's 36 tiles too): as before
+    assert tiles_per_task(36, workers=2) == 1
+    assert tiles_per_task(64, workers=2) == 2
+    assert tiles_per_task(128, workers=2) == MAX_TILES_PER_TASK == 4
+    assert tiles_per_task(10_000, workers=2) == 4
+    assert tiles_per_task(10_000, workers=400) == 1 and tiles_per_task(0, workers=2) == 1
 
 
 def test_keys_name_their_tiles():
