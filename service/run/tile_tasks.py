@@ -18,7 +18,6 @@ tiles.
 from __future__ import annotations
 
 from collections.abc import Callable, Iterable, Iterator, Sequence
-from typing import Any
 
 from distributed import Future, as_completed
 
@@ -30,7 +29,6 @@ __all__ = [
     "MAX_TILES_PER_TASK",
     "TASKS_PER_WORKER",
     "TileTasks",
-    "submitter",
     "task_key",
     "tiles_of_key",
     "tiles_per_task",
@@ -135,6 +133,10 @@ class TileTasks:
         except Exception as exc:  # noqa: BLE001 - report, never lose the job
             reason = f"task failed on the cluster: {type(exc).__name__}: {exc}"
             return [TileResult(t, FAILED, reason) for t in tiles]
+        if [r.tile_id for r in results] != list(tiles):  # never a tile silently left out
+            got = ", ".join(r.tile_id for r in results) or "none"
+            reason = f"the task returned results for other tiles ({got})"
+            return [TileResult(t, FAILED, reason) for t in tiles]
         return results
 
     def _task(self, tile_ids: list[str], *, suffix: str = "") -> Future:
@@ -144,13 +146,3 @@ class TileTasks:
         future: Future = self._submit(self._function, calls, key=key, pure=False)
         self.futures.append(future)
         return future
-
-
-def submitter(client: Any, *, retries: int) -> Callable[..., Future]:
-    """client.submit with the phase's retries (a lost worker's task runs again)."""
-
-    def submit(*args: Any, **kwargs: Any) -> Future:
-        future: Future = client.submit(*args, retries=retries, **kwargs)
-        return future
-
-    return submit

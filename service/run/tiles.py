@@ -7,6 +7,7 @@ from __future__ import annotations
 from collections.abc import Callable, Mapping, Sequence
 from contextlib import ExitStack
 from dataclasses import dataclass, replace
+from functools import partial
 
 from distributed import Client, Future
 
@@ -14,7 +15,7 @@ from demaudit.service.run.coregistration import CorrectionEstimate
 from demaudit.service.run.reuse import Reuse
 from demaudit.service.run.scan import Catalog
 from demaudit.service.run.tile_limit import TileClock
-from demaudit.service.run.tile_tasks import TileTasks, submitter, tiles_per_task
+from demaudit.service.run.tile_tasks import TileTasks, tiles_per_task
 from demaudit.workers.errors import JobDismissedError
 from demaudit.workers.inputs import regions as region_ops
 from demaudit.workers.inputs.catalog import TileInfo
@@ -84,7 +85,7 @@ def run_tiles(
     per_task = dispatch.tiles_per_task
     if per_task is None:
         per_task = tiles_per_task(len(tiles), workers=max(1, sum(client.nthreads().values())))
-    submit = submitter(client, retries=dispatch.retries)
+    submit = partial(client.submit, retries=dispatch.retries)  # a lost worker's task runs again
     tasks = TileTasks(submit, run_id=dispatch.run_id, per_task=per_task, function=audit_tiles)
     futures = tasks.submit_all(_call(t, catalog, estimate, options, outputs) for t in tiles)
     with ExitStack() as stack:

@@ -82,6 +82,9 @@ def test_every_tile_of_a_lost_task_fails_with_the_cause_and_a_finished_task_give
     assert all(r.reason == "task failed on the cluster: RuntimeError: worker died" for r in failed)
     own = [TileResult("a", OK, None), TileResult("b", OK, None)]
     assert tasks.results(Done(future.key, own)) == own  # type: ignore[arg-type]
+    short = tasks.results(Done(future.key, own[:1]))  # type: ignore[arg-type]
+    assert [(r.tile_id, r.status) for r in short] == [("a", FAILED), ("b", FAILED)]
+    assert short[0].reason == "the task returned results for other tiles (a)"
 
 
 @pytest.mark.integration
