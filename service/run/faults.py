@@ -9,7 +9,10 @@ Recovery: each API process is a runner instance (``host:pid:random``, :func:`new
 written into every job it takes, with a lease in the job store that its dispatcher renews.
 :func:`recover_orphans` fails the unfinished jobs of instances that are gone (no lease, a lease
 that ran out, a process id on this host that no longer runs) and removes their partial outputs
-(:func:`remove_outputs`); a live neighbour sharing the store keeps its jobs.
+(:func:`remove_outputs`); a live neighbour sharing the store keeps its jobs. Tile tasks still
+running on the workers when a job ends may write into its partial folder once more: every
+recovery pass (each watchdog tick) also removes the partial folders of jobs that are over
+(:func:`sweep_partials`).
 """
 
 from __future__ import annotations
@@ -29,6 +32,7 @@ from demaudit.service.run.cluster import ClusterUnavailableError
 from demaudit.service.store.jobs import (
     ACCEPTED,
     FAILED,
+    FINISHED,
     RUNNING,
     JobRecord,
     JobStore,
@@ -36,7 +40,7 @@ from demaudit.service.store.jobs import (
     utc_now,
 )
 from demaudit.workers.errors import AuditError, OutputError, TileReadError
-from demaudit.workers.outputs.layout import leftover_patterns
+from demaudit.workers.outputs.layout import PARTIAL_SEPARATOR, leftover_patterns
 
 __all__ = [
     "CAUSES",
@@ -58,6 +62,7 @@ __all__ = [
     "recover_after_restart",
     "recover_orphans",
     "remove_outputs",
+    "sweep_partials",
 ]
 
 log = logging.getLogger("demaudit.jobs")
@@ -239,7 +244,33 @@ def recover_orphans(
             remove_outputs(results_dir, record.job_id)
         failed.append(record.job_id)
         log.warning("job marked failed: %s", reason, extra={"job_id": record.job_id})
+    if results_dir is not None:
+        sweep_partials(store, results_dir)
     return failed
+
+
+def sweep_partials(store: JobStore, results_dir: Path) -> list[Path]:
+    """Remove the ``<id>.partial-*`` folders of jobs that are over; return them. A job's tile
+    tasks that were running on the workers when its server process died (or when the job failed
+    or was dismissed) finish after its outputs were removed and may write their tile into the
+    partial folder again; the watchdog calls this every tick, so such a folder goes at the next.
+    Folders whose name is no job of the store (a CLI run's output, say) are left alone."""
+    results_dir = Path(results_dir)
+    try:
+        names = [entry.name for entry in os.scandir(results_dir) if entry.is_dir()]
+    except FileNotFoundError:
+        return []
+    removed: list[Path] = []
+    for name in names:
+        job_id, sep, _ = name.partition(PARTIAL_SEPARATOR)
+        if not sep:
+            continue
+        record = store.get(job_id)
+        if record is not None and record.status in FINISHED:
+            shutil.rmtree(results_dir / name, ignore_errors=True)
+            removed.append(results_dir / name)
+            log.warning("removed a partial folder written after its job ended: %s", name)
+    return removed
 
 
 def recover_after_restart(

@@ -66,6 +66,8 @@ EXECUTION_FOLDER = ".execution"
 
 _PARTIAL = ".partial"
 _REPLACED = ".replaced"
+#: What separates a partial folder's target name from its run id.
+PARTIAL_SEPARATOR = f"{_PARTIAL}-"
 
 
 def partial_folder(target: Path, run_id: str) -> Path:

@@ -267,6 +267,36 @@ def test_recovery_fails_orphans_removes_their_partial_outputs_and_spares_a_live_
     assert left == sorted(f"{j.job_id}.partial-{j.job_id}" for j in (live, mine))
 
 
+def test_a_partial_folder_written_again_after_its_job_ended_goes_at_the_next_pass(
+    make_store, tmp_path
+):
+    store = make_store()
+    results = tmp_path / "results"
+    dead = record(1, RUNNING, runner_instance="dead")
+    live = record(2, RUNNING, runner_instance="live")
+    done = record(3, SUCCESSFUL, runner_instance="live")
+    for job in (dead, live, done):
+        store.add(job)
+    store.renew_lease(lease("live", host="far", pid=1, minutes=10))
+    store.renew_lease(lease("dead", host="far", pid=1, minutes=-1))
+    assert recover_orphans(store, results_dir=results, instance="me", now=T0) == [dead.job_id]
+
+    # a tile task of the dead run finishes after the removal and writes its tile again
+    late = results / f"{dead.job_id}.partial-{dead.job_id}" / "results.zarr" / "tile_summaries"
+    late.mkdir(parents=True)
+    kept = [
+        results / f"{live.job_id}.partial-{live.job_id}",  # still running
+        results / "nightly.partial-20261203",  # no job of the store: a CLI run's output
+        results / dead.job_id,  # not a partial folder
+    ]
+    for folder in kept:
+        folder.mkdir()
+    (results / f"{done.job_id}.partial-x").mkdir()
+
+    assert recover_orphans(store, results_dir=results, instance="me", now=T0) == []
+    assert sorted(results.iterdir()) == sorted(kept)
+
+
 def test_another_runner_of_this_same_process_is_alive():
     sibling = new_instance_id()  # e.g. a second app in one test process
     leases = {sibling: lease(sibling, host=HOST, pid=PID)}
