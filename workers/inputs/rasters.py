@@ -22,6 +22,7 @@ from rasterio.windows import Window
 from demaudit.workers.errors import DataRootError, ImplausibleHeightsError, TileReadError
 from demaudit.workers.inputs.catalog import TileInfo
 from demaudit.workers.inputs.confine import open_confined
+from demaudit.workers.inputs.tiff_blocks import read_band
 from demaudit.workers.spec import METRES_PER_UNIT
 from demaudit.workers.tile import kernels
 from demaudit.workers.tile.grid import Grid
@@ -264,12 +265,21 @@ def _read_band(tile: TileInfo, what: str, window: Window | None) -> NDArray[np.g
     except OSError as exc:
         raise TileReadError(f"{what} {tile.tile_id} cannot be read: {exc.strerror}") from None
     with opened:
+        shape = (tile.grid.height, tile.grid.width)
+        fast = read_band(opened.fd, shape, None if window is None else _pixels(window))
+        if fast is not None:  # the common layouts, without GDAL (workers/inputs/tiff_blocks.py)
+            return fast
         try:
             with opened.raster() as src:
                 return src.read(1, window=window)  # type: ignore[no-any-return]
         except (RasterioError, OSError) as exc:
             reason = opened.clean(str(exc))
             raise TileReadError(f"{what} {tile.tile_id} cannot be read: {reason}") from None
+
+
+def _pixels(window: Window) -> tuple[int, int, int, int]:
+    """window as (row offset, column offset, rows, columns)."""
+    return int(window.row_off), int(window.col_off), int(window.height), int(window.width)
 
 
 def _is_whole(value: float, tol: float = 1e-6) -> bool:

@@ -1,0 +1,197 @@
+"""Reading bands without GDAL (workers/inputs/tiff_blocks.py), held to GDAL itself: files that
+GDAL writes in every covered layout must read to the same bits as rasterio reads them (GDAL is
+the reference library here), windows included; files outside the fast path, and damaged files,
+must be left to GDAL (None), never read to other values."""
+
+from __future__ import annotations
+
+import os
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+import rasterio
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+from rasterio.transform import from_origin
+
+from demaudit.workers.inputs.tiff_blocks import block_layout, read_band, undo_float_predictor
+from demaudit.workers.tile import kernels
+
+pytestmark = pytest.mark.skipif(not kernels.AVAILABLE, reason="the fast path needs numba")
+
+SHAPE = (45, 37)  # neither a multiple of 16 nor of the strips' heights
+
+
+def _values(dtype: str, rng: np.random.Generator) -> np.ndarray:
+    if np.dtype(dtype).kind == "f":
+        data = rng.normal(350.0, 80.0, SHAPE).astype(dtype)
+        data[3, 4], data[10, :5] = np.nan, -9999.0  # nodata codes and NaN travel bit for bit
+        return data
+    info = np.iinfo(dtype)
+    return rng.integers(info.min, info.max, SHAPE, endpoint=True).astype(dtype)
+
+
+def _write(path: Path, data: np.ndarray, **options: Any) -> Path:
+    profile = {
+        "driver": "GTiff",
+        "height": data.shape[0],
+        "width": data.shape[1],
+        "count": 1,
+        "dtype": str(data.dtype),
+        "crs": "EPSG:32632",
+        "transform": from_origin(480_000.0, 6_190_000.0, 5.0, 5.0),
+    }
+    with rasterio.open(path, "w", **(profile | options)) as dst:
+        dst.write(data, 1)
+    return path
+
+
+def _gdal(path: Path, window: tuple[int, int, int, int] | None = None) -> np.ndarray:
+    with rasterio.open(path) as src:
+        if window is None:
+            return src.read(1)
+        r, c, h, w = window
+        return src.read(1, window=((r, r + h), (c, c + w)))
+
+
+def _fast(path: Path, window: tuple[int, int, int, int] | None = None) -> np.ndarray | None:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        return read_band(fd, SHAPE, window)
+    finally:
+        os.close(fd)
+
+
+def _same_bits(a: np.ndarray, b: np.ndarray) -> bool:
+    return a.dtype == b.dtype and a.shape == b.shape and a.tobytes() == b.tobytes()
+
+
+LAYOUTS = [
+    {"tiled": True, "blockxsize": 16, "blockysize": 16},
+    {"tiled": True, "blockxsize": 32, "blockysize": 48},
+    {"blockysize": 1},
+    {"blockysize": 7},
+    {},  # GDAL's default strips
+    {"tiled": True, "blockxsize": 16, "blockysize": 16, "BIGTIFF": "YES"},
+]
+CODINGS = [
+    ("uint8", {}),
+    ("int8", {"compress": "deflate", "predictor": 2}),
+    ("int16", {"compress": "deflate", "predictor": 2}),
+    ("uint16", {"compress": "deflate"}),
+    ("int32", {"compress": "deflate", "predictor": 2}),
+    ("uint32", {}),
+    ("float32", {"compress": "deflate", "predictor": 3}),
+    ("float32", {"compress": "deflate", "predictor": 3, "zlevel": 1}),
+    ("float32", {"compress": "deflate"}),
+    ("float32", {}),
+    ("float64", {"compress": "deflate", "predictor": 3}),
+    ("float64", {"compress": "deflate", "predictor": 2}),
+]
+
+
+@pytest.mark.parametrize("layout", LAYOUTS, ids=lambda o: "-".join(f"{k}{v}" for k, v in o.items()))
+@pytest.mark.parametrize("dtype,coding", CODINGS, ids=lambda x: str(x))
+def test_gdal_s_files_read_to_gdal_s_bits(tmp_path, dtype, coding, layout):
+    data = _values(dtype, np.random.default_rng(7))
+    path = _write(tmp_path / "t.tif", data, **coding, **layout)
+    fast = _fast(path)
+    assert fast is not None, "a covered layout must not fall back to GDAL"
+    assert _same_bits(fast, _gdal(path))
+    for window in [(0, 0, 1, 1), (44, 36, 1, 1), (5, 3, 20, 30), (0, 17, 45, 20), (31, 0, 14, 37)]:
+        assert _same_bits(_fast(path, window), _gdal(path, window)), window
+
+
+@settings(
+    max_examples=60, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
+@given(
+    r=st.integers(0, SHAPE[0] - 1),
+    c=st.integers(0, SHAPE[1] - 1),
+    h=st.integers(1, SHAPE[0]),
+    w=st.integers(1, SHAPE[1]),
+)
+def test_any_window_reads_as_gdal_reads_it(tmp_path, r, c, h, w):
+    h, w = min(h, SHAPE[0] - r), min(w, SHAPE[1] - c)
+    path = tmp_path / "w.tif"
+    if not path.exists():
+        options = {"compress": "deflate", "predictor": 3, "tiled": True, "blockxsize": 16}
+        _write(path, _values("float32", np.random.default_rng(3)), blockysize=16, **options)
+    assert _same_bits(_fast(path, (r, c, h, w)), _gdal(path, (r, c, h, w)))
+
+
+@pytest.mark.parametrize(
+    "options",
+    [
+        {"compress": "lzw", "predictor": 3},
+        {"compress": "zstd"},
+        {"ENDIANNESS": "BIG"},
+        {"compress": "deflate", "predictor": 3, "ENDIANNESS": "BIG"},
+    ],
+    ids=str,
+)
+def test_layouts_outside_the_fast_path_are_left_to_gdal(tmp_path, options):
+    path = _write(tmp_path / "o.tif", _values("float32", np.random.default_rng(1)), **options)
+    assert _fast(path) is None
+
+
+def test_two_bands_a_sparse_file_and_another_size_are_left_to_gdal(tmp_path):
+    data = _values("float32", np.random.default_rng(2))
+    two = tmp_path / "two.tif"
+    with rasterio.open(
+        two, "w", driver="GTiff", height=SHAPE[0], width=SHAPE[1], count=2, dtype="float32"
+    ) as dst:
+        dst.write(np.stack([data, data]))
+    assert _fast(two) is None
+    sparse = tmp_path / "sparse.tif"
+    with rasterio.open(
+        sparse, "w", driver="GTiff", height=SHAPE[0], width=SHAPE[1], count=1, dtype="float32",
+        tiled=True, blockxsize=16, blockysize=16, SPARSE_OK="TRUE", nodata=-9999.0,
+    ) as dst:  # fmt: skip
+        dst.write(data[:16, :16], 1, window=((0, 16), (0, 16)))  # the other blocks never written
+    assert _fast(sparse) is None
+    assert _fast(sparse, (0, 0, 16, 16)) is not None  # a window of written blocks only
+    fd = os.open(_write(tmp_path / "n.tif", data), os.O_RDONLY)
+    try:
+        assert read_band(fd, (SHAPE[0] + 1, SHAPE[1])) is None  # not the size the catalog saw
+        assert read_band(fd, SHAPE, (40, 0, 10, 5)) is None  # a window beyond the band
+    finally:
+        os.close(fd)
+
+
+def test_damaged_files_are_left_to_gdal(tmp_path):
+    data = _values("float32", np.random.default_rng(4))
+    options = {"compress": "deflate", "predictor": 3, "tiled": True}
+    path = _write(tmp_path / "d.tif", data, blockxsize=16, blockysize=16, **options)
+    raw = bytearray(path.read_bytes())
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        layout = block_layout(fd)
+    finally:
+        os.close(fd)
+    offset, count = int(layout.offsets[4]), int(layout.counts[4])
+    garbled = raw.copy()
+    garbled[offset + 2 : offset + count] = bytes(range(256)) * ((count - 2) // 256) + bytes(
+        (count - 2) % 256
+    )
+    (tmp_path / "garbled.tif").write_bytes(garbled)
+    (tmp_path / "short.tif").write_bytes(raw[: offset + count // 2])
+    (tmp_path / "header.tif").write_bytes(raw[:10])
+    for name in ("garbled.tif", "short.tif", "header.tif"):
+        assert _fast(tmp_path / name) is None, name
+
+
+@pytest.mark.parametrize("nb", [4, 8])
+def test_compiled_float_predictor_matches_its_numpy_twin(nb):
+    rng = np.random.default_rng(nb)
+    bw, rows = 24, 9
+    raw = rng.integers(0, 256, rows * nb * bw, dtype=np.uint8).tobytes()
+    whole = undo_float_predictor(raw, nb, bw)
+    out = np.zeros((rows + 2, bw + 3), dtype=f"=u{nb}")
+    kernels.float_predictor_sweep(np.frombuffer(raw, np.uint8), nb, bw, rows, bw, out, 1, 2)
+    assert np.array_equal(out[1 : rows + 1, 2 : bw + 2], whole)
+    part = np.zeros((4, 7), dtype=f"=u{nb}")
+    kernels.float_predictor_sweep(np.frombuffer(raw, np.uint8), nb, bw, 4, 7, part, 0, 0)
+    assert np.array_equal(part, whole[:4, :7])
