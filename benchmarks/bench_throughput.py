@@ -25,6 +25,9 @@ back to back, so that both see a similar load from other processes):
 
 * ``decode``: rasterio reads every test tile and every reference tile that overlaps them, in 2
   processes, and computes nothing;
+* ``decode-own`` (same-grid archive only): the same files read by demaudit's own block decoder
+  (workers/inputs/tiff_blocks.py: libdeflate and a compiled predictor sweep, no GDAL), which the
+  workers use for such files; the ratio to it is what demaudit adds to its own reads;
 * ``decode+warp`` (reprojected archive only): per test tile, read it and warp the overlapping
   reference tiles onto its grid with GDAL (rasterio.warp.reproject, bilinear), in 2 processes;
 * ``naive``: a script a user writes in an afternoon: per test tile (2 processes) read both (and
@@ -86,6 +89,7 @@ from throughput_archives import (  # noqa: E402
 )
 from throughput_report import Run, machine_facts, phases, report  # noqa: E402
 
+from demaudit.workers.inputs.tiff_blocks import block_layout, read_band  # noqa: E402
 from demaudit.workers.tile.datum import DEFAULT_GRID_DIRS  # noqa: E402
 
 SAMPLE_S = 0.05
@@ -108,6 +112,19 @@ def _read(path: str) -> np.ndarray:
 def _decode_one(path: str) -> int:
     with rasterio.open(path) as src:
         return int(src.read(1).size)
+
+
+def _decode_own_one(path: str) -> int:
+    """Read as demaudit's workers read a tile of a covered layout: its own block decoder."""
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        layout = block_layout(fd)
+        band = read_band(fd, (layout.height, layout.width))
+    finally:
+        os.close(fd)
+    if band is None:
+        raise SystemExit(f"{path}: not a layout demaudit reads without GDAL")
+    return int(band.size)
 
 
 def _warped_reference(test_path: str, references: Sequence[str]) -> np.ndarray:
@@ -188,9 +205,10 @@ def run_contender(name: str, plan_path: Path) -> None:
     pairs = [(t, list(r)) for t, r in plan_data["pairs"]]
     spawn = multiprocessing.get_context("spawn")
     with spawn.Pool(WORKERS) as pool:
-        if name == "decode":
+        if name in ("decode", "decode-own"):
             files = [t for t, _ in pairs] + sorted({r for _, refs in pairs for r in refs})
-            for _ in pool.imap_unordered(_decode_one, files):
+            one = _decode_one if name == "decode" else _decode_own_one
+            for _ in pool.imap_unordered(one, files):
                 pass
         elif name == "decode+warp":
             for _ in pool.imap_unordered(_decode_warp_one, pairs):
@@ -288,7 +306,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     )
     parser.add_argument(
         "--contenders",
-        help="comma-separated subset of decode,decode+warp,naive,demaudit-w2,demaudit-w1 "
+        help="comma-separated subset of decode,decode-own,decode+warp,naive,demaudit-w2,"
+        "demaudit-w1 "
         "(default all; leave naive out for large sizes: it holds every dh in memory)",
     )
     parser.add_argument("--contender", help=argparse.SUPPRESS)
@@ -313,6 +332,8 @@ def main(argv: Sequence[str] | None = None) -> int:
     for kind in args.archives.split(","):
         folder = ensure_archive(args.cache, kind, big, pixels)
         contenders = ["decode", "naive", "demaudit-w2", "demaudit-w1"]
+        if kind == SAME_GRID:
+            contenders.insert(1, "decode-own")
         if kind == REPROJECTED:
             contenders.insert(1, "decode+warp")
         if args.contenders:

@@ -183,6 +183,10 @@ def report(
     return "\n".join(lines)
 
 
+#: In the order the tables list them.
+CONTENDERS = ("decode", "decode-own", "decode+warp", "naive", "demaudit-w2", "demaudit-w1")
+
+
 def contender_table(runs: Sequence[Run]) -> list[str]:
     """One row per archive and contender: marginal throughput, peaks, every run's seconds and
     the 1-minute load average at its end."""
@@ -191,7 +195,7 @@ def contender_table(runs: Sequence[Run]) -> list[str]:
         f"{'peak MiB small -> large':>26}   {'seconds small / large (load 1 min)'}"
     ]
     for kind in (SAME_GRID, REPROJECTED):
-        for contender in ("decode", "decode+warp", "naive", "demaudit-w2", "demaudit-w1"):
+        for contender in CONTENDERS:
             mine = sorted(
                 (r for r in runs if r.contender == contender and r.kind == kind),
                 key=lambda r: r.size,
@@ -217,6 +221,9 @@ def ratio_lines(runs: Sequence[Run]) -> list[str]:
         parts = [f"{kind}:"]
         if d2 and lim:
             parts.append(f"demaudit/{limit} {d2.mpix_s / lim.mpix_s:.2f}")
+        own = marginal(runs, "decode-own", kind) if kind == SAME_GRID else None
+        if d2 and own:
+            parts.append(f"demaudit/decode-own {d2.mpix_s / own.mpix_s:.2f}")
         if d2 and naive:
             parts.append(f"demaudit/naive {d2.mpix_s / naive.mpix_s:.2f}")
         if d2 and d1:

@@ -3,7 +3,7 @@
 GDAL (through libtiff) spends most of a DEFLATE float32 tile's read outside the inflate itself:
 undoing the floating-point predictor byte by byte, its block cache and copies. Here the blocks are
 inflated by libdeflate (the ``deflate`` package) straight into the band, and the predictor undone
-by one compiled sweep (workers/tile/kernels.py); benchmarks/RESULTS.md has the measured cost.
+by one compiled sweep (workers/inputs/tiff_kernels.py); benchmarks/RESULTS.md has the measured cost.
 
 Covered ("the fast path"):
 
@@ -30,6 +30,7 @@ from importlib.util import find_spec
 import numpy as np
 from numpy.typing import NDArray
 
+from demaudit.workers.inputs import tiff_kernels
 from demaudit.workers.tile import kernels
 
 __all__ = ["BlockLayout", "UncoveredLayoutError", "block_layout", "read_band", "read_window"]
@@ -251,13 +252,12 @@ def _decode_into(
     nb, bw = layout.dtype.itemsize, layout.block_width
     dest = out[target[0] : target[0] + rows[1] - rows[0], target[1] : target[1] + cols[1] - cols[0]]
     if layout.predictor == 3:
-        as_bytes = np.frombuffer(raw, dtype=np.uint8)
+        as_bytes, sweep = np.frombuffer(raw, dtype=np.uint8), tiff_kernels.float_predictor_sweep
         if rows[0] == 0 and cols[0] == 0:  # straight into out (every block of a whole band)
-            unsigned = out.view(f"=u{nb}")
-            kernels.float_predictor_sweep(as_bytes, nb, bw, rows[1], cols[1], unsigned, *target)
+            sweep(as_bytes, nb, bw, rows[1], cols[1], out.view(f"=u{nb}"), *target)
             return
         scratch = np.empty((rows[1], cols[1]), dtype=f"=u{nb}")  # a window's edge cuts it
-        kernels.float_predictor_sweep(as_bytes, nb, bw, rows[1], cols[1], scratch, 0, 0)
+        sweep(as_bytes, nb, bw, rows[1], cols[1], scratch, 0, 0)
         dest[...] = scratch[rows[0] :, cols[0] :].view(dest.dtype)
         return
     block = np.frombuffer(raw, dtype=layout.dtype).reshape(-1, bw)[rows[0] : rows[1]]

@@ -16,6 +16,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from rasterio.transform import from_origin
 
+from demaudit.workers.inputs import tiff_kernels
 from demaudit.workers.inputs.tiff_blocks import block_layout, read_band, undo_float_predictor
 from demaudit.workers.tile import kernels
 
@@ -190,8 +191,8 @@ def test_compiled_float_predictor_matches_its_numpy_twin(nb):
     raw = rng.integers(0, 256, rows * nb * bw, dtype=np.uint8).tobytes()
     whole = undo_float_predictor(raw, nb, bw)
     out = np.zeros((rows + 2, bw + 3), dtype=f"=u{nb}")
-    kernels.float_predictor_sweep(np.frombuffer(raw, np.uint8), nb, bw, rows, bw, out, 1, 2)
+    tiff_kernels.float_predictor_sweep(np.frombuffer(raw, np.uint8), nb, bw, rows, bw, out, 1, 2)
     assert np.array_equal(out[1 : rows + 1, 2 : bw + 2], whole)
     part = np.zeros((4, 7), dtype=f"=u{nb}")
-    kernels.float_predictor_sweep(np.frombuffer(raw, np.uint8), nb, bw, 4, 7, part, 0, 0)
+    tiff_kernels.float_predictor_sweep(np.frombuffer(raw, np.uint8), nb, bw, 4, 7, part, 0, 0)
     assert np.array_equal(part, whole[:4, :7])
