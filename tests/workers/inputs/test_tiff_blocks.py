@@ -14,6 +14,7 @@ import pytest
 import rasterio
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from rasterio.shutil import copy as rio_copy
 from rasterio.transform import from_origin
 
 from demaudit.workers.inputs import tiff_kernels
@@ -196,3 +197,23 @@ def test_compiled_float_predictor_matches_its_numpy_twin(nb):
     part = np.zeros((4, 7), dtype=f"=u{nb}")
     tiff_kernels.float_predictor_sweep(np.frombuffer(raw, np.uint8), nb, bw, 4, 7, part, 0, 0)
     assert np.array_equal(part, whole[:4, :7])
+
+
+@pytest.mark.parametrize("predictor", ["FLOATING_POINT", "NO"])
+def test_cloud_optimised_geotiffs_with_overviews_and_block_leaders_read_to_gdal_s_bits(
+    tmp_path, predictor
+):
+    # GDAL's COG driver puts the overviews' directories first, a 4-byte size before each block
+    # and the last 4 bytes again after it: the first directory's offsets still point at the data
+    data = _values("float32", np.random.default_rng(5))
+    plain = _write(tmp_path / "plain.tif", data, nodata=-9999.0)
+    cog = tmp_path / "cog.tif"
+    rio_copy(
+        plain, cog, driver="COG", COMPRESS="DEFLATE", PREDICTOR=predictor, BLOCKSIZE=16,
+        OVERVIEW_COUNT=2,
+    )  # fmt: skip
+    with rasterio.open(cog) as src:
+        assert src.overviews(1), "the file must have overviews for this test to mean anything"
+    fast = _fast(cog)
+    assert fast is not None and _same_bits(fast, _gdal(cog))
+    assert _same_bits(_fast(cog, (7, 9, 20, 21)), _gdal(cog, (7, 9, 20, 21)))
