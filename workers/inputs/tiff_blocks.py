@@ -69,6 +69,7 @@ class BlockLayout:
     predictor: int
     offsets: NDArray[np.uint64]
     counts: NDArray[np.uint64]
+    tiled: bool = True
 
     @property
     def blocks_across(self) -> int:
@@ -77,7 +78,7 @@ class BlockLayout:
     def block_rows(self, row: int) -> int:
         """Rows a decoded block of block row ``row`` holds: a tile is always whole; the last
         strip stops at the band's last row."""
-        if self.block_width != self.width:  # tiles
+        if self.tiled:
             return self.block_height
         return min(self.block_height, self.height - row * self.block_height)
 
@@ -119,6 +120,7 @@ def block_layout(fd: int) -> BlockLayout:
         or (compression != 1 and not _INFLATE)
         or predictor not in (1, 2, 3)
         or (predictor == 3 and kind != "f")
+        or (predictor != 1 and compression == 1)  # libtiff ignores a predictor there
     ):
         raise UncoveredLayoutError("not a layout read without GDAL")
     if 322 in tags:
@@ -135,7 +137,7 @@ def block_layout(fd: int) -> BlockLayout:
     dtype = np.dtype(f"<{kind}{int(bits[0]) // 8}")
     return BlockLayout(
         width, height, block_width, block_height, dtype, compression, predictor,
-        offsets.astype(np.uint64), counts.astype(np.uint64),
+        offsets.astype(np.uint64), counts.astype(np.uint64), tiled=322 in tags,
     )  # fmt: skip
 
 

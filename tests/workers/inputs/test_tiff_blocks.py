@@ -18,7 +18,12 @@ from rasterio.shutil import copy as rio_copy
 from rasterio.transform import from_origin
 
 from demaudit.workers.inputs import tiff_kernels
-from demaudit.workers.inputs.tiff_blocks import block_layout, read_band, undo_float_predictor
+from demaudit.workers.inputs.tiff_blocks import (
+    _first_directory,
+    block_layout,
+    read_band,
+    undo_float_predictor,
+)
 from demaudit.workers.tile import kernels
 
 pytestmark = pytest.mark.skipif(not kernels.AVAILABLE, reason="the fast path needs numba")
@@ -217,3 +222,45 @@ def test_cloud_optimised_geotiffs_with_overviews_and_block_leaders_read_to_gdal_
     fast = _fast(cog)
     assert fast is not None and _same_bits(fast, _gdal(cog))
     assert _same_bits(_fast(cog, (7, 9, 20, 21)), _gdal(cog, (7, 9, 20, 21)))
+
+
+def test_tiles_as_wide_as_the_band_are_tiles_not_strips(tmp_path):
+    # 48-px wide band in 48 x 16 tiles: the last tile row is whole in the file, not cut
+    data = np.random.default_rng(6).normal(0.0, 9.0, (45, 48)).astype("float32")
+    for coding in ({}, {"compress": "deflate", "predictor": 3}):
+        blocks = {"tiled": True, "blockxsize": 48, "blockysize": 16}
+        path = _write(tmp_path / "wide.tif", data, **blocks, **coding)
+        fd = os.open(path, os.O_RDONLY)
+        try:
+            fast = read_band(fd, data.shape)
+        finally:
+            os.close(fd)
+        assert fast is not None and _same_bits(fast, _gdal(path)), coding
+
+
+def test_a_predictor_tag_on_an_uncompressed_file_is_left_to_gdal(tmp_path):
+    # libtiff applies a predictor only with a codec that has one: without compression the tag
+    # is ignored, and undoing it here would change every value. Planar configuration (284, 1)
+    # is rewritten as Predictor (317) = 2 in the file's one directory.
+    data = np.random.default_rng(8).integers(-500, 500, SHAPE).astype("int16")
+    path = _write(tmp_path / "p.tif", data)
+    raw = bytearray(path.read_bytes())
+    ifd = int.from_bytes(raw[4:8], "little")
+    for i in range(int.from_bytes(raw[ifd : ifd + 2], "little")):
+        at = ifd + 2 + 12 * i
+        if int.from_bytes(raw[at : at + 2], "little") == 284:
+            raw[at : at + 2] = (317).to_bytes(2, "little")
+            raw[at + 8 : at + 10] = (2).to_bytes(2, "little")
+    path.write_bytes(bytes(raw))
+    assert block_layout_predictor(path) == 2  # the rewrite took
+    fast = _fast(path)
+    assert fast is None or _same_bits(fast, _gdal(path))
+    assert _same_bits(_gdal(path), data)  # GDAL ignores the tag
+
+
+def block_layout_predictor(path: Path) -> int:
+    fd = os.open(path, os.O_RDONLY)
+    try:
+        return int.from_bytes(_first_directory(fd)[317][2][:2], "little")
+    finally:
+        os.close(fd)
