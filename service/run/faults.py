@@ -257,15 +257,19 @@ def sweep_partials(store: JobStore, results_dir: Path) -> list[Path]:
     Folders whose name is no job of the store (a CLI run's output, say) are left alone."""
     results_dir = Path(results_dir)
     try:
-        names = [entry.name for entry in os.scandir(results_dir) if entry.is_dir()]
-    except FileNotFoundError:
+        names = [e.name for e in os.scandir(results_dir) if e.is_dir(follow_symlinks=False)]
+    except OSError as exc:  # missing or unreadable: nothing to sweep now, said once a tick
+        log.warning("partial folders not swept: %s", exc.strerror)
         return []
     removed: list[Path] = []
     for name in names:
         job_id, sep, _ = name.partition(PARTIAL_SEPARATOR)
         if not sep:
             continue
-        record = store.get(job_id)
+        try:
+            record = store.get(job_id)
+        except Exception:  # noqa: BLE001 - a name no job can have (not UTF-8, say): not ours
+            continue
         if record is not None and record.status in FINISHED:
             shutil.rmtree(results_dir / name, ignore_errors=True)
             removed.append(results_dir / name)

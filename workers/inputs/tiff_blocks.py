@@ -43,6 +43,7 @@ _DEFLATE_CODES = (8, 32946)
 _INTEGER_TYPES = {1: "u1", 3: "u2", 4: "u4", 16: "u8", 6: "i1", 8: "i2", 9: "i4", 17: "i8"}
 _TYPE_SIZES = {1: 1, 2: 1, 3: 2, 4: 4, 5: 8, 6: 1, 7: 1, 8: 2, 9: 4, 10: 8, 11: 4, 12: 8}
 _TYPE_SIZES |= {13: 4, 16: 8, 17: 8, 18: 8}
+_UNSIGNED = frozenset({1, 3, 4, 16})
 _SAMPLE_KINDS = {1: "u", 2: "i", 3: "f"}
 _MAX_ENTRIES = 4096
 #: TIFF (42) and BigTIFF (43): where the first directory's offset is and its format, the format of
@@ -67,9 +68,10 @@ class BlockLayout:
     dtype: np.dtype
     compression: int
     predictor: int
-    offsets: NDArray[np.uint64]
-    counts: NDArray[np.uint64]
+    offsets: NDArray[np.int64]
+    counts: NDArray[np.int64]
     tiled: bool = True
+    file_size: int = 0
 
     @property
     def blocks_across(self) -> int:
@@ -94,8 +96,8 @@ def read_band(fd: int, shape: tuple[int, int], window: Window | None = None) -> 
         if (layout.height, layout.width) != shape:
             return None
         return read_window(fd, layout, window or (0, 0, shape[0], shape[1]))
-    except (ValueError, OSError, struct.error):  # UncoveredLayoutError is a ValueError
-        return None
+    except (ValueError, OSError, struct.error, OverflowError, MemoryError):
+        return None  # UncoveredLayoutError is a ValueError; the others from damaged tables
 
 
 # --- the first image's tags -------------------------------------------------------------------
@@ -104,14 +106,18 @@ def read_band(fd: int, shape: tuple[int, int], window: Window | None = None) -> 
 def block_layout(fd: int) -> BlockLayout:
     """The layout of the first image of the TIFF open at fd; UncoveredLayoutError when outside
     the fast path."""
-    tags = _first_directory(fd)
-    width, height = _scalar(tags, 256), _scalar(tags, 257)
-    bits = _values(tags, 258, default=1)
-    kind = _SAMPLE_KINDS.get(int(_values(tags, 339, default=1)[0]))
-    compression, predictor = _scalar(tags, 259, 1), _scalar(tags, 317, 1)
+    tags = _Directory(fd)
+    width, height = tags.scalar(256), tags.scalar(257)
+    bits = tags.values(258, default=1)
+    kind = _SAMPLE_KINDS.get(int(tags.values(339, default=1)[0]))
+    compression, predictor = tags.scalar(259, 1), tags.scalar(317, 1)
     if (
-        _scalar(tags, 254, 0) != 0  # a reduced image or a mask
-        or _scalar(tags, 277, 1) != 1  # more than one sample per pixel
+        tags.scalar(254, 0) != 0  # a reduced image or a mask
+        or tags.scalar(277, 1) != 1  # more than one sample per pixel
+        or tags.scalar(266, 1) != 1  # bits of each byte reversed
+        or tags.scalar(284, 1) not in (1, 2)
+        or tags.scalar(262, 1) == 6  # YCbCr: GDAL refuses one sample of it
+        or 338 in tags  # extra samples
         or len(set(bits.tolist())) != 1
         or int(bits[0]) not in (8, 16, 32, 64)
         or kind is None
@@ -123,12 +129,13 @@ def block_layout(fd: int) -> BlockLayout:
         or (predictor != 1 and compression == 1)  # libtiff ignores a predictor there
     ):
         raise UncoveredLayoutError("not a layout read without GDAL")
-    if 322 in tags:
-        block_width, block_height = _scalar(tags, 322), _scalar(tags, 323)
-        offsets, counts = _values(tags, 324), _values(tags, 325)
+    tiled = 322 in tags
+    if tiled:
+        block_width, block_height = tags.scalar(322), tags.scalar(323)
+        offsets, counts = tags.values(324, unsigned=True), tags.values(325, unsigned=True)
     else:
-        block_width, block_height = width, min(_scalar(tags, 278, height), height)
-        offsets, counts = _values(tags, 273), _values(tags, 279)
+        block_width, block_height = width, min(tags.scalar(278, height), height)
+        offsets, counts = tags.values(273, unsigned=True), tags.values(279, unsigned=True)
     if min(width, height, block_width, block_height) <= 0:
         raise UncoveredLayoutError("empty image or blocks")
     blocks = -(-width // block_width) * -(-height // block_height)
@@ -137,58 +144,76 @@ def block_layout(fd: int) -> BlockLayout:
     dtype = np.dtype(f"<{kind}{int(bits[0]) // 8}")
     return BlockLayout(
         width, height, block_width, block_height, dtype, compression, predictor,
-        offsets.astype(np.uint64), counts.astype(np.uint64), tiled=322 in tags,
+        offsets, counts, tiled=tiled, file_size=tags.file_size,
     )  # fmt: skip
 
 
-def _first_directory(fd: int) -> dict[int, tuple[int, int, bytes]]:
-    """Tag -> (type, count, value field) of the first image file directory."""
-    header = _pread(fd, 16, 0)
-    if header[:2] != b"II":
-        raise UncoveredLayoutError("not a little-endian TIFF")
-    magic = struct.unpack_from("<H", header, 2)[0]
-    if magic not in _HEADERS or (magic == 43 and struct.unpack_from("<HH", header, 4) != (8, 0)):
-        raise UncoveredLayoutError("not a TIFF")
-    offset_at, offset_format, count_format, entry_format = _HEADERS[magic]
-    where = struct.unpack_from(offset_format, header, offset_at)[0]
-    entry_size = struct.calcsize(entry_format)
-    count_size = struct.calcsize(count_format)
-    n = struct.unpack(count_format, _pread(fd, count_size, where))[0]
-    if not 0 < n <= _MAX_ENTRIES:
-        raise UncoveredLayoutError("implausible directory")
-    table = _pread(fd, n * entry_size, where + count_size)
-    tags: dict[int, tuple[int, int, bytes]] = {}
-    for i in range(n):
-        tag, kind, count, field = struct.unpack_from(entry_format, table, i * entry_size)
-        size = _TYPE_SIZES.get(kind, 0) * count
-        if size <= len(field):
-            data = field[:size]
-        else:
-            data = _pread(fd, size, struct.unpack(offset_format, field)[0])
-        tags[tag] = (kind, count, data)
-    return tags
+class _Directory:
+    """The first image file directory of the TIFF open at fd: each tag's type, count and value
+    field; a value stored elsewhere in the file is read only when asked for. A tag listed twice
+    (libtiff keeps the first, a dict the last) leaves the file to GDAL."""
+
+    def __init__(self, fd: int) -> None:
+        self.fd, self.file_size = fd, os.fstat(fd).st_size
+        header = self.read(16, 0)
+        magic = struct.unpack_from("<H", header, 2)[0]
+        if header[:2] != b"II" or magic not in _HEADERS:
+            raise UncoveredLayoutError("not a little-endian TIFF")
+        if magic == 43 and struct.unpack_from("<HH", header, 4) != (8, 0):
+            raise UncoveredLayoutError("not a BigTIFF")
+        offset_at, self.offset_format, count_format, entry_format = _HEADERS[magic]
+        where = struct.unpack_from(self.offset_format, header, offset_at)[0]
+        entry_size, count_size = struct.calcsize(entry_format), struct.calcsize(count_format)
+        n = struct.unpack(count_format, self.read(count_size, where))[0]
+        if not 0 < n <= _MAX_ENTRIES:
+            raise UncoveredLayoutError("implausible directory")
+        table = self.read(n * entry_size, where + count_size)
+        self.entries: dict[int, tuple[int, int, bytes]] = {}
+        for i in range(n):
+            tag, kind, count, field = struct.unpack_from(entry_format, table, i * entry_size)
+            if tag in self.entries:
+                raise UncoveredLayoutError(f"TIFF tag {tag} listed twice")
+            self.entries[tag] = (kind, count, field)
+
+    def __contains__(self, tag: int) -> bool:
+        return tag in self.entries
+
+    def values(
+        self, tag: int, *, default: int | None = None, unsigned: bool = False
+    ) -> NDArray[np.int64]:
+        """The tag's integers (``default`` alone when it is missing and a default is given)."""
+        if tag not in self.entries:
+            if default is None:
+                raise UncoveredLayoutError(f"TIFF tag {tag} missing")
+            return np.array([default], dtype=np.int64)
+        kind, count, field = self.entries[tag]
+        if kind not in _INTEGER_TYPES or count == 0 or (unsigned and kind not in _UNSIGNED):
+            raise UncoveredLayoutError(f"TIFF tag {tag} is not of an integer type it may have")
+        size = _TYPE_SIZES[kind] * count
+        data = field[:size] if size <= len(field) else self.read(size, self._offset(field))
+        values = np.frombuffer(data, dtype=np.dtype(_INTEGER_TYPES[kind]).newbyteorder("<"))
+        if kind == 16 and values.size and int(values.max()) >= 2**62:
+            raise UncoveredLayoutError(f"TIFF tag {tag} points beyond any file")
+        return values.astype(np.int64)
+
+    def scalar(self, tag: int, default: int | None = None) -> int:
+        """The tag's one integer (a count other than one leaves the file to GDAL)."""
+        if tag in self.entries and self.entries[tag][1] != 1:
+            raise UncoveredLayoutError(f"TIFF tag {tag} holds {self.entries[tag][1]} values")
+        return int(self.values(tag, default=default)[0])
+
+    def read(self, size: int, offset: int) -> bytes:
+        return _pread(self.fd, size, offset, self.file_size)
+
+    def _offset(self, field: bytes) -> int:
+        return int(struct.unpack(self.offset_format, field)[0])
 
 
-def _values(
-    tags: dict[int, tuple[int, int, bytes]], tag: int, *, default: int | None = None
-) -> NDArray[np.int64]:
-    if tag not in tags:
-        if default is None:
-            raise UncoveredLayoutError(f"TIFF tag {tag} missing")
-        return np.array([default], dtype=np.int64)
-    kind, count, data = tags[tag]
-    if kind not in _INTEGER_TYPES or count == 0:
-        raise UncoveredLayoutError(f"TIFF tag {tag} is not an integer")
-    return np.frombuffer(data, dtype=np.dtype(_INTEGER_TYPES[kind]).newbyteorder("<")).astype(
-        np.int64
-    )
-
-
-def _scalar(tags: dict[int, tuple[int, int, bytes]], tag: int, default: int | None = None) -> int:
-    return int(_values(tags, tag, default=default)[0])
-
-
-def _pread(fd: int, size: int, offset: int) -> bytes:
+def _pread(fd: int, size: int, offset: int, file_size: int) -> bytes:
+    """size bytes at offset; UncoveredLayoutError when they do not all lie in the file (checked
+    before reading: a damaged count never asks for more memory than the file holds)."""
+    if offset < 0 or size < 0 or offset + size > file_size:
+        raise UncoveredLayoutError("the file ends inside its own tables")
     data = os.pread(fd, size, offset)
     if len(data) != size:
         raise UncoveredLayoutError("the file ends inside its own tables")
@@ -229,11 +254,11 @@ def _block_bytes(fd: int, layout: BlockLayout, index: int, block_rows: int) -> b
     if layout.compression == 1:
         if count < size:
             raise UncoveredLayoutError("short block")
-        return _pread(fd, size, offset)
+        return _pread(fd, size, offset, layout.file_size)
     import deflate
 
     try:
-        raw = deflate.zlib_decompress(_pread(fd, count, offset), size)
+        raw = deflate.zlib_decompress(_pread(fd, count, offset, layout.file_size), size)
     except deflate.DeflateError as exc:
         raise UncoveredLayoutError(f"block {index} does not inflate: {exc}") from None
     if len(raw) != size:

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as dt
+import os
 import sqlite3
 from collections.abc import Callable, Iterator
 from pathlib import Path
@@ -17,6 +18,7 @@ from demaudit.service.run.faults import (
     new_instance_id,
     orphan_reason,
     recover_orphans,
+    sweep_partials,
 )
 from demaudit.service.store.jobs import (
     ACCEPTED,
@@ -295,6 +297,16 @@ def test_a_partial_folder_written_again_after_its_job_ended_goes_at_the_next_pas
 
     assert recover_orphans(store, results_dir=results, instance="me", now=T0) == []
     assert sorted(results.iterdir()) == sorted(kept)
+
+
+def test_a_folder_name_no_job_can_have_is_left_alone(make_store, tmp_path):
+    store = make_store()
+    results = tmp_path / "results"
+    odd = os.fsdecode(b"\xff.partial-1")  # not UTF-8: the SQLite store cannot even look it up
+    (results / odd).mkdir(parents=True)
+    assert recover_orphans(store, results_dir=results, instance="me", now=T0) == []
+    assert sweep_partials(store, tmp_path / "missing") == []
+    assert [p.name for p in results.iterdir()] == [odd]
 
 
 def test_another_runner_of_this_same_process_is_alive():

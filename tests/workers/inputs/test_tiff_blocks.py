@@ -6,6 +6,7 @@ must be left to GDAL (None), never read to other values."""
 from __future__ import annotations
 
 import os
+import struct
 from pathlib import Path
 from typing import Any
 
@@ -19,7 +20,7 @@ from rasterio.transform import from_origin
 
 from demaudit.workers.inputs import tiff_kernels
 from demaudit.workers.inputs.tiff_blocks import (
-    _first_directory,
+    _Directory,
     block_layout,
     read_band,
     undo_float_predictor,
@@ -261,6 +262,58 @@ def test_a_predictor_tag_on_an_uncompressed_file_is_left_to_gdal(tmp_path):
 def block_layout_predictor(path: Path) -> int:
     fd = os.open(path, os.O_RDONLY)
     try:
-        return int.from_bytes(_first_directory(fd)[317][2][:2], "little")
+        return int(_Directory(fd).scalar(317))
     finally:
         os.close(fd)
+
+
+def _rewrite_entry(path: Path, tag: int, entry: tuple[int, int, int, bytes]) -> None:
+    """Overwrite the directory entry of ``tag`` in a classic little-endian TIFF with entry =
+    (tag, type, count, 4-byte value field)."""
+    raw = bytearray(path.read_bytes())
+    ifd = struct.unpack_from("<I", raw, 4)[0]
+    for i in range(struct.unpack_from("<H", raw, ifd)[0]):
+        at = ifd + 2 + 12 * i
+        if struct.unpack_from("<H", raw, at)[0] == tag:
+            struct.pack_into("<HHI4s", raw, at, *entry)
+            path.write_bytes(bytes(raw))
+            return
+    raise AssertionError(f"tag {tag} not in the file")
+
+
+SHORT, LONG, SLONG, DOUBLE = 3, 4, 9, 12
+HAND_MADE = {
+    # libtiff reverses each byte's bits; the values would differ
+    "fill order 2": (284, (266, SHORT, 1, struct.pack("<HH", 2, 0))),
+    # a second SampleFormat (unsigned) before the real one (signed): libtiff keeps the first
+    "a tag listed twice": (284, (339, SHORT, 1, struct.pack("<HH", 1, 0))),
+    "YCbCr with one sample": (262, (262, SHORT, 1, struct.pack("<HH", 6, 0))),
+    "extra samples": (284, (338, SHORT, 1, struct.pack("<HH", 0, 0))),
+    "a width of two values": (256, (256, SHORT, 2, struct.pack("<HH", 37, 37))),
+    "negative strip offsets": (273, (273, SLONG, 1, struct.pack("<i", -1))),
+}
+
+
+@pytest.mark.parametrize("case", HAND_MADE, ids=str)
+def test_hand_made_directories_are_left_to_gdal(tmp_path, case):
+    # found by review: each made the reader return other values than GDAL, or raise
+    data = np.random.default_rng(9).integers(-500, 500, SHAPE).astype("int16")
+    path = _write(tmp_path / "h.tif", data, blockysize=SHAPE[0])  # one strip: one offset
+    tag, entry = HAND_MADE[case]
+    _rewrite_entry(path, tag, entry)
+    assert _fast(path) is None
+
+
+def test_a_damaged_count_never_asks_for_more_memory_than_the_file_holds(tmp_path):
+    # a tag the reader does not use, with 2**30 doubles "elsewhere in the file": GDAL reads the
+    # file; so does the reader, without reading that tag (it raised MemoryError before)
+    data = np.random.default_rng(10).integers(-500, 500, SHAPE).astype("int16")
+    path = _write(tmp_path / "m.tif", data)
+    _rewrite_entry(path, 284, (65000, DOUBLE, 2**30, struct.pack("<I", 8)))
+    fast = _fast(path)
+    assert fast is not None and _same_bits(fast, _gdal(path))
+    big = _write(tmp_path / "b.tif", data, BIGTIFF="YES")
+    raw = bytearray(big.read_bytes())
+    raw[8:16] = struct.pack("<Q", 2**63 + 5)  # the first directory beyond any file
+    big.write_bytes(bytes(raw))
+    assert _fast(big) is None
