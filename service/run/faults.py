@@ -258,7 +258,9 @@ def sweep_partials(store: JobStore, results_dir: Path) -> list[Path]:
     results_dir = Path(results_dir)
     try:
         names = [e.name for e in os.scandir(results_dir) if e.is_dir(follow_symlinks=False)]
-    except OSError as exc:  # missing or unreadable: nothing to sweep now, said once a tick
+    except FileNotFoundError:  # no job wrote anything yet
+        return []
+    except OSError as exc:  # unreadable: nothing to sweep now, said once a tick
         log.warning("partial folders not swept: %s", exc.strerror)
         return []
     removed: list[Path] = []

@@ -295,7 +295,7 @@ def _decode_into(
 
 
 def undo_float_predictor(raw: bytes | bytearray, nb: int, bw: int) -> NDArray:
-    """The numpy twin of kernels.float_predictor_sweep for a whole block: its samples as
+    """The numpy twin of tiff_kernels.float_predictor_sweep for a whole block: its samples as
     native unsigned ints of nb bytes (the tests hold the compiled sweep to it)."""
     planes = np.cumsum(np.frombuffer(raw, np.uint8).reshape(-1, nb * bw), axis=1, dtype=np.uint8)
     planes = planes.reshape(-1, nb, bw).transpose(0, 2, 1)  # per sample: most significant first
