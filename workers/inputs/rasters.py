@@ -247,6 +247,12 @@ def _paste(
     window = Window(c0 - tile_c0, r0 - tile_r0, c1 - c0, r1 - r0)  # type: ignore[call-arg]
     raw = _read_band(tile, "reference tile", window)
     target = out[r0:r1, c0:c1]
+    if empty and raw.dtype == out.dtype:
+        # voids set and values checked on the read block (contiguous: about 2.5x faster than on
+        # the part of out it fills), then one copy into out
+        block = _voids_to_nan(raw, (tile.nodata, nodata), out=cast("NDArray[np.floating]", raw))
+        target[...] = block
+        return block
     if empty:
         return _voids_to_nan(raw, (tile.nodata, nodata), out=target)
     block = _voids_to_nan(raw, (tile.nodata, nodata))

@@ -75,36 +75,54 @@ def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, 
 
 
 def _key_sweep(  # type: ignore[no-untyped-def]
-    dh, bits, bands, codes, patterns, sizes, binning, table, counters, keys, listed, unsure, out
+    dh,
+    bits,
+    bands,
+    codes,
+    patterns,
+    base,
+    sizes,
+    binning,
+    table,
+    counters,
+    keys,
+    listed,
+    unsure,
+    out,
 ):
-    """One sweep: each pixel's key (pattern * n_cells + class code * n_band_codes + band;
-    ``codes`` / ``patterns`` may be empty: 0; sizes = (n_band_codes, n_cells); key -1 for class
-    code 255 (excluded) and non-finite dh; ``patterns`` of one value only: every pixel has that
-    pattern), its cell's sum and extremes, and its bin: the linear bins (floor(v / width), as
-    bins.bin_index) on dense counters, tail bins by _tail_bin (``bits`` is dh as int64).
+    """One sweep: each pixel's key (pattern * n_cells + class code * n_band_codes + band +
+    base; ``codes`` / ``patterns`` None: 0, each compiled apart so the pixel loop carries no
+    test for them; sizes = (n_band_codes, n_cells)); key -1 for class code 255 (excluded) and
+    non-finite dh), its cell's sum and extremes, and its bin: the linear bins (floor(v / width),
+    as bins.bin_index) on dense counters, tail bins by _tail_bin (``bits`` is dh as int64).
     counters = (dense, sums, mins, maxs, tails); listed = (cell, bin) of tail values beyond the
     dense tail counters; ``unsure`` the indices of values _tail_bin cannot place (binned by the
     caller). out = (listed, unsure, finite excluded)."""
     dense, sums, mins, maxs, tails = counters
     linear_width, linear_limit, k_limit = binning[0], binning[1], int(binning[2])
     n_band_codes, n_cells = sizes[0], sizes[1]
-    with_codes, with_patterns = codes.size > 0, patterns.size > 1
-    base = patterns[0] * n_cells if patterns.size == 1 else 0
+    half = tails.shape[1] // 2
     n_listed, n_unsure, dropped = 0, 0, 0
     # the current cell's sum and extremes live in locals while neighbouring pixels share the
     # cell (the same additions in the same order as sums[c] += v, without a store per pixel)
     cell, total, low, high = -1, 0.0, 0.0, 0.0
     for i in range(dh.size):
         v = dh[i]
-        code = codes[i] if with_codes else 0
         finite = math.isfinite(v)
-        if code == 255 or not finite:
-            keys[i] = -1
-            if finite:
-                dropped += 1
-            continue
-        c = code * n_band_codes + bands[i] + base
-        if with_patterns:
+        if codes is None:
+            if not finite:
+                keys[i] = -1
+                continue
+            c = bands[i] + base
+        else:
+            code = codes[i]
+            if code == 255 or not finite:
+                keys[i] = -1
+                if finite:
+                    dropped += 1
+                continue
+            c = code * n_band_codes + bands[i] + base
+        if patterns is not None:
             c += patterns[i] * n_cells
         keys[i] = c
         if c != cell:
@@ -125,8 +143,8 @@ def _key_sweep(  # type: ignore[no-untyped-def]
         if j < 0:
             unsure[n_unsure] = i
             n_unsure += 1
-        elif j < tails.shape[1] // 2:
-            tails[c, j if v > 0 else tails.shape[1] // 2 + j] += 1
+        elif j < half:
+            tails[c, j if v > 0 else half + j] += 1
         else:
             listed[0][n_listed] = c
             listed[1][n_listed] = k_limit + j if v > 0 else -k_limit - 1 - j

@@ -252,9 +252,14 @@ def summarise_keyed(
     listed = (np.empty(x.size, dtype=np.int32), np.empty(x.size, dtype=np.int64))
     unsure = np.empty(x.size, dtype=np.intp)
     found = np.zeros(3, dtype=np.int64)
+    if patterns is None or isinstance(patterns, int):  # every pixel has the same pattern
+        pattern_grid, base = None, (patterns or 0) * n_cells
+    else:
+        pattern_grid, base = _flat(patterns, np.int32), 0
     kernels.key_sweep(
-        x, x.view(np.int64), _flat(bands, np.uint8), _flat(codes, np.uint8),
-        _pattern_array(patterns), np.array([n_band_codes, n_cells]), _BINNING, tail_table(),
+        x, x.view(np.int64), _flat(bands, np.uint8),
+        None if codes is None else _flat(codes, np.uint8), pattern_grid, base,
+        np.array([n_band_codes, n_cells]), _BINNING, tail_table(),
         counters, key, listed, unsure, found,
     )  # fmt: skip
     n_listed, n_unsure, dropped = (int(v) for v in found)
@@ -267,17 +272,8 @@ def summarise_keyed(
     return summaries, dropped
 
 
-def _pattern_array(patterns: NDArray[np.int32] | int | None) -> NDArray[np.generic]:
-    """Patterns for the sweep: one per pixel, or one value for all (an array of one)."""
-    if isinstance(patterns, int):
-        return np.array([patterns], dtype=np.int32)
-    return _flat(patterns, np.int32)  # one pixel: its one pattern reads the same either way
-
-
-def _flat(values: NDArray[np.generic] | None, dtype: type) -> NDArray[np.generic]:
-    """values as a contiguous 1-D array of dtype (an empty one for None)."""
-    if values is None:
-        return np.zeros(0, dtype=dtype)
+def _flat(values: NDArray[np.generic], dtype: type) -> NDArray[np.generic]:
+    """values as a contiguous 1-D array of dtype."""
     return np.ascontiguousarray(values, dtype=dtype).reshape(-1)
 
 

@@ -156,3 +156,22 @@ def test_mosaic_names_the_reference_tile(tmp_path: Path):
     assert np.count_nonzero(np.isnan(mosaic)) == 80
     raw, _ = read_mosaic(tiles, bounds, units=None, margin_px=0)  # land cover: not checked
     assert np.count_nonzero(raw == -9999.0) == 80
+
+
+@pytest.mark.parametrize(("dtype", "keep_float32"), [("float32", True), ("float64", False)])
+def test_the_first_tile_of_a_mosaic_is_checked_and_voided_as_read(
+    tmp_path: Path, dtype: str, keep_float32: bool
+):
+    # the first tile is voided and checked on its own block, then copied into the mosaic:
+    # the same values, margins, counts and refusal as for a tile pasted later
+    data = _terrain()
+    data[:, :4] = -9999.0
+    tiles = [scan_tile(_tif(tmp_path / "r_a.tif", data, dtype=dtype))]
+    bounds = (500_000.0, 6e6 - 100, 500_100.0, 6e6)
+    with pytest.raises(ImplausibleHeightsError, match="reference tile r_a: 80 of 400"):
+        read_mosaic(tiles, bounds, units="metre", keep_float32=keep_float32)
+    mosaic, _ = read_mosaic(tiles, bounds, units="metre", nodata=-9999.0, keep_float32=keep_float32)
+    assert mosaic.dtype == np.dtype(dtype) and mosaic.shape == (26, 26)  # a 3 px margin
+    expected = np.full((26, 26), np.nan)
+    expected[3:-3, 3:-3] = np.where(data == -9999.0, np.nan, data.astype(dtype))
+    np.testing.assert_array_equal(mosaic, expected)

@@ -45,18 +45,30 @@ def heavy_tails(seed: int, shape: tuple[int, int] = (120, 150)) -> np.ndarray:
 
 @pytest.mark.parametrize("seed", [0, 1])
 @pytest.mark.parametrize("tail_counters", [2_000_000, 600, 0])  # dense tails; few; none
+@pytest.mark.parametrize(
+    ("with_codes", "pattern_grid"), [(True, True), (False, True), (True, False), (False, False)]
+)  # the sweep is compiled apart for no land cover and for one pattern for every pixel
 def test_fused_sweep_equals_summarise_cells(
-    seed: int, tail_counters: int, monkeypatch: pytest.MonkeyPatch
+    seed: int,
+    tail_counters: int,
+    with_codes: bool,
+    pattern_grid: bool,
+    monkeypatch: pytest.MonkeyPatch,
 ) -> None:
     monkeypatch.setattr(keyed_summary, "MAX_TAIL_COUNTERS", tail_counters)
     dh = heavy_tails(seed)
     rng = np.random.default_rng(seed + 10)
     bands = rng.integers(0, 4, dh.shape).astype(np.uint8)
     codes = rng.choice(np.array([0, 1, 2, 255], dtype=np.uint8), dh.shape)  # 255: excluded
+    if not with_codes:
+        codes = np.zeros(dh.shape, np.uint8)
     patterns = rng.integers(0, 3, dh.shape).astype(np.int32)
+    if not pattern_grid:
+        patterns = np.full(dh.shape, 2, np.int32)
     n_cells = 3 * 4
     got = keyed_summary.summarise_keyed(
-        dh, bands=bands, codes=codes, patterns=patterns, n_band_codes=4, n_cells=n_cells,
+        dh, bands=bands, codes=codes if with_codes else None,
+        patterns=patterns if pattern_grid else 2, n_band_codes=4, n_cells=n_cells,
         n_patterns=3,
     )  # fmt: skip
     assert got is not None
