@@ -14,6 +14,9 @@ from collections.abc import Sequence
 import numpy as np
 from numpy.typing import NDArray
 
+from demaudit.workers.compiled import AVAILABLE
+from demaudit.workers.stats.kernels import add_into
+
 LINEAR_WIDTH_M = 2.0e-4
 LINEAR_LIMIT_M = 2.0
 RELATIVE_WIDTH = 1.0e-4
@@ -114,7 +117,10 @@ def added_parts(
         if rising and span <= _DENSE_SPAN:
             dense = np.zeros(span, dtype=np.int64)
             for b, c in present:
-                dense[b - low] += c  # bins distinct within one histogram: no index repeats
+                if AVAILABLE:
+                    add_into(dense, b, c, low)
+                else:
+                    dense[b - low] += c  # bins distinct within one histogram: no index repeats
             (nonzero,) = np.nonzero(dense)
             return (nonzero + low).astype(np.int64), dense[nonzero]
     if not present:

@@ -24,7 +24,9 @@ from typing import TYPE_CHECKING
 import numpy as np
 from numpy.typing import ArrayLike, NDArray
 
+from demaudit.workers.compiled import AVAILABLE
 from demaudit.workers.stats.bins import bin_edges
+from demaudit.workers.stats.kernels import abs_bisection
 
 if TYPE_CHECKING:
     from demaudit.workers.stats.summary import DhSummary
@@ -193,14 +195,34 @@ def abs_order_statistics(
     bins)."""
     layout = layout or layout_of(s)
     x, f = layout.knots
-    target = ranks + 0.5
+    target = np.asarray(ranks + 0.5, dtype=np.float64)
+    start = max(abs(s.maximum - center), abs(s.minimum - center)) * 1.000001
+    if AVAILABLE:  # the same steps compiled (kernels._abs_bisection): no numpy call per step
+        hi = np.empty(target.shape)
+        abs_bisection(x, f, float(center), target.reshape(-1), start, _STEPS, hi.reshape(-1))
+    else:
+        hi = _abs_bisection_numpy(x, f, center, target, start)
+    return np.clip(hi, *abs_order_statistic_brackets(s, ranks, center, layout=layout))
+
+
+_STEPS = 64  # halvings of the bisection: to the last bit of a float64
+
+
+def _abs_bisection_numpy(
+    x: NDArray[np.float64],
+    f: NDArray[np.float64],
+    center: float,
+    target: NDArray[np.float64],
+    start: float,
+) -> NDArray[np.float64]:
+    """kernels._abs_bisection in numpy: the upper ends of the bisection intervals."""
     lo = np.zeros(target.shape)
-    hi = np.full(target.shape, max(abs(s.maximum - center), abs(s.minimum - center)) * 1.000001)
+    hi = np.full(target.shape, start)
     with np.errstate(invalid="ignore", over="ignore"):  # subnormal-wide bins
-        for _ in range(64):
+        for _ in range(_STEPS):
             mid = 0.5 * (lo + hi)
             inside = np.interp(center + mid, x, f) - np.interp(center - mid, x, f)
             below = inside < target
             lo = np.where(below, mid, lo)
             hi = np.where(below, hi, mid)
-    return np.clip(hi, *abs_order_statistic_brackets(s, ranks, center, layout=layout))
+    return hi
