@@ -75,21 +75,9 @@ def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, 
 
 
 def _key_sweep(  # type: ignore[no-untyped-def]
-    dh,
-    bits,
-    bands,
-    codes,
-    patterns,
-    base,
-    sizes,
-    binning,
-    table,
-    counters,
-    keys,
-    listed,
-    unsure,
-    out,
-):
+    dh, bits, bands, codes, patterns, base, sizes, binning, table, counters, keys, listed,
+    unsure, out,
+):  # fmt: skip
     """One sweep: each pixel's key (pattern * n_cells + class code * n_band_codes + band +
     base; ``codes`` / ``patterns`` None: 0, each compiled apart so the pixel loop carries no
     test for them; sizes = (n_band_codes, n_cells)); key -1 for class code 255 (excluded) and
@@ -108,20 +96,14 @@ def _key_sweep(  # type: ignore[no-untyped-def]
     cell, total, low, high = -1, 0.0, 0.0, 0.0
     for i in range(dh.size):
         v = dh[i]
+        code = 0 if codes is None else codes[i]
         finite = math.isfinite(v)
-        if codes is None:
-            if not finite:
-                keys[i] = -1
-                continue
-            c = bands[i] + base
-        else:
-            code = codes[i]
-            if code == 255 or not finite:
-                keys[i] = -1
-                if finite:
-                    dropped += 1
-                continue
-            c = code * n_band_codes + bands[i] + base
+        if code == 255 or not finite:
+            keys[i] = -1
+            if finite:
+                dropped += 1
+            continue
+        c = code * n_band_codes + bands[i] + base
         if patterns is not None:
             c += patterns[i] * n_cells
         keys[i] = c
