@@ -11,18 +11,19 @@ amplitudes (the angles round differently). Pure; the numpy path in waves.py is t
 
 from __future__ import annotations
 
-from importlib.util import find_spec
 from typing import Any
 
 import numpy as np
 
-AVAILABLE = find_spec("numba") is not None
+from demaudit.workers.compiled import AVAILABLE, compiled
+
+__all__ = ["AVAILABLE", "MAX_REMAINDER_RAD", "MIN_PIXELS", "affine_plane", "near_affine_waves"]
+
 #: Largest remainder angle (radians) for which the series are used; beyond it, the caller
 #: evaluates the cosines pointwise.
 MAX_REMAINDER_RAD = 0.01
 #: Smallest array (pixels) worth the split; smaller ones are evaluated pointwise.
 MIN_PIXELS = 4096
-_COMPILED: dict[str, Any] = {}
 
 
 def _near_affine_sum(x, y, plane_x, plane_y, cos_a, sin_a, cos_b, sin_b, waves, limit, out):  # type: ignore[no-untyped-def]
@@ -61,14 +62,7 @@ def _near_affine_sum(x, y, plane_x, plane_y, cos_a, sin_a, cos_b, sin_b, waves, 
 
 
 def _compiled() -> Any:
-    if "sum" not in _COMPILED:
-        from numba import njit
-
-        try:
-            _COMPILED["sum"] = njit(cache=True, nogil=True)(_near_affine_sum)
-        except RuntimeError:  # no writable cache folder (read-only install): compile per process
-            _COMPILED["sum"] = njit(cache=False, nogil=True)(_near_affine_sum)
-    return _COMPILED["sum"]
+    return compiled(_near_affine_sum)
 
 
 def affine_plane(a: np.ndarray) -> np.ndarray:

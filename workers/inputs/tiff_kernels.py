@@ -12,7 +12,7 @@ from typing import Any
 
 import numpy as np
 
-_COMPILED: dict[str, Any] = {}
+from demaudit.workers.compiled import compiled
 
 
 def _float_predictor_sweep(raw, nb, bw, h, w, dest, r0, c0):  # type: ignore[no-untyped-def]
@@ -70,13 +70,5 @@ def _float32_predictor_sweep(raw, nb, bw, h, w, dest, r0, c0):  # type: ignore[n
 
 def float_predictor_sweep(raw: Any, nb: int, *args: Any) -> None:
     """Compiled _float_predictor_sweep (same arguments; _float32_predictor_sweep when nb is 4)."""
-    name = "float32_predictor_sweep" if nb == 4 else "float_predictor_sweep"
-    if name not in _COMPILED:
-        from numba import njit
-
-        loop = globals()[f"_{name}"]
-        try:
-            _COMPILED[name] = njit(cache=True, nogil=True)(loop)
-        except RuntimeError:  # no writable cache folder (read-only install)
-            _COMPILED[name] = njit(cache=False, nogil=True)(loop)
-    _COMPILED[name](raw, nb, *args)
+    loop = _float32_predictor_sweep if nb == 4 else _float_predictor_sweep
+    compiled(loop)(raw, nb, *args)

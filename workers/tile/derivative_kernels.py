@@ -10,11 +10,11 @@ Compiled code is cached on disk beside the module (once per installation).
 from __future__ import annotations
 
 import math
-from importlib.util import find_spec
 from typing import Any
 
-AVAILABLE = find_spec("numba") is not None
-_COMPILED: dict[str, Any] = {}
+from demaudit.workers.compiled import AVAILABLE, compiled
+
+__all__ = ["AVAILABLE", "surface_sweep"]
 
 
 def _surface_sweep(z, dx, dy, slope, aspect, plan, profile, d8):  # type: ignore[no-untyped-def]
@@ -62,11 +62,4 @@ def _surface_sweep(z, dx, dy, slope, aspect, plan, profile, d8):  # type: ignore
 
 def surface_sweep(*args: Any) -> None:
     """The compiled _surface_sweep (compiled, or loaded from the disk cache, once per process)."""
-    if "surface_sweep" not in _COMPILED:
-        from numba import njit
-
-        try:
-            _COMPILED["surface_sweep"] = njit(cache=True, nogil=True)(_surface_sweep)
-        except RuntimeError:  # no writable cache folder (read-only install)
-            _COMPILED["surface_sweep"] = njit(cache=False, nogil=True)(_surface_sweep)
-    _COMPILED["surface_sweep"](*args)
+    compiled(_surface_sweep)(*args)
