@@ -72,7 +72,10 @@ def dask_client(
             env=WORKER_ENV,
         )
     try:
-        with Client(cluster) as client:
+        # results are fetched from the workers themselves, not relayed through the scheduler:
+        # the scheduler shares this process, so relaying cost it a second receive and send
+        # of every tile's result (about 10 % of a same-grid audit's time, issue 13)
+        with Client(cluster, direct_to_workers=True) as client:
             yield client
     finally:
         cluster.close()

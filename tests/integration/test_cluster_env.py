@@ -44,3 +44,14 @@ def _profiler_enabled() -> bool:
 def test_the_workers_sampling_profiler_is_off(dask_client) -> None:
     # dask reads DASK_DISTRIBUTED__WORKER__PROFILE__ENABLED at import: it must be there at start
     assert not any(dask_client.run(_profiler_enabled).values())
+
+
+def _result_of_a_task() -> int:
+    return 41 + 1
+
+
+def test_results_come_from_the_workers_not_through_the_scheduler(dask_client) -> None:
+    # the scheduler lives in the client's process: relaying each tile's result through it
+    # cost a second receive and send per result (issue 13)
+    assert dask_client.direct_to_workers is True
+    assert dask_client.submit(_result_of_a_task, pure=False).result() == 42
