@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import math
 import shutil
+from functools import cache
 from pathlib import Path
 from typing import Any, Literal
 
@@ -26,6 +27,9 @@ import numpy as np
 import zarr
 from numpy.typing import NDArray
 from zarr.codecs import BloscCodec
+from zarr.core.group import GroupMetadata
+from zarr.core.metadata.v3 import ArrayV3Metadata
+from zarr.storage import MemoryStore
 
 from demaudit.workers.outputs.folder import link_or_copy
 from demaudit.workers.outputs.layout import (
@@ -157,17 +161,36 @@ def write_entries(
     parent: Any, name: str, entries: dict[Key, DhSummary], attrs: dict[str, Any]
 ) -> Any:
     """Make (replace) the group ``name`` of parent holding the entries: their histograms in one
-    array, moments and slices in the attribute ``entries`` beside ``attrs``, all written with
-    the group (each zarr node written costs milliseconds). Returns the group."""
+    array, moments and slices in the attribute ``entries`` beside ``attrs``. Both nodes are made
+    in one go from their metadata documents (zarr.create_hierarchy; creating them one by one
+    read and rewrote the parent groups' documents each time: 11 ms a tile instead of 4, issue
+    13). Returns the group."""
     records, table = packed_entries(entries)
-    group = parent.create_group(name, overwrite=True, attributes={"entries": records, **attrs})
-    group.create_array(
-        HISTOGRAMS,
-        data=table,
-        chunks=(2, max(table.shape[1], 1)),
-        compressors=_HISTOGRAM_CODEC,
+    path = f"{parent.path}/{name}" if parent.path else name
+    nodes = {
+        path: GroupMetadata(attributes={"entries": records, **attrs}),
+        f"{path}/{HISTOGRAMS}": _histogram_metadata(table),
+    }
+    made = dict(zarr.create_hierarchy(store=parent.store, nodes=nodes, overwrite=True))
+    made[f"{path}/{HISTOGRAMS}"][...] = table
+    return made[path]
+
+
+@cache
+def _histogram_document(dtype: str) -> dict[str, Any]:
+    """The metadata document zarr makes for a histograms array of dtype (one chunk, the
+    histogram codec), made once per process on a throwaway in-memory store."""
+    made = zarr.create_array(
+        MemoryStore(), shape=(2, 1), dtype=dtype, chunks=(2, 1), compressors=_HISTOGRAM_CODEC
     )
-    return group
+    return dict(made.metadata.to_dict())
+
+
+def _histogram_metadata(table: NDArray[Any]) -> ArrayV3Metadata:
+    """The metadata of an array holding table in one chunk."""
+    chunk = {"name": "regular", "configuration": {"chunk_shape": (2, max(table.shape[1], 1))}}
+    document = {**_histogram_document(table.dtype.name), "shape": table.shape}
+    return ArrayV3Metadata.from_dict({**document, "chunk_grid": chunk})
 
 
 def packed_entries(entries: dict[Key, DhSummary]) -> tuple[list[dict[str, Any]], NDArray[Any]]:

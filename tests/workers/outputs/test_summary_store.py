@@ -7,6 +7,7 @@ import math
 import numpy as np
 import pytest
 import zarr
+from zarr.codecs import BloscCodec
 
 from demaudit.workers.outputs.layout import ALL_PART, TILE_SUMMARIES_GROUP
 from demaudit.workers.outputs.summary_store import (
@@ -16,7 +17,7 @@ from demaudit.workers.outputs.summary_store import (
     write_job_totals,
 )
 from demaudit.workers.stats.merge import JobAccumulator, keyed_summaries
-from demaudit.workers.stats.summary import statistics, summarise
+from demaudit.workers.stats.summary import DhSummary, statistics, summarise
 from demaudit.workers.tile.task import OK, TileResult
 
 
@@ -132,3 +133,41 @@ def test_stores_written_with_two_arrays_are_still_read(tmp_path):
     group.attrs.update({"entries": [record], "excluded": 0})
     back, _ = TileSummaryStore(path).read("old")
     assert np.array_equal(back[("*", "")].counts, s.counts) and back[("*", "")].count == s.count
+
+
+def test_a_tile_written_again_is_replaced_whole(tmp_path):
+    rng = np.random.default_rng(9)
+    path = tmp_path / "results.zarr"
+    store = TileSummaryStore(path, mode="a")
+    store.write("t0", keyed_summaries(result("t0", rng, regions=3)), excluded=5)
+    again = {("*", ""): summarise(rng.normal(0.0, 0.2, 500))}
+    store.write("t0", again, excluded=1)  # fewer entries, a shorter table
+    back, excluded = store.read("t0")
+    assert excluded == 1 and list(back) == [("*", "")]
+    assert np.array_equal(back[("*", "")].counts, again[("*", "")].counts)
+    folder = path / TILE_SUMMARIES_GROUP / "t0"
+    assert sorted(p.name for p in folder.iterdir()) == ["histograms", "zarr.json"]
+
+
+def test_the_histograms_array_is_the_one_zarr_makes_itself(tmp_path):
+    # write_entries makes the array from a metadata document; it must be what zarr.create_array
+    # writes for the same shape, chunks and codec (int32 and, for huge counts, int64)
+    rng = np.random.default_rng(10)
+    small = summarise(rng.normal(0.0, 0.5, 3000))
+    huge = DhSummary(2**31, 0.0, 1.0, -1.0, 1.0, small.bins, small.counts.astype(np.int64) * 2**31)
+    path = tmp_path / "results.zarr"
+    store = TileSummaryStore(path, mode="a")
+    for tile_id, s in (("small", small), ("huge", huge), ("empty", summarise(np.zeros(0)))):
+        store.write(tile_id, {("*", ""): s})
+        stored = zarr.open_array(str(path / TILE_SUMMARIES_GROUP / tile_id / "histograms"))
+        table = np.stack([s.bins, s.counts]).astype(stored.dtype)
+        assert np.array_equal(stored[...], table)
+        assert stored.dtype == (np.int64 if s is huge else np.int32)
+        own = zarr.create_array(
+            zarr.storage.MemoryStore(),
+            shape=table.shape,
+            dtype=table.dtype,
+            chunks=(2, max(table.shape[1], 1)),
+            compressors=BloscCodec(cname="lz4", clevel=1, shuffle="shuffle"),
+        )
+        assert stored.metadata.to_dict() == own.metadata.to_dict()
