@@ -15,7 +15,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from demaudit.workers.compiled import AVAILABLE
-from demaudit.workers.stats.kernels import add_into
+from demaudit.workers.stats.kernels import add_into, nonzero_entries
 
 LINEAR_WIDTH_M = 2.0e-4
 LINEAR_LIMIT_M = 2.0
@@ -121,14 +121,24 @@ def added_parts(
                     add_into(dense, b, c, low)
                 else:
                     dense[b - low] += c  # bins distinct within one histogram: no index repeats
-            (nonzero,) = np.nonzero(dense)
-            return (nonzero + low).astype(np.int64), dense[nonzero]
+            return dense_entries(dense, low)
     if not present:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     return added_histograms(
         np.concatenate([b for b, _ in present], dtype=np.int64),
         np.concatenate([c for _, c in present], dtype=np.int64),
     )
+
+
+def dense_entries(
+    dense: NDArray[np.integer], low: int
+) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
+    """The nonzero counters of a dense histogram (1-D, counter i for bin low + i) as a sparse
+    one: bins ascending and counts, both int64 (compiled when numba is there)."""
+    if AVAILABLE:
+        return nonzero_entries(dense, low)  # type: ignore[no-any-return]
+    (nonzero,) = np.nonzero(dense)
+    return (nonzero + low).astype(np.int64), dense[nonzero].astype(np.int64)
 
 
 def _sorted_sums(

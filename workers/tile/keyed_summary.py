@@ -22,6 +22,8 @@ from numpy.typing import NDArray
 
 from demaudit.workers.stats import bins
 from demaudit.workers.stats import summary as dh_summary
+from demaudit.workers.stats.bins import dense_entries
+from demaudit.workers.stats.kernels import add_into
 from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.tile import kernels
 from demaudit.workers.tile.tail_bins import tail_table
@@ -106,12 +108,10 @@ class CellSummaries:
         return tail_bins.astype(np.int64), tail_counts.astype(np.int64)
 
     def _histogram(self, cells: list[int]) -> tuple[NDArray[np.int32], NDArray[np.int64]]:
-        dense = self._linear(cells)
-        (columns,) = np.nonzero(dense)
-        linear_counts = dense[columns]
+        linear_bins, linear_counts = dense_entries(self._linear(cells), -_K)
         tail_bins, tail_counts = self._tails(cells)
         below = int(np.searchsorted(tail_bins, 0))  # tail bins lie below or above the linear ones
-        bins = np.concatenate([tail_bins[:below], columns - _K, tail_bins[below:]])
+        bins = np.concatenate([tail_bins[:below], linear_bins, tail_bins[below:]])
         counts = np.concatenate([tail_counts[:below], linear_counts, tail_counts[below:]])
         return bins.astype(np.int32), counts.astype(np.int64)
 
@@ -123,10 +123,14 @@ def _added_runs(
     when it is small enough, else by sorting."""
     low = int(bins.min())
     span = int(bins.max()) - low + 1
+    if span <= MAX_COUNTERS and kernels.AVAILABLE:  # an exact int64 counter, no float weights
+        summed = np.zeros(span, dtype=np.int64)
+        add_into(summed, bins, counts, low)
+        return dense_entries(summed, low)
     if span <= MAX_COUNTERS:
-        summed = np.bincount(bins - low, weights=counts, minlength=span)
-        (present,) = np.nonzero(summed)
-        return (present + low).astype(np.int64), summed[present].astype(np.int64)
+        weighted = np.bincount(bins - low, weights=counts, minlength=span)
+        (present,) = np.nonzero(weighted)
+        return (present + low).astype(np.int64), weighted[present].astype(np.int64)
     distinct, where = np.unique(bins, return_inverse=True)
     return distinct.astype(np.int64), np.bincount(where, weights=counts).astype(np.int64)
 
@@ -326,14 +330,14 @@ def _with_dense_tails(
     """A cell's tail runs (bins ascending) from its dense tail counters (columns j for bin
     _K + j, then width + j for bin -_K - 1 - j) and its listed runs."""
     width = row.size // 2
-    (neg,) = np.nonzero(row[width:])
-    (pos,) = np.nonzero(row[:width])
-    neg = neg[::-1]
-    bins = np.concatenate([-_K - 1 - neg, listed[0], _K + pos]).astype(np.int64)
-    counts = np.concatenate([row[width + neg], listed[1], row[pos]]).astype(np.int64)
-    if listed[0].size and (neg.size or pos.size):  # listed bins may be any: add and sort
-        return _added_runs(bins, counts)
-    return bins, counts
+    # column width + j is bin -_K - 1 - j: reversed, column i of that half is bin i - _K - width
+    below = dense_entries(row[width:][::-1], -_K - width)
+    above = dense_entries(row[:width], _K)
+    tail_bins = np.concatenate([below[0], listed[0], above[0]]).astype(np.int64)
+    counts = np.concatenate([below[1], listed[1], above[1]]).astype(np.int64)
+    if listed[0].size and (below[0].size or above[0].size):  # listed bins may be any: add, sort
+        return _added_runs(tail_bins, counts)
+    return tail_bins, counts
 
 
 def _tail_runs(

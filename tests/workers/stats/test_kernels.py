@@ -42,6 +42,32 @@ def test_added_parts_compiled_and_in_numpy_agree(monkeypatch: pytest.MonkeyPatch
         np.testing.assert_array_equal(got, want)
 
 
+@given(
+    dense=arrays(
+        st.sampled_from([np.int32, np.int64]),
+        st.integers(0, 400),
+        elements=st.one_of(st.just(0), st.integers(-(2**31), 2**31 - 1)),
+    ),
+    low=st.integers(-(2**40), 2**40),
+    reverse=st.booleans(),
+)
+@settings(max_examples=200, deadline=None)
+def test_dense_entries_compiled_equal_numpys_nonzero(
+    dense: np.ndarray, low: int, reverse: bool
+) -> None:
+    # mostly zeros (as the histograms' counters are), any sign, a reversed (strided) view too
+    view = dense[::-1] if reverse else dense
+    got = bins.dense_entries(view, low)
+    with pytest.MonkeyPatch.context() as m:
+        m.setattr(bins, "AVAILABLE", False)
+        want = bins.dense_entries(view, low)
+    (at,) = np.nonzero(view)  # numpy as the reference
+    for b, c in (got, want):
+        assert b.dtype == c.dtype == np.int64
+        np.testing.assert_array_equal(b, at + low)
+        np.testing.assert_array_equal(c, view[at])
+
+
 def _both_ways(s: dhs.DhSummary, ranks: np.ndarray, center: float, monkeypatch) -> tuple:  # type: ignore[no-untyped-def]
     with monkeypatch.context() as m:
         m.setattr(quantiles, "AVAILABLE", False)
