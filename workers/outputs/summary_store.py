@@ -167,11 +167,13 @@ def write_entries(
     13). Returns the group."""
     records, table = packed_entries(entries)
     path = f"{parent.path}/{name}" if parent.path else name
-    nodes = {
+    nodes: dict[str, GroupMetadata | ArrayV3Metadata] = {
         path: GroupMetadata(attributes={"entries": records, **attrs}),
         f"{path}/{HISTOGRAMS}": _histogram_metadata(table),
     }
-    made = dict(zarr.create_hierarchy(store=parent.store, nodes=nodes, overwrite=True))
+    made: dict[str, Any] = dict(
+        zarr.create_hierarchy(store=parent.store, nodes=nodes, overwrite=True)
+    )
     made[f"{path}/{HISTOGRAMS}"][...] = table
     return made[path]
 
@@ -188,7 +190,10 @@ def _histogram_document(dtype: str) -> dict[str, Any]:
 
 def _histogram_metadata(table: NDArray[Any]) -> ArrayV3Metadata:
     """The metadata of an array holding table in one chunk."""
-    chunk = {"name": "regular", "configuration": {"chunk_shape": (2, max(table.shape[1], 1))}}
+    chunk: dict[str, Any] = {
+        "name": "regular",
+        "configuration": {"chunk_shape": (2, max(table.shape[1], 1))},
+    }
     document = {**_histogram_document(table.dtype.name), "shape": table.shape}
     return ArrayV3Metadata.from_dict({**document, "chunk_grid": chunk})
 
