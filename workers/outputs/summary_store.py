@@ -167,7 +167,7 @@ def write_entries(
     13). Returns the group."""
     records, table = packed_entries(entries)
     path = f"{parent.path}/{name}" if parent.path else name
-    nodes: dict[str, GroupMetadata | ArrayV3Metadata] = {
+    nodes: dict[str, Any] = {  # path -> GroupMetadata or ArrayV3Metadata
         path: GroupMetadata(attributes={"entries": records, **attrs}),
         f"{path}/{HISTOGRAMS}": _histogram_metadata(table),
     }
