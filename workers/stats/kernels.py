@@ -109,3 +109,48 @@ def abs_bisection(*args: Any) -> None:
     global interp_at_compiled
     interp_at_compiled = compiled(_interp_at)
     compiled(_abs_bisection)(*args)
+
+
+def _valley_order_statistics(values, counts, ranks, out):  # type: ignore[no-untyped-def]
+    """The rank-th smallest of values, each counted counts times, for each rank (into out),
+    when values fall to one lowest entry and rise after it (as the distances of ascending bins
+    from a centre do): the two sides are merged, no sort. Returns False, leaving the work to
+    the caller's sort, when values are not so shaped, hold NaN or a negative zero (a tie of
+    0.0 and -0.0 would take its sign from the sort's order), or a rank lies beyond the counts."""
+    n = values.size
+    if n == 0:
+        return False
+    low = 0
+    for i in range(n):
+        v = values[i]
+        if v != v or (v == 0.0 and math.copysign(1.0, v) < 0.0):
+            return False
+        if v < values[low]:
+            low = i
+    for i in range(low):
+        if values[i] < values[i + 1]:
+            return False
+    for i in range(low, n - 1):
+        if values[i] > values[i + 1]:
+            return False
+    order = np.argsort(ranks)
+    left, right, total, done = low - 1, low, 0, 0
+    while done < ranks.size:
+        if right < n and (left < 0 or values[right] <= values[left]):
+            at = right
+            right += 1
+        elif left >= 0:
+            at = left
+            left -= 1
+        else:
+            return False
+        total += counts[at]
+        while done < ranks.size and ranks[order[done]] < total:
+            out[order[done]] = values[at]
+            done += 1
+    return True
+
+
+def valley_order_statistics(values: Any, counts: Any, ranks: Any, out: Any) -> bool:
+    """Compiled _valley_order_statistics (same arguments)."""
+    return bool(compiled(_valley_order_statistics)(values, counts, ranks, out))

@@ -68,6 +68,63 @@ def test_dense_entries_compiled_equal_numpys_nonzero(
         np.testing.assert_array_equal(c, view[at])
 
 
+def _bits(x: np.ndarray) -> np.ndarray:
+    return np.asarray(x, dtype=np.float64).view(np.int64)  # -0.0 and 0.0 told apart
+
+
+@st.composite
+def distances(draw: st.DrawFn) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Distances of ascending bins from a centre (near or far, as the |dh - centre| brackets
+    compute them), sometimes shuffled or with NaN / -0.0; counts (zeros too) and ranks."""
+    edges = draw(arrays(np.float64, st.integers(1, 60), elements=st.floats(-50, 50, width=32)))
+    lo = np.sort(edges)
+    hi = lo + draw(st.sampled_from([0.0, 0.001, 0.5]))
+    center = draw(st.one_of(st.sampled_from([0.0, -0.0]), st.floats(-60, 60)))
+    if draw(st.booleans()):
+        values = np.maximum(np.maximum(lo - center, center - hi), 0.0)
+    else:
+        values = np.maximum(np.abs(lo - center), np.abs(hi - center))
+    shape = draw(st.sampled_from(["valley", "shuffled", "nan", "negative zero"]))
+    if shape == "shuffled":
+        values = np.array(draw(st.permutations(list(values))))
+    elif shape == "nan":
+        values[draw(st.integers(0, values.size - 1))] = np.nan
+    elif shape == "negative zero":
+        values[draw(st.integers(0, values.size - 1))] = -0.0
+    counts = np.array(draw(st.lists(st.integers(0, 5), min_size=values.size, max_size=values.size)))
+    counts[draw(st.integers(0, values.size - 1))] += 1  # at least one value
+    ranks = np.array(draw(st.lists(st.integers(0, int(counts.sum()) - 1), min_size=1, max_size=8)))
+    return values, counts.astype(draw(st.sampled_from([np.int32, np.int64]))), ranks
+
+
+@given(distances())
+@settings(max_examples=300, deadline=None)
+def test_valley_merge_gives_the_sorts_bits(case: tuple[np.ndarray, np.ndarray, np.ndarray]) -> None:
+    values, counts, ranks = case
+    got = quantiles._weighted_order_statistic(values, counts, ranks)
+    with pytest.MonkeyPatch.context() as m:
+        m.setattr(quantiles, "AVAILABLE", False)
+        want = quantiles._weighted_order_statistic(values, counts, ranks)
+    np.testing.assert_array_equal(_bits(got), _bits(want))
+
+
+def test_valley_merge_is_taken_for_bin_distances() -> None:
+    # the fast path must actually run (else the test above compares numpy with itself)
+    lo = np.arange(-5.0, 5.0, 0.5)
+    values = np.maximum(np.maximum(lo - 0.2, 0.2 - (lo + 0.5)), 0.0)
+    out = np.empty(3)
+    ranks = np.array([0, 7, 19])
+    assert stats_kernels.valley_order_statistics(values, np.ones(lo.size, np.int64), ranks, out)
+    np.testing.assert_array_equal(out, np.sort(values)[ranks])
+    ones = np.ones(lo.size, np.int64)
+    bottom = int(np.argmin(values))
+    assert values[bottom] == 0.0
+    values[bottom] = -0.0  # still a valley, but with a negative zero: left to the sort
+    assert not stats_kernels.valley_order_statistics(values, ones, ranks, out)
+    for shape in ([3.0, 1.0, 2.0, 0.0], [0.0, 2.0, 1.0, 3.0], [2.0, 0.0, 3.0, 1.0]):  # no valleys
+        assert not stats_kernels.valley_order_statistics(np.array(shape), ones[:4], ranks[:2], out)
+
+
 def _both_ways(s: dhs.DhSummary, ranks: np.ndarray, center: float, monkeypatch) -> tuple:  # type: ignore[no-untyped-def]
     with monkeypatch.context() as m:
         m.setattr(quantiles, "AVAILABLE", False)
