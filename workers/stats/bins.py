@@ -146,9 +146,14 @@ def _sorted_sums(
 ) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
     if bins.size == 0:
         return bins.astype(np.int64), counts.astype(np.int64)
-    if bins.size >= _DENSE_ADD_FROM and _span(bins) <= _DENSE_SPAN:  # one dense counter
+    span = _span(bins) if bins.size >= _DENSE_ADD_FROM else _DENSE_SPAN + 1
+    if span <= _DENSE_SPAN:  # one dense counter
         low = int(bins.min())
-        summed = np.bincount(bins - low, weights=counts, minlength=_span(bins))
+        if AVAILABLE:  # compiled: an exact int64 counter, no float weights
+            dense = np.zeros(span, dtype=np.int64)
+            add_into(dense, bins, counts, low)
+            return dense_entries(dense, low)
+        summed = np.bincount(bins - low, weights=counts, minlength=span)
         (present,) = np.nonzero(summed)
         return (present + low).astype(np.int64), summed[present].astype(np.int64)
     order = np.argsort(bins, kind="stable")

@@ -10,12 +10,13 @@ once per installation, not once per start.
 from __future__ import annotations
 
 import math
-from importlib.util import find_spec
 from typing import Any
 
 import numpy as np
 
-AVAILABLE = find_spec("numba") is not None  # numba itself is imported at the first sweep
+# re-exported: callers ask kernels.AVAILABLE (numba itself is imported at the first sweep)
+from demaudit.workers.compiled import AVAILABLE as AVAILABLE
+
 _COMPILED: dict[str, Any] = {}
 
 AMBIGUOUS = 255  # band code of a pixel whose slope lies within the margin of a band edge

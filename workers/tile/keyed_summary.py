@@ -23,7 +23,6 @@ from numpy.typing import NDArray
 from demaudit.workers.stats import bins
 from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.stats.bins import dense_entries
-from demaudit.workers.stats.kernels import add_into
 from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.tile import kernels
 from demaudit.workers.tile.tail_bins import tail_table
@@ -104,7 +103,7 @@ class CellSummaries:
         tail_bins = np.concatenate([self.tails[c][0] for c in cells])
         tail_counts = np.concatenate([self.tails[c][1] for c in cells])
         if len(cells) > 1 and tail_bins.size:
-            return _added_runs(tail_bins, tail_counts)
+            return bins.added_histograms(tail_bins, tail_counts)
         return tail_bins.astype(np.int64), tail_counts.astype(np.int64)
 
     def _histogram(self, cells: list[int]) -> tuple[NDArray[np.int32], NDArray[np.int64]]:
@@ -114,25 +113,6 @@ class CellSummaries:
         bins = np.concatenate([tail_bins[:below], linear_bins, tail_bins[below:]])
         counts = np.concatenate([tail_counts[:below], linear_counts, tail_counts[below:]])
         return bins.astype(np.int32), counts.astype(np.int64)
-
-
-def _added_runs(
-    bins: NDArray[np.integer], counts: NDArray[np.integer]
-) -> tuple[NDArray[np.int64], NDArray[np.int64]]:
-    """Sorted distinct bins and their summed counts: on one dense counter over the bins' span
-    when it is small enough, else by sorting."""
-    low = int(bins.min())
-    span = int(bins.max()) - low + 1
-    if span <= MAX_COUNTERS and kernels.AVAILABLE:  # an exact int64 counter, no float weights
-        summed = np.zeros(span, dtype=np.int64)
-        add_into(summed, bins, counts, low)
-        return dense_entries(summed, low)
-    if span <= MAX_COUNTERS:
-        weighted = np.bincount(bins - low, weights=counts, minlength=span)
-        (present,) = np.nonzero(weighted)
-        return (present + low).astype(np.int64), weighted[present].astype(np.int64)
-    distinct, where = np.unique(bins, return_inverse=True)
-    return distinct.astype(np.int64), np.bincount(where, weights=counts).astype(np.int64)
 
 
 def summarise_cells(
@@ -336,7 +316,7 @@ def _with_dense_tails(
     tail_bins = np.concatenate([below[0], listed[0], above[0]]).astype(np.int64)
     counts = np.concatenate([below[1], listed[1], above[1]]).astype(np.int64)
     if listed[0].size and (below[0].size or above[0].size):  # listed bins may be any: add, sort
-        return _added_runs(tail_bins, counts)
+        return bins.added_histograms(tail_bins, counts)
     return tail_bins, counts
 
 

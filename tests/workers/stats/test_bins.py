@@ -37,7 +37,11 @@ def test_a_sparse_histogram_counts_every_value_in_its_bin() -> None:
         (20_000, 1e250),  # a span too wide for that: linear bins dense, the tails sorted
     ],
 )
-def test_added_histograms_sum_the_counts_of_equal_bins(entries: int, far: float) -> None:
+@pytest.mark.parametrize("compiled", [True, False])  # the dense counter compiled or numpy's
+def test_added_histograms_sum_the_counts_of_equal_bins(
+    entries: int, far: float, compiled: bool, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    monkeypatch.setattr(bins, "AVAILABLE", compiled and bins.AVAILABLE)
     rng = np.random.default_rng(entries)
     values = np.concatenate([rng.normal(0, 1, entries), rng.uniform(-60, 60, entries // 10)])
     if far:
@@ -49,6 +53,7 @@ def test_added_histograms_sum_the_counts_of_equal_bins(entries: int, far: float)
     want_counts = np.array([counts[k == b].sum() for b in want_k])
     np.testing.assert_array_equal(got_k, want_k)
     np.testing.assert_array_equal(got_counts, want_counts)
+    assert got_k.dtype == got_counts.dtype == np.int64
 
 
 @settings(max_examples=150, deadline=None)
