@@ -19,6 +19,8 @@ from typing import Any
 import dask
 from distributed import Client, LocalCluster
 
+from demaudit.service.run.allocator import tune_allocator
+
 #: Each worker process runs one task at a time on one core: numpy's BLAS, OpenMP and GDAL stay on
 #: that core too (more threads per process only oversubscribe the machine). GDAL's block cache
 #: is bounded so that worker memory stays flat however many tiles pass through.
@@ -26,7 +28,10 @@ from distributed import Client, LocalCluster
 #: off glibc's adaptive mmap threshold, so every tile-sized array became a fresh mmap whose pages
 #: the kernel faults in and zeroes again (measured: about 40 % more CPU per tile). Arrays up to
 #: 32 MiB (a 2000 x 2000 float64 tile) now come from the heap and are reused from tile to tile.
-#: glibc reads it at process start only: see dask_client (and the deploy manifests).
+#: MALLOC_TRIM_THRESHOLD_: Dask's 64 KiB handed the top of the heap back to the kernel whenever
+#: that much was free, so arrays made and dropped again were faulted in anew all the same (a
+#: third of the workers' page faults; 256 MiB keeps them; allocator.py does the same for the
+#: client). glibc reads both at process start only: see dask_client (and the deploy manifests).
 #: DASK_DISTRIBUTED__WORKER__PROFILE__ENABLED: the worker's sampling profiler (it walks the task
 #: thread's stack every 10 ms, for a dashboard demaudit does not serve) costs about 5 % of the
 #: tile phase (benchmarks/RESULTS.md, issue 13). For `dask worker` processes (deploy manifests)
@@ -39,10 +44,11 @@ WORKER_ENV = {
     "GDAL_NUM_THREADS": "1",
     "GDAL_CACHEMAX": "128",
     "MALLOC_MMAP_THRESHOLD_": "33554432",
+    "MALLOC_TRIM_THRESHOLD_": "268435456",
     "DASK_DISTRIBUTED__WORKER__PROFILE__ENABLED": "False",
 }
 #: The part of WORKER_ENV that must be in the environment before the worker process starts.
-PRE_SPAWN_ENV = ("MALLOC_MMAP_THRESHOLD_",)
+PRE_SPAWN_ENV = ("MALLOC_MMAP_THRESHOLD_", "MALLOC_TRIM_THRESHOLD_")
 
 log = logging.getLogger("demaudit.cluster")
 
@@ -52,7 +58,8 @@ def dask_client(
     scheduler: str | None = None, *, workers: int = 2, memory_limit: str = "4GiB"
 ) -> Iterator[Client]:
     """A connected client; the local cluster (processes, one thread each, WORKER_ENV) lives as
-    long as it."""
+    long as it. This process's allocator is tuned for the results it gathers (allocator.py)."""
+    tune_allocator()
     if scheduler:
         with Client(scheduler, timeout="30s") as client:
             yield client

@@ -1,0 +1,84 @@
+"""A histogram's compact form for the trip between processes (pure).
+
+Every tile result carries a dozen sparse histograms of some 10^4 to 10^5 bins each, pickled on
+the worker and unpickled by the client: as int32 bins and counts that is about 1.5 MB a tile.
+The bins are sorted and mostly neighbours, and most counts are small, so the packed form keeps
+the first bin, the steps between bins and the counts each as one byte, with the few that do not
+fit (255 and more) listed beside them: a quarter of the bytes or less (0.39 instead of 1.55 MB
+for a tile of the benchmark's same-grid archive). Unpacking gives back the same values in the
+same dtypes; anything the packing is not made for (unsorted or repeated bins, negative counts,
+not integers, not 1-D) travels as it is.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+from numpy.typing import NDArray
+
+#: One byte a value; this byte says "the next of the values listed beside".
+_ESCAPE = 255
+
+#: Values as bytes: (bytes, the values of the escaped bytes in order, in the first of _LISTED
+#: that holds them).
+Bytes = tuple[NDArray[np.uint8], NDArray[np.unsignedinteger]]
+_LISTED = (np.uint16, np.uint32, np.uint64)
+
+#: The packed form: (first bin, steps, counts, bins' dtype, counts' dtype), or the arrays as they
+#: are: (None, bins, counts).
+Packed = tuple[int, Bytes, Bytes, str, str] | tuple[None, NDArray[Any], NDArray[Any]]
+
+
+def pack(bins: NDArray[np.integer], counts: NDArray[np.integer]) -> Packed:
+    """The packed form of a sparse histogram (sorted bin indices and their counts)."""
+    if not _packable(bins, counts):
+        return None, bins, counts
+    wide = bins.astype(np.int64, copy=False)
+    steps = wide[1:] - wide[:-1]
+    if steps.size and int(steps.min()) < 1:  # not strictly increasing
+        return None, bins, counts
+    return int(bins[0]), _as_bytes(steps), _as_bytes(counts), bins.dtype.str, counts.dtype.str
+
+
+def unpack(packed: Packed) -> tuple[NDArray[np.integer], NDArray[np.integer]]:
+    """The bins and counts that :func:`pack` packed (the same values and dtypes)."""
+    if packed[0] is None:
+        return packed[1], packed[2]
+    first, steps, counts, bins_dtype, counts_dtype = packed
+    bins = np.empty(steps[0].size + 1, dtype=np.int64)
+    bins[0] = first
+    bins[1:] = _from_bytes(steps)
+    np.cumsum(bins, out=bins)
+    return bins.astype(np.dtype(bins_dtype), copy=False), _from_bytes(counts).astype(
+        np.dtype(counts_dtype)
+    )
+
+
+def _packable(bins: NDArray[Any], counts: NDArray[Any]) -> bool:
+    """Whether bins and counts are non-empty 1-D integer arrays of one size, the bins' ends
+    within +-2^62 (their steps fit int64) and no count negative or beyond int64."""
+    for values in (bins, counts):
+        if values.ndim != 1 or values.size == 0 or not np.issubdtype(values.dtype, np.integer):
+            return False
+    if bins.size != counts.size or max(abs(int(bins[0])), abs(int(bins[-1]))) >= 2**62:
+        return False
+    return int(counts.min()) >= 0 and int(counts.max()) < 2**63
+
+
+def _as_bytes(values: NDArray[np.integer]) -> Bytes:
+    """Values (none negative) as one byte each, those of _ESCAPE or more listed beside."""
+    wide = values >= _ESCAPE
+    small = values.astype(np.uint8)  # the wide ones wrap; overwritten next
+    small[wide] = _ESCAPE
+    listed = values[wide]
+    top = int(listed.max()) if listed.size else 0
+    return small, listed.astype(next(t for t in _LISTED if top <= np.iinfo(t).max))
+
+
+def _from_bytes(packed: Bytes) -> NDArray[np.int64]:
+    """The values _as_bytes packed, as int64."""
+    small, listed = packed
+    values = small.astype(np.int64)
+    values[small == _ESCAPE] = listed
+    return values
