@@ -76,7 +76,7 @@ def _cell_sweep(x, key, linear_width, linear_limit, k_limit, dense, sums, mins, 
 
 
 def _key_sweep(  # type: ignore[no-untyped-def]
-    dh, bits, bands, codes, patterns, base, sizes, binning, table, counters, keys, listed,
+    dh, bits, bands, codes, patterns, base, sizes, binning, rows, counters, keys, listed,
     unsure, out,
 ):  # fmt: skip
     """One sweep: each pixel's key (pattern * n_cells + class code * n_band_codes + band +
@@ -122,7 +122,7 @@ def _key_sweep(  # type: ignore[no-untyped-def]
             if 0 <= column < 2 * k_limit:
                 dense[c, column] += 1
                 continue
-        j = tail_bin_compiled(v, bits[i], linear_limit, table)
+        j = tail_bin_compiled(v, bits[i], linear_limit, rows)
         if j < 0:
             unsure[n_unsure] = i
             n_unsure += 1
@@ -137,18 +137,18 @@ def _key_sweep(  # type: ignore[no-untyped-def]
     out[0], out[1], out[2] = n_listed, n_unsure, dropped
 
 
-def _tail_bin(v, bits, linear_limit, table):  # type: ignore[no-untyped-def]
+def _tail_bin(v, bits, linear_limit, rows):  # type: ignore[no-untyped-def]
     """The tail bin j of v (bin k_limit + j when v > 0, -k_limit - 1 - j below), or -1 when v
     lies below the linear limit or beyond the slots (the caller bins it as bins.bin_index):
-    v's slot (exponent and 12 leading mantissa bits of ``bits``, v as int64) gives its first
-    possible bin (table[0]), the exact lower edges (table[1]) the rest (at most three more)."""
-    first_bin, edges = table
+    v's slot (exponent and 12 leading mantissa bits of ``bits``, v as int64) is its row of
+    ``rows`` (tail_bins.slot_rows): its first possible bin, then the exact lower edges of the
+    next three, those at or below |v| added."""
     a = abs(v)
     slot = ((bits & 0x7FFFFFFFFFFFFFFF) >> 40) - (0x4000000000000000 >> 40)  # the slot of 2.0
-    if a < linear_limit or slot >= first_bin.size:
+    if a < linear_limit or slot >= rows.shape[0]:
         return -1
-    j = first_bin[slot]
-    return j + (a >= edges[j + 1]) + (a >= edges[j + 2]) + (a >= edges[j + 3])
+    row = rows[slot]
+    return int(row[0]) + (a >= row[1]) + (a >= row[2]) + (a >= row[3])
 
 
 def _deviation_sweep(x, key, mean, residual, squares):  # type: ignore[no-untyped-def]

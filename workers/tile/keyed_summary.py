@@ -25,7 +25,7 @@ from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.stats.bins import dense_entries
 from demaudit.workers.stats.summary import DhSummary
 from demaudit.workers.tile import kernels
-from demaudit.workers.tile.tail_bins import tail_table
+from demaudit.workers.tile.tail_bins import slot_rows
 
 _K = bins.K_LIMIT  # linear bins are -_K .. _K - 1
 _WIDTH = 2 * _K + 1  # one column per linear bin, plus one (the last) for values in the tails
@@ -243,7 +243,7 @@ def summarise_keyed(
     kernels.key_sweep(
         x, x.view(np.int64), _flat(bands, np.uint8),
         None if codes is None else _flat(codes, np.uint8), pattern_grid, base,
-        np.array([n_band_codes, n_cells]), _BINNING, tail_table(),
+        np.array([n_band_codes, n_cells]), _BINNING, slot_rows(),
         counters, key, listed, unsure, found,
     )  # fmt: skip
     n_listed, n_unsure, dropped = (int(v) for v in found)

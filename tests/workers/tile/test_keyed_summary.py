@@ -9,6 +9,7 @@ import pytest
 
 from demaudit.workers.stats import summary as dhs
 from demaudit.workers.tile import kernels, keyed_summary
+from demaudit.workers.tile.tail_bins import tail_table
 
 pytestmark = pytest.mark.skipif(not kernels.AVAILABLE, reason="numba is not installed")
 
@@ -35,7 +36,7 @@ def heavy_tails(seed: int, shape: tuple[int, int] = (120, 150)) -> np.ndarray:
     far = rng.random(shape) < 0.01
     dh[far] = rng.uniform(-5e4, 5e4, far.sum())  # beyond the slots (2^15 m) for some
     dh[rng.random(shape) < 0.03] = np.nan
-    edges = keyed_summary.tail_table()[1][: dh.size // 20]
+    edges = tail_table()[1][: dh.size // 20]
     awkward = np.concatenate([edges, np.nextafter(edges, 0), -edges, -np.nextafter(edges, 0)])
     awkward = np.concatenate([awkward, [2.0, -2.0, np.nextafter(2.0, 0), 7e5, -7e5, np.inf]])
     flat = dh.reshape(-1)

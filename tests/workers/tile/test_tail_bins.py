@@ -6,7 +6,7 @@ from __future__ import annotations
 import numpy as np
 
 from demaudit.workers.stats import bins
-from demaudit.workers.tile.tail_bins import tail_table
+from demaudit.workers.tile.tail_bins import slot_rows, tail_table
 
 
 def test_tail_table_edges_are_bin_index_edges() -> None:
@@ -21,3 +21,13 @@ def test_tail_table_edges_are_bin_index_edges() -> None:
     slots = np.arange(first.size, dtype=np.int64)
     lowest = ((slots + (0x4000000000000000 >> 40)) << 40).view(np.float64)
     np.testing.assert_array_equal(first, bins.bin_index(lowest) - bins.K_LIMIT)
+
+
+def test_slot_rows_hold_each_slots_first_bin_and_the_next_three_edges() -> None:
+    """The sweep's one-lookup layout holds the same numbers as the two tables."""
+    first, edges = tail_table()
+    rows = slot_rows()
+    assert rows.shape == (first.size, 4)
+    np.testing.assert_array_equal(rows[:, 0].astype(np.int64), first)
+    for k in (1, 2, 3):
+        np.testing.assert_array_equal(rows[:, k], edges[first + k])

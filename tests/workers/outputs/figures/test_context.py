@@ -34,7 +34,14 @@ def test_context_reads_the_tile_statistics_from_the_spec(tmp_path):
 
 @pytest.mark.parametrize(
     ("shape", "chunks", "factor"),
-    [((40, 30), (7, 7), 3), ((41, 29), (10, 10), 4), ((16, 16), (16, 16), 5), ((9, 9), (2, 3), 1)],
+    [
+        ((40, 30), (7, 7), 3),
+        ((41, 29), (10, 10), 4),
+        ((16, 16), (16, 16), 5),
+        ((9, 9), (2, 3), 1),
+        ((100, 20), (25, 20), 6),  # band of 75 rows: three chunk rows, each read once
+        ((90, 20), (7, 20), 11),  # lcm 77 beyond 8 chunk rows: bands of 11 rows
+    ],
 )
 def test_a_stored_mosaic_read_in_bands_gives_the_blocks_of_the_whole(
     tmp_path, shape, chunks, factor
