@@ -2,7 +2,7 @@
 
 The workers get them from their environment (cluster.WORKER_ENV: glibc reads it at process
 start). The client's process is already running when it starts a job, so it sets the same two
-with mallopt: arrays up to 32 MiB from the heap, and free heap kept up to 256 MiB instead of
+with mallopt: arrays up to 32 MiB from the heap, and free heap kept up to 64 MiB instead of
 handed back to the kernel at once. Without them every array of more than 128 KiB that the
 client makes and drops (unpacking a tile's histograms, merging them) is a fresh mapping whose
 pages the kernel faults in and zeroes again: measured ten times slower for a 55,000-bin
@@ -16,7 +16,7 @@ import ctypes.util
 import functools
 
 MMAP_THRESHOLD = 32 * 2**20  # glibc's largest (HEAP_MAX_SIZE / 2 on 64-bit)
-TRIM_THRESHOLD = 256 * 2**20
+TRIM_THRESHOLD = 64 * 2**20
 _M_TRIM_THRESHOLD = -1  # mallopt parameters (malloc.h)
 _M_MMAP_THRESHOLD = -3
 

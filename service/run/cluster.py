@@ -29,9 +29,10 @@ from demaudit.service.run.allocator import tune_allocator
 #: the kernel faults in and zeroes again (measured: about 40 % more CPU per tile). Arrays up to
 #: 32 MiB (a 2000 x 2000 float64 tile) now come from the heap and are reused from tile to tile.
 #: MALLOC_TRIM_THRESHOLD_: Dask's 64 KiB handed the top of the heap back to the kernel whenever
-#: that much was free, so arrays made and dropped again were faulted in anew all the same (a
-#: third of the workers' page faults; 256 MiB keeps them; allocator.py does the same for the
-#: client). glibc reads both at process start only: see dask_client (and the deploy manifests).
+#: that much was free, so arrays made and dropped again were faulted in anew all the same. With
+#: 64 MiB (256 kept no more): a 256-tile job's worker page faults 227,000 -> 155,000 and worker
+#: CPU 10-13 % lower in two interleaved pairs, peak RSS +2 %; allocator.py does the same for the
+#: client. glibc reads both at process start only: see dask_client (and the deploy manifests).
 #: DASK_DISTRIBUTED__WORKER__PROFILE__ENABLED: the worker's sampling profiler (it walks the task
 #: thread's stack every 10 ms, for a dashboard demaudit does not serve) costs about 5 % of the
 #: tile phase (benchmarks/RESULTS.md, issue 13). For `dask worker` processes (deploy manifests)
@@ -44,7 +45,7 @@ WORKER_ENV = {
     "GDAL_NUM_THREADS": "1",
     "GDAL_CACHEMAX": "128",
     "MALLOC_MMAP_THRESHOLD_": "33554432",
-    "MALLOC_TRIM_THRESHOLD_": "268435456",
+    "MALLOC_TRIM_THRESHOLD_": "67108864",
     "DASK_DISTRIBUTED__WORKER__PROFILE__ENABLED": "False",
 }
 #: The part of WORKER_ENV that must be in the environment before the worker process starts.
