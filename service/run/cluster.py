@@ -213,7 +213,9 @@ def cluster_connection(
     timeout_s: float = 30.0,
 ) -> Iterator[ClusterConnection]:
     """A watched connection to the external scheduler (each client waits up to timeout_s for
-    it, at first and after losing it), or to an embedded local cluster (as dask_client)."""
+    it, at first and after losing it), or to an embedded local cluster (as dask_client). This
+    process's allocator is tuned for the results it gathers (allocator.py)."""
+    tune_allocator()
     if not scheduler:
         with dask_client(None, workers=workers, memory_limit=memory_limit) as client:
             yield ClusterConnection(client)
