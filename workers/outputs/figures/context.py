@@ -92,7 +92,8 @@ def stored_display_blocks(array: Any, factor: int) -> NDArray[np.float64]:
     of cells). The same blocks, each averaged from the same values, as from the whole array.
     A band is a multiple of both the chunk rows and factor where that spans a few chunk rows
     at most, so that each chunk is read and decoded once (a band that ends inside a chunk
-    row reads that row again for the next band: 0.35 s of a 256-tile map's 0.5, issue 13)."""
+    row reads that row again for the next band; read_overview of a 256-tile map took 0.52 s
+    so, 0.34 s now, issue 13)."""
     rows_per_chunk = int(array.chunks[0])
     band = math.lcm(rows_per_chunk, factor)
     if band > _BAND_CHUNK_ROWS * rows_per_chunk:
