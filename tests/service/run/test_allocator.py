@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import subprocess
 import sys
 
@@ -20,8 +21,11 @@ print(took, resource.getrusage(resource.RUSAGE_SELF).ru_minflt - before)
 
 
 def _faults(mode: str) -> tuple[str, int]:
+    # glibc's own defaults in both: no MALLOC_* from this process (a cluster started earlier in
+    # the same test run may have left the workers' settings in os.environ)
+    env = {k: v for k, v in os.environ.items() if not k.startswith("MALLOC_")}
     out = subprocess.run(
-        [sys.executable, "-c", _FAULTS, mode], capture_output=True, text=True, check=True
+        [sys.executable, "-c", _FAULTS, mode], capture_output=True, text=True, check=True, env=env
     ).stdout.split()
     return out[0], int(out[1])
 
