@@ -6,8 +6,10 @@ The bins are sorted and mostly neighbours, and most counts are small, so the pac
 the first bin, the steps between bins and the counts each as one byte, with the few that do not
 fit (255 and more) listed beside them: a quarter of the bytes or less (0.39 instead of 1.55 MB
 for a tile of the benchmark's same-grid archive). Unpacking gives back the same values in the
-same dtypes; anything the packing is not made for (unsorted or repeated bins, negative counts,
-not integers, not 1-D) travels as it is.
+same dtypes. Arrays the packing is not made for (negative or huge counts, not integers, not 1-D,
+bins beyond +-2^62) travel as they are, and so do bins that are not strictly increasing as far as
+their int64 steps show (steps that wrap round may look increasing: unpacking wraps the same way,
+so the values come back exactly either way).
 """
 
 from __future__ import annotations

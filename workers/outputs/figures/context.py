@@ -25,8 +25,10 @@ from demaudit.workers.stats.merge import ALL
 
 #: the dh map shows at most this many overview pixels a side (block means beyond)
 MAP_PIXELS = 700
-#: most chunk rows in one band of stored_display_blocks
+#: most chunk rows, and most cells (128 MiB as float64), in a band of stored_display_blocks that
+#: ends on chunk rows; beyond either, bands are as small as factor allows (chunks read twice)
 _BAND_CHUNK_ROWS = 8
+_BAND_CELLS = 2**24
 
 
 @dataclass
@@ -91,19 +93,25 @@ def stored_display_blocks(array: Any, factor: int) -> NDArray[np.float64]:
     the memory is one band's, not the whole mosaic's (a national mosaic at 1:8 holds billions
     of cells). The same blocks, each averaged from the same values, as from the whole array.
     A band is a multiple of both the chunk rows and factor where that spans a few chunk rows
-    at most, so that each chunk is read and decoded once (a band that ends inside a chunk
+    and cells at most, so that each chunk is read and decoded once (a band that ends inside a chunk
     row reads that row again for the next band; read_overview of a 256-tile map took 0.52 s
     so, 0.34 s now, issue 13)."""
-    rows_per_chunk = int(array.chunks[0])
-    band = math.lcm(rows_per_chunk, factor)
-    if band > _BAND_CHUNK_ROWS * rows_per_chunk:
-        band = factor * max(1, -(-rows_per_chunk // factor))  # a multiple of factor
+    band = band_rows(int(array.chunks[0]), factor, width=int(array.shape[1]))
     rows = array.shape[0]
     parts = [
         display_blocks(np.asarray(array[start : start + band], dtype=np.float64), factor)
         for start in range(0, rows, band)
     ]
     return np.concatenate(parts, axis=0)
+
+
+def band_rows(rows_per_chunk: int, factor: int, *, width: int) -> int:
+    """Rows of a band of stored_display_blocks: a multiple of factor, and of the chunk rows too
+    unless that takes more than _BAND_CHUNK_ROWS chunk rows or _BAND_CELLS cells."""
+    band = math.lcm(rows_per_chunk, factor)
+    if band > _BAND_CHUNK_ROWS * rows_per_chunk or band * width > _BAND_CELLS:
+        band = factor * max(1, -(-rows_per_chunk // factor))
+    return band
 
 
 def display_blocks(values: NDArray[np.float64], factor: int) -> NDArray[np.float64]:

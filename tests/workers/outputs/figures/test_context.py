@@ -58,3 +58,15 @@ def test_a_stored_mosaic_read_in_bands_gives_the_blocks_of_the_whole(
     stored[...] = values
     whole = display_blocks(values.astype(np.float64), factor)
     np.testing.assert_array_equal(stored_display_blocks(stored, factor), whole)
+
+
+def test_bands_end_on_chunk_rows_within_bounds() -> None:
+    """Bands end on chunk rows (each chunk decoded once) unless that takes more than 8 chunk
+    rows or 2^24 cells (a national mosaic is wide): then the smallest multiple of factor."""
+    from demaudit.workers.outputs.figures.context import band_rows
+
+    assert band_rows(250, 6, width=4_000) == 750  # the 256-tile map: three chunk rows
+    assert band_rows(250, 400, width=4_000) == 2_000  # eight chunk rows
+    assert band_rows(250, 400, width=280_000) == 400  # 2,000 rows would be 560 million cells
+    assert band_rows(7, 11, width=20) == 11  # lcm 77 is eleven chunk rows
+    assert band_rows(16, 4, width=10) == 16
