@@ -19,7 +19,7 @@ from typing import Any
 import dask
 from distributed import Client, LocalCluster
 
-from demaudit.service.run.allocator import tune_allocator
+from demaudit.service.run.allocator import MMAP_THRESHOLD, TRIM_THRESHOLD, tune_allocator
 
 #: Each worker process runs one task at a time on one core: numpy's BLAS, OpenMP and GDAL stay on
 #: that core too (more threads per process only oversubscribe the machine). GDAL's block cache
@@ -30,9 +30,10 @@ from demaudit.service.run.allocator import tune_allocator
 #: 32 MiB (a 2000 x 2000 float64 tile) now come from the heap and are reused from tile to tile.
 #: MALLOC_TRIM_THRESHOLD_: Dask's 64 KiB handed the top of the heap back to the kernel whenever
 #: that much was free, so arrays made and dropped again were faulted in anew all the same. With
-#: 64 MiB (256 kept no more): a 256-tile job's worker page faults 227,000 -> 155,000 and worker
-#: CPU 10-13 % lower in two interleaved pairs, peak RSS +2 %; allocator.py does the same for the
-#: client. glibc reads both at process start only: see dask_client (and the deploy manifests).
+#: 64 MiB (256 kept no more): a 256-tile job's worker page faults 227,000 -> 155,000, peak RSS
+#: +2 % (worker CPU lower in two interleaved pairs of three: within this machine's noise);
+#: allocator.py sets the same for the client. glibc reads both at process start only: see
+#: dask_client (and the deploy manifests).
 #: DASK_DISTRIBUTED__WORKER__PROFILE__ENABLED: the worker's sampling profiler (it walks the task
 #: thread's stack every 10 ms, for a dashboard demaudit does not serve) costs about 5 % of the
 #: tile phase (benchmarks/RESULTS.md, issue 13). For `dask worker` processes (deploy manifests)
@@ -44,8 +45,8 @@ WORKER_ENV = {
     "MKL_NUM_THREADS": "1",
     "GDAL_NUM_THREADS": "1",
     "GDAL_CACHEMAX": "128",
-    "MALLOC_MMAP_THRESHOLD_": "33554432",
-    "MALLOC_TRIM_THRESHOLD_": "67108864",
+    "MALLOC_MMAP_THRESHOLD_": str(MMAP_THRESHOLD),  # 33554432: the manifests spell it out
+    "MALLOC_TRIM_THRESHOLD_": str(TRIM_THRESHOLD),  # 67108864
     "DASK_DISTRIBUTED__WORKER__PROFILE__ENABLED": "False",
 }
 #: The part of WORKER_ENV that must be in the environment before the worker process starts.
