@@ -227,8 +227,8 @@ def _paste(
     empty: bool = False,
 ) -> NDArray[np.floating] | None:
     """Copy the part of tile that falls inside out (whose pixel (0, 0) is (row0, col0) of the
-        reference grid) where out is still NaN; return that part (None when the tile does not reach
-        into out). ``empty``: out is all NaN, so the part is copied in whole (converted on the read
+    reference grid) where out is still NaN; return that part (None when the tile does not reach
+    into out). ``empty``: out is all NaN, so the part is copied in whole (converted on the read
     block when it has out's type, else straight into out)."""
     a, _, c, _, e, f = reference.transform
     ta, tb, tc, td, te, tf = tile.grid.transform

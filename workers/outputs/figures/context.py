@@ -92,10 +92,10 @@ def stored_display_blocks(array: Any, factor: int) -> NDArray[np.float64]:
     """display_blocks of a stored (zarr) array, read one band of whole chunk rows at a time:
     the memory is one band's, not the whole mosaic's (a national mosaic at 1:8 holds billions
     of cells). The same blocks, each averaged from the same values, as from the whole array.
-    A band is a multiple of both the chunk rows and factor where that spans a few chunk rows
-    and cells at most, so that each chunk is read and decoded once (a band that ends inside a chunk
-    row reads that row again for the next band; read_overview of a 256-tile map took 0.52 s
-    so, 0.34 s now, issue 13)."""
+    A band is a multiple of both the chunk rows and factor where that takes a few chunk rows
+    and cells at most (band_rows), so that each chunk is read and decoded once: a band ending
+    inside a chunk row reads that row again for the next band (read_overview of a 256-tile
+    map: 0.52 s so, 0.34 s with whole chunk rows; issue 13)."""
     band = band_rows(int(array.chunks[0]), factor, width=int(array.shape[1]))
     rows = array.shape[0]
     parts = [
