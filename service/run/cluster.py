@@ -39,6 +39,30 @@ from demaudit.service.run.allocator import MMAP_THRESHOLD, TRIM_THRESHOLD, tune_
 #: tile phase (benchmarks/RESULTS.md, issue 13). For `dask worker` processes (deploy manifests)
 #: the variable does it; the embedded cluster's nannies hand the client's configuration to their
 #: workers, so dask_client sets it there.
+#: HOUSEKEEPING: Dask's own periodic work, slowed down. Every scheduler, nanny and worker
+#: wakes its event loop every 20 ms to time it (a warning when it was blocked for seconds),
+#: samples the machine every 0.5 s for dashboards, and each nanny and worker reads the worker's
+#: memory every 0.1 s. Idle, the embedded cluster spent 98 ms of CPU a second on this (2
+#: workers; 21 with these settings), and while tiles run each wake-up takes the GIL from the
+#: tile's thread: a 256-tile job's CPU 127 -> 101 ms a tile (medians of seven interleaved
+#: pairs, six of them lower; benchmarks/RESULTS.md, issue 13). Blocked loops are still
+#: reported (the limit is 3 s), and a worker's memory is still checked twice a second.
+HOUSEKEEPING = {
+    "distributed.admin.tick.interval": "500ms",
+    "distributed.admin.system-monitor.interval": "2s",
+    "distributed.worker.memory.monitor-interval": "500ms",
+}
+
+
+def dask_env(config: dict[str, str]) -> dict[str, str]:
+    """Dask configuration as the environment variables dask reads at import (for processes
+    started from the command line: `dask worker`, `dask scheduler`)."""
+    return {
+        "DASK_" + key.upper().replace(".", "__").replace("-", "_"): value
+        for key, value in config.items()
+    }
+
+
 WORKER_ENV = {
     "OMP_NUM_THREADS": "1",
     "OPENBLAS_NUM_THREADS": "1",
@@ -48,7 +72,12 @@ WORKER_ENV = {
     "MALLOC_MMAP_THRESHOLD_": str(MMAP_THRESHOLD),  # 33554432: the manifests spell it out
     "MALLOC_TRIM_THRESHOLD_": str(TRIM_THRESHOLD),  # 67108864
     "DASK_DISTRIBUTED__WORKER__PROFILE__ENABLED": "False",
+    **dask_env(HOUSEKEEPING),
 }
+#: A `dask scheduler` process of a deployment (deploy manifests): its housekeeping too.
+SCHEDULER_ENV = dask_env(
+    {k: v for k, v in HOUSEKEEPING.items() if not k.startswith("distributed.worker.")}
+)
 #: The part of WORKER_ENV that must be in the environment before the worker process starts.
 PRE_SPAWN_ENV = ("MALLOC_MMAP_THRESHOLD_", "MALLOC_TRIM_THRESHOLD_")
 
@@ -70,6 +99,7 @@ def dask_client(
         f"distributed.nanny.pre-spawn-environ.{k}": WORKER_ENV[k] for k in PRE_SPAWN_ENV
     }
     early["distributed.worker.profile.enabled"] = False
+    early.update(HOUSEKEEPING)  # for the scheduler and nannies here, and their workers
     with dask.config.set(early):  # the nanny sets these before it starts the worker process
         cluster = LocalCluster(
             n_workers=workers,

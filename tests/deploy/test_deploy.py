@@ -288,3 +288,13 @@ def test_deployed_workers_get_the_thread_and_cache_settings_of_local_workers():
     assert {k: str(v) for k, v in env_of(worker).items() if k in WORKER_ENV} == WORKER_ENV
     compose = yaml.safe_load((DEPLOY / "compose.yaml").read_text())
     assert compose["services"]["worker"]["environment"] == WORKER_ENV
+
+
+def test_deployed_schedulers_slow_down_dasks_housekeeping_as_the_local_one():
+    from demaudit.service.run.cluster import SCHEDULER_ENV
+
+    scheduler = only("Deployment", "dask-scheduler")
+    assert SCHEDULER_ENV  # the tick and the system monitor
+    assert {k: str(v) for k, v in env_of(scheduler).items() if k in SCHEDULER_ENV} == SCHEDULER_ENV
+    compose = yaml.safe_load((DEPLOY / "compose.yaml").read_text())
+    assert compose["services"]["scheduler"]["environment"] == SCHEDULER_ENV

@@ -55,3 +55,25 @@ def test_results_come_from_the_workers_not_through_the_scheduler(dask_client) ->
     # cost a second receive and send per result (issue 13)
     assert dask_client.direct_to_workers is True
     assert dask_client.submit(_result_of_a_task, pure=False).result() == 42
+
+
+def _worker_housekeeping(dask_worker) -> dict[str, float]:
+    """The intervals a running worker actually uses (seconds)."""
+    return {
+        "tick": dask_worker._tick_interval,
+        "memory": dask_worker.memory_manager.memory_monitor_interval,
+    }
+
+
+def _scheduler_tick(dask_scheduler) -> float:
+    return float(dask_scheduler._tick_interval)
+
+
+def test_dasks_housekeeping_runs_at_the_slower_intervals(dask_client) -> None:
+    # HOUSEKEEPING: every wake-up of an event loop takes the GIL from the tile's thread
+    from demaudit.service.run.cluster import HOUSEKEEPING
+
+    assert HOUSEKEEPING["distributed.admin.tick.interval"] == "500ms"
+    for seen in dask_client.run(_worker_housekeeping).values():
+        assert seen == {"tick": 0.5, "memory": 0.5}
+    assert dask_client.run_on_scheduler(_scheduler_tick) == 0.5
