@@ -260,7 +260,7 @@ def measure(command: list[str]) -> tuple[float, float, str, bool]:
     return seconds, peak / 2**20, out, proc.returncode == 0
 
 
-def run_all(plan: Plan, work: Path, contenders: Sequence[str]) -> list[Run]:
+def run_all(plan: Plan, work: Path, contenders: Sequence[str], *, round_no: int = 0) -> list[Run]:
     plan_path = work / f"plan-{plan.kind}-{plan.size}.json"
     plan_path.write_text(json.dumps({"kind": plan.kind, "pairs": plan.pairs}))
     spec = write_spec(plan, work / f"spec-{plan.kind}-{plan.size}")
@@ -278,7 +278,9 @@ def run_all(plan: Plan, work: Path, contenders: Sequence[str]) -> list[Run]:
             command = [sys.executable, __file__, "--contender", contender, "--plan", str(plan_path)]
         seconds, peak, output, ok = measure(command)
         load = os.getloadavg()[0]
-        runs.append(Run(contender, plan.kind, plan.size, pixels, seconds, peak, output, load, ok))
+        runs.append(
+            Run(contender, plan.kind, plan.size, pixels, seconds, peak, output, load, ok, round_no)
+        )
         say(
             f"  {plan.kind:<12}{plan.size:>4} tiles  {contender:<12}{seconds:8.1f} s"
             f"{pixels / seconds / 1e6:8.2f} Mpix/s (whole run){peak:9.0f} MiB peak, "
@@ -339,10 +341,10 @@ def main(argv: Sequence[str] | None = None) -> int:
         if args.contenders:
             contenders = [c for c in contenders if c in args.contenders.split(",")]
         plans = [make_plan(folder, kind, big, subset) for subset in (small, big)]
-        for _ in range(args.repeat):  # contenders side by side in each round
+        for round_no in range(args.repeat):  # contenders side by side in each round
             for contender in contenders:  # the two sizes back to back: a similar load
                 for plan in plans:
-                    runs += run_all(plan, work, [contender])
+                    runs += run_all(plan, work, [contender], round_no=round_no)
         spec = work / f"spec-{kind}-{small.count}" / "spec.yaml"
         phase_table[kind] = phases(spec)
     say(report(runs, sizes, pixels, phase_table, command))

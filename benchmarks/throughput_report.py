@@ -7,6 +7,7 @@ import datetime as dt
 import math
 import os
 import platform
+import statistics
 import time
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
@@ -31,6 +32,7 @@ class Run:
     output: str = ""
     load: float = 0.0
     ok: bool = True  # a failed run (exit status not 0) counts in no figure
+    round_no: int = 0  # with --repeat: the round it ran in (contenders side by side)
 
 
 # -- phases of one tile -------------------------------------------------------------------------
@@ -229,4 +231,30 @@ def ratio_lines(runs: Sequence[Run]) -> list[str]:
         if d2 and d1:
             parts.append(f"2 workers / 1 worker {d2.mpix_s / d1.mpix_s:.2f}")
         lines.append("  ".join(parts))
+        paired = round_ratios(runs, kind, limit)
+        if paired:
+            lines.append(f"  per round ({kind}): {paired}")
     return lines
+
+
+def round_ratios(runs: Sequence[Run], kind: str, limit: str) -> str:
+    """With more than one round: demaudit's ratios within each round (contenders that ran
+    minutes apart, so a machine whose speed drifts over the run moves them less) and their
+    median; empty with one round."""
+    rounds = sorted({r.round_no for r in runs if r.kind == kind})
+    if len(rounds) < 2:
+        return ""
+    found: dict[str, list[float]] = {f"demaudit/{limit}": [], "2 workers / 1 worker": []}
+    for n in rounds:
+        mine = [r for r in runs if r.round_no == n]
+        d2, d1 = marginal(mine, "demaudit-w2", kind), marginal(mine, "demaudit-w1", kind)
+        lim = marginal(mine, limit, kind)
+        if d2 and lim:
+            found[f"demaudit/{limit}"].append(d2.mpix_s / lim.mpix_s)
+        if d2 and d1:
+            found["2 workers / 1 worker"].append(d2.mpix_s / d1.mpix_s)
+    return "  ".join(
+        f"{name} {' / '.join(f'{v:.2f}' for v in values)} (median {statistics.median(values):.2f})"
+        for name, values in found.items()
+        if values
+    )
