@@ -21,6 +21,31 @@ from distributed import Client, LocalCluster
 
 from demaudit.service.run.allocator import MMAP_THRESHOLD, TRIM_THRESHOLD, tune_allocator
 
+#: HOUSEKEEPING: Dask's own periodic work, slowed down. Every scheduler, nanny and worker
+#: wakes its event loop every 20 ms to time it (a warning when it was blocked for seconds),
+#: samples the machine every 0.5 s for dashboards, and each nanny and worker reads the worker's
+#: memory every 0.1 s. Idle, the embedded cluster spent 98 ms of CPU a second on this (2
+#: workers; 19-21 with these settings), and while tiles run each wake-up takes the GIL from
+#: the tile's thread (a 256-tile job's worker context switches about a quarter fewer; its CPU
+#: lower by 0 to 20 % in two series of interleaved jobs: benchmarks/RESULTS.md, issue 13).
+#: Blocked loops are still reported (the limit is 3 s), and a worker's memory is still
+#: checked twice a second.
+HOUSEKEEPING = {
+    "distributed.admin.tick.interval": "500ms",
+    "distributed.admin.system-monitor.interval": "2s",
+    "distributed.worker.memory.monitor-interval": "500ms",
+}
+
+
+def dask_env(config: dict[str, str]) -> dict[str, str]:
+    """Dask configuration as the environment variables dask reads at import (for processes
+    started from the command line: `dask worker`, `dask scheduler`)."""
+    return {
+        "DASK_" + key.upper().replace(".", "__").replace("-", "_"): value
+        for key, value in config.items()
+    }
+
+
 #: Each worker process runs one task at a time on one core: numpy's BLAS, OpenMP and GDAL stay on
 #: that core too (more threads per process only oversubscribe the machine). GDAL's block cache
 #: is bounded so that worker memory stays flat however many tiles pass through.
@@ -39,30 +64,6 @@ from demaudit.service.run.allocator import MMAP_THRESHOLD, TRIM_THRESHOLD, tune_
 #: tile phase (benchmarks/RESULTS.md, issue 13). For `dask worker` processes (deploy manifests)
 #: the variable does it; the embedded cluster's nannies hand the client's configuration to their
 #: workers, so dask_client sets it there.
-#: HOUSEKEEPING: Dask's own periodic work, slowed down. Every scheduler, nanny and worker
-#: wakes its event loop every 20 ms to time it (a warning when it was blocked for seconds),
-#: samples the machine every 0.5 s for dashboards, and each nanny and worker reads the worker's
-#: memory every 0.1 s. Idle, the embedded cluster spent 98 ms of CPU a second on this (2
-#: workers; 21 with these settings), and while tiles run each wake-up takes the GIL from the
-#: tile's thread: a 256-tile job's CPU 127 -> 101 ms a tile (medians of seven interleaved
-#: pairs, six of them lower; benchmarks/RESULTS.md, issue 13). Blocked loops are still
-#: reported (the limit is 3 s), and a worker's memory is still checked twice a second.
-HOUSEKEEPING = {
-    "distributed.admin.tick.interval": "500ms",
-    "distributed.admin.system-monitor.interval": "2s",
-    "distributed.worker.memory.monitor-interval": "500ms",
-}
-
-
-def dask_env(config: dict[str, str]) -> dict[str, str]:
-    """Dask configuration as the environment variables dask reads at import (for processes
-    started from the command line: `dask worker`, `dask scheduler`)."""
-    return {
-        "DASK_" + key.upper().replace(".", "__").replace("-", "_"): value
-        for key, value in config.items()
-    }
-
-
 WORKER_ENV = {
     "OMP_NUM_THREADS": "1",
     "OPENBLAS_NUM_THREADS": "1",
