@@ -25,11 +25,11 @@ from demaudit.service.run.allocator import MMAP_THRESHOLD, TRIM_THRESHOLD, tune_
 #: wakes its event loop every 20 ms to time it (a warning when it was blocked for seconds),
 #: samples the machine every 0.5 s for dashboards, and each nanny and worker reads the worker's
 #: memory every 0.1 s. Idle, the embedded cluster spent 98 ms of CPU a second on this (2
-#: workers; 19-21 with these settings), and while tiles run each wake-up takes the GIL from
-#: the tile's thread (a 256-tile job's worker context switches about a quarter fewer; its CPU
-#: lower by 0 to 20 % in two series of interleaved jobs: benchmarks/RESULTS.md, issue 13).
-#: Blocked loops are still reported (the limit is 3 s), and a worker's memory is still
-#: checked twice a second.
+#: workers; 19-21 with these settings: what a service waiting for jobs burns), and while tiles
+#: run each wake-up takes the GIL from the tile's thread (a 256-tile job's worker context
+#: switches about a quarter fewer; its run time unchanged within this machine's noise in two
+#: series of interleaved jobs: benchmarks/RESULTS.md, issue 13). Blocked loops are still
+#: reported (the limit is 3 s), and a worker's memory is still checked twice a second.
 HOUSEKEEPING = {
     "distributed.admin.tick.interval": "500ms",
     "distributed.admin.system-monitor.interval": "2s",
