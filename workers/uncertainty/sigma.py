@@ -17,7 +17,6 @@ from typing import Any
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy.optimize import curve_fit
 
 from demaudit.workers.stats import summary as dh_summary
 from demaudit.workers.stats.summary import DhSummary
@@ -61,6 +60,8 @@ def fit_sigma(
     curvature: NDArray[np.float64] | None = None,
 ) -> SigmaModel:
     """Fit the model (see module) to binned NMADs at (slope, curvature), weights sqrt(count)."""
+    from scipy.optimize import curve_fit  # here: its import is left to jobs that fit
+
     t = np.tan(np.radians(centres_deg))
     constant = SigmaModel(float(np.average(nmad, weights=counts)), 0.0, 1.0)
     if len(t) < 3:

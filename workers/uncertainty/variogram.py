@@ -36,8 +36,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy.optimize import curve_fit
-from scipy.spatial import cKDTree
 
 #: Components below this share of the total sill are dropped from a fit (on white noise the
 #: sampled variogram shows spurious components of about 2 %; a real one this small goes
@@ -179,6 +177,8 @@ def _subset_bin(
 ) -> tuple[int, float, float]:
     """Pairs, gamma and mean distance of the bin [low, high) among the chosen points' pairs
     (at most ``most`` pairs within high, drawn at random)."""
+    from scipy.spatial import cKDTree  # here: its import is left to jobs with an error model
+
     x, y, z = points
     tree = cKDTree(np.column_stack([x[chosen], y[chosen]]))
     found = tree.query_pairs(high, output_type="ndarray")
@@ -242,6 +242,8 @@ def _nugget_only(g: NDArray[np.float64], w: NDArray[np.float64]) -> VariogramMod
 def _fit_spherical(
     h: NDArray[np.float64], g: NDArray[np.float64], w: NDArray[np.float64], n_comp: int
 ) -> VariogramModel | None:
+    from scipy.optimize import curve_fit  # here: its import is left to jobs that fit
+
     def model(d: NDArray[np.float64], *p: float) -> NDArray[np.float64]:
         out = np.full(d.shape, p[0])
         for k in range(n_comp):

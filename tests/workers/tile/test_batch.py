@@ -24,3 +24,19 @@ def test_each_tile_gets_its_own_result_and_a_raising_call_fails_alone(tmp_path: 
     assert failed.reason is not None
     assert failed.reason.startswith("task failed on the cluster: TypeError:")
     assert audit_tiles([]) == []
+
+
+def test_a_worker_loads_no_scipy_module_until_a_job_needs_one() -> None:
+    # a worker imports the tile modules at its first tile task, in every job the embedded
+    # cluster starts: scipy.ndimage (co-registration) and scipy.optimize / scipy.spatial (the
+    # error model) cost about 0.4 s of that and only serve jobs that ask for them
+    import subprocess
+    import sys
+
+    heavy = ["scipy.ndimage", "scipy.optimize", "scipy.spatial"]
+    script = (
+        "import sys, demaudit.workers.tile.batch, demaudit.workers.tile.task; "
+        f"print([m for m in {heavy!r} if m in sys.modules])"
+    )
+    out = subprocess.run([sys.executable, "-c", script], capture_output=True, text=True, check=True)
+    assert out.stdout.strip() == "[]"
