@@ -18,6 +18,7 @@ pixels: what a re-check needs to continue the merge (workers/stats/merge.py).
 from __future__ import annotations
 
 import math
+import os
 import shutil
 from functools import cache
 from pathlib import Path
@@ -25,8 +26,10 @@ from typing import Any, Literal
 
 import numpy as np
 import zarr
+from numcodecs import Blosc
 from numpy.typing import NDArray
 from zarr.codecs import BloscCodec
+from zarr.core.buffer import default_buffer_prototype
 from zarr.core.group import GroupMetadata
 from zarr.core.metadata.v3 import ArrayV3Metadata
 from zarr.storage import MemoryStore
@@ -45,8 +48,13 @@ Key = tuple[str, str]  # (area, stratum)
 
 HISTOGRAMS = "histograms"  # the array of a group's histograms (bins, counts)
 #: Codec of the stored histograms: LZ4 on byte-shuffled integers, about as fast as writing them
-#: raw and several times smaller (measured: benchmarks/RESULTS.md, issue 13).
+#: raw and several times smaller (measured: benchmarks/RESULTS.md, issue 13). write_group_files
+#: encodes the chunk with numcodecs' Blosc of the same settings (the bytes zarr writes, tested).
 _HISTOGRAM_CODEC = BloscCodec(cname="lz4", clevel=1, shuffle="shuffle")
+_HISTOGRAM_BLOSC = Blosc(cname="lz4", clevel=1, shuffle=Blosc.SHUFFLE, blocksize=0)
+#: The histograms' one chunk is ``c.0.0`` beside the array's zarr.json (zarr's default chunk
+#: key encoding with "." as separator: two folders fewer to make per tile than ``c/0/0``).
+_CHUNK_KEYS = {"name": "default", "separator": "."}
 AFTER = "after:"  # area prefix of the summaries after co-registration
 
 
@@ -90,8 +98,10 @@ class TileSummaryStore:
         self._parent: Any = open_store_group(zarr_path, TILE_SUMMARIES_GROUP, mode=mode)
 
     def write(self, tile_id: str, entries: dict[Key, DhSummary], *, excluded: int = 0) -> None:
-        """Write (replace) one tile's summaries (runs once per tile on the workers)."""
-        write_entries(self._parent, tile_id, entries, {"excluded": int(excluded)})
+        """Write (replace) one tile's summaries (runs once per tile on the workers);
+        FileNotFoundError when the store's tile_summaries group is gone (none is made)."""
+        folder = self.zarr_path / TILE_SUMMARIES_GROUP / tile_id
+        write_group_files(folder, entries, {"excluded": int(excluded)})
 
     def read(self, tile_id: str) -> tuple[dict[Key, DhSummary], int]:
         """A tile's summaries and its excluded-pixel count (KeyError when not stored)."""
@@ -178,12 +188,50 @@ def write_entries(
     return made[path]
 
 
+def write_group_files(folder: Path, entries: dict[Key, DhSummary], attrs: dict[str, Any]) -> None:
+    """write_entries for a group in a local store, written as files without zarr's
+    asynchronous store layer (9 ms a tile there, most of it hand-offs between threads; issue
+    13): the same documents (zarr's metadata classes make them) and chunk bytes (tested against
+    what zarr writes). Order: a group that was there is removed first (as zarr's overwrite),
+    then the histograms' chunk and document, the group's document last and by rename, so a
+    group whose zarr.json is there is whole (TileSummaryStore.has). folder's parent must exist
+    (FileNotFoundError otherwise: a store removed meanwhile is not made again)."""
+    records, table = packed_entries(entries)
+    prototype = default_buffer_prototype()
+    group = GroupMetadata(attributes={"entries": records, **attrs})
+    array = _histogram_metadata(table)
+    if folder.exists():
+        shutil.rmtree(folder)
+    histograms = folder / HISTOGRAMS
+    folder.mkdir()
+    histograms.mkdir()
+    if table.size:  # an empty table has no chunk (as zarr writes it)
+        little = np.ascontiguousarray(table, dtype=table.dtype.newbyteorder("<"))
+        chunk = histograms / array.encode_chunk_key((0, 0))
+        chunk.parent.mkdir(parents=True, exist_ok=True)  # histograms itself with "." keys
+        chunk.write_bytes(_HISTOGRAM_BLOSC.encode(little))
+    (histograms / "zarr.json").write_bytes(array.to_buffer_dict(prototype)["zarr.json"].to_bytes())
+    _write_by_rename(folder / "zarr.json", group.to_buffer_dict(prototype)["zarr.json"].to_bytes())
+
+
+def _write_by_rename(path: Path, data: bytes) -> None:
+    """Write path's content whole or not at all (a temporary file beside it, then renamed)."""
+    temporary = path.with_name(f".{path.name}.{os.getpid()}.partial")
+    temporary.write_bytes(data)
+    os.replace(temporary, path)
+
+
 @cache
 def _histogram_document(dtype: str) -> dict[str, Any]:
     """The metadata document zarr makes for a histograms array of dtype (one chunk, the
     histogram codec), made once per process on a throwaway in-memory store."""
     made = zarr.create_array(
-        MemoryStore(), shape=(2, 1), dtype=dtype, chunks=(2, 1), compressors=_HISTOGRAM_CODEC
+        MemoryStore(),
+        shape=(2, 1),
+        dtype=dtype,
+        chunks=(2, 1),
+        compressors=_HISTOGRAM_CODEC,
+        chunk_key_encoding=_CHUNK_KEYS,  # type: ignore[arg-type]
     )
     return dict(made.metadata.to_dict())
 

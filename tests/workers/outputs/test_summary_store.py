@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import math
+import shutil
 
 import numpy as np
 import pytest
@@ -12,8 +13,10 @@ from zarr.codecs import BloscCodec
 from demaudit.workers.outputs.layout import ALL_PART, TILE_SUMMARIES_GROUP
 from demaudit.workers.outputs.summary_store import (
     TileSummaryStore,
+    open_store_group,
     read_job_totals,
     split_after,
+    write_entries,
     write_job_totals,
 )
 from demaudit.workers.stats.merge import JobAccumulator, keyed_summaries
@@ -169,5 +172,44 @@ def test_the_histograms_array_is_the_one_zarr_makes_itself(tmp_path):
             dtype=table.dtype,
             chunks=(2, max(table.shape[1], 1)),
             compressors=BloscCodec(cname="lz4", clevel=1, shuffle="shuffle"),
+            chunk_key_encoding={"name": "default", "separator": "."},
         )
         assert stored.metadata.to_dict() == own.metadata.to_dict()
+
+
+@pytest.mark.parametrize("wide", [False, True])
+def test_a_tile_written_as_files_is_byte_for_byte_what_zarr_writes(tmp_path, wide):
+    # TileSummaryStore.write bypasses zarr's store layer; zarr itself (create_hierarchy and
+    # the array's codec pipeline, through write_entries) must write the very same files
+    rng = np.random.default_rng(11)
+    entries = keyed_summaries(result("t0", rng, regions=3))
+    if wide:  # counts beyond int32: the int64 table
+        s = entries[("*", "")]
+        big = s.counts.astype(np.int64) * 2**31
+        entries[("*", "")] = DhSummary(2**31, s.mean, s.m2, s.minimum, s.maximum, s.bins, big)
+    own, theirs = tmp_path / "own.zarr", tmp_path / "zarr.zarr"
+    TileSummaryStore(own, mode="a").write("t0", entries, excluded=4)
+    parent = open_store_group(theirs, TILE_SUMMARIES_GROUP, mode="a")
+    write_entries(parent, "t0", entries, {"excluded": 4})
+
+    def files(root):
+        folder = root / TILE_SUMMARIES_GROUP / "t0"
+        found = (f for f in folder.rglob("*") if f.is_file())
+        return {str(f.relative_to(folder)): f.read_bytes() for f in found}
+
+    mine = files(own)
+    assert sorted(mine) == ["histograms/c.0.0", "histograms/zarr.json", "zarr.json"]
+    assert mine == files(theirs)
+    back, excluded = TileSummaryStore(own).read("t0")
+    assert excluded == 4 and back.keys() == entries.keys()
+    for key, s in entries.items():
+        assert np.array_equal(back[key].counts, s.counts) and back[key].count == s.count
+
+
+def test_a_tile_is_not_written_into_a_store_removed_meanwhile(tmp_path):
+    path = tmp_path / "results.zarr"
+    store = TileSummaryStore(path, mode="a")
+    shutil.rmtree(path)  # a failed job removed its partial store while a worker still ran
+    with pytest.raises(FileNotFoundError):
+        store.write("t0", {("*", ""): summarise(np.ones(3))})
+    assert not path.exists()
