@@ -111,6 +111,14 @@ def link_or_copy(source: str, target: str) -> None:
         shutil.copy2(source, target)
 
 
+def write_by_rename(path: Path, data: bytes) -> None:
+    """Write a file whole or not at all: a temporary file beside it, renamed over it (never
+    written in place, so a file linked from an earlier result stays as it was)."""
+    temporary = path.with_name(f".{path.name}.{os.getpid()}.partial")
+    temporary.write_bytes(data)
+    os.replace(temporary, path)
+
+
 def write_summary(out_dir: Path, document: Mapping[str, Any], *, name: str = SUMMARY_NAME) -> Path:
     """Write a JSON document (summary.json by default; NaN and infinities as null)."""
     path = Path(out_dir) / name

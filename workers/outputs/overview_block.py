@@ -11,6 +11,7 @@ import numpy as np
 import zarr
 from numpy.typing import NDArray
 
+from demaudit.workers.outputs.chunk_files import write_chunk
 from demaudit.workers.outputs.open_nodes import opened
 
 
@@ -34,9 +35,12 @@ class OverviewTarget:
 
 def write_block(array: Any, target: OverviewTarget, block: NDArray[np.float32]) -> None:
     """Write block into the overview array (an open zarr array) at target's window; only the
-    chunks under the window are written (the mosaic is chunked one tile block a chunk)."""
+    chunks under the window are written (the mosaic is chunked one tile block a chunk): as a
+    chunk file where the window is one whole chunk (chunk_files), else through zarr."""
     rows, cols = target.window(block.shape)
-    array[rows, cols] = block[: rows.stop - rows.start, : cols.stop - cols.start]
+    values = block[: rows.stop - rows.start, : cols.stop - cols.start]
+    if not write_chunk(array, (rows, cols), values):
+        array[rows, cols] = values
 
 
 def store_block(target: OverviewTarget, block: NDArray[np.float32]) -> None:

@@ -18,7 +18,6 @@ pixels: what a re-check needs to continue the merge (workers/stats/merge.py).
 from __future__ import annotations
 
 import math
-import os
 import shutil
 from functools import cache
 from pathlib import Path
@@ -34,7 +33,7 @@ from zarr.core.group import GroupMetadata
 from zarr.core.metadata.v3 import ArrayV3Metadata
 from zarr.storage import MemoryStore
 
-from demaudit.workers.outputs.folder import link_or_copy
+from demaudit.workers.outputs.folder import link_or_copy, write_by_rename
 from demaudit.workers.outputs.layout import (
     JOB_SUMMARIES_GROUP,
     TILE_SUMMARIES_GROUP,
@@ -211,14 +210,7 @@ def write_group_files(folder: Path, entries: dict[Key, DhSummary], attrs: dict[s
         chunk.parent.mkdir(parents=True, exist_ok=True)  # histograms itself with "." keys
         chunk.write_bytes(_HISTOGRAM_BLOSC.encode(little))
     (histograms / "zarr.json").write_bytes(array.to_buffer_dict(prototype)["zarr.json"].to_bytes())
-    _write_by_rename(folder / "zarr.json", group.to_buffer_dict(prototype)["zarr.json"].to_bytes())
-
-
-def _write_by_rename(path: Path, data: bytes) -> None:
-    """Write path's content whole or not at all (a temporary file beside it, then renamed)."""
-    temporary = path.with_name(f".{path.name}.{os.getpid()}.partial")
-    temporary.write_bytes(data)
-    os.replace(temporary, path)
+    write_by_rename(folder / "zarr.json", group.to_buffer_dict(prototype)["zarr.json"].to_bytes())
 
 
 @cache
