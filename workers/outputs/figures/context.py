@@ -99,7 +99,7 @@ def stored_display_blocks(array: Any, factor: int) -> NDArray[np.float64]:
     band = band_rows(int(array.chunks[0]), factor, width=int(array.shape[1]))
     rows = array.shape[0]
     parts = [
-        display_blocks(np.asarray(array[start : start + band], dtype=np.float64), factor)
+        display_blocks(np.asarray(array[start : start + band]), factor)
         for start in range(0, rows, band)
     ]
     return np.concatenate(parts, axis=0)
@@ -114,19 +114,26 @@ def band_rows(rows_per_chunk: int, factor: int, *, width: int) -> int:
     return band
 
 
-def display_blocks(values: NDArray[np.float64], factor: int) -> NDArray[np.float64]:
+def display_blocks(values: NDArray[np.floating], factor: int) -> NDArray[np.float64]:
     """Mean of the finite values of each factor x factor block, NaN where a block has none
-    (edge blocks average what they hold). numpy: a few milliseconds for a map, where the
-    compiled block kernel would first have to be loaded into this process (~0.5 s)."""
+    (edge blocks average what they hold), in float64 whatever the float type of values.
+
+    One strided pass per cell of a block (factor^2 passes over output-sized arrays, the sums in
+    the block's row-major order), not numpy's sum over the block axes of a padded 4-D float64
+    copy: 2.5x faster (issue 13); the means differ from it by rounding only (tested against
+    exact sums). For the map only: no statistic reads them."""
     if factor <= 1:
-        return values
+        return np.asarray(values, dtype=np.float64)
     rows, cols = -(-values.shape[0] // factor), -(-values.shape[1] // factor)
-    padded = np.full((rows * factor, cols * factor), np.nan)
-    padded[: values.shape[0], : values.shape[1]] = values
-    blocks = padded.reshape(rows, factor, cols, factor)
-    finite = np.isfinite(blocks)
-    count = finite.sum(axis=(1, 3))
-    total = np.where(finite, blocks, 0.0).sum(axis=(1, 3))
+    total = np.zeros((rows, cols))
+    count = np.zeros((rows, cols), dtype=np.int64)
+    for i in range(factor):
+        for j in range(factor):
+            part = values[i::factor, j::factor]
+            finite = np.isfinite(part)
+            height, width = part.shape
+            total[:height, :width] += np.where(finite, part, 0.0)
+            count[:height, :width] += finite
     with np.errstate(invalid="ignore", divide="ignore"):
         return np.where(count > 0, total / np.maximum(count, 1), np.nan)
 

@@ -3,8 +3,12 @@ equal the dh overview's own block means."""
 
 from __future__ import annotations
 
+import math
+
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from demaudit.workers.outputs.figures import FigureContext
 from demaudit.workers.outputs.figures.context import display_blocks
@@ -19,6 +23,45 @@ def test_display_blocks_equal_the_tile_block_means(factor):
     values[:14, :14] = np.nan  # whole blocks without a value
     expected = values if factor == 1 else block_mean(values, factor)
     assert np.allclose(display_blocks(values, factor), expected, equal_nan=True, atol=1e-6)
+
+
+def _exact_block_means(values, factor):
+    """Per block: the mean of its finite values by math.fsum (correctly rounded), and the sum
+    of their magnitudes (for the rounding bound of a plain summation)."""
+    rows, cols = -(-values.shape[0] // factor), -(-values.shape[1] // factor)
+    mean, magnitude = np.full((rows, cols), np.nan), np.zeros((rows, cols))
+    for r in range(rows):
+        for c in range(cols):
+            block = values[r * factor : (r + 1) * factor, c * factor : (c + 1) * factor]
+            finite = block[np.isfinite(block)].astype(np.float64)
+            if finite.size:
+                mean[r, c] = math.fsum(finite) / finite.size
+                magnitude[r, c] = np.abs(finite).sum() / finite.size
+    return mean, magnitude
+
+
+@settings(max_examples=60, deadline=None)
+@given(
+    shape=st.tuples(st.integers(1, 40), st.integers(1, 40)),
+    factor=st.integers(2, 12),
+    seed=st.integers(0, 2**16),
+    dtype=st.sampled_from([np.float32, np.float64]),
+)
+def test_display_blocks_are_the_block_means_within_summation_rounding(shape, factor, seed, dtype):
+    # heavy-tailed values, voids and infinities (left out, as NaN is); the bound is the
+    # classic one of a plain summation of n terms: n * eps * sum |x| (Higham, Accuracy and
+    # Stability of Numerical Algorithms, 2nd ed., section 4.2), divided by the count
+    rng = np.random.default_rng(seed)
+    values = (rng.standard_cauchy(shape) * 10.0 ** rng.integers(-3, 4)).astype(dtype)
+    values[rng.random(shape) < 0.3] = np.nan
+    values[rng.random(shape) < 0.02] = np.inf
+    got = display_blocks(values, factor)
+    exact, magnitude = _exact_block_means(values, factor)
+    assert got.dtype == np.float64
+    np.testing.assert_array_equal(np.isnan(got), np.isnan(exact))
+    bound = factor**2 * np.finfo(np.float64).eps * magnitude
+    finite = ~np.isnan(exact)
+    assert (np.abs(got[finite] - exact[finite]) <= bound[finite]).all()
 
 
 def test_context_reads_the_tile_statistics_from_the_spec(tmp_path):
