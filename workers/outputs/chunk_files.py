@@ -19,6 +19,7 @@ import numpy as np
 from numcodecs import Zstd
 from numpy.typing import NDArray
 from zarr.codecs import BytesCodec, ZstdCodec
+from zarr.core.chunk_grids import RegularChunkGrid
 from zarr.storage import LocalStore
 
 from demaudit.workers.outputs.folder import write_by_rename
@@ -64,8 +65,8 @@ def _plan(array: Any) -> tuple[Path, Zstd, tuple[int, int]] | None:
         return None
     if codecs[0].endian is not None and codecs[0].endian.value != "little":
         return None
-    if not isinstance(codecs[1], ZstdCodec) or metadata.chunk_grid.__class__.__name__ != (
-        "RegularChunkGrid"
+    if not isinstance(codecs[1], ZstdCodec) or not isinstance(
+        metadata.chunk_grid, RegularChunkGrid
     ):
         return None
     chunks = tuple(int(c) for c in metadata.chunk_grid.chunk_shape)
