@@ -9,6 +9,7 @@ import json
 import math
 import os
 import shutil
+import uuid
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from pathlib import Path
@@ -112,11 +113,18 @@ def link_or_copy(source: str, target: str) -> None:
 
 
 def write_by_rename(path: Path, data: bytes) -> None:
-    """Write a file whole or not at all: a temporary file beside it, renamed over it (never
-    written in place, so a file linked from an earlier result stays as it was)."""
-    temporary = path.with_name(f".{path.name}.{os.getpid()}.partial")
-    temporary.write_bytes(data)
-    os.replace(temporary, path)
+    """Write a file whole or not at all: a new temporary file beside it (a unique name, made
+    exclusively: never a leftover that a link may share with an earlier result), renamed over
+    it; removed again when writing fails. Nothing is written in place, so a file linked from an
+    earlier result stays as it was."""
+    temporary = path.with_name(f".{path.name}.{uuid.uuid4().hex}.partial")
+    try:
+        with open(temporary, "xb") as fh:
+            fh.write(data)
+        os.replace(temporary, path)
+    except BaseException:
+        temporary.unlink(missing_ok=True)
+        raise
 
 
 def write_summary(out_dir: Path, document: Mapping[str, Any], *, name: str = SUMMARY_NAME) -> Path:

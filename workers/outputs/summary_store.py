@@ -103,9 +103,13 @@ class TileSummaryStore:
         write_group_files(folder, entries, {"excluded": int(excluded)})
 
     def read(self, tile_id: str) -> tuple[dict[Key, DhSummary], int]:
-        """A tile's summaries and its excluded-pixel count (KeyError when not stored)."""
+        """A tile's summaries and its excluded-pixel count (KeyError when not stored;
+        ValueError when a histogram does not add up to its entry's count, e.g. a chunk lost)."""
         group = self._parent[tile_id]
         entries, attrs = read_entries(group)
+        for key, s in entries.items():
+            if int(s.counts.sum()) != s.count:
+                raise ValueError(f"stored summaries of tile {tile_id} ({key}) do not add up")
         return entries, int(attrs.get("excluded", 0))
 
     def has(self, tile_id: str) -> bool:
@@ -191,23 +195,25 @@ def write_group_files(folder: Path, entries: dict[Key, DhSummary], attrs: dict[s
     """write_entries for a group in a local store, written as files without zarr's
     asynchronous store layer (9 ms a tile there, most of it hand-offs between threads; issue
     13): the same documents (zarr's metadata classes make them) and chunk bytes (tested against
-    what zarr writes). Order: a group that was there is removed first (as zarr's overwrite),
-    then the histograms' chunk and document, the group's document last and by rename, so a
-    group whose zarr.json is there is whole (TileSummaryStore.has). folder's parent must exist
-    (FileNotFoundError otherwise: a store removed meanwhile is not made again)."""
+    what zarr writes). Order: a group that was there is removed first, its zarr.json before
+    anything else (a removal cut short leaves no group); then the histograms' chunk and
+    document, the group's document last and by rename, so a group whose zarr.json is there is
+    whole (TileSummaryStore.has). folder's parent must exist (FileNotFoundError otherwise: a
+    store removed meanwhile is not made again)."""
     records, table = packed_entries(entries)
     prototype = default_buffer_prototype()
     group = GroupMetadata(attributes={"entries": records, **attrs})
     array = _histogram_metadata(table)
     if folder.exists():
+        (folder / "zarr.json").unlink(missing_ok=True)
         shutil.rmtree(folder)
     histograms = folder / HISTOGRAMS
     folder.mkdir()
     histograms.mkdir()
     if table.size:  # an empty table has no chunk (as zarr writes it)
         little = np.ascontiguousarray(table, dtype=table.dtype.newbyteorder("<"))
+        # "." chunk keys: the chunk lies in histograms itself (no folder to make, none remade)
         chunk = histograms / array.encode_chunk_key((0, 0))
-        chunk.parent.mkdir(parents=True, exist_ok=True)  # histograms itself with "." keys
         chunk.write_bytes(_HISTOGRAM_BLOSC.encode(little))
     (histograms / "zarr.json").write_bytes(array.to_buffer_dict(prototype)["zarr.json"].to_bytes())
     write_by_rename(folder / "zarr.json", group.to_buffer_dict(prototype)["zarr.json"].to_bytes())

@@ -10,7 +10,7 @@ from pathlib import Path
 import pytest
 
 from demaudit.workers.errors import AuditError, OutputError, SpecError
-from demaudit.workers.outputs.folder import staged_folder
+from demaudit.workers.outputs.folder import staged_folder, write_by_rename
 from demaudit.workers.outputs.layout import SUMMARY_NAME
 
 
@@ -93,3 +93,32 @@ def test_an_empty_folder_is_used(tmp_path):
     with staged_folder(tmp_path / "out", "r7") as stage:
         (stage / SUMMARY_NAME).write_text("{}")
     assert files(tmp_path / "out") == {"summary.json": "{}"}
+
+
+def test_write_by_rename_never_writes_through_a_link(tmp_path):
+    # a re-check's store hard-links its baseline's files: replacing one must leave the
+    # baseline's as it was, and so must a leftover temporary file that shares a link with it
+    target = tmp_path / "new" / "c.0.0"
+    target.parent.mkdir()
+    baseline = tmp_path / "baseline_chunk"
+    baseline.write_bytes(b"baseline")
+    os.link(baseline, target)
+    stray = target.with_name(f".{target.name}.{os.getpid()}.partial")
+    os.link(baseline, stray)
+    write_by_rename(target, b"new")
+    assert target.read_bytes() == b"new" and baseline.read_bytes() == b"baseline"
+    assert stray.read_bytes() == b"baseline"
+
+
+def test_write_by_rename_leaves_no_temporary_file_when_it_fails(tmp_path, monkeypatch):
+    target = tmp_path / "c.0.0"
+    target.write_bytes(b"old")
+
+    def refuse(*args):
+        raise OSError(errno.ENOSPC, "no space left")
+
+    monkeypatch.setattr(os, "replace", refuse)
+    with pytest.raises(OSError):
+        write_by_rename(target, b"new")
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["c.0.0"]
+    assert target.read_bytes() == b"old"

@@ -186,7 +186,9 @@ def test_a_tile_written_as_files_is_byte_for_byte_what_zarr_writes(tmp_path, wid
     if wide:  # counts beyond int32: the int64 table
         s = entries[("*", "")]
         big = s.counts.astype(np.int64) * 2**31
-        entries[("*", "")] = DhSummary(2**31, s.mean, s.m2, s.minimum, s.maximum, s.bins, big)
+        entries[("*", "")] = DhSummary(
+            int(big.sum()), s.mean, s.m2, s.minimum, s.maximum, s.bins, big
+        )
     own, theirs = tmp_path / "own.zarr", tmp_path / "zarr.zarr"
     TileSummaryStore(own, mode="a").write("t0", entries, excluded=4)
     parent = open_store_group(theirs, TILE_SUMMARIES_GROUP, mode="a")
@@ -213,3 +215,31 @@ def test_a_tile_is_not_written_into_a_store_removed_meanwhile(tmp_path):
     with pytest.raises(FileNotFoundError):
         store.write("t0", {("*", ""): summarise(np.ones(3))})
     assert not path.exists()
+
+
+def test_a_tile_whose_histograms_are_lost_does_not_read_as_zero_counts(tmp_path):
+    # an overwrite cut short (or a chunk lost) must not give a re-check a tile of empty
+    # histograms with full counts: reading it fails, and the re-check recomputes (reuse.py)
+    rng = np.random.default_rng(12)
+    path = tmp_path / "results.zarr"
+    store = TileSummaryStore(path, mode="a")
+    store.write("t0", keyed_summaries(result("t0", rng)), excluded=2)
+    (path / TILE_SUMMARIES_GROUP / "t0" / "histograms" / "c.0.0").unlink()
+    with pytest.raises(ValueError, match="t0"):
+        store.read("t0")
+
+
+def test_rewriting_a_tile_removes_its_group_document_first(tmp_path, monkeypatch):
+    # a removal cut short leaves no group behind (has() False), never a group without its data
+    rng = np.random.default_rng(13)
+    path = tmp_path / "results.zarr"
+    store = TileSummaryStore(path, mode="a")
+    store.write("t0", keyed_summaries(result("t0", rng)))
+
+    def cut_short(folder, *args, **kwargs):
+        raise OSError("disk gone")
+
+    monkeypatch.setattr(shutil, "rmtree", cut_short)
+    with pytest.raises(OSError):
+        store.write("t0", keyed_summaries(result("t0", rng)))
+    assert not store.has("t0")
