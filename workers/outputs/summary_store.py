@@ -48,9 +48,15 @@ Key = tuple[str, str]  # (area, stratum)
 HISTOGRAMS = "histograms"  # the array of a group's histograms (bins, counts)
 #: Codec of the stored histograms: LZ4 on byte-shuffled integers, about as fast as writing them
 #: raw and several times smaller (measured: benchmarks/RESULTS.md, issue 13). write_group_files
-#: encodes the chunk with numcodecs' Blosc of the same settings (the bytes zarr writes, tested).
+#: encodes the chunk with numcodecs' Blosc made from it (the bytes zarr writes, tested).
 _HISTOGRAM_CODEC = BloscCodec(cname="lz4", clevel=1, shuffle="shuffle")
-_HISTOGRAM_BLOSC = Blosc(cname="lz4", clevel=1, shuffle=Blosc.SHUFFLE, blocksize=0)
+_SHUFFLES = {"noshuffle": Blosc.NOSHUFFLE, "shuffle": Blosc.SHUFFLE, "bitshuffle": Blosc.BITSHUFFLE}
+_HISTOGRAM_BLOSC = Blosc(
+    cname=_HISTOGRAM_CODEC.cname.value,
+    clevel=_HISTOGRAM_CODEC.clevel,
+    shuffle=_SHUFFLES[_HISTOGRAM_CODEC.shuffle.value],
+    blocksize=_HISTOGRAM_CODEC.blocksize,
+)
 #: The histograms' one chunk is ``c.0.0`` beside the array's zarr.json (zarr's default chunk
 #: key encoding with "." as separator: two folders fewer to make per tile than ``c/0/0``).
 _CHUNK_KEYS = {"name": "default", "separator": "."}
