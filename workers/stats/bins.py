@@ -15,7 +15,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from demaudit.workers.compiled import AVAILABLE
-from demaudit.workers.stats.kernels import add_into, nonzero_entries
+from demaudit.workers.stats.kernels import add_into, add_within, nonzero_entries
 
 LINEAR_WIDTH_M = 2.0e-4
 LINEAR_LIMIT_M = 2.0
@@ -113,15 +113,15 @@ def added_parts(
     if entries >= _DENSE_ADD_FROM:
         low = min(int(b[0]) for b, _ in present)
         span = max(int(b[-1]) for b, _ in present) - low + 1
-        rising = all(b.size < 2 or bool((np.diff(b) > 0).all()) for b, _ in present)
-        if rising and span <= _DENSE_SPAN:
+        if 0 < span <= _DENSE_SPAN:
             dense = np.zeros(span, dtype=np.int64)
-            for b, c in present:
-                if AVAILABLE:
-                    add_into(dense, b, c, low)
-                else:
+            if AVAILABLE:  # bounds checked while adding: parts in any order are refused
+                if all(add_within(dense, b, c, low) for b, c in present):
+                    return dense_entries(dense, low)
+            elif all(b.size < 2 or bool((np.diff(b) > 0).all()) for b, _ in present):
+                for b, c in present:
                     dense[b - low] += c  # bins distinct within one histogram: no index repeats
-            return dense_entries(dense, low)
+                return dense_entries(dense, low)
     if not present:
         return np.zeros(0, np.int64), np.zeros(0, np.int64)
     return added_histograms(

@@ -24,6 +24,23 @@ def add_into(dense: Any, bins: Any, counts: Any, low: int) -> None:
     compiled(_add_into)(dense, bins, counts, low)
 
 
+def _add_within(dense, bins, counts, low):  # type: ignore[no-untyped-def]
+    """_add_into when every bins[k] - low indexes dense: True; else False at the first that
+    does not (dense then holds a part of the sum: the caller drops it)."""
+    for k in range(bins.size):
+        i = bins[k] - low
+        if i < 0 or i >= dense.size:
+            return False
+        dense[i] += counts[k]
+    return True
+
+
+def add_within(dense: Any, bins: Any, counts: Any, low: int) -> bool:
+    """Compiled _add_within (same arguments): the bounds are checked in the same pass, so the
+    parts need no check of their order beforehand."""
+    return bool(compiled(_add_within)(dense, bins, counts, low))
+
+
 def _nonzero_entries(dense, low):  # type: ignore[no-untyped-def]
     """(i + low, dense[i]) for every nonzero dense[i], i ascending, as two int64 arrays: one
     pass to count them, one to fill (no index array in between)."""
@@ -154,3 +171,74 @@ def _valley_order_statistics(values, counts, ranks, out):  # type: ignore[no-unt
 def valley_order_statistics(values: Any, counts: Any, ranks: Any, out: Any) -> bool:
     """Compiled _valley_order_statistics (same arguments)."""
     return bool(compiled(_valley_order_statistics)(values, counts, ranks, out))
+
+
+# -- the histogram's packed form (packing.py) --------------------------------------------------
+
+
+def _escaped_bytes(values, escape, small):  # type: ignore[no-untyped-def]
+    """small[i] = values[i], or escape where values[i] >= escape (none negative); returns how
+    many were escaped (branch-free, so the loop vectorises)."""
+    wide = 0
+    for i in range(values.size):
+        v = values[i]
+        small[i] = min(v, escape)
+        wide += v >= escape
+    return wide
+
+
+def escaped_bytes(values: Any, escape: int, small: Any) -> int:
+    """Compiled _escaped_bytes (same arguments)."""
+    return int(compiled(_escaped_bytes)(values, escape, small))
+
+
+def _listed_values(values, escape, listed):  # type: ignore[no-untyped-def]
+    """The values >= escape, in order, into listed."""
+    j = 0
+    for i in range(values.size):
+        if values[i] >= escape:
+            listed[j] = values[i]
+            j += 1
+
+
+def listed_values(values: Any, escape: int, listed: Any) -> None:
+    """Compiled _listed_values (same arguments)."""
+    compiled(_listed_values)(values, escape, listed)
+
+
+def _unescaped(small, listed, escape, out):  # type: ignore[no-untyped-def]
+    """out[i] = small[i], or the next of listed where small[i] is escape (cast to out's type
+    as numpy's astype casts)."""
+    j = 0
+    for i in range(small.size):
+        if small[i] == escape:
+            out[i] = listed[j]
+            j += 1
+        else:
+            out[i] = small[i]
+
+
+def unescaped(small: Any, listed: Any, escape: int, out: Any) -> None:
+    """Compiled _unescaped (same arguments)."""
+    compiled(_unescaped)(small, listed, escape, out)
+
+
+def _running_sum(first, small, listed, escape, out):  # type: ignore[no-untyped-def]
+    """out[0] = first, out[i + 1] = out[i] + step i (small[i], or the next of listed where it
+    is escape), summed in int64 (wrapping as numpy's cumsum does) and cast to out's type."""
+    total = np.int64(first)
+    out[0] = total
+    j = 0
+    for i in range(small.size):
+        if small[i] == escape:
+            step = np.int64(listed[j])
+            j += 1
+        else:
+            step = np.int64(small[i])
+        total += step
+        out[i + 1] = total
+
+
+def running_sum(first: int, small: Any, listed: Any, escape: int, out: Any) -> None:
+    """Compiled _running_sum (same arguments)."""
+    compiled(_running_sum)(first, small, listed, escape, out)

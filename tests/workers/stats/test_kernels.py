@@ -42,6 +42,36 @@ def test_added_parts_compiled_and_in_numpy_agree(monkeypatch: pytest.MonkeyPatch
         np.testing.assert_array_equal(got, want)
 
 
+@pytest.mark.parametrize("compiled", [True, False])
+@pytest.mark.parametrize("fault", ["above", "below"])
+def test_added_parts_of_unsorted_parts_equal_one_sort(
+    compiled: bool, fault: str, monkeypatch: pytest.MonkeyPatch
+) -> None:
+    """A part whose bins do not rise: falling, its first bin above every part's last
+    ("above"); or shuffled, with repeats, reaching below every part's first ("below"). The
+    compiled add checks its bounds as it goes and the numpy add checks the order first, so
+    either gives the sum of one sort over all entries."""
+    monkeypatch.setattr(bins, "AVAILABLE", compiled and bins.AVAILABLE)
+    rng = np.random.default_rng(9)
+    parts = []
+    for k in range(12):
+        b = np.unique(rng.integers(-5_000, 20_000, 1_500))
+        c = rng.integers(1, 50, b.size)
+        if k == 3 and fault == "above":
+            b, c = b[::-1] + 10_000, c[::-1]
+        if k == 7 and fault == "below":
+            order = rng.permutation(b.size)
+            b, c = np.concatenate([b[order], b[:5] - 9_000]), np.concatenate([c[order], c[:5]])
+        parts.append((b.astype(np.int64), c.astype(np.int64)))
+    got = bins.added_parts(parts)
+    want = bins.added_histograms(
+        np.concatenate([b for b, _ in parts]), np.concatenate([c for _, c in parts])
+    )
+    for g, w in zip(got, want, strict=True):
+        assert g.dtype == w.dtype
+        np.testing.assert_array_equal(g, w)
+
+
 @given(
     dense=arrays(
         st.sampled_from([np.int32, np.int64]),

@@ -6,7 +6,7 @@ import pickle
 
 import numpy as np
 import pytest
-from hypothesis import given, settings
+from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from hypothesis.extra.numpy import arrays
 
@@ -17,22 +17,34 @@ from demaudit.workers.stats.bins import sparse_histogram
 _INTS = st.sampled_from([np.int8, np.int16, np.int32, np.int64, np.uint8, np.uint32, np.uint64])
 
 
+@pytest.fixture(params=[True, False], ids=["compiled", "numpy"])
+def either_path(request: pytest.FixtureRequest, monkeypatch: pytest.MonkeyPatch) -> bool:
+    """Pack and unpack with the compiled loops (when numba is there) and with numpy."""
+    monkeypatch.setattr(packing, "AVAILABLE", request.param and packing.AVAILABLE)
+    return bool(request.param)
+
+
 def assert_same(got: np.ndarray, want: np.ndarray) -> None:
     assert got.dtype == want.dtype
     assert got.shape == want.shape
     np.testing.assert_array_equal(got, want)
 
 
-@settings(max_examples=300, deadline=None)
+# either_path patches a module flag once for all examples, as meant
+@settings(
+    max_examples=300, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture]
+)
 @given(
     bins=_INTS.flatmap(lambda t: arrays(t, st.integers(0, 40))),
     counts_dtype=_INTS,
     data=st.data(),
     sort=st.booleans(),
 )
-def test_unpack_gives_back_the_values_and_dtypes(bins, counts_dtype, data, sort) -> None:
+def test_unpack_gives_back_the_values_and_dtypes(
+    bins, counts_dtype, data, sort, either_path
+) -> None:
     """Any integer arrays, sorted or not, repeated bins, negative or huge counts: unpacked as
-    they were (the packing only chooses a form)."""
+    they were (the packing only chooses a form), by either path."""
     if sort:
         bins = np.unique(bins)
     counts = data.draw(arrays(counts_dtype, bins.size))
@@ -53,7 +65,7 @@ def test_unpack_gives_back_the_values_and_dtypes(bins, counts_dtype, data, sort)
         (np.arange(6, dtype=np.int32).reshape(2, 3), np.ones((2, 3), np.int32)),  # not 1-D
     ],
 )
-def test_edges_of_the_packing(bins: np.ndarray, counts: np.ndarray) -> None:
+def test_edges_of_the_packing(bins: np.ndarray, counts: np.ndarray, either_path: bool) -> None:
     got_bins, got_counts = packing.unpack(packing.pack(bins, counts))
     assert_same(got_bins, bins)
     assert_same(got_counts, counts)
@@ -72,6 +84,23 @@ def test_a_tile_histogram_packs_to_a_third_or_less() -> None:
     assert steps[0].dtype == np.uint8 and packed_counts[0].dtype == np.uint8
     summary = dhs.summarise(x)
     assert len(pickle.dumps(summary, protocol=5)) < raw / 3
+
+
+def test_both_paths_pack_to_the_same_form(monkeypatch: pytest.MonkeyPatch) -> None:
+    """The compiled loops make the numpy path's packed form (values and dtypes), so either
+    side of a trip may take either path; wide counts and steps of each listed width."""
+    rng = np.random.default_rng(11)
+    bins = np.unique(rng.integers(-(2**40), 2**40, 5_000)).astype(np.int64)
+    bins[-3:] += np.array([2**16, 2**33, 2**50])  # steps beyond uint8, uint16 and uint32
+    counts = rng.integers(0, 300, bins.size).astype(np.int32)
+    counts[::97] = 2**31 - 1
+    compiled = packing.pack(bins, counts)
+    monkeypatch.setattr(packing, "AVAILABLE", False)
+    plain = packing.pack(bins, counts)
+    assert compiled[0] == plain[0] and compiled[3:] == plain[3:]
+    for got, want in zip(compiled[1:3], plain[1:3], strict=True):
+        for got_part, want_part in zip(got, want, strict=True):
+            assert_same(got_part, want_part)
 
 
 def test_a_pickled_summary_is_the_same_summary() -> None:
