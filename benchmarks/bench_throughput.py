@@ -88,6 +88,7 @@ from throughput_archives import (  # noqa: E402
     write_spec,
 )
 from throughput_report import Run, machine_facts, phases, report  # noqa: E402
+from tile_loop import scaling_lines  # noqa: E402
 
 from demaudit.workers.inputs.tiff_blocks import block_layout, read_band  # noqa: E402
 from demaudit.workers.tile.datum import DEFAULT_GRID_DIRS  # noqa: E402
@@ -260,6 +261,15 @@ def measure(command: list[str]) -> tuple[float, float, str, bool]:
     return seconds, peak / 2**20, out, proc.returncode == 0
 
 
+def job_timings(summary_path: Path) -> dict[str, float] | None:
+    """The job's own clock, seconds per phase (summary.json job.timings_s); None without it."""
+    try:
+        timings = json.loads(summary_path.read_text())["job"]["timings_s"]
+    except (OSError, ValueError, KeyError, TypeError):
+        return None
+    return {str(k): float(v) for k, v in timings.items()}
+
+
 def run_all(plan: Plan, work: Path, contenders: Sequence[str], *, round_no: int = 0) -> list[Run]:
     plan_path = work / f"plan-{plan.kind}-{plan.size}.json"
     plan_path.write_text(json.dumps({"kind": plan.kind, "pairs": plan.pairs}))
@@ -278,9 +288,11 @@ def run_all(plan: Plan, work: Path, contenders: Sequence[str], *, round_no: int 
             command = [sys.executable, __file__, "--contender", contender, "--plan", str(plan_path)]
         seconds, peak, output, ok = measure(command)
         load = os.getloadavg()[0]
-        runs.append(
-            Run(contender, plan.kind, plan.size, pixels, seconds, peak, output, load, ok, round_no)
-        )
+        kind, size = plan.kind, plan.size
+        run = Run(contender, kind, size, pixels, seconds, peak, output, load, ok, round_no)
+        if contender.startswith("demaudit") and ok:
+            run.timings = job_timings(out_dir / "summary.json")
+        runs.append(run)
         say(
             f"  {plan.kind:<12}{plan.size:>4} tiles  {contender:<12}{seconds:8.1f} s"
             f"{pixels / seconds / 1e6:8.2f} Mpix/s (whole run){peak:9.0f} MiB peak, "
@@ -312,6 +324,14 @@ def main(argv: Sequence[str] | None = None) -> int:
         "demaudit-w1 "
         "(default all; leave naive out for large sizes: it holds every dh in memory)",
     )
+    parser.add_argument(
+        "--tile-loop",
+        type=int,
+        default=0,
+        metavar="N",
+        help="also time the tile work without Dask, N tiles in one process and then in two at "
+        "once (tile_loop.py; --repeat rounds; same-grid archive; default off)",
+    )
     parser.add_argument("--contender", help=argparse.SUPPRESS)
     parser.add_argument("--plan", type=Path, help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
@@ -328,6 +348,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     command = "python benchmarks/bench_throughput.py " + " ".join(sys.argv[1:])
     say("\n".join(machine_facts()))
     runs: list[Run] = []
+    loop_lines: list[str] = []
     phase_table: dict[str, list[tuple[str, float]]] = {}
     work = args.cache / "runs"
     work.mkdir(parents=True, exist_ok=True)
@@ -347,7 +368,12 @@ def main(argv: Sequence[str] | None = None) -> int:
                     runs += run_all(plan, work, [contender], round_no=round_no)
         spec = work / f"spec-{kind}-{small.count}" / "spec.yaml"
         phase_table[kind] = phases(spec)
+        if args.tile_loop and kind == SAME_GRID:
+            large = work / f"spec-{kind}-{big.count}" / "spec.yaml"
+            loop_lines = scaling_lines(large, args.tile_loop, max(1, args.repeat))
     say(report(runs, sizes, pixels, phase_table, command))
+    if loop_lines:
+        say("\n".join(loop_lines))
     return 0
 
 

@@ -33,6 +33,8 @@ class Run:
     load: float = 0.0
     ok: bool = True  # a failed run (exit status not 0) counts in no figure
     round_no: int = 0  # with --repeat: the round it ran in (contenders side by side)
+    #: demaudit runs: the job's own clock (summary.json job.timings_s), seconds per phase
+    timings: dict[str, float] | None = None
 
 
 # -- phases of one tile -------------------------------------------------------------------------
@@ -123,15 +125,24 @@ class Marginal:
     peaks: tuple[float, float]
 
 
-def marginal(runs: Sequence[Run], contender: str, kind: str) -> Marginal | None:
-    """Extra pixels / extra seconds between the two sizes, each size's fastest completed run
-    (with --repeat, the one least slowed by other processes)."""
+def fastest_pair(runs: Sequence[Run], contender: str, kind: str) -> tuple[Run, Run] | None:
+    """The fastest completed run of the small and of the large size (with --repeat, the ones
+    least slowed by other processes); None without both sizes."""
     mine = [r for r in runs if r.contender == contender and r.kind == kind and r.ok]
     sizes = sorted({r.size for r in mine})
     if len(sizes) < 2:
         return None
     small = min((r for r in mine if r.size == sizes[0]), key=lambda r: r.seconds)
     big = min((r for r in mine if r.size == sizes[-1]), key=lambda r: r.seconds)
+    return small, big
+
+
+def marginal(runs: Sequence[Run], contender: str, kind: str) -> Marginal | None:
+    """Extra pixels / extra seconds between the two sizes, each size's fastest completed run."""
+    pair = fastest_pair(runs, contender, kind)
+    if pair is None:
+        return None
+    small, big = pair
     if big.seconds <= small.seconds:
         return None
     return Marginal(
@@ -167,7 +178,7 @@ def report(
         f"sizes: {sizes[0]} and {sizes[1]} test tiles of {pixels} x {pixels} px; "
         "marginal = extra pixels / extra seconds (each size's fastest run)"
     )
-    lines += ["", *contender_table(runs), "", *ratio_lines(runs)]
+    lines += ["", *contender_table(runs), "", *ratio_lines(runs), *phase_split_lines(runs)]
     for kind, table in phase_table.items():
         lines.append("")
         lines.append(
@@ -258,3 +269,51 @@ def round_ratios(runs: Sequence[Run], kind: str, limit: str) -> str:
         for name, values in found.items()
         if values
     )
+
+
+#: The job clock's phases shown on their own; the others are summed as "rest of the job".
+_OWN_PHASES = (("catalog_and_coregistration", "catalog"), ("tiles", "tiles"))
+
+
+def phase_split_lines(runs: Sequence[Run]) -> list[str]:
+    """Where demaudit's extra seconds go between the two sizes (the runs the marginal figures
+    use), by the job's own clock: catalog (headers and fingerprints on the cluster), the tile
+    phase, the rest of the job (totals, tables, figures, report), and the run outside the job
+    clock (interpreter, imports, cluster start and stop); with both worker counts, how much
+    faster 2 workers did each part than 1."""
+    lines = []
+    for kind in (SAME_GRID, REPROJECTED):
+        extra: dict[str, dict[str, float]] = {}
+        for contender in ("demaudit-w2", "demaudit-w1"):
+            pair = fastest_pair(runs, contender, kind)
+            if pair is None or pair[0].timings is None or pair[1].timings is None:
+                continue
+            extra[contender] = _extra_by_part(*pair)
+        if not extra:
+            continue
+        tiles = max(r.size for r in runs if r.kind == kind) - min(
+            r.size for r in runs if r.kind == kind
+        )
+        lines.append(f"extra seconds between the sizes by the job's clock ({kind}, {tiles} tiles):")
+        for contender, parts in extra.items():
+            shown = "  ".join(f"{name} {seconds:.2f}" for name, seconds in parts.items())
+            lines.append(f"  {contender:<12}{shown}")
+        if len(extra) == 2:
+            two, one = extra["demaudit-w2"], extra["demaudit-w1"]
+            gains = "  ".join(
+                f"{name} {one[name] / two[name]:.2f}" for name in two if two[name] > 0.05
+            )
+            lines.append(f"  1 worker's / 2 workers' extra seconds: {gains}")
+    return lines
+
+
+def _extra_by_part(small: Run, big: Run) -> dict[str, float]:
+    parts = {}
+    for run, sign in ((big, 1.0), (small, -1.0)):
+        timings = run.timings or {}
+        own = {label: timings.get(key, 0.0) for key, label in _OWN_PHASES}
+        rest = sum(timings.values()) - sum(own.values())
+        outside = run.seconds - sum(timings.values())
+        for name, seconds in (*own.items(), ("rest of the job", rest), ("outside", outside)):
+            parts[name] = parts.get(name, 0.0) + sign * seconds
+    return parts
