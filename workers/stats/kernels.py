@@ -208,37 +208,47 @@ def listed_values(values: Any, escape: int, listed: Any) -> None:
 
 def _unescaped(small, listed, escape, out):  # type: ignore[no-untyped-def]
     """out[i] = small[i], or the next of listed where small[i] is escape (cast to out's type
-    as numpy's astype casts)."""
+    as numpy's astype casts). Returns how many of listed it took, -1 when it ran out of them."""
     j = 0
     for i in range(small.size):
         if small[i] == escape:
+            if j == listed.size:
+                return -1
             out[i] = listed[j]
             j += 1
         else:
             out[i] = small[i]
+    return j
 
 
 def unescaped(small: Any, listed: Any, escape: int, out: Any) -> None:
-    """Compiled _unescaped (same arguments)."""
-    compiled(_unescaped)(small, listed, escape, out)
+    """Compiled _unescaped (same arguments); ValueError unless every listed value was taken
+    (a packed form that does not hold together)."""
+    if compiled(_unescaped)(small, listed, escape, out) != listed.size:
+        raise ValueError("packed values: the escaped bytes and the listed values disagree")
 
 
 def _running_sum(first, small, listed, escape, out):  # type: ignore[no-untyped-def]
     """out[0] = first, out[i + 1] = out[i] + step i (small[i], or the next of listed where it
-    is escape), summed in int64 (wrapping as numpy's cumsum does) and cast to out's type."""
+    is escape), summed in int64 (wrapping as numpy's cumsum does) and cast to out's type.
+    Returns how many of listed it took, -1 when it ran out of them."""
     total = np.int64(first)
     out[0] = total
     j = 0
     for i in range(small.size):
         if small[i] == escape:
+            if j == listed.size:
+                return -1
             step = np.int64(listed[j])
             j += 1
         else:
             step = np.int64(small[i])
         total += step
         out[i + 1] = total
+    return j
 
 
 def running_sum(first: int, small: Any, listed: Any, escape: int, out: Any) -> None:
-    """Compiled _running_sum (same arguments)."""
-    compiled(_running_sum)(first, small, listed, escape, out)
+    """Compiled _running_sum (same arguments); ValueError unless every listed value was taken."""
+    if compiled(_running_sum)(first, small, listed, escape, out) != listed.size:
+        raise ValueError("packed steps: the escaped bytes and the listed values disagree")

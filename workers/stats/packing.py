@@ -105,5 +105,8 @@ def _from_bytes(packed: Bytes) -> NDArray[np.int64]:
     """The values _as_bytes packed, as int64."""
     small, listed = packed
     values = small.astype(np.int64)
-    values[small == _ESCAPE] = listed
+    escaped = small == _ESCAPE
+    if int(np.count_nonzero(escaped)) != listed.size:  # numpy would broadcast one value
+        raise ValueError("packed values: the escaped bytes and the listed values disagree")
+    values[escaped] = listed
     return values

@@ -103,6 +103,23 @@ def test_both_paths_pack_to_the_same_form(monkeypatch: pytest.MonkeyPatch) -> No
             assert_same(got_part, want_part)
 
 
+@pytest.mark.parametrize("part", [1, 2])  # the steps, the counts
+@pytest.mark.parametrize("change", [-1, 1])  # a listed value lost, one too many
+def test_a_packed_form_that_does_not_hold_together_is_refused(
+    part: int, change: int, either_path: bool
+) -> None:
+    """Escaped bytes and listed values that disagree (a damaged transfer) raise ValueError on
+    either path, never read beyond the listed values or leave a value unset."""
+    bins = np.array([3, 4, 600, 601, 100_000], np.int64)
+    counts = np.array([1, 900, 2, 70_000, 5], np.int32)
+    packed = list(packing.pack(bins, counts))
+    small, listed = packed[part]
+    listed = listed[:-1] if change < 0 else np.append(listed, listed[:1])
+    packed[part] = (small, listed)
+    with pytest.raises(ValueError):
+        packing.unpack(tuple(packed))  # type: ignore[arg-type]
+
+
 def test_a_pickled_summary_is_the_same_summary() -> None:
     """Moments, extremes, bins and counts (values and dtypes) survive pickling; a summary held
     twice stays one object (the region that holds the whole tile shares the tile's)."""
