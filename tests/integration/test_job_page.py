@@ -65,6 +65,9 @@ def server(
             "DEMAUDIT_RESULTS_DIR": str(folder / "results"),
             "DEMAUDIT_LOCAL_WORKERS": "2",
             "DEMAUDIT_WORKER_MEMORY_LIMIT": "2GiB",
+            # one job at a time: jobs submitted ahead of the watched one hold it back (accepted)
+            # until its page is open, however fast the demo runs on the machine
+            "DEMAUDIT_MAX_RUNNING_JOBS": "1",
         }
     )
     args = [str(VENV_BIN / "demaudit"), "serve", "--host", "127.0.0.1", "--port", str(port)]
@@ -150,8 +153,8 @@ def screenshot(driver: Any, path: Path) -> Path:
     return path
 
 
-def demo_spec(name: str) -> dict[str, Any]:
-    spec: dict[str, Any] = yaml.safe_load((REPO / "demo_tiles" / "demo.yaml").read_text())
+def demo_spec(name: str, file: str = "demo.yaml") -> dict[str, Any]:
+    spec: dict[str, Any] = yaml.safe_load((REPO / "demo_tiles" / file).read_text())
     spec["name"] = name
     return spec
 
@@ -175,8 +178,15 @@ def test_a_person_follows_a_job_from_the_list_to_its_report(server, browser, tmp
     before_token = [e["message"] for e in browser.get_log("browser") if e["level"] == "SEVERE"]
     assert all("401" in message for message in before_token), before_token
 
-    # a job submitted meanwhile appears in the list (it polls), with a link to its page
-    response = http.post(EXECUTE, json={"inputs": demo_spec("browser-watched")})
+    # a job submitted meanwhile appears in the list (it polls), with a link to its page. Two
+    # jobs ahead of it keep it waiting while the list refreshes and its page opens, and it
+    # co-registers (its tiles run twice): the demo's 36 tiles otherwise run in about two
+    # seconds, too short for a page that polls every second to see the progress move
+    for ahead in ("browser-ahead-1", "browser-ahead-2"):
+        response = http.post(EXECUTE, json={"inputs": demo_spec(ahead)})
+        assert response.status_code == 201, response.text
+    watched = demo_spec("browser-watched", "demo_coregistered.yaml")
+    response = http.post(EXECUTE, json={"inputs": watched})
     assert response.status_code == 201, response.text
     job_id = response.json()["jobID"]
     row = f"#jobs tr[data-job='{job_id}'] a"
