@@ -15,7 +15,7 @@ import numpy as np
 from numpy.typing import NDArray
 
 from demaudit.workers.compiled import AVAILABLE
-from demaudit.workers.stats.kernels import add_into, add_within, nonzero_entries
+from demaudit.workers.stats.kernels import add_within, nonzero_entries
 
 LINEAR_WIDTH_M = 2.0e-4
 LINEAR_LIMIT_M = 2.0
@@ -151,8 +151,8 @@ def _sorted_sums(
         low = int(bins.min())
         if AVAILABLE:  # compiled: an exact int64 counter, no float weights
             dense = np.zeros(span, dtype=np.int64)
-            add_into(dense, bins, counts, low)
-            return dense_entries(dense, low)
+            if add_within(dense, bins, counts, low):  # always: low and span are the bins' own
+                return dense_entries(dense, low)
         summed = np.bincount(bins - low, weights=counts, minlength=span)
         (present,) = np.nonzero(summed)
         return (present + low).astype(np.int64), summed[present].astype(np.int64)

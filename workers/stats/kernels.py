@@ -12,21 +12,10 @@ import numpy as np
 from demaudit.workers.compiled import compiled
 
 
-def _add_into(dense, bins, counts, low):  # type: ignore[no-untyped-def]
-    """dense[bins - low] += counts, one entry at a time (bins may repeat)."""
-    for k in range(bins.size):
-        dense[bins[k] - low] += counts[k]
-
-
-def add_into(dense: Any, bins: Any, counts: Any, low: int) -> None:
-    """Compiled _add_into (same arguments): about 6x faster than numpy's indexed add for the
-    tile histograms a job merges (40,000 bins each)."""
-    compiled(_add_into)(dense, bins, counts, low)
-
-
 def _add_within(dense, bins, counts, low):  # type: ignore[no-untyped-def]
-    """_add_into when every bins[k] - low indexes dense: True; else False at the first that
-    does not (dense then holds a part of the sum: the caller drops it)."""
+    """dense[bins - low] += counts, one entry at a time (bins may repeat and come in any
+    order), when every bins[k] - low indexes dense: True; else False at the first that does
+    not (dense then holds a part of the sum: the caller drops it)."""
     for k in range(bins.size):
         i = bins[k] - low
         if i < 0 or i >= dense.size:
@@ -36,8 +25,9 @@ def _add_within(dense, bins, counts, low):  # type: ignore[no-untyped-def]
 
 
 def add_within(dense: Any, bins: Any, counts: Any, low: int) -> bool:
-    """Compiled _add_within (same arguments): the bounds are checked in the same pass, so the
-    parts need no check of their order beforehand."""
+    """Compiled _add_within (same arguments): about 6x faster than numpy's indexed add for the
+    tile histograms a job merges (40,000 bins each); the bounds are checked in the same pass,
+    so the parts need no check of their order beforehand."""
     return bool(compiled(_add_within)(dense, bins, counts, low))
 
 

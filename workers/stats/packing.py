@@ -56,7 +56,8 @@ def unpack(packed: Packed) -> tuple[NDArray[np.integer], NDArray[np.integer]]:
     if packed[0] is None:
         return packed[1], packed[2]
     first, steps, counts, bins_dtype, counts_dtype = packed
-    if AVAILABLE:  # one pass each, straight into the arrays' own dtypes
+    if AVAILABLE and np.dtype(bins_dtype).isnative and np.dtype(counts_dtype).isnative:
+        # one pass each, straight into the arrays' own dtypes
         bins = np.empty(steps[0].size + 1, dtype=np.dtype(bins_dtype))
         running_sum(first, *steps, _ESCAPE, bins)
         values = np.empty(counts[0].size, dtype=np.dtype(counts_dtype))
@@ -84,7 +85,7 @@ def _packable(bins: NDArray[Any], counts: NDArray[Any]) -> bool:
 
 def _as_bytes(values: NDArray[np.integer]) -> Bytes:
     """Values (none negative) as one byte each, those of _ESCAPE or more listed beside."""
-    if AVAILABLE:
+    if AVAILABLE and values.dtype.isnative:  # numba takes native byte order only
         small = np.empty(values.size, dtype=np.uint8)
         escaped = escaped_bytes(values, _ESCAPE, small)
         top = int(values.max()) if escaped else 0

@@ -17,12 +17,12 @@ from tests.properties.test_summary_properties import adversarial_dh
 pytest.importorskip("numba")
 
 
-def test_add_into_counts_repeated_bins_like_numpy_add_at() -> None:
+def test_add_within_counts_repeated_bins_like_numpy_add_at() -> None:
     rng = np.random.default_rng(3)
     dense_bins = rng.integers(-50, 50, 2_000)  # repeats on purpose
     counts = rng.integers(1, 1_000, dense_bins.size)
     got = np.zeros(100, np.int64)
-    stats_kernels.add_into(got, dense_bins, counts, -50)
+    assert stats_kernels.add_within(got, dense_bins, counts, -50)
     want = np.zeros(100, np.int64)
     np.add.at(want, dense_bins + 50, counts)  # numpy as the reference
     np.testing.assert_array_equal(got, want)

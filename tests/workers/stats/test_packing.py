@@ -63,6 +63,7 @@ def test_unpack_gives_back_the_values_and_dtypes(
         (np.array([0, 3 * 2**61, -(2**61) - 5]), np.array([1, 2, 3])),  # steps wrap in int64
         (np.array([1.0, 2.0]), np.array([1, 1], np.int32)),  # not integers
         (np.arange(6, dtype=np.int32).reshape(2, 3), np.ones((2, 3), np.int32)),  # not 1-D
+        (np.array([1, 5, 900], ">i4"), np.array([3, 300, 2], ">i8")),  # big-endian
     ],
 )
 def test_edges_of_the_packing(bins: np.ndarray, counts: np.ndarray, either_path: bool) -> None:
