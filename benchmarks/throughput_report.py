@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 import rasterio
 from throughput_archives import REPROJECTED, SAME_GRID
+from tile_loop import tile_calls
 
 REPEATS = 3
 
@@ -57,7 +58,7 @@ def phases(spec_path: Path) -> list[tuple[str, float]]:
     from demaudit.workers.tile.datum import vertical_offset_on_grid
     from demaudit.workers.tile.difference import block_mean, difference
 
-    test, refs, regions, options = _first_tile(spec_path)
+    (test, refs, regions, options) = tile_calls(spec_path, 1)[0]  # the job's first test tile
     keep = ref_side.keeps_float32(options)
     out: list[tuple[str, float]] = []
     seconds, heights = best_of(lambda: ref_side.test_heights(test, options, keep_float32=keep))
@@ -92,28 +93,6 @@ def phases(spec_path: Path) -> list[tuple[str, float]]:
     seconds, _ = best_of(lambda: tile_task.audit_tile(test, refs, regions, options))
     out.append(("whole audit_tile", seconds))
     return out
-
-
-def _first_tile(spec_path: Path) -> tuple[Any, list[Any], list[Any], Any]:
-    """The job's first test tile, its reference tiles, its regions and the tile options."""
-    from demaudit.workers import spec as job_spec
-    from demaudit.workers.inputs import regions as region_ops
-    from demaudit.workers.inputs.catalog import TileIndex, TileInfo, scan_tile
-    from demaudit.workers.tile import task as tile_task
-
-    job = job_spec.resolve(
-        job_spec.parse_spec(job_spec.load_spec_file(spec_path)), base_dir=spec_path.parent
-    )
-    options = tile_task.TileOptions.from_spec(job.spec)
-    test = scan_tile(job.test_tiles[0])
-    references = [s for s in (scan_tile(p) for p in job.reference_tiles) if isinstance(s, TileInfo)]
-    assert isinstance(test, TileInfo)
-    refs = TileIndex(references).overlapping(test.grid)
-    regions: list[Any] = []
-    if job.region_file is not None and job.spec.region is not None:
-        regions = region_ops.read_regions(job.region_file, id_property=job.spec.region.id_property)
-        regions = region_ops.clip_to(region_ops.to_crs(regions, test.grid.crs), test.bounds)
-    return test, refs, regions, options
 
 
 # -- report -------------------------------------------------------------------------------------

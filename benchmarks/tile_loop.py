@@ -11,8 +11,8 @@ core less); the Dask job's own cost (client, scheduler, transfers) comes on top 
 from __future__ import annotations
 
 import multiprocessing
+import statistics
 import time
-from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
@@ -21,7 +21,8 @@ Calls = list[tuple[Any, list[Any], list[Any], Any]]
 
 
 def tile_calls(spec_path: Path, count: int) -> Calls:
-    """The first ``count`` test tiles of a job, each with its reference tiles and regions."""
+    """The first ``count`` test tiles of a job, each with its reference tiles, its regions (in
+    the tile's CRS, clipped to it) and the tile options: audit_tile's arguments."""
     from demaudit.workers import spec as job_spec
     from demaudit.workers.inputs import regions as region_ops
     from demaudit.workers.inputs.catalog import TileIndex, TileInfo, scan_tile
@@ -80,11 +81,5 @@ def scaling_lines(spec_path: Path, per_process: int, rounds: int) -> list[str]:
             f"  round {round_no + 1}: alone {alone[0] * 1e3:.1f} ({alone[1] * 1e3:.1f}), "
             f"two at once {at_once}: gain {gains[-1]:.2f}"
         )
-    lines.append(f"  2 processes / 1 process, median of rounds: {_median(gains):.2f}")
+    lines.append(f"  2 processes / 1 process, median of rounds: {statistics.median(gains):.2f}")
     return lines
-
-
-def _median(values: Sequence[float]) -> float:
-    ordered = sorted(values)
-    middle = len(ordered) // 2
-    return ordered[middle] if len(ordered) % 2 else (ordered[middle - 1] + ordered[middle]) / 2
