@@ -220,7 +220,8 @@ def ratio_lines(runs: Sequence[Run]) -> list[str]:
             parts.append(f"demaudit/naive {d2.mpix_s / naive.mpix_s:.2f}")
         if d2 and d1:
             parts.append(f"2 workers / 1 worker {d2.mpix_s / d1.mpix_s:.2f}")
-        lines.append("  ".join(parts))
+        if len(parts) > 1:
+            lines.append("  ".join(parts))
         paired = round_ratios(runs, kind, limit)
         if paired:
             lines.append(f"  per round ({kind}): {paired}")
