@@ -11,18 +11,13 @@ from functools import lru_cache
 from typing import TYPE_CHECKING
 
 import numpy as np
-from pyproj import CRS, Transformer
+from pyproj import Transformer
 from shapely import STRtree, box
 
-from demaudit.workers.tile.grid import Grid
+from demaudit.workers.tile.grid import Grid, crs_of
 
 if TYPE_CHECKING:
     from demaudit.workers.inputs.catalog import TileInfo
-
-
-@lru_cache(maxsize=64)
-def crs_of(wkt: str) -> CRS:
-    return CRS.from_wkt(wkt)
 
 
 @lru_cache(maxsize=64)
