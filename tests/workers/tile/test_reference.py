@@ -1,5 +1,6 @@
 """Float32 kept end to end (tile/reference.py, task.tile_surfaces): the same numbers as the
-float64 path, whichever options make the task keep or widen the heights."""
+float64 path, whichever options make the task keep or widen the heights; and a grid's bounds
+in its own CRS taken without a transform (reference.bounds_in)."""
 
 from __future__ import annotations
 
@@ -7,14 +8,19 @@ from dataclasses import replace
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
+from pyproj import CRS
 from rasterio.transform import from_origin
+from rasterio.warp import transform_bounds
 
 from demaudit.workers.inputs.catalog import scan_tile
 from demaudit.workers.inputs.rasters import read_mosaic, read_tile
 from demaudit.workers.tile import task as tile_task
 from demaudit.workers.tile.align import onto_grid
 from demaudit.workers.tile.difference import difference
-from demaudit.workers.tile.reference import in_metres, keeps_float32
+from demaudit.workers.tile.grid import Grid
+from demaudit.workers.tile.reference import bounds_in, in_metres, keeps_float32
 from demaudit.workers.tile.summarise import summarise_tile
 from demaudit.workers.uncertainty.error_model import ErrorModelOptions
 
@@ -116,3 +122,23 @@ def test_in_metres_keeps_float32_metres_only(units: str, kept: bool) -> None:
 
 def _model() -> ErrorModelOptions:
     return ErrorModelOptions(seed=1, samples_per_tile=10, outlier_rule="nmad", outlier_factor=5.0)
+
+
+@settings(max_examples=200, deadline=None)
+@given(
+    epsg=st.sampled_from([25832, 3035, 32633, 3857, 4326, 4258]),
+    corner=st.tuples(st.floats(0.0, 1.0), st.floats(0.0, 1.0)),
+    size=st.tuples(st.integers(1, 4000), st.integers(1, 4000)),
+    pixel=st.floats(1e-5, 30.0),
+)
+def test_bounds_in_the_grids_own_crs_are_what_the_transform_returns(epsg, corner, size, pixel):
+    # bounds_in skips the transform within one CRS; rasterio's transform_bounds (GDAL, edges
+    # densified) must give the very same floats there
+    crs = CRS.from_epsg(epsg)
+    geographic = crs.is_geographic
+    step = min(pixel, 0.01) if geographic else pixel
+    left = -170 + 300 * corner[0] if geographic else -5e5 + 1e6 * corner[0]
+    top = -60 + 120 * corner[1] if geographic else 1e6 + 6e6 * corner[1]
+    grid = Grid(crs.to_wkt(), (step, 0.0, left, 0.0, -step, top), size[0], size[1])
+    assert bounds_in(grid, grid.crs) == grid.bounds
+    assert tuple(transform_bounds(crs, crs, *grid.bounds, densify_pts=21)) == grid.bounds
