@@ -250,13 +250,10 @@ def _histogram_template(dtype: str) -> ArrayV3Metadata:
 
 
 def _histogram_json(table: NDArray[Any]) -> bytes:
-    """The zarr.json of the array holding table in one chunk: _histogram_metadata's document,
-    its shape and chunk shape put into the cached document of its dtype instead of building
-    and checking the metadata anew for every tile (tests hold the bytes to zarr's own)."""
-    chunk_shape = (2, max(table.shape[1], 1))
-    document = _histogram_document(table.dtype.name)
-    chunk_grid = {"name": "regular", "configuration": {"chunk_shape": chunk_shape}}
-    return _metadata_json({**document, "shape": table.shape, "chunk_grid": chunk_grid})
+    """The zarr.json of the array holding table in one chunk (_histogram_metadata's document,
+    encoded without building and checking the metadata anew for every tile; tests hold the
+    bytes to zarr's own)."""
+    return _metadata_json(_histogram_fields(table))
 
 
 @cache
@@ -274,14 +271,16 @@ def _histogram_document(dtype: str) -> dict[str, Any]:
     return dict(made.metadata.to_dict())
 
 
+def _histogram_fields(table: NDArray[Any]) -> dict[str, Any]:
+    """The metadata document of an array holding table in one chunk: its dtype's document
+    with table's shape and chunk shape."""
+    chunk = {"name": "regular", "configuration": {"chunk_shape": (2, max(table.shape[1], 1))}}
+    return {**_histogram_document(table.dtype.name), "shape": table.shape, "chunk_grid": chunk}
+
+
 def _histogram_metadata(table: NDArray[Any]) -> ArrayV3Metadata:
     """The metadata of an array holding table in one chunk."""
-    chunk: dict[str, Any] = {
-        "name": "regular",
-        "configuration": {"chunk_shape": (2, max(table.shape[1], 1))},
-    }
-    document = {**_histogram_document(table.dtype.name), "shape": table.shape}
-    return ArrayV3Metadata.from_dict({**document, "chunk_grid": chunk})
+    return ArrayV3Metadata.from_dict(_histogram_fields(table))
 
 
 def packed_entries(entries: dict[Key, DhSummary]) -> tuple[list[dict[str, Any]], NDArray[Any]]:

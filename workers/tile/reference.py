@@ -9,11 +9,9 @@ then computed on the float64 values they hold, so the numbers are those of the f
 from __future__ import annotations
 
 from collections.abc import Sequence
-from functools import lru_cache
 
 import numpy as np
 from numpy.typing import NDArray
-from pyproj import CRS
 from rasterio.warp import transform_bounds
 
 from demaudit.workers.inputs.catalog import TileInfo
@@ -21,7 +19,7 @@ from demaudit.workers.inputs.rasters import read_mosaic, read_tile
 from demaudit.workers.spec import METRES_PER_UNIT
 from demaudit.workers.tile.align import onto_grid
 from demaudit.workers.tile.datum import to_metres, vertical_offset_on_grid
-from demaudit.workers.tile.grid import Grid
+from demaudit.workers.tile.grid import Grid, crs_of
 from demaudit.workers.tile.records import Mosaic, TileOptions
 
 
@@ -107,16 +105,9 @@ def bounds_in(grid: Grid, crs: str) -> tuple[float, float, float, float]:
     if crs == grid.crs:
         return grid.bounds
     left, bottom, right, top = transform_bounds(
-        _crs(grid.crs), _crs(crs), *grid.bounds, densify_pts=21
+        crs_of(grid.crs), crs_of(crs), *grid.bounds, densify_pts=21
     )
     return left, bottom, right, top
-
-
-@lru_cache(maxsize=64)
-def _crs(wkt: str) -> CRS:
-    """The CRS of a WKT string, parsed once per process (a grid pair's bounds are then only
-    transformed, not re-parsed, for every tile)."""
-    return CRS.from_wkt(wkt)
 
 
 def mosaics_onto(mosaics: Sequence[Mosaic], grid: Grid, *, resampling: str) -> NDArray[np.floating]:
